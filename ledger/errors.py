@@ -1,0 +1,87 @@
+"""Exception hierarchy.
+
+Every error the product raises on purpose is a :class:`LedgerError`.  Subclasses also
+subclass the matching built-in so that callers may catch ``ValueError`` and friends.
+Messages are one line, name the offending thing, and say what to do where possible.
+"""
+
+from __future__ import annotations
+
+__all__ = [
+    "LedgerError",
+    "ModelSyntaxError",
+    "ModelError",
+    "UnitError",
+    "SpecError",
+    "NotFoundError",
+    "DuplicateError",
+    "IntegrityViolation",
+    "SchemaError",
+    "ComputeError",
+    "UnstableLoopError",
+]
+
+
+class LedgerError(Exception):
+    """Base class of every deliberate loopledger error."""
+
+
+class ModelSyntaxError(LedgerError, ValueError):
+    """Model text could not be parsed.
+
+    Parameters
+    ----------
+    message : str
+        What is wrong.
+    text : str
+        The text that was parsed.
+    position : int
+        0-based index of the offending character in ``text``.
+    """
+
+    def __init__(self, message: str, text: str = "", position: int | None = None):
+        self.text = text
+        self.position = position
+        self.reason = message
+        if position is not None and text:
+            where = f" at column {position + 1}"
+            caret = f": {text!r}, here -> {text[position:position + 12]!r}"
+            super().__init__(f"{message}{where}{caret}")
+        else:
+            super().__init__(message)
+
+
+class ModelError(LedgerError, ValueError):
+    """A model parsed but is not acceptable (improper, NaN coefficients, wrong sample time...)."""
+
+
+class UnitError(LedgerError, ValueError):
+    """A unit is unknown or does not fit the metric."""
+
+
+class SpecError(LedgerError, ValueError):
+    """A spec file is malformed; the message names the file, record and field."""
+
+
+class NotFoundError(LedgerError, LookupError):
+    """A named record does not exist."""
+
+
+class DuplicateError(LedgerError, ValueError):
+    """A record with that name or ID already exists."""
+
+
+class IntegrityViolation(LedgerError, ValueError):
+    """An operation would break a ledger invariant (cycle, append-only, missing rationale...)."""
+
+
+class SchemaError(LedgerError, RuntimeError):
+    """The database is not a ledger, is damaged, or comes from a newer schema."""
+
+
+class ComputeError(LedgerError, ArithmeticError):
+    """A metric could not be computed; the message says why."""
+
+
+class UnstableLoopError(ComputeError):
+    """The closed loop is unstable, so a response metric does not exist."""
