@@ -1,0 +1,175 @@
+"""Exact zero-order-hold discretisation of a continuous plant with an input delay.
+
+A digital loop holds the controller output constant over each sample interval ``Ts``.  The
+continuous plant ``x' = A x + B v, y = C x + D v`` driven through a transport delay
+``theta = m Ts + f`` (``m`` whole samples, ``0 <= f < Ts``) is, at the sample instants,
+exactly (modified z-transform written in state space; Franklin, Powell and Workman,
+*Digital Control of Dynamic Systems*, 3rd ed., section 4.3.4)::
+
+    x[k+1] = Phi x[k] + Gamma0 u[k-m] + Gamma1 u[k-m-1]
+    Phi    = exp(A Ts)
+    Gamma0 = int_0^{Ts-f} exp(A s) ds B
+    Gamma1 = exp(A (Ts-f)) int_0^{f} exp(A s) ds B
+    y[k]   = C x[k] + D u[k-m]        (f == 0)
+    y[k]   = C x[k] + D u[k-m-1]      (f > 0: at t = k Ts the held value is the older one)
+
+Each integral comes from one matrix exponential of ``[[A, B], [0, 0]]``.  The past inputs
+become extra states, so the result is an ordinary discrete state-space model.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import scipy.linalg
+
+from ..errors import ModelError
+
+__all__ = ["split_delay", "zoh_matrices", "zoh_discretize", "shift_register"]
+
+
+def split_delay(delay: float, sample_time: float, *, rel_tol: float = 1e-9) -> tuple[int, float]:
+    """Split a delay into whole samples and a fractional remainder.
+
+    Parameters
+    ----------
+    delay : float
+        Delay in seconds, >= 0.
+    sample_time : float
+        Sample time in seconds, > 0.
+    rel_tol : float, optional
+        A remainder within ``rel_tol * sample_time`` of 0 or of ``sample_time`` is snapped to
+        a whole sample (default 1e-9, dimensionless).
+
+    Returns
+    -------
+    m : int
+        Whole samples.
+    frac : float
+        Remainder in seconds, ``0 <= frac < sample_time``.
+    """
+    ratio = delay / sample_time
+    m = int(math.floor(ratio))
+    frac = delay - m * sample_time
+    if frac <= rel_tol * sample_time:
+        frac = 0.0
+    elif sample_time - frac <= rel_tol * sample_time:
+        m += 1
+        frac = 0.0
+    return m, frac
+
+
+def _integral(A: np.ndarray, B: np.ndarray, t: float) -> tuple[np.ndarray, np.ndarray]:
+    """Return ``exp(A t)`` and ``int_0^t exp(A s) ds B`` from one matrix exponential."""
+    n = A.shape[0]
+    M = np.zeros((n + 1, n + 1))
+    M[:n, :n] = A * t
+    M[:n, n] = B * t
+    E = scipy.linalg.expm(M)
+    return E[:n, :n], E[:n, n]
+
+
+def zoh_matrices(A, B, sample_time: float, frac: float = 0.0):
+    """ZOH matrices ``Phi, Gamma0, Gamma1`` for a fractional input delay ``frac`` in [0, Ts).
+
+    Parameters
+    ----------
+    A : ndarray (n, n)
+    B : ndarray (n,)
+    sample_time : float
+        Ts in seconds.
+    frac : float
+        Fractional delay in seconds, ``0 <= frac < Ts``.
+
+    Returns
+    -------
+    Phi, Gamma0, Gamma1 : ndarray
+        See the module docstring; ``Gamma1`` is zero when ``frac == 0``.
+    """
+    A = np.asarray(A, dtype=float)
+    B = np.asarray(B, dtype=float).reshape(-1)
+    n = A.shape[0]
+    if n == 0:
+        return np.zeros((0, 0)), np.zeros(0), np.zeros(0)
+    Phi, _ = _integral(A, B, sample_time)
+    E1, G0 = _integral(A, B, sample_time - frac)
+    if frac == 0.0:
+        return Phi, G0, np.zeros(n)
+    _, Gf = _integral(A, B, frac)
+    return Phi, G0, E1 @ Gf
+
+
+def shift_register(m: int):
+    """State-space matrices of a pure delay of ``m`` samples (``z^-m``).
+
+    Returns
+    -------
+    A (m, m), B (m,), C (m,), D float
+    """
+    if m <= 0:
+        return np.zeros((0, 0)), np.zeros(0), np.zeros(0), 1.0
+    A = np.eye(m, k=-1)
+    B = np.zeros(m)
+    B[0] = 1.0
+    C = np.zeros(m)
+    C[-1] = 1.0
+    return A, B, C, 0.0
+
+
+def _series(first, second):
+    """Series connection of two SISO discrete state-space tuples (first feeds second)."""
+    A1, B1, C1, D1 = first
+    A2, B2, C2, D2 = second
+    n1, n2 = A1.shape[0], A2.shape[0]
+    A = np.zeros((n1 + n2, n1 + n2))
+    A[:n1, :n1] = A1
+    A[n1:, :n1] = np.outer(B2, C1)
+    A[n1:, n1:] = A2
+    B = np.concatenate([B1, B2 * D1])
+    C = np.concatenate([D2 * C1, C2])
+    D = D2 * D1
+    return A, B, C, D
+
+
+def zoh_discretize(A, B, C, D, sample_time: float, delay: float = 0.0):
+    """Exact ZOH discretisation of a continuous SISO plant with an input delay.
+
+    Parameters
+    ----------
+    A, B, C, D : array_like
+        Continuous state-space matrices (``B`` and ``C`` 1-D, ``D`` scalar).
+    sample_time : float
+        Ts in seconds, > 0.
+    delay : float, optional
+        Input transport delay in seconds, >= 0 (default 0).
+
+    Returns
+    -------
+    tuple (Ad, Bd, Cd, Dd)
+        Discrete matrices; the state is ``[x, held past input (if fractional), delay line]``.
+    """
+    if not (math.isfinite(sample_time) and sample_time > 0):
+        raise ModelError(f"sample time {sample_time!r} s is not positive and finite; give Ts > 0")
+    if not (math.isfinite(delay) and delay >= 0):
+        raise ModelError(f"delay {delay!r} s is negative or not finite; give a delay >= 0")
+    A = np.atleast_2d(np.asarray(A, dtype=float))
+    if A.size == 0:
+        A = np.zeros((0, 0))
+    B = np.asarray(B, dtype=float).reshape(-1)
+    C = np.asarray(C, dtype=float).reshape(-1)
+    D = float(np.asarray(D, dtype=float).reshape(-1)[0]) if np.size(D) else 0.0
+    n = A.shape[0]
+    m, frac = split_delay(delay, sample_time)
+    Phi, G0, G1 = zoh_matrices(A, B, sample_time, frac)
+    if frac > 0.0:
+        # state [x; v_prev]: v_prev[k+1] = v[k]
+        Ad = np.zeros((n + 1, n + 1))
+        Ad[:n, :n] = Phi
+        Ad[:n, n] = G1
+        Bd = np.concatenate([G0, [1.0]])
+        Cd = np.concatenate([C, [D]])
+        Dd = 0.0
+    else:
+        Ad, Bd, Cd, Dd = Phi, G0, C.copy(), D
+    return _series(shift_register(m), (Ad, Bd, Cd, Dd))

@@ -1,0 +1,545 @@
+"""Loop settings and assembly of closed-loop batches over a plant family.
+
+Signals (SISO, negative feedback)::
+
+    e  = F r - ym                 actuating error (F: prefilter, 1 if absent)
+    u  = C e                      controller output
+    v  = u(t - input_delay) + d   plant input; d is an input disturbance
+    y  = G v(t - plant_delay)     plant output (plant_delay: the variant's own delay)
+    ym = H y(t - output_delay) + n     measurement; H sensor (1 if absent), n noise
+
+All blocks are SISO and linear, so every delay commutes round the loop.  The loop delay is
+``tau = input_delay + plant_delay + output_delay`` and each path is
+``e^{-s io} P0(s) / (1 + L0(s) e^{-s tau})`` with ``P0`` the delay-free forward blocks and
+``io`` the delay met on the way in (``r->y``: input + plant delay; ``d->y``: plant delay;
+``r->e``, ``r->u``, ``n->u``: none).  The delay-free part is built once with the delay cut
+at the measurement (``z = y``, ``w = z(t - tau)``) and handed to the kernels as an
+:class:`~ledger.engine.types.SSBatch` with one internal delay channel.
+
+Digital loops (``sample_time`` set): the continuous plant and every loop delay are
+discretised exactly with a zero-order hold (:mod:`ledger.engine.discretize`), the
+computation delay becomes ``z^-d``; the disturbance then enters ahead of all loop delays and
+``y`` is the sampled measured output.  Frequency responses run up to ``pi / Ts``.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from typing import Any, Callable
+
+import control
+import numpy as np
+
+from ..errors import ModelError
+from .discretize import shift_register, zoh_discretize
+from .types import FreqBatch, PlantFamily, SSBatch
+
+__all__ = ["LoopSpec", "Block", "ClosedLoopResponse", "LoopGroup", "Assembly", "PATHS",
+           "make_block", "assemble"]
+
+#: Closed-loop signal paths: input -> output.
+PATHS = ("r->y", "r->e", "r->u", "d->y", "n->u")
+
+_PATH_IO = {"r->y": ("r", "y"), "r->e": ("r", "e"), "r->u": ("r", "u"),
+            "d->y": ("d", "y"), "n->u": ("n", "u")}
+
+
+def _check_time(value, what: str, *, allow_zero: bool = True) -> None:
+    if value is None:
+        return
+    try:
+        x = float(value)
+    except (TypeError, ValueError) as e:
+        raise ModelError(f"{what} {value!r} is not a number; give seconds as a float") from e
+    if not math.isfinite(x) or x < 0 or (x == 0 and not allow_zero):
+        need = "> 0" if not allow_zero else ">= 0"
+        raise ModelError(f"{what} {value!r} s is not finite and {need}; give a value {need}")
+
+
+@dataclass(frozen=True)
+class LoopSpec:
+    """How a controller and a plant are connected.
+
+    Parameters
+    ----------
+    sensor : control.LTI or None
+        Sensor dynamics H in the feedback path; ``None`` is unity feedback.
+    prefilter : control.LTI or None
+        Reference prefilter F; ``None`` is 1.
+    input_delay : float
+        Delay from controller output to plant input, s (>= 0).
+    output_delay : float
+        Delay from plant output to measurement, s (>= 0).
+    sample_time : float or None
+        ``None``: continuous controller.  Otherwise the controller is discrete with this
+        sample time, s (> 0).
+    computation_delay : int
+        Whole samples of computation delay, ``z^-d`` (digital loops only; >= 0).
+    actuator_limit : float or None
+        Actuator limit in plant-input units, for the effort metric; ``None`` means none.
+    controller_discretization : str or None
+        ``None`` refuses a continuous controller in a digital loop; ``"tustin"`` converts it.
+    """
+
+    sensor: Any = None
+    prefilter: Any = None
+    input_delay: float = 0.0
+    output_delay: float = 0.0
+    sample_time: float | None = None
+    computation_delay: int = 0
+    actuator_limit: float | None = None
+    controller_discretization: str | None = None
+
+    def __post_init__(self):
+        _check_time(self.input_delay, "input_delay")
+        _check_time(self.output_delay, "output_delay")
+        _check_time(self.sample_time, "sample_time", allow_zero=False)
+        d = self.computation_delay
+        if isinstance(d, bool) or not isinstance(d, (int, np.integer)) or d < 0:
+            raise ModelError(f"computation_delay {d!r} is not a whole number of samples >= 0")
+        if d and self.sample_time is None:
+            raise ModelError("computation_delay needs a digital loop; give sample_time too")
+        if self.actuator_limit is not None:
+            a = float(self.actuator_limit)
+            if not (math.isfinite(a) and a > 0):
+                raise ModelError(f"actuator_limit {self.actuator_limit!r} is not positive and "
+                                 "finite; give a limit > 0 or None")
+        if self.controller_discretization not in (None, "tustin"):
+            raise ModelError(f"controller_discretization {self.controller_discretization!r} "
+                             "is unknown; use None or 'tustin'")
+
+
+# --------------------------------------------------------------------------- blocks
+
+def _trim(p: np.ndarray) -> np.ndarray:
+    p = np.asarray(p, dtype=float).reshape(-1)
+    nz = np.flatnonzero(p != 0.0)
+    return p[nz[0]:] if nz.size else np.zeros(1)
+
+
+@dataclass(frozen=True, eq=False)
+class Block:
+    """One SISO block: state-space matrices and zero/pole/gain for exact evaluation.
+
+    ``dt`` is ``None`` (continuous), a float (discrete) or ``"any"`` (static gain).
+    """
+
+    A: np.ndarray
+    B: np.ndarray
+    C: np.ndarray
+    D: float
+    zeros: np.ndarray
+    poles: np.ndarray
+    gain: float
+    dt: Any
+
+    @property
+    def order(self) -> int:
+        return self.A.shape[0]
+
+    def __call__(self, x: np.ndarray) -> np.ndarray:
+        """Evaluate at complex points ``x`` (s or z) from the zero/pole/gain form."""
+        x = np.asarray(x, dtype=complex)
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            num = np.prod(x[None, :] - self.zeros[:, None], axis=0) if self.zeros.size else 1.0
+            den = np.prod(x[None, :] - self.poles[:, None], axis=0) if self.poles.size else 1.0
+            return self.gain * num / den * np.ones_like(x)
+
+
+def make_block(sys, role: str) -> Block:
+    """Check one python-control SISO system and return it as a :class:`Block`.
+
+    Raises
+    ------
+    ModelError
+        Not a SISO LTI, non-finite coefficients, or improper (``role`` names the block).
+    """
+    if isinstance(sys, (int, float, np.integer, np.floating)):
+        sys = control.tf(float(sys), 1)
+    if not isinstance(sys, (control.TransferFunction, control.StateSpace)):
+        raise ModelError(f"{role} is a {type(sys).__name__}, not a python-control "
+                         "TransferFunction or StateSpace; give an LTI model")
+    if sys.ninputs != 1 or sys.noutputs != 1:
+        raise ModelError(f"{role} has {sys.ninputs} inputs and {sys.noutputs} outputs; "
+                         "only SISO blocks are supported")
+    if isinstance(sys, control.TransferFunction):
+        num, den = _trim(sys.num[0][0]), _trim(sys.den[0][0])
+        if not (np.all(np.isfinite(num)) and np.all(np.isfinite(den))) or not np.any(den):
+            raise ModelError(f"{role} has non-finite or zero coefficients; fix the model")
+        if num.size > den.size:
+            raise ModelError(f"{role} is improper (more zeros than poles); an ideal "
+                             "derivative needs a derivative filter, e.g. s/(T s + 1)")
+        try:
+            ss = control.ss(sys)
+        except ValueError as e:
+            raise ModelError(f"{role} cannot be realised in state space: {e}") from e
+    else:
+        ss = sys
+        if not all(np.all(np.isfinite(M)) for M in (ss.A, ss.B, ss.C, ss.D)):
+            raise ModelError(f"{role} has non-finite matrix entries; fix the model")
+        tf = control.tf(ss)
+        num, den = _trim(tf.num[0][0]), _trim(tf.den[0][0])
+    A = np.asarray(ss.A, dtype=float).reshape(ss.nstates, ss.nstates)
+    B = np.asarray(ss.B, dtype=float).reshape(ss.nstates)
+    C = np.asarray(ss.C, dtype=float).reshape(ss.nstates)
+    D = float(np.asarray(ss.D, dtype=float).reshape(-1)[0])
+    if A.shape[0] == 0:
+        dt = "any"
+    elif sys.dt is None or sys.dt == 0:
+        dt = None
+    else:
+        dt = sys.dt
+    if not np.any(num):
+        zeros, poles, gain = np.zeros(0, complex), np.zeros(0, complex), 0.0
+    else:
+        zeros = np.roots(num).astype(complex)
+        poles = np.roots(den).astype(complex)
+        gain = float(num[0] / den[0])
+    return Block(A, B, C, D, zeros, poles, gain, dt)
+
+
+def _block_from_matrices(A, B, C, D, dt) -> Block:
+    ss = control.ss(A, np.reshape(B, (-1, 1)), np.reshape(C, (1, -1)), D,
+                    dt if dt is not None else 0)
+    blk = make_block(ss, "discretised plant")
+    return Block(blk.A, blk.B, blk.C, blk.D, blk.zeros, blk.poles, blk.gain, dt)
+
+
+# --------------------------------------------------------------------------- assembly
+
+@dataclass(frozen=True, eq=False)
+class ClosedLoopResponse:
+    """Exact frequency response of one closed-loop function (S, T, CS or PS) over a group.
+
+    ``evaluate(w) -> complex (V, len(w))``; ``poles``/``zeros`` per variant for gridding
+    (s-plane or z-plane like :class:`~ledger.engine.types.FreqBatch`).
+    """
+
+    evaluate: Callable[[np.ndarray], np.ndarray]
+    dt: float | None
+    poles: list
+    zeros: list
+
+
+@dataclass(frozen=True, eq=False)
+class LoopGroup:
+    """Variants that share a state dimension and a loop delay, batched together.
+
+    Attributes
+    ----------
+    index : ndarray of int
+        Positions of these variants in the family.
+    tau : float
+        Loop delay in s (0 for digital loops, where delays are in the state).
+    paths : dict[str, SSBatch]
+        Closed-loop batches keyed by :data:`PATHS`.
+    loop_gain : FreqBatch
+        L = C G H e^{-s tau}.
+    closed : dict[str, ClosedLoopResponse]
+        ``"S"``, ``"T"``, ``"CS"``, ``"PS"``.
+    poles : list of ndarray or None
+        Closed-loop poles per variant (delay-free loops), else ``None``.
+    prefilter_poles : ndarray
+        Poles of the prefilter (outside the loop, but on the r paths).
+    blocks : tuple
+        ``(controller Block, list of plant Blocks, sensor Block)``.
+    """
+
+    index: np.ndarray
+    tau: float
+    paths: dict
+    loop_gain: FreqBatch
+    closed: dict
+    poles: list | None
+    prefilter_poles: np.ndarray
+    blocks: tuple = field(repr=False, default=())
+
+
+@dataclass(frozen=True, eq=False)
+class Assembly:
+    """A controller closed round every variant of a family.
+
+    Attributes
+    ----------
+    variants : tuple of str
+        Variant names in family order.
+    dt : float or None
+        Sample time of the loop (None: continuous).
+    loop : LoopSpec
+    groups : tuple of LoopGroup
+    """
+
+    variants: tuple
+    dt: float | None
+    loop: LoopSpec
+    groups: tuple
+
+    def scatter(self, per_group: list) -> np.ndarray:
+        """Put per-group (V_g,) arrays back into one (V,) array in family order."""
+        out = np.empty(len(self.variants), dtype=np.asarray(per_group[0]).dtype)
+        for g, vals in zip(self.groups, per_group):
+            out[g.index] = vals
+        return out
+
+
+def _prepare_controller(controller, loop: LoopSpec) -> Block:
+    ts = loop.sample_time
+    if isinstance(controller, (control.TransferFunction, control.StateSpace)):
+        cdt = controller.dt
+        if ts is not None and (cdt is None or cdt == 0) and _order(controller) > 0:
+            if loop.controller_discretization == "tustin":
+                _ = make_block(controller, "controller")  # properness check first
+                controller = control.sample_system(controller, ts, method="tustin")
+            else:
+                raise ModelError("controller is continuous but the loop is digital "
+                                 f"(sample_time={ts} s); give it in z with that dt or set "
+                                 "controller_discretization='tustin'")
+        elif ts is None and cdt not in (None, 0):
+            raise ModelError(f"controller is discrete (dt={cdt} s) but the loop is continuous; "
+                             "set sample_time to the controller's dt")
+        elif ts is not None and cdt not in (None, 0, True) and not math.isclose(cdt, ts):
+            raise ModelError(f"controller dt={cdt} s differs from the loop sample_time={ts} s; "
+                             "use one sample time")
+    blk = make_block(controller, "controller")
+    return blk
+
+
+def _order(sys) -> int:
+    if isinstance(sys, control.StateSpace):
+        return sys.nstates
+    return len(_trim(sys.den[0][0])) - 1
+
+
+def _aux_block(sys, role: str, ts) -> Block:
+    blk = make_block(1.0 if sys is None else sys, role)
+    if ts is None and blk.dt not in (None, "any"):
+        raise ModelError(f"{role} is discrete but the loop is continuous; give it in s")
+    if ts is not None and blk.dt is None:
+        raise ModelError(f"{role} is continuous but the loop is digital (sample_time={ts} s); "
+                         "give it in z with that dt, or fold it into the plant")
+    if ts is not None and blk.dt not in ("any", True) and not math.isclose(blk.dt, ts):
+        raise ModelError(f"{role} dt={blk.dt} s differs from the loop sample_time={ts} s")
+    return blk
+
+
+def _plant_block(variant, loop: LoopSpec) -> tuple[Block, float, float]:
+    """Return (plant Block, loop delay tau, r->y io delay) for one variant."""
+    blk = make_block(variant.system, f"plant variant {variant.name!r}")
+    pd = float(variant.delay)
+    _check_time(pd, f"delay of plant variant {variant.name!r}")
+    ts = loop.sample_time
+    total = loop.input_delay + pd + loop.output_delay
+    if ts is None:
+        if blk.dt not in (None, "any"):
+            raise ModelError(f"plant variant {variant.name!r} is discrete (dt={blk.dt} s) but "
+                             "the loop is continuous; set sample_time")
+        return blk, total, (loop.input_delay, pd)
+    extra = loop.computation_delay
+    if blk.dt in (None, "any"):
+        A, B, C, D = zoh_discretize(blk.A, blk.B, blk.C, blk.D, ts, total)
+        A, B, C, D = _series_d(shift_register(extra), (A, B, C, D))
+        return _block_from_matrices(A, B, C, D, ts), 0.0, (0.0, 0.0)
+    if blk.dt is True or not math.isclose(blk.dt, ts, rel_tol=1e-9):
+        raise ModelError(f"plant variant {variant.name!r} has dt={blk.dt} s but the loop "
+                         f"sample_time is {ts} s; resample the plant or change sample_time")
+    m = total / ts
+    if abs(m - round(m)) > 1e-9 * max(1.0, m):
+        raise ModelError(f"plant variant {variant.name!r} is discrete but the loop delays "
+                         f"({total} s) are not whole samples; give a continuous plant instead")
+    A, B, C, D = _series_d(shift_register(int(round(m)) + extra), (blk.A, blk.B, blk.C, blk.D))
+    return _block_from_matrices(A, B, C, D, ts), 0.0, (0.0, 0.0)
+
+
+def _series_d(first, second):
+    from .discretize import _series
+    return _series(first, second)
+
+
+def _interconnect(F: Block, K: Block, G: Block, H: Block):
+    """Rows over the basis [x (N), r, d, n, w] of every loop signal, delay cut at ym.
+
+    Returns ``(N, xdot rows (N, N+4), signals dict of rows, offsets)``.
+    """
+    nf, nc, ng, nh = F.order, K.order, G.order, H.order
+    N = nf + nc + ng + nh
+    of, oc, og, oh = 0, nf, nf + nc, nf + nc + ng
+    ir, idd, inn, iw = N, N + 1, N + 2, N + 3
+
+    def row():
+        return np.zeros(N + 4)
+
+    ym = row()
+    ym[oh:oh + nh] = H.C
+    ym[iw] = H.D
+    ym[inn] = 1.0
+    e = row()
+    e[of:of + nf] = F.C
+    e[ir] = F.D
+    e -= ym
+    u = K.D * e
+    u[oc:oc + nc] += K.C
+    v = u.copy()
+    v[idd] += 1.0
+    y = G.D * v
+    y[og:og + ng] += G.C
+    X = np.zeros((N, N + 4))
+    X[of:of + nf, of:of + nf] = F.A
+    X[of:of + nf, ir] = F.B
+    X[oc:oc + nc, :] = np.outer(K.B, e)
+    X[oc:oc + nc, oc:oc + nc] += K.A
+    X[og:og + ng, :] = np.outer(G.B, v)
+    X[og:og + ng, og:og + ng] += G.A
+    X[oh:oh + nh, iw] = H.B
+    X[oh:oh + nh, oh:oh + nh] += H.A
+    return N, nf, X, {"y": y, "e": e, "u": u}
+
+
+def _close(rows: np.ndarray, z: np.ndarray, N: int, *, algebraic_tol: float):
+    """Substitute w = z (no delay) into rows over [x, r, d, n, w]."""
+    denom = 1.0 - z[N + 3]
+    if abs(denom) < algebraic_tol:
+        raise ModelError("algebraic loop: 1 + D_C D_G D_H = 0 (the loop has no dynamics at "
+                         "infinite frequency); add a pole or change a feedthrough")
+    sub = z.copy()
+    sub[N + 3] = 0.0
+    sub /= denom
+    out = rows + np.outer(rows[..., N + 3], sub).reshape(rows.shape)
+    out[..., N + 3] = 0.0
+    return out
+
+
+def _variant_matrices(F, K, G, H, tau: float, *, algebraic_tol: float):
+    N, nf, X, sig = _interconnect(F, K, G, H)
+    z = sig["y"]
+    if tau == 0.0:
+        Xc = _close(X, z, N, algebraic_tol=algebraic_tol)
+        sigc = {k: _close(v[None, :], z, N, algebraic_tol=algebraic_tol)[0]
+                for k, v in sig.items()}
+        return N, nf, Xc, sigc, z
+    if abs(z[N + 3]) >= 1.0:
+        raise ModelError("the delayed loop has |D_C D_G D_H| >= 1 (a neutral delay system); "
+                         "make the loop gain roll off at high frequency")
+    return N, nf, X, sig, z
+
+
+def assemble(family: PlantFamily, controller, loop: LoopSpec | None = None, *,
+             algebraic_tol: float = 1e-12) -> Assembly:
+    """Close ``controller`` round every variant of ``family``.
+
+    Parameters
+    ----------
+    family : PlantFamily
+    controller : control.LTI or float
+        Continuous controller, or discrete with ``dt == loop.sample_time``.
+    loop : LoopSpec, optional
+        Loop settings (default: unity feedback, continuous, no delays).
+    algebraic_tol : float, optional
+        ``|1 + D_C D_G D_H|`` below this is an algebraic loop (default 1e-12, dimensionless).
+
+    Returns
+    -------
+    Assembly
+
+    Raises
+    ------
+    ModelError
+        An unacceptable block or loop (improper, mismatched sample times, algebraic loop...).
+    """
+    loop = loop or LoopSpec()
+    if not isinstance(family, PlantFamily):
+        family = PlantFamily.single(family)
+    ts = loop.sample_time
+    K = _prepare_controller(controller, loop)
+    F = _aux_block(loop.prefilter, "prefilter", ts)
+    H = _aux_block(loop.sensor, "sensor", ts)
+    plants = [_plant_block(v, loop) for v in family.variants]
+    keys: dict = {}
+    for i, (G, tau, _) in enumerate(plants):
+        keys.setdefault((G.order, tau, plants[i][2]), []).append(i)
+    groups = []
+    for (ng, tau, (d_in, d_plant)), idx in keys.items():
+        groups.append(_build_group(np.asarray(idx), [plants[i][0] for i in idx], F, K, H,
+                                   tau, d_in, d_plant, ts, algebraic_tol))
+    return Assembly(variants=family.names, dt=ts, loop=loop, groups=tuple(groups))
+
+
+def _build_group(idx, Gs, F, K, H, tau, d_in, d_plant, ts, algebraic_tol) -> LoopGroup:
+    mats = [_variant_matrices(F, K, G, H, tau, algebraic_tol=algebraic_tol) for G in Gs]
+    N, nf = mats[0][0], mats[0][1]
+    X = np.stack([m[2] for m in mats])
+    sig = {k: np.stack([m[3][k] for m in mats]) for k in ("y", "e", "u")}
+    zr = np.stack([m[4] for m in mats])
+    col = {"r": N, "d": N + 1, "n": N + 2}
+    io = {"r->y": d_in + d_plant, "d->y": d_plant}
+    V = len(Gs)
+    paths = {}
+    for name in PATHS:
+        src, dst = _PATH_IO[name]
+        keep = np.arange(N) if src == "r" else np.arange(nf, N)  # prefilter unreachable from d, n
+        A = X[:, keep][:, :, keep]
+        B = X[:, keep, col[src]]
+        Cr = sig[dst][:, keep]
+        Dv = sig[dst][:, col[src]]
+        if tau > 0:
+            paths[name] = SSBatch(A=A, B=B, C=Cr, D=Dv, dt=ts, tau=tau,
+                                  Bw=X[:, keep, N + 3], Cz=zr[:, keep], Dz=zr[:, col[src]],
+                                  Dw=sig[dst][:, N + 3], Dzw=zr[:, N + 3],
+                                  io_delay=io.get(name, 0.0))
+        else:
+            z0 = np.zeros((V, keep.size))
+            paths[name] = SSBatch(A=A, B=B, C=Cr, D=Dv, dt=ts, tau=0.0, Bw=z0, Cz=z0.copy(),
+                                  Dz=np.zeros(V), Dw=np.zeros(V), Dzw=np.zeros(V),
+                                  io_delay=io.get(name, 0.0))
+    loop_poles = None
+    if tau == 0:
+        Aloop = X[:, nf:N, nf:N]
+        loop_poles = [np.linalg.eigvals(a) for a in Aloop]
+    ol_poles = [np.concatenate([K.poles, G.poles, H.poles]) for G in Gs]
+    ol_zeros = [np.concatenate([K.zeros, G.zeros, H.zeros]) for G in Gs]
+    point = (lambda w: np.exp(1j * np.asarray(w, float) * ts)) if ts else \
+        (lambda w: 1j * np.asarray(w, dtype=float))
+
+    def L_of(w):
+        x = point(w)
+        Lv = np.stack([G(x) for G in Gs]) * (K(x) * H(x))[None, :]
+        if tau > 0:
+            Lv = Lv * np.exp(-1j * np.asarray(w, float) * tau)[None, :]
+        return Lv
+
+    def S_of(w):
+        with np.errstate(divide="ignore", invalid="ignore"):
+            return 1.0 / (1.0 + L_of(w))
+
+    def T_of(w):
+        Lv = L_of(w)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            return np.where(np.isinf(Lv), 1.0 + 0j, Lv / (1.0 + Lv))
+
+    def CS_of(w):
+        return S_of(w) * K(point(w))[None, :]
+
+    def PS_of(w):
+        x = point(w)
+        return S_of(w) * np.stack([G(x) for G in Gs])
+
+    origin = 1.0 if ts else 0.0
+    dc = np.empty(V, dtype=complex)
+    for i, p in enumerate(ol_poles):
+        if p.size and np.min(np.abs(p - origin)) < 1e-9 * max(1.0, np.max(np.abs(p))):
+            dc[i] = complex(np.inf, 0.0)
+        else:
+            dc[i] = L_of(np.array([0.0]))[i, 0]
+    cl_poles = loop_poles if loop_poles is not None else \
+        [np.concatenate([p, z]) for p, z in zip(ol_poles, ol_zeros)]
+    closed = {
+        "S": ClosedLoopResponse(S_of, ts, cl_poles, ol_poles),
+        "T": ClosedLoopResponse(T_of, ts, cl_poles, ol_zeros),
+        "CS": ClosedLoopResponse(CS_of, ts, cl_poles,
+                                 [np.concatenate([K.zeros, G.poles, H.poles]) for G in Gs]),
+        "PS": ClosedLoopResponse(PS_of, ts, cl_poles,
+                                 [np.concatenate([K.poles, G.zeros, H.poles]) for G in Gs]),
+    }
+    fb = FreqBatch(evaluate=L_of, dt=ts, poles=ol_poles, zeros=ol_zeros, dc=dc)
+    return LoopGroup(index=idx, tau=float(tau), paths=paths, loop_gain=fb, closed=closed,
+                     poles=loop_poles, prefilter_poles=F.poles, blocks=(K, Gs, H))
