@@ -1,0 +1,270 @@
+"""Internal stability of an assembled loop and closed-loop pole measures.
+
+* Delay-free loops (and every digital loop, whose delays live in the state): the eigenvalues
+  of the whole interconnection of controller, plant and sensor realisations.  That covers
+  all four of S, T, CS and PS, so an unstable pole-zero cancellation between controller and
+  plant is caught even where T alone looks fine.
+* Continuous loops with a delay: the Nyquist criterion on ``F(s) = 1 + L(s) e^{-s tau}``.
+  The number of closed-loop poles in the closed right half plane is
+  ``Z = P - (change of arg F along s = j w, w: 0 -> inf) / pi`` with ``P`` the open-loop
+  poles in the open right half plane; imaginary-axis poles of L are passed on small
+  half circles to their right (textbook Nyquist criterion, e.g. Franklin, Powell and
+  Emami-Naeini, *Feedback Control of Dynamic Systems*, section 6.3).
+* The prefilter sits outside the loop but on the r paths, so its poles must be stable too.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+from ..errors import ComputeError
+from .loop import Assembly, LoopGroup
+
+__all__ = ["StabilityReport", "stability", "nyquist_unstable_count", "min_damping",
+           "decay_rate"]
+
+
+@dataclass(frozen=True)
+class StabilityReport:
+    """Stability of every variant of an assembly.
+
+    Attributes
+    ----------
+    stable : ndarray (V,) of bool
+    unstable_poles : ndarray (V,) of int
+        Closed-loop poles outside the stability region (closed RHP / on or outside the unit
+        circle), prefilter poles included.
+    method : str
+        ``"poles"`` (eigenvalues) or ``"nyquist"`` (delayed continuous loops).
+    reasons : tuple of str
+        Per variant, ``""`` when stable, else a one-line reason.
+    """
+
+    stable: np.ndarray
+    unstable_poles: np.ndarray
+    method: str
+    reasons: tuple
+
+
+def _count_unstable(poles: np.ndarray, dt, tol: float) -> int:
+    if poles.size == 0:
+        return 0
+    if dt is None:
+        return int(np.sum(poles.real >= -tol))
+    return int(np.sum(np.abs(poles) >= 1.0 - tol))
+
+
+def stability(assembly: Assembly, *, tol: float = 1e-12, nyquist_points: int = 400,
+              max_refine: int = 30) -> StabilityReport:
+    """Decide internal stability of every variant.
+
+    Parameters
+    ----------
+    assembly : Assembly
+    tol : float, optional
+        A pole with real part >= -tol (1/s; discrete: |z| >= 1 - tol) counts as unstable
+        (default 1e-12).
+    nyquist_points : int, optional
+        Initial points per contour segment for delayed loops (default 400).
+    max_refine : int, optional
+        Bisection rounds of the Nyquist contour (default 30).
+
+    Returns
+    -------
+    StabilityReport
+    """
+    V = len(assembly.variants)
+    counts = np.zeros(V, dtype=int)
+    reasons = [""] * V
+    method = "poles"
+    for g in assembly.groups:
+        pre = _count_unstable(g.prefilter_poles, assembly.dt, tol)
+        if g.poles is not None:
+            cnt = [_count_unstable(p, assembly.dt, tol) for p in g.poles]
+        else:
+            method = "nyquist"
+            cnt = list(nyquist_unstable_count(g, points=nyquist_points, max_refine=max_refine))
+        for j, i in enumerate(g.index):
+            counts[i] = cnt[j] + pre
+            if cnt[j]:
+                where = "in the closed right half plane" if assembly.dt is None \
+                    else "on or outside the unit circle"
+                reasons[i] = (f"closed loop unstable for variant {assembly.variants[i]!r}: "
+                              f"{cnt[j]} pole(s) {where}")
+            elif pre:
+                reasons[i] = "the prefilter is unstable; give a stable prefilter"
+    return StabilityReport(stable=counts == 0, unstable_poles=counts, method=method,
+                           reasons=tuple(reasons))
+
+
+def _F(group: LoopGroup, s: np.ndarray) -> np.ndarray:
+    K, Gs, H = group.blocks
+    KH = K(s) * H(s) * np.exp(-s * group.tau)
+    return 1.0 + np.stack([G(s) for G in Gs]) * KH[None, :]
+
+
+def _refine(path, t: np.ndarray, F_of, max_refine: int, max_step: float):
+    """Bisect a contour segment until the arg of F moves < max_step rad between points."""
+    vals = F_of(path(t))
+    for _ in range(max_refine):
+        d = np.abs(np.angle(vals[:, 1:] / vals[:, :-1]))
+        bad = np.any(~(d < max_step), axis=0)
+        if not np.any(bad):
+            break
+        mid = 0.5 * (t[:-1][bad] + t[1:][bad])
+        t = np.sort(np.concatenate([t, mid]))
+        vals = F_of(path(t))
+    return vals
+
+
+def nyquist_unstable_count(group: LoopGroup, *, points: int = 400, max_refine: int = 30,
+                           max_step: float = 0.3, axis_tol: float = 1e-9,
+                           marginal_tol: float = 1e-9) -> np.ndarray:
+    """Closed-loop right-half-plane pole count of a continuous (delayed) loop by Nyquist.
+
+    Parameters
+    ----------
+    group : LoopGroup
+        A continuous group.
+    points : int, optional
+        Initial points per segment (default 400).
+    max_refine : int, optional
+        Bisection rounds (default 30).
+    max_step : float, optional
+        Largest change of arg F between neighbouring contour points, rad (default 0.3).
+    axis_tol : float, optional
+        Open-loop poles with ``|Re p| <= axis_tol * max(1, |p|)`` are on the axis and are
+        passed on half circles (default 1e-9, dimensionless).
+    marginal_tol : float, optional
+        ``min |1 + L|`` below this on the contour means a closed-loop pole on the axis,
+        counted as unstable (default 1e-9).
+
+    Returns
+    -------
+    ndarray (V_g,) of int
+
+    Raises
+    ------
+    ComputeError
+        The winding number did not come out as a whole number (contour too coarse).
+    """
+    if group.loop_gain.dt is not None:
+        raise ComputeError("the Nyquist count here is for continuous loops; digital loops use "
+                           "closed-loop eigenvalues")
+    out = np.zeros(group.index.size, dtype=int)
+    for j in range(group.index.size):
+        poles = group.loop_gain.poles[j]
+        zeros = group.loop_gain.zeros[j]
+        scale = max([1.0] + [abs(x) for x in np.concatenate([poles, zeros])])
+        on_axis = np.abs(poles.real) <= axis_tol * np.maximum(1.0, np.abs(poles))
+        P = int(np.sum((poles.real > 0) & ~on_axis))
+        axis_w = np.unique(np.round(np.abs(poles[on_axis].imag), 12))
+        gaps = np.diff(np.concatenate([[0.0], axis_w[axis_w > 0]]))
+        eps = 1e-6 * scale if gaps.size == 0 else min(1e-6 * scale, 0.01 * float(np.min(gaps)))
+
+        def F_of(s, _j=j):
+            return _F(group, np.asarray(s, dtype=complex))[_j:_j + 1]
+
+        w_top = 1e3 * scale
+        if group.tau > 0:
+            w_top = max(w_top, 10.0 / group.tau)
+        for _ in range(12):
+            if abs(F_of(np.array([1j * w_top]))[0, 0] - 1.0) < 0.5:
+                break
+            w_top *= 10.0
+        else:
+            raise ComputeError("the loop gain does not fall below 0.5 at high frequency; "
+                               "cannot close the Nyquist contour")
+        segments = []
+        start = 0.0
+        if axis_w.size and axis_w[0] == 0.0:
+            segments.append((lambda t: eps * np.exp(1j * t * np.pi / 2), np.linspace(0, 1, 65)))
+            start = eps
+        for w0 in axis_w[axis_w > 0]:
+            if w0 >= w_top:
+                continue
+            lo, hi = start, w0 - eps
+            segments.append(_axis_segment(lo, hi, points, scale))
+            segments.append((lambda t, w0=w0: 1j * w0 + eps * np.exp(1j * np.pi * (t - 0.5)),
+                             np.linspace(0, 1, 65)))
+            start = w0 + eps
+        segments.append(_axis_segment(start, w_top, points, scale))
+        vals = np.concatenate([_refine(path, t, F_of, max_refine, max_step)[0]
+                               for path, t in segments])
+        if np.min(np.abs(vals)) < marginal_tol:
+            out[j] = max(1, P)
+            continue
+        ang = np.unwrap(np.angle(vals))
+        total = (ang[-1] - np.angle(vals[-1])) - ang[0]
+        Z = P - total / np.pi
+        if abs(Z - round(Z)) > 0.05 or round(Z) < 0:
+            raise ComputeError(f"Nyquist count came out as {Z:.3f}, not a whole number; "
+                               "the loop may be too close to marginal stability")
+        out[j] = int(round(Z))
+    return out
+
+
+def _axis_segment(lo: float, hi: float, points: int, scale: float):
+    """Segment s = j w for w in [lo, hi], log-spaced with a linear start near 0."""
+    floor = 1e-8 * scale
+    a = max(lo, floor)
+    logw = np.linspace(np.log10(a), np.log10(max(hi, a * (1 + 1e-12))), points)
+
+    def path(t, lo=lo, a=a, hi=hi):
+        w = np.where(t < 0, lo + (a - lo) * (t + 1.0), 10.0 ** np.interp(t, [0, 1],
+                                                                         [logw[0], logw[-1]]))
+        return 1j * w
+
+    t0 = np.concatenate([[-1.0], np.linspace(0.0, 1.0, points)]) if lo < a else \
+        np.linspace(0.0, 1.0, points)
+    return path, t0
+
+
+def _continuous_equivalent(poles: np.ndarray, dt) -> np.ndarray:
+    if dt is None:
+        return poles
+    with np.errstate(divide="ignore"):
+        return np.log(poles.astype(complex)) / dt
+
+
+def min_damping(poles: np.ndarray, dt=None) -> float:
+    """Smallest damping ratio over closed-loop poles.
+
+    ``zeta = -Re(s) / |s|`` (1.0 for a real stable pole); discrete poles map through
+    ``s = ln(z) / Ts`` (``z = 0`` counts as 1.0).  Source: damping ratio of a pole,
+    e.g. Ogata, *Modern Control Engineering*, 5th ed., section 5-3.
+
+    Parameters
+    ----------
+    poles : ndarray
+        Closed-loop poles (s-plane, or z-plane when ``dt`` is set).
+    dt : float or None
+        Sample time, s.
+
+    Returns
+    -------
+    float
+        Dimensionless; 1.0 when there are no poles.
+    """
+    s = _continuous_equivalent(np.asarray(poles), dt)
+    if s.size == 0:
+        return 1.0
+    with np.errstate(invalid="ignore", divide="ignore"):
+        zeta = np.where(np.isinf(s.real), 1.0, -s.real / np.abs(s))
+    zeta = np.where(np.abs(s) == 0, 0.0, zeta)
+    return float(np.min(zeta))
+
+
+def decay_rate(poles: np.ndarray, dt=None) -> float:
+    """Slowest decay rate ``min(-Re s)`` over closed-loop poles, 1/s.
+
+    Discrete poles map through ``s = ln(z) / Ts``; ``z = 0`` decays infinitely fast.
+    Returns ``inf`` when there are no poles.
+    """
+    s = _continuous_equivalent(np.asarray(poles), dt)
+    if s.size == 0:
+        return math.inf
+    return float(np.min(-s.real))
