@@ -1,0 +1,63 @@
+"""Verdicts and headroom: a pure function of a limit and a metric value.
+
+Headroom is the signed distance from the limit in the metric's unit, positive when the value
+is on the passing side: ``limit - value`` for ``<``/``<=``, ``value - limit`` for ``>``/``>=``,
+``-|value - limit|`` for ``==``.  The fraction divides by ``|limit|`` (``None`` when the limit
+is 0).  Infinite values give infinite headroom of the right sign.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+from .units import Limit
+
+__all__ = ["Judgement", "judge", "VERDICTS", "worse"]
+
+VERDICTS = ("pass", "fail", "error", "n/a", "stale")
+
+
+@dataclass(frozen=True)
+class Judgement:
+    verdict: str
+    headroom: float | None
+    headroom_fraction: float | None
+
+
+def _passes(cmp_: str, value: float, limit: float) -> bool:
+    if cmp_ == "<=":
+        return value <= limit
+    if cmp_ == "<":
+        return value < limit
+    if cmp_ == ">=":
+        return value >= limit
+    if cmp_ == ">":
+        return value > limit
+    if cmp_ == "==":
+        return value == limit
+    raise ValueError(f"unknown comparator {cmp_!r}")
+
+
+def headroom(cmp_: str, value: float, limit: float) -> float:
+    if cmp_ in ("<=", "<"):
+        return limit - value
+    if cmp_ in (">=", ">"):
+        return value - limit
+    return -abs(value - limit)
+
+
+def judge(limit: Limit, value: float) -> Judgement:
+    """Judge ``value`` (in ``limit.unit``) against ``limit``."""
+    if value is None or (isinstance(value, float) and math.isnan(value)):
+        return Judgement("error", None, None)
+    h = headroom(limit.comparator, value, limit.value)
+    frac = None
+    if limit.value != 0 and math.isfinite(limit.value):
+        frac = h / abs(limit.value)
+    return Judgement("pass" if _passes(limit.comparator, value, limit.value) else "fail", h, frac)
+
+
+def worse(cmp_: str, a: float, b: float) -> bool:
+    """True if ``a`` is closer to failing ``cmp_`` than ``b`` (i.e. ``a`` has less headroom)."""
+    return headroom(cmp_, a, 0.0) < headroom(cmp_, b, 0.0)

@@ -1,0 +1,304 @@
+"""Spec files: plants, loops, requirements and revisions as TOML (our own schema, format 1).
+
+See ``docs/spec-files.md``.  Import is one transaction and idempotent: records equal to what
+the ledger holds are left untouched, a changed plant or requirement gets a new version, a
+changed loop or revision is refused (they are fixed once recorded).  Export writes a spec that
+imports back to the same ledger content.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from .errors import LedgerError, SpecError, UnitError
+
+__all__ = ["SPEC_FORMAT", "ImportReport", "load_spec", "import_spec", "export_spec", "dump_spec"]
+
+SPEC_FORMAT = 1
+
+_FIELDS = {
+    "plant": {
+        "required": {"name": str, "model": str},
+        "optional": {"description": str, "input_unit": str, "output_unit": str,
+                     "sample_time": (int, float, str), "samples": int, "seed": int, "note": str,
+                     "params": dict, "fidelity": dict},
+    },
+    "loop": {
+        "required": {"name": str, "plant": str},
+        "optional": {"kind": str, "description": str, "sensor": str, "prefilter": str,
+                     "input_delay": (int, float, str), "output_delay": (int, float, str),
+                     "sample_time": (int, float, str), "computation_delay": int,
+                     "actuator_limit": (int, float)},
+    },
+    "requirement": {
+        "required": {"id": str, "title": str, "statement": str},
+        "optional": {"rationale": str, "method": str, "status": str, "metric": str,
+                     "limit": str, "settings": dict, "derives_from": list, "loops": list},
+    },
+    "revision": {
+        "required": {"loop": str, "controller": str, "rationale": str},
+        "optional": {"label": str, "parent": str, "author": str},
+    },
+}
+_TOP = {"format", "title", "plant", "loop", "requirement", "revision"}
+
+
+@dataclass
+class ImportReport:
+    """What an import did, record by record."""
+
+    created: list[str] = field(default_factory=list)
+    new_versions: list[str] = field(default_factory=list)
+    unchanged: list[str] = field(default_factory=list)
+    revisions_added: list[tuple[str, str]] = field(default_factory=list)
+
+    @property
+    def changed(self) -> bool:
+        return bool(self.created or self.new_versions or self.revisions_added)
+
+
+def _err(path, where: str, fld: str | None, msg: str) -> SpecError:
+    loc = f"{where}, field {fld!r}" if fld else where
+    return SpecError(f"{path}: {loc}: {msg}")
+
+
+def _seconds(path, where, fld, value) -> float | None:
+    """A time setting: a number (seconds) or a string with a unit ('2 ms')."""
+    if value is None:
+        return None
+    if isinstance(value, bool):
+        raise _err(path, where, fld, "must be a number of seconds or a time such as '2 ms'")
+    if isinstance(value, (int, float)):
+        v = float(value)
+    else:
+        from .units import convert
+
+        parts = str(value).strip().split(None, 1)
+        try:
+            num = float(parts[0])
+            v = convert(num, parts[1] if len(parts) > 1 else "s", "s")
+        except (ValueError, IndexError, UnitError) as e:
+            raise _err(path, where, fld, f"not a time: {value!r} ({e})") from e
+    if not math.isfinite(v):
+        raise _err(path, where, fld, f"must be finite, got {value!r}")
+    return v
+
+
+def _check_record(path, kind: str, idx: int, rec: Any) -> str:
+    spec = _FIELDS[kind]
+    where = f"{kind} #{idx + 1}"
+    if not isinstance(rec, dict):
+        raise _err(path, where, None, f"must be a table ([[{kind}]])")
+    name = rec.get("name") or rec.get("id") or rec.get("label")
+    if isinstance(name, str):
+        where = f"{kind} {name!r}"
+    for fld, typ in spec["required"].items():
+        if fld not in rec:
+            raise _err(path, where, fld, "is required")
+    for fld, val in rec.items():
+        typ = spec["required"].get(fld) or spec["optional"].get(fld)
+        if typ is None:
+            known = sorted(spec["required"]) + sorted(spec["optional"])
+            raise _err(path, where, fld, f"unknown field; known fields: {', '.join(known)}")
+        if isinstance(val, bool) and typ is not bool:
+            raise _err(path, where, fld, f"expected {_tname(typ)}, got a boolean")
+        if not isinstance(val, typ):
+            raise _err(path, where, fld, f"expected {_tname(typ)}, got {type(val).__name__}")
+        if typ is str and fld in spec["required"] and not val.strip():
+            raise _err(path, where, fld, "must not be empty")
+        if typ is list and not all(isinstance(x, str) for x in val):
+            raise _err(path, where, fld, "must be a list of strings")
+    return where
+
+
+def _tname(typ) -> str:
+    if isinstance(typ, tuple):
+        return " or ".join(t.__name__ for t in typ)
+    return {"str": "a string", "int": "an integer", "dict": "a table", "list": "a list"}.get(
+        typ.__name__, typ.__name__)
+
+
+def load_spec(path: str | os.PathLike) -> dict:
+    """Read and structurally check a spec file; raise SpecError naming file, record, field."""
+    p = Path(path)
+    try:
+        raw = p.read_bytes()
+    except OSError as e:
+        raise SpecError(f"{p}: cannot read spec file ({e.strerror})") from e
+    try:
+        data = tomllib.loads(raw.decode("utf-8"))
+    except UnicodeDecodeError as e:
+        raise SpecError(f"{p}: not UTF-8 text (byte {e.start})") from e
+    except tomllib.TOMLDecodeError as e:
+        raise SpecError(f"{p}: not valid TOML: {e}") from e
+    unknown = set(data) - _TOP
+    if unknown:
+        raise SpecError(f"{p}: unknown top-level key {sorted(unknown)[0]!r}; known: "
+                        f"{', '.join(sorted(_TOP))}")
+    fmt = data.get("format", SPEC_FORMAT)
+    if fmt != SPEC_FORMAT:
+        raise SpecError(f"{p}: spec format {fmt!r} is not supported (this loopledger reads {SPEC_FORMAT})")
+    for kind in ("plant", "loop", "requirement", "revision"):
+        recs = data.get(kind, [])
+        if not isinstance(recs, list):
+            raise SpecError(f"{p}: '{kind}' must be an array of tables ([[{kind}]])")
+        for i, rec in enumerate(recs):
+            _check_record(p, kind, i, rec)
+    return data
+
+
+def _topo_requirements(path, reqs: list[dict], existing: set[str]) -> list[dict]:
+    by_id: dict[str, dict] = {}
+    for r in reqs:
+        if r["id"] in by_id:
+            raise _err(path, f"requirement {r['id']!r}", "id", "appears twice in the file")
+        by_id[r["id"]] = r
+    order, state = [], {}
+
+    def visit(key: str, chain: tuple[str, ...]):
+        if state.get(key) == 2:
+            return
+        if state.get(key) == 1:
+            raise _err(path, f"requirement {key!r}", "derives_from",
+                       f"trace cycle: {' -> '.join(chain + (key,))}")
+        state[key] = 1
+        for parent in by_id[key].get("derives_from", []):
+            if parent in by_id:
+                visit(parent, chain + (key,))
+            elif parent not in existing:
+                raise _err(path, f"requirement {key!r}", "derives_from",
+                           f"unknown requirement {parent!r}")
+        state[key] = 2
+        order.append(by_id[key])
+
+    for key in by_id:
+        visit(key, ())
+    return order
+
+
+def import_spec(ledger, path: str | os.PathLike) -> ImportReport:
+    """Import a spec file into ``ledger`` in one transaction; return what changed."""
+    from sqlalchemy import select
+
+    from .store.models import Requirement
+
+    p = Path(path)
+    data = load_spec(p)
+    report = ImportReport()
+    with ledger.transaction() as s:
+        def guard(kind, rec, fld_hint, fn):
+            name = rec.get("name") or rec.get("id") or rec.get("label") or ""
+            try:
+                return fn()
+            except SpecError:
+                raise
+            except LedgerError as e:
+                where = f"{kind} {name!r}" if name else kind
+                raise type(e)(f"{p}: {where}: {e}") from e
+
+        for rec in data.get("plant", []):
+            where = f"plant {rec['name']!r}"
+            st = _seconds(p, where, "sample_time", rec.get("sample_time"))
+            info, changed = guard("plant", rec, None, lambda: ledger._add_plant(
+                s, rec["name"], rec["model"], params=rec.get("params"),
+                fidelity=rec.get("fidelity"), samples=rec.get("samples", 0),
+                seed=rec.get("seed", 0), sample_time=st, input_unit=rec.get("input_unit", ""),
+                output_unit=rec.get("output_unit", ""), description=rec.get("description", ""),
+                note=rec.get("note", "")))
+            _tally(report, f"plant {info.name}", changed, info.version)
+
+        for rec in data.get("loop", []):
+            where = f"loop {rec['name']!r}"
+            kw = {k: _seconds(p, where, k, rec.get(k)) for k in ("input_delay", "output_delay",
+                                                                  "sample_time")}
+            info, changed = guard("loop", rec, None, lambda: ledger._add_loop(
+                s, rec["name"], rec["plant"], kind=rec.get("kind", "position"),
+                sensor=rec.get("sensor", ""), prefilter=rec.get("prefilter", ""),
+                input_delay=kw["input_delay"] or 0.0, output_delay=kw["output_delay"] or 0.0,
+                sample_time=kw["sample_time"], computation_delay=rec.get("computation_delay", 0),
+                actuator_limit=rec.get("actuator_limit"), description=rec.get("description", "")))
+            _tally(report, f"loop {info.name}", changed, 1)
+
+        existing = set(s.scalars(select(Requirement.key)))
+        for rec in _topo_requirements(p, data.get("requirement", []), existing):
+            info, changed = guard("requirement", rec, None, lambda: ledger._upsert_requirement(
+                s, rec["id"], title=rec["title"], statement=rec["statement"],
+                rationale=rec.get("rationale", ""), method=rec.get("method", "analysis"),
+                status=rec.get("status", "draft"), metric=rec.get("metric"),
+                settings=rec.get("settings"), limit=rec.get("limit"),
+                parents=rec.get("derives_from", []), loops=rec.get("loops", [])))
+            _tally(report, f"requirement {info.key}", changed, info.version)
+
+        for rec in data.get("revision", []):
+            parent = rec.get("parent", None)
+            info, changed = guard("revision", rec, None, lambda: ledger._add_revision(
+                s, rec["loop"], rec["controller"], rationale=rec["rationale"],
+                parent=parent if parent else None, author=rec.get("author"),
+                label=rec.get("label")))
+            if changed:
+                report.revisions_added.append((info.loop, info.label))
+            else:
+                report.unchanged.append(f"revision {info.loop}/{info.label}")
+    return report
+
+
+def _tally(report: ImportReport, name: str, changed: bool, version: int) -> None:
+    if not changed:
+        report.unchanged.append(name)
+    elif version == 1:
+        report.created.append(name)
+    else:
+        report.new_versions.append(f"{name} v{version}")
+
+
+def _drop_empty(d: dict) -> dict:
+    return {k: v for k, v in d.items() if v not in (None, "", [], {}) and v is not False}
+
+
+def dump_spec(ledger) -> dict:
+    """The ledger's current content (latest versions, every revision) as spec data."""
+    out: dict[str, Any] = {"format": SPEC_FORMAT}
+    out["plant"] = [_drop_empty({
+        "name": p.name, "model": p.model, "description": p.description,
+        "input_unit": p.input_unit, "output_unit": p.output_unit, "sample_time": p.sample_time,
+        "samples": p.samples, "seed": p.seed, "params": p.params, "fidelity": p.fidelity,
+    }) for p in ledger.plants()]
+    loops = ledger.loops()
+    out["loop"] = [_drop_empty({
+        "name": lp.name, "plant": lp.plant, "kind": lp.kind, "description": lp.description,
+        "sensor": lp.sensor, "prefilter": lp.prefilter, "input_delay": lp.input_delay or None,
+        "output_delay": lp.output_delay or None, "sample_time": lp.sample_time,
+        "computation_delay": lp.computation_delay or None, "actuator_limit": lp.actuator_limit,
+    }) for lp in loops]
+    out["requirement"] = [_drop_empty({
+        "id": r.key, "title": r.title, "statement": r.statement, "rationale": r.rationale,
+        "method": r.method, "status": r.status, "metric": r.metric, "limit": r.limit_text,
+        "settings": r.settings, "derives_from": list(r.parents), "loops": list(r.loops),
+    }) for r in ledger.requirements()]
+    revs = []
+    for lp in loops:
+        for r in ledger.revisions(lp.name):
+            revs.append(_drop_empty({
+                "loop": r.loop, "label": r.label, "parent": r.parent, "author": r.author,
+                "rationale": r.rationale, "controller": r.controller,
+            }))
+    out["revision"] = revs
+    return {k: v for k, v in out.items() if v != []}
+
+
+def export_spec(ledger, path: str | os.PathLike) -> Path:
+    """Write the ledger's content as a spec file (atomically: temp file, then rename)."""
+    import tomli_w
+
+    p = Path(path)
+    text = "# loopledger spec file (format 1); see docs/spec-files.md\n" + tomli_w.dumps(
+        dump_spec(ledger), multiline_strings=True)
+    tmp = p.with_name(p.name + ".tmp")
+    tmp.write_text(text, encoding="utf-8")
+    os.replace(tmp, p)
+    return p

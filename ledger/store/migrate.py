@@ -1,0 +1,139 @@
+"""Schema management through Alembic, configured in code (no alembic.ini needed at run time).
+
+Opening a ledger checks its Alembic revision against the head of ``migrations/``: a new file is
+migrated from nothing, an older one is upgraded (an SQLite file is first copied to a backup
+beside it), a newer one is refused with the version named, and a database that is not a ledger
+is refused.  Migrations run with foreign keys OFF on a separate engine (a batch migration
+recreates tables, and with foreign keys on, cascades could delete child rows); a foreign-key
+check runs afterwards.
+"""
+
+from __future__ import annotations
+
+from datetime import datetime, timezone
+from pathlib import Path
+
+from alembic import command
+from alembic.config import Config
+from alembic.runtime.migration import MigrationContext
+from alembic.script import ScriptDirectory
+from sqlalchemy import inspect, text
+from sqlalchemy.exc import DatabaseError, OperationalError
+
+from ..errors import SchemaError
+from .db import make_engine, sqlite_path
+
+__all__ = ["migrations_dir", "alembic_config", "head_revision", "current_revision", "ensure_schema"]
+
+
+def migrations_dir() -> Path:
+    """Folder of the Alembic scripts: shipped in the wheel as ``ledger/_migrations``, or the
+    repository's top-level ``migrations/`` in a source checkout."""
+    here = Path(__file__).resolve().parent.parent
+    for candidate in (here / "_migrations", here.parent / "migrations"):
+        if (candidate / "env.py").is_file():
+            return candidate
+    raise SchemaError("migration scripts not found; reinstall loopledger")
+
+
+def alembic_config(url: str) -> Config:
+    cfg = Config()
+    cfg.set_main_option("script_location", str(migrations_dir()))
+    cfg.set_main_option("sqlalchemy.url", url.replace("%", "%%"))
+    return cfg
+
+
+def head_revision() -> str:
+    return ScriptDirectory.from_config(alembic_config("sqlite://")).get_current_head()
+
+
+def known_revisions() -> set[str]:
+    script = ScriptDirectory.from_config(alembic_config("sqlite://"))
+    return {rev.revision for rev in script.walk_revisions()}
+
+
+def current_revision(conn) -> str | None:
+    return MigrationContext.configure(conn).get_current_revision()
+
+
+def _check_is_ledger(url: str) -> str | None:
+    """Return the current revision (None for an empty database); raise if not a ledger."""
+    engine = make_engine(url)
+    try:
+        with engine.connect() as conn:
+            try:
+                tables = set(inspect(conn).get_table_names())
+            except DatabaseError as e:
+                raise SchemaError(f"{url}: not a ledger database ({e.orig})") from e
+            if not tables:
+                return None
+            if "alembic_version" not in tables:
+                raise SchemaError(
+                    f"{url}: has tables but no ledger schema version; not a ledger database"
+                )
+            rev = current_revision(conn)
+            if rev is None:
+                raise SchemaError(f"{url}: ledger schema version is missing")
+            return rev
+    except OperationalError as e:
+        raise SchemaError(f"cannot open {url}: {e.orig}") from e
+    finally:
+        engine.dispose()
+
+
+def _upgrade(url: str, target: str = "head") -> None:
+    engine = make_engine(url, foreign_keys=False)
+    try:
+        with engine.begin() as conn:
+            cfg = alembic_config(url)
+            cfg.attributes["connection"] = conn
+            command.upgrade(cfg, target)
+        if sqlite_path(url) is not None or url.startswith("sqlite"):
+            with engine.connect() as conn:
+                bad = conn.exec_driver_sql("PRAGMA foreign_key_check").fetchall()
+                if bad:
+                    raise SchemaError(f"foreign-key check failed after migration: {bad[:3]}")
+    finally:
+        engine.dispose()
+
+
+def _backup_sqlite(src: Path, dst: Path) -> None:
+    """Consistent copy of a live SQLite file (WAL included) through SQLite's backup API."""
+    import sqlite3
+
+    with sqlite3.connect(src) as s, sqlite3.connect(dst) as d:
+        s.backup(d)
+    s.close()
+    d.close()
+
+
+def ensure_schema(url: str, *, create: bool) -> str:
+    """Bring the database at ``url`` to the head schema; return what was done.
+
+    Returns one of ``"current"``, ``"created"``, ``"upgraded from <rev>"``.
+    """
+    path = sqlite_path(url)
+    if path is not None and not path.exists():
+        if not create:
+            raise SchemaError(f"no ledger at {path}; create one with 'loopledger init {path}'")
+        path.parent.mkdir(parents=True, exist_ok=True)
+    rev = _check_is_ledger(url)
+    head = head_revision()
+    if rev == head:
+        return "current"
+    if rev is None:
+        if not create and path is None:
+            raise SchemaError(f"{url}: empty database; create a ledger with 'loopledger init'")
+        _upgrade(url)
+        return "created"
+    if rev not in known_revisions():
+        raise SchemaError(
+            f"ledger schema version {rev!r} is newer than this loopledger knows (head {head!r}); "
+            "upgrade loopledger"
+        )
+    if path is not None:
+        stamp = datetime.now(timezone.utc).strftime("%Y%m%dT%H%M%S")
+        backup = path.with_name(f"{path.name}.bak-{rev}-{stamp}")
+        _backup_sqlite(path, backup)
+    _upgrade(url)
+    return f"upgraded from {rev}"

@@ -1,0 +1,254 @@
+"""SQLAlchemy 2 typed models of the ledger.
+
+The schema is made ONLY by the Alembic migrations in ``migrations/``; these models describe it
+for the ORM and a test checks that both agree.  Records that carry history are append-only:
+``PlantVersion``, ``Revision``, ``RequirementVersion`` and ``Result`` rows are never updated
+in place; a change makes a new row.
+"""
+
+from __future__ import annotations
+
+from datetime import datetime
+
+from sqlalchemy import (
+    CheckConstraint,
+    DateTime,
+    Float,
+    ForeignKey,
+    Index,
+    Integer,
+    MetaData,
+    String,
+    Text,
+    UniqueConstraint,
+)
+from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column, relationship
+
+__all__ = [
+    "Base",
+    "Plant",
+    "PlantVersion",
+    "Loop",
+    "Revision",
+    "Requirement",
+    "RequirementVersion",
+    "RequirementParent",
+    "RequirementLoop",
+    "Result",
+    "MetricValue",
+]
+
+NAMING = {
+    "ix": "ix_%(column_0_label)s",
+    "uq": "uq_%(table_name)s_%(column_0_name)s",
+    "ck": "ck_%(table_name)s_%(constraint_name)s",
+    "fk": "fk_%(table_name)s_%(column_0_name)s_%(referred_table_name)s",
+    "pk": "pk_%(table_name)s",
+}
+
+
+class Base(DeclarativeBase):
+    metadata = MetaData(naming_convention=NAMING)
+
+
+class Plant(Base):
+    __tablename__ = "plant"
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    name: Mapped[str] = mapped_column(String(80), unique=True)
+    description: Mapped[str] = mapped_column(Text, default="")
+    created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True))
+
+    versions: Mapped[list["PlantVersion"]] = relationship(
+        back_populates="plant", order_by="PlantVersion.number"
+    )
+
+
+class PlantVersion(Base):
+    __tablename__ = "plant_version"
+    __table_args__ = (UniqueConstraint("plant_id", "number", name="uq_plant_version_number"),)
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    plant_id: Mapped[int] = mapped_column(ForeignKey("plant.id", ondelete="RESTRICT"), index=True)
+    number: Mapped[int] = mapped_column(Integer)
+    model_text: Mapped[str] = mapped_column(Text)
+    canonical: Mapped[str] = mapped_column(Text)
+    sample_time: Mapped[float | None] = mapped_column(Float, nullable=True)
+    parameters_json: Mapped[str] = mapped_column(Text, default="{}")
+    fidelity_json: Mapped[str] = mapped_column(Text, default="{}")
+    samples: Mapped[int] = mapped_column(Integer, default=0)
+    seed: Mapped[int] = mapped_column(Integer, default=0)
+    input_unit: Mapped[str] = mapped_column(String(40), default="")
+    output_unit: Mapped[str] = mapped_column(String(40), default="")
+    note: Mapped[str] = mapped_column(Text, default="")
+    author: Mapped[str] = mapped_column(String(120), default="")
+    content_hash: Mapped[str] = mapped_column(String(64))
+    created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True))
+
+    plant: Mapped[Plant] = relationship(back_populates="versions")
+
+
+class Loop(Base):
+    __tablename__ = "loop"
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    name: Mapped[str] = mapped_column(String(80), unique=True)
+    plant_id: Mapped[int] = mapped_column(ForeignKey("plant.id", ondelete="RESTRICT"), index=True)
+    kind: Mapped[str] = mapped_column(String(20), default="position")
+    description: Mapped[str] = mapped_column(Text, default="")
+    sensor_text: Mapped[str] = mapped_column(Text, default="")
+    prefilter_text: Mapped[str] = mapped_column(Text, default="")
+    input_delay: Mapped[float] = mapped_column(Float, default=0.0)
+    output_delay: Mapped[float] = mapped_column(Float, default=0.0)
+    sample_time: Mapped[float | None] = mapped_column(Float, nullable=True)
+    computation_delay: Mapped[int] = mapped_column(Integer, default=0)
+    actuator_limit: Mapped[float | None] = mapped_column(Float, nullable=True)
+    created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True))
+
+    plant: Mapped[Plant] = relationship()
+
+
+class Revision(Base):
+    __tablename__ = "revision"
+    __table_args__ = (
+        UniqueConstraint("loop_id", "label", name="uq_revision_label"),
+        CheckConstraint("length(trim(rationale)) > 0", name="rationale_not_empty"),
+    )
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    loop_id: Mapped[int] = mapped_column(ForeignKey("loop.id", ondelete="RESTRICT"), index=True)
+    label: Mapped[str] = mapped_column(String(40))
+    seq: Mapped[int] = mapped_column(Integer)
+    parent_id: Mapped[int | None] = mapped_column(
+        ForeignKey("revision.id", ondelete="RESTRICT"), nullable=True, index=True
+    )
+    author: Mapped[str] = mapped_column(String(120))
+    rationale: Mapped[str] = mapped_column(Text)
+    controller_text: Mapped[str] = mapped_column(Text)
+    controller_canonical: Mapped[str] = mapped_column(Text)
+    content_hash: Mapped[str] = mapped_column(String(64))
+    created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True))
+
+    loop: Mapped[Loop] = relationship()
+
+
+class Requirement(Base):
+    __tablename__ = "requirement"
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    key: Mapped[str] = mapped_column(String(40), unique=True)
+    created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True))
+
+    versions: Mapped[list["RequirementVersion"]] = relationship(
+        back_populates="requirement", order_by="RequirementVersion.number"
+    )
+
+
+class RequirementVersion(Base):
+    __tablename__ = "requirement_version"
+    __table_args__ = (
+        UniqueConstraint("requirement_id", "number", name="uq_requirement_version_number"),
+        CheckConstraint(
+            "method IN ('analysis', 'test', 'inspection', 'demonstration')", name="method_known"
+        ),
+        CheckConstraint("status IN ('draft', 'approved', 'retired')", name="status_known"),
+    )
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    requirement_id: Mapped[int] = mapped_column(
+        ForeignKey("requirement.id", ondelete="RESTRICT"), index=True
+    )
+    number: Mapped[int] = mapped_column(Integer)
+    title: Mapped[str] = mapped_column(String(200))
+    statement: Mapped[str] = mapped_column(Text)
+    rationale: Mapped[str] = mapped_column(Text, default="")
+    method: Mapped[str] = mapped_column(String(20), default="analysis")
+    status: Mapped[str] = mapped_column(String(10), default="draft")
+    metric: Mapped[str | None] = mapped_column(String(60), nullable=True)
+    settings_json: Mapped[str] = mapped_column(Text, default="{}")
+    comparator: Mapped[str | None] = mapped_column(String(2), nullable=True)
+    limit_value: Mapped[float | None] = mapped_column(Float, nullable=True)
+    limit_text: Mapped[str] = mapped_column(String(60), default="")
+    author: Mapped[str] = mapped_column(String(120), default="")
+    note: Mapped[str] = mapped_column(Text, default="")
+    content_hash: Mapped[str] = mapped_column(String(64))
+    created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True))
+
+    requirement: Mapped[Requirement] = relationship(back_populates="versions")
+    parents: Mapped[list["RequirementParent"]] = relationship(cascade="all")
+    loops: Mapped[list["RequirementLoop"]] = relationship(cascade="all")
+
+
+class RequirementParent(Base):
+    """Trace: requirement version ``version_id`` derives from requirement ``parent_id``."""
+
+    __tablename__ = "requirement_parent"
+
+    version_id: Mapped[int] = mapped_column(
+        ForeignKey("requirement_version.id", ondelete="RESTRICT"), primary_key=True
+    )
+    parent_id: Mapped[int] = mapped_column(
+        ForeignKey("requirement.id", ondelete="RESTRICT"), primary_key=True, index=True
+    )
+
+
+class RequirementLoop(Base):
+    """Requirement version ``version_id`` applies to loop ``loop_id``."""
+
+    __tablename__ = "requirement_loop"
+
+    version_id: Mapped[int] = mapped_column(
+        ForeignKey("requirement_version.id", ondelete="RESTRICT"), primary_key=True
+    )
+    loop_id: Mapped[int] = mapped_column(
+        ForeignKey("loop.id", ondelete="RESTRICT"), primary_key=True, index=True
+    )
+
+
+class Result(Base):
+    """One verdict: a requirement version judged on a revision over a plant version's family."""
+
+    __tablename__ = "result"
+    __table_args__ = (
+        UniqueConstraint(
+            "revision_id", "requirement_version_id", "plant_version_id", name="uq_result_subject"
+        ),
+        CheckConstraint("verdict IN ('pass', 'fail', 'error', 'n/a')", name="verdict_known"),
+        Index("ix_result_requirement_revision", "requirement_version_id", "revision_id"),
+    )
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    revision_id: Mapped[int] = mapped_column(
+        ForeignKey("revision.id", ondelete="RESTRICT"), index=True
+    )
+    requirement_version_id: Mapped[int] = mapped_column(
+        ForeignKey("requirement_version.id", ondelete="RESTRICT")
+    )
+    plant_version_id: Mapped[int] = mapped_column(
+        ForeignKey("plant_version.id", ondelete="RESTRICT"), index=True
+    )
+    verdict: Mapped[str] = mapped_column(String(5))
+    value: Mapped[float | None] = mapped_column(Float, nullable=True)
+    headroom: Mapped[float | None] = mapped_column(Float, nullable=True)
+    headroom_fraction: Mapped[float | None] = mapped_column(Float, nullable=True)
+    worst_variant: Mapped[str] = mapped_column(String(80), default="")
+    pass_fraction: Mapped[float | None] = mapped_column(Float, nullable=True)
+    variants: Mapped[int] = mapped_column(Integer, default=0)
+    reason: Mapped[str] = mapped_column(Text, default="")
+    metric_key: Mapped[str] = mapped_column(String(64), default="")
+    engine_version: Mapped[str] = mapped_column(String(20))
+    created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True))
+
+
+class MetricValue(Base):
+    """Cache of computed metric values, keyed by a content hash of everything that determines
+    them (plant family, controller, loop settings, metric settings, engine version).  Changing
+    a requirement's limit re-judges from here without recomputing."""
+
+    __tablename__ = "metric_value"
+
+    key: Mapped[str] = mapped_column(String(64), primary_key=True)
+    metric: Mapped[str] = mapped_column(String(60))
+    values_json: Mapped[str] = mapped_column(Text)
+    engine_version: Mapped[str] = mapped_column(String(20))
+    created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True))
