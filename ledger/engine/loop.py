@@ -138,13 +138,20 @@ class Block:
     def order(self) -> int:
         return self.A.shape[0]
 
-    def __call__(self, x: np.ndarray) -> np.ndarray:
-        """Evaluate at complex points ``x`` (s or z) from the zero/pole/gain form."""
+    def parts(self, x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Numerator (gain included) and denominator products at complex points ``x``."""
         x = np.asarray(x, dtype=complex)
-        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-            num = np.prod(x[None, :] - self.zeros[:, None], axis=0) if self.zeros.size else 1.0
-            den = np.prod(x[None, :] - self.poles[:, None], axis=0) if self.poles.size else 1.0
-            return self.gain * num / den * np.ones_like(x)
+        num = np.prod(x[None, :] - self.zeros[:, None], axis=0) if self.zeros.size \
+            else np.ones_like(x)
+        den = np.prod(x[None, :] - self.poles[:, None], axis=0) if self.poles.size \
+            else np.ones_like(x)
+        return self.gain * num, den
+
+    def __call__(self, x: np.ndarray) -> np.ndarray:
+        """Evaluate at complex points ``x`` (s or z); ``inf`` exactly at a pole."""
+        num, den = self.parts(x)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            return np.where(den == 0, complex(np.inf, 0.0), num / np.where(den == 0, 1, den))
 
 
 def make_block(sys, role: str) -> Block:
@@ -500,28 +507,41 @@ def _build_group(idx, Gs, F, K, H, tau, d_in, d_plant, ts, algebraic_tol) -> Loo
     point = (lambda w: np.exp(1j * np.asarray(w, float) * ts)) if ts else \
         (lambda w: 1j * np.asarray(w, dtype=float))
 
-    def L_of(w):
+    def parts(w):
+        """Numerator and denominator of L per variant, block by block, delay in the numerator."""
         x = point(w)
-        Lv = np.stack([G(x) for G in Gs]) * (K(x) * H(x))[None, :]
+        nk, dk = K.parts(x)
+        nh, dh = H.parts(x)
+        ng, dg = zip(*(G.parts(x) for G in Gs))
+        ng, dg = np.stack(ng), np.stack(dg)
+        num = ng * (nk * nh)[None, :]
         if tau > 0:
-            Lv = Lv * np.exp(-1j * np.asarray(w, float) * tau)[None, :]
-        return Lv
+            num = num * np.exp(-1j * np.asarray(w, float) * tau)[None, :]
+        return num, dg * (dk * dh)[None, :], (nk, dk), (ng, dg)
+
+    def _ratio(a, b):
+        with np.errstate(divide="ignore", invalid="ignore"):
+            return np.where(b == 0, complex(np.inf, 0.0), a / np.where(b == 0, 1, b))
+
+    def L_of(w):
+        num, den, _, _ = parts(w)
+        return _ratio(num, den)
 
     def S_of(w):
-        with np.errstate(divide="ignore", invalid="ignore"):
-            return 1.0 / (1.0 + L_of(w))
+        num, den, _, _ = parts(w)
+        return _ratio(den, den + num)
 
     def T_of(w):
-        Lv = L_of(w)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            return np.where(np.isinf(Lv), 1.0 + 0j, Lv / (1.0 + Lv))
+        num, den, _, _ = parts(w)
+        return _ratio(num, den + num)
 
     def CS_of(w):
-        return S_of(w) * K(point(w))[None, :]
+        num, den, (nk, dk), _ = parts(w)
+        return _ratio(den / dk[None, :] * nk[None, :], den + num)
 
     def PS_of(w):
-        x = point(w)
-        return S_of(w) * np.stack([G(x) for G in Gs])
+        num, den, _, (ng, dg) = parts(w)
+        return _ratio(den / dg * ng, den + num)
 
     origin = 1.0 if ts else 0.0
     dc = np.empty(V, dtype=complex)

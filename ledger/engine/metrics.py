@@ -24,7 +24,8 @@ _STEP = (("amplitude", 1.0), ("settling_band", 0.02), ("settling_basis", "final"
 SETTING_DOCS = MappingProxyType({
     "amplitude": "step amplitude (input units; for ramp/parabola errors the slope / curvature)",
     "settling_band": "settling band as a fraction of the basis, dimensionless",
-    "settling_basis": "what the settling band is a fraction of: 'final' (|final value|)",
+    "settling_basis": "what the settling band is a fraction of: 'final' (|final value|) or 'step' "
+                      "(|step amplitude|)",
     "rise_limits": "rise-time limits as fractions of the final value (low, high)",
     "frequency": "frequency bound in rad/s",
     "band": "recovery band as a fraction of the disturbance peak |y|, dimensionless",
@@ -222,6 +223,6 @@ def resolve_settings(name: str, settings: dict | None = None) -> dict:
                 raise SpecError(f"rise_limits {value!r} must satisfy 0 <= low < high <= 1")
             out[key] = (lo, hi)
         elif key == "settling_basis":
-            if value not in ("final",):
-                raise SpecError(f"settling_basis {value!r} is unknown; use 'final'")
+            if value not in ("final", "step"):
+                raise SpecError(f"settling_basis {value!r} is unknown; use 'final' or 'step'")
     return out
