@@ -14,7 +14,7 @@ from typing import Iterator
 
 from sqlalchemy import create_engine, event
 from sqlalchemy.engine import Engine, make_url
-from sqlalchemy.exc import ArgumentError
+from sqlalchemy.exc import ArgumentError, DatabaseError, IntegrityError, OperationalError
 from sqlalchemy.orm import Session, sessionmaker
 
 from ..errors import SchemaError
@@ -87,11 +87,24 @@ def make_engine(url: str, *, foreign_keys: bool = True) -> Engine:
 
 @contextmanager
 def session_scope(factory: sessionmaker) -> Iterator[Session]:
-    """One transaction: commit on success, roll back on any exception."""
+    """One transaction: commit on success, roll back on any exception.
+
+    Database-level failures other than constraint violations (a damaged file, a lock held past
+    the busy timeout, a lost server) become a one-line :class:`SchemaError`.
+    """
     session = factory()
     try:
         yield session
         session.commit()
+    except (IntegrityError,):
+        session.rollback()
+        raise
+    except OperationalError as e:
+        session.rollback()
+        raise SchemaError(f"database error: {e.orig}; nothing was written") from e
+    except DatabaseError as e:
+        session.rollback()
+        raise SchemaError(f"database damaged or not a ledger: {e.orig}") from e
     except BaseException:
         session.rollback()
         raise

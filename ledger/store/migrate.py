@@ -60,7 +60,7 @@ def _check_is_ledger(url: str) -> str | None:
     """Return the current revision (None for an empty database); raise if not a ledger."""
     engine = make_engine(url)
     try:
-        with engine.connect() as conn:
+        with engine.connect() as conn:  # connecting runs pragmas: a damaged file fails here
             try:
                 tables = set(inspect(conn).get_table_names())
             except DatabaseError as e:
@@ -77,6 +77,8 @@ def _check_is_ledger(url: str) -> str | None:
             return rev
     except OperationalError as e:
         raise SchemaError(f"cannot open {url}: {e.orig}") from e
+    except DatabaseError as e:
+        raise SchemaError(f"{url}: not a ledger database or damaged ({e.orig})") from e
     finally:
         engine.dispose()
 
@@ -122,8 +124,8 @@ def ensure_schema(url: str, *, create: bool) -> str:
     if rev == head:
         return "current"
     if rev is None:
-        if not create and path is None:
-            raise SchemaError(f"{url}: empty database; create a ledger with 'loopledger init'")
+        if not create:
+            raise SchemaError(f"{url}: empty database, not a ledger; create one with 'loopledger init'")
         _upgrade(url)
         return "created"
     if rev not in known_revisions():
