@@ -1,0 +1,107 @@
+"""Internal stability, Nyquist count for delayed loops, damping and decay rate."""
+
+from __future__ import annotations
+
+import control
+import numpy as np
+import pytest
+from numpy.testing import assert_allclose
+
+from ledger.engine.loop import LoopSpec, assemble
+from ledger.engine.stability import decay_rate, min_damping, nyquist_unstable_count, stability
+from ledger.engine.types import PlantFamily, Variant
+
+
+def test_unstable_cancellation_is_not_internally_stable():
+    # Source: textbook internal-stability example (from memory: Doyle, Francis and Tannenbaum,
+    # Feedback Control Theory, ch. 3): C = (s-1)/(s+1), G = 1/(s-1) gives T = 1/(s+2), which
+    # looks stable, but PS = (s+1)/((s-1)(s+2)) has the pole s = 1.
+    G = control.tf([1], [1, -1])
+    C = control.tf([1, -1], [1, 1])
+    T = control.minreal(control.feedback(C * G), verbose=False)
+    assert np.all(T.poles().real < 0)  # T alone looks fine (reference library)
+    rep = stability(assemble(PlantFamily.single(G), C))
+    assert not rep.stable[0]
+    assert rep.unstable_poles[0] == 1
+    assert "closed right half plane" in rep.reasons[0]
+    # the interconnection has exactly the poles 1 and -2 (closed form above)
+    assert_allclose(np.sort(assemble(PlantFamily.single(G), C).groups[0].poles[0].real),
+                    [-2.0, 1.0], rtol=1e-10)
+
+
+def test_open_loop_unstable_plant_stabilised():
+    # Source: closed form, 1 + K/(s-1) = 0 -> s = 1 - K; K = 2 gives s = -1 (stable),
+    # K = 0.5 gives s = 0.5 (unstable).
+    for K, ok, pole in ((2.0, True, -1.0), (0.5, False, 0.5)):
+        asm = assemble(PlantFamily.single(control.tf([K], [1, -1])), 1.0)
+        assert stability(asm).stable[0] == ok
+        assert_allclose(asm.groups[0].poles[0].real, [pole], rtol=1e-12)
+
+
+def _pade_unstable(G, C, tau, order=14):
+    # independent reference: closed-loop poles with a high-order Pade approximant of the delay
+    num, den = control.pade(tau, order)
+    cl = control.feedback(C * G * control.tf(num, den))
+    return int(np.sum(cl.poles().real > 0))
+
+
+@pytest.mark.parametrize("G, C, delays", [
+    (control.tf([1], [1, 0]), 1.0, [0.2, 1.2, 1.5, 1.7, 3.0]),          # limit pi/2
+    (control.tf([2], [1, -1]), 1.0, [0.1, 0.5, 0.58, 0.63, 0.9]),       # limit 0.6046
+    (control.tf([4], [1, 1.2, 1]), control.tf([1, 1], [0.1, 1]), [0.01, 0.1, 0.3, 0.8]),
+    (control.tf([1], [1, 0.2, 1, 0]), 0.1, [0.0, 0.5, 4.0]),
+])
+def test_delayed_loop_nyquist_matches_pade_reference(G, C, delays):
+    # Source: reference library -- closed-loop poles of the loop with control.pade(tau, 14);
+    # the boundary cases are near the closed-form delay margins (1/s: pi/2 s;
+    # 2/(s-1): (pi/3)/sqrt(3) = 0.6046 s).
+    fam = PlantFamily(tuple(Variant(f"d{i}", "corner", G, delay=d) for i, d in enumerate(delays)))
+    rep = stability(assemble(fam, C))
+    for i, d in enumerate(delays):
+        if d == 0.0:
+            ref = int(np.sum(control.feedback(C * G).poles().real > 0))
+        else:
+            ref = _pade_unstable(G, C, d)
+        assert rep.unstable_poles[i] == ref, (d, rep.unstable_poles[i], ref)
+        assert rep.stable[i] == (ref == 0)
+
+
+def test_nyquist_agrees_with_frequency_kernel_when_present():
+    # Source: two-method check -- our contour count against the frequency-kernel engineer's
+    # closed_loop_unstable_count (skipped if that module is absent).
+    fr = pytest.importorskip("ledger.engine.freqresp")
+    if not hasattr(fr, "closed_loop_unstable_count"):
+        pytest.skip("freqresp has no closed_loop_unstable_count")
+    G = control.tf([2], [1, -1])
+    fam = PlantFamily(tuple(Variant(f"d{i}", "corner", G, delay=d)
+                            for i, d in enumerate([0.1, 0.5, 0.9])))
+    g = assemble(fam, 1.0).groups[0]
+    assert_allclose(nyquist_unstable_count(g), fr.closed_loop_unstable_count(g.loop_gain),
+                    atol=0)
+
+
+def test_digital_loop_stability_by_eigenvalues():
+    # Source: closed form -- G = 1/s sampled with ZOH at Ts is Ts/(z-1); with gain K the
+    # closed-loop pole is z = 1 - K Ts, stable iff 0 < K Ts < 2.
+    ts = 0.1
+    for K, ok in ((5.0, True), (19.0, True), (21.0, False)):
+        asm = assemble(PlantFamily.single(control.tf([1], [1, 0])), control.tf(K, 1, ts),
+                       LoopSpec(sample_time=ts))
+        assert stability(asm).stable[0] == ok
+        assert_allclose(asm.groups[0].poles[0], [1 - K * ts], rtol=1e-12)
+
+
+def test_damping_and_decay_rate_closed_form():
+    # Source: Ogata, Modern Control Engineering, 5th ed., sec. 5-3 (second-order system):
+    # L = 1/(s(s+1)) unity loop -> s^2 + s + 1, wn = 1, zeta = 0.5, decay rate zeta wn = 0.5.
+    p = assemble(PlantFamily.single(control.tf([1], [1, 1, 0])), 1.0).groups[0].poles[0]
+    assert_allclose(min_damping(p), 0.5, rtol=1e-12)
+    assert_allclose(decay_rate(p), 0.5, rtol=1e-12)
+    # real poles have damping 1 (definition)
+    assert_allclose(min_damping(np.array([-3.0, -0.2])), 1.0, rtol=0)
+    assert_allclose(decay_rate(np.array([-3.0, -0.2])), 0.2, rtol=1e-12)
+    # discrete: z = exp(s Ts) maps back exactly (definition of the z-plane pole)
+    ts = 0.05
+    s = np.array([-2.0 + 3.0j, -2.0 - 3.0j, -7.0])
+    assert_allclose(min_damping(np.exp(s * ts), ts), 2.0 / np.sqrt(13.0), rtol=1e-12)
+    assert_allclose(decay_rate(np.exp(s * ts), ts), 2.0, rtol=1e-12)
