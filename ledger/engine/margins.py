@@ -1,0 +1,328 @@
+"""Stability margins, Nyquist encirclements and the balanced disk margin of a loop batch.
+
+Definitions follow the metric definitions of the design notes:
+
+* gain margin at every phase crossover (L real and negative), ``-20 log10 |L|`` in dB; the upper
+  margin is the smallest positive one, the lower margin the largest negative one;
+* phase margin ``180 deg + arg L`` at every gain crossover (|L| = 1), wrapped to (-180, 180];
+  the worst (smallest) one is reported;
+* delay margin: the smallest ``PM[rad] / w`` over gain crossovers with positive phase margin;
+* balanced disk margin (skew 0): ``alpha = 1 / sup_w |S - 1/2|`` (Seiler, Packard and Gahinet,
+  "An introduction to disk margins", IEEE Control Systems Magazine, 2020).
+
+No function here decides closed-loop stability by itself except :func:`encirclements` and
+:func:`closed_loop_unstable_count`; margins of an unstable loop are still reported (a negative
+margin says so) and the caller flags the instability.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+from ledger.errors import ComputeError
+from ledger.engine.types import FreqBatch
+from ledger.engine import freqresp as _fr
+
+__all__ = [
+    "Margins",
+    "DiskMargin",
+    "margins",
+    "encirclements",
+    "closed_loop_unstable_count",
+    "disk_margin",
+]
+
+
+@dataclass(frozen=True, eq=False)
+class Margins:
+    """Classical margins of V loops; every array has shape (V,).
+
+    Attributes
+    ----------
+    gain_margin : ndarray
+        Upper gain margin, dB: smallest positive ``-20 log10|L|`` over phase crossovers
+        (``inf`` if none).
+    gain_margin_lower : ndarray
+        Lower gain margin, dB: largest negative one (``-inf`` if none).
+    phase_crossover : ndarray
+        Frequency of the upper gain margin, rad/s (``inf`` if none).
+    phase_crossover_lower : ndarray
+        Frequency of the lower gain margin, rad/s (``inf`` if none).
+    phase_margin : ndarray
+        Worst phase margin, deg, in (-180, 180] (``inf`` if there is no gain crossover).
+    gain_crossover : ndarray
+        Frequency of the worst phase margin, rad/s (``inf`` if there is no gain crossover).
+    delay_margin : ndarray
+        Extra loop delay, s, that brings the loop to the stability boundary: smallest
+        ``PM[rad]/w`` over gain crossovers with positive margin; ``inf`` without gain crossover;
+        ``0`` when no crossover has a positive margin.  For discrete loops this is the same
+        formula in seconds (a delay of ``delay_margin/dt`` samples, not necessarily an integer).
+    phase_crossovers, gain_margins : tuple of ndarray
+        Per variant, every phase crossover (rad/s) and its gain margin (dB).
+    gain_crossovers, phase_margins : tuple of ndarray
+        Per variant, every gain crossover (rad/s) and its phase margin (deg).
+    """
+
+    gain_margin: np.ndarray
+    gain_margin_lower: np.ndarray
+    phase_crossover: np.ndarray
+    phase_crossover_lower: np.ndarray
+    phase_margin: np.ndarray
+    gain_crossover: np.ndarray
+    delay_margin: np.ndarray
+    phase_crossovers: tuple
+    gain_margins: tuple
+    gain_crossovers: tuple
+    phase_margins: tuple
+
+
+@dataclass(frozen=True, eq=False)
+class DiskMargin:
+    """Balanced (skew 0) disk margin of V loops; arrays of shape (V,).
+
+    Attributes
+    ----------
+    alpha : ndarray
+        Disk size ``1 / sup_w |S - 1/2|`` (dimensionless); 0 for an unstable closed loop.
+    gain_low_db, gain_high_db : ndarray
+        Guaranteed gain interval, dB: ``20 log10((1 -+ alpha/2) / (1 +- alpha/2))``;
+        ``-inf``/``inf`` when ``alpha >= 2``.
+    phase_deg : ndarray
+        Guaranteed phase variation, +- degrees: ``2 atan(alpha / 2)``.
+    frequency : ndarray
+        Frequency in rad/s where ``|S - 1/2|`` peaks.
+    """
+
+    alpha: np.ndarray
+    gain_low_db: np.ndarray
+    gain_high_db: np.ndarray
+    phase_deg: np.ndarray
+    frequency: np.ndarray
+
+
+def _values_at(fb: FreqBatch, per_variant: list[np.ndarray]) -> list[np.ndarray]:
+    """L at each variant's own frequencies, from one batched evaluation."""
+    allw = np.unique(np.concatenate([np.asarray(c, float) for c in per_variant] + [np.empty(0)]))
+    if allw.size == 0:
+        return [np.empty(0, complex) for _ in per_variant]
+    L = _fr._call(fb.evaluate, allw, fb.nvar)
+    return [L[v, np.searchsorted(allw, c)] for v, c in enumerate(per_variant)]
+
+
+def margins(fb: FreqBatch, *, grid: np.ndarray | None = None, xrtol: float = 1e-14) -> Margins:
+    """Gain, phase and delay margins of every variant (see :class:`Margins`).
+
+    Parameters
+    ----------
+    fb : FreqBatch
+        Loop gains.
+    grid : ndarray, optional
+        Frequencies (rad/s) to search; :func:`frequency_grid` by default.
+    xrtol : float
+        Relative frequency tolerance of the crossover refinement.
+    """
+    w = _fr.frequency_grid(fb) if grid is None else np.asarray(grid, float)
+    pcs = _fr.phase_crossovers(fb, grid=w, xrtol=xrtol)
+    gcs = _fr.gain_crossovers(fb, grid=w, xrtol=xrtol)
+    lp = _values_at(fb, pcs)
+    lg = _values_at(fb, gcs)
+    V = fb.nvar
+    gm, gml = np.full(V, math.inf), np.full(V, -math.inf)
+    wpc, wpcl = np.full(V, math.inf), np.full(V, math.inf)
+    pm, wgc, dm = np.full(V, math.inf), np.full(V, math.inf), np.full(V, math.inf)
+    gms, pms = [], []
+    for v in range(V):
+        g = -20.0 * np.log10(np.abs(lp[v])) if pcs[v].size else np.empty(0)
+        gms.append(g)
+        pos, neg = g > 0, g < 0
+        if pos.any():
+            i = int(np.flatnonzero(pos)[np.argmin(g[pos])])
+            gm[v], wpc[v] = g[i], pcs[v][i]
+        if neg.any():
+            i = int(np.flatnonzero(neg)[np.argmax(g[neg])])
+            gml[v], wpcl[v] = g[i], pcs[v][i]
+        if gcs[v].size:
+            p = np.degrees(np.angle(-lg[v]))
+            p = np.where(p <= -180.0, p + 360.0, p)
+            pms.append(p)
+            i = int(np.argmin(p))
+            pm[v], wgc[v] = p[i], gcs[v][i]
+            ok = p > 0
+            dm[v] = float(np.min(np.radians(p[ok]) / gcs[v][ok])) if ok.any() else 0.0
+        else:
+            pms.append(np.empty(0))
+    return Margins(gain_margin=gm, gain_margin_lower=gml, phase_crossover=wpc,
+                   phase_crossover_lower=wpcl, phase_margin=pm, gain_crossover=wgc,
+                   delay_margin=dm, phase_crossovers=tuple(pcs), gain_margins=tuple(gms),
+                   gain_crossovers=tuple(gcs), phase_margins=tuple(pms))
+
+
+def _wrap(x: float) -> float:
+    """Wrap an angle to [-pi, pi]."""
+    return math.remainder(x, 2.0 * math.pi)
+
+
+def encirclements(fb: FreqBatch, *, grid: np.ndarray | None = None, marginal_tol: float = 1e-9,
+                  xrtol: float = 1e-14) -> np.ndarray:
+    """Net clockwise encirclements N of -1 by the Nyquist contour of L, per variant.
+
+    The contour runs up the imaginary axis (continuous; discrete: once round the unit circle
+    counter-clockwise), around every boundary pole by a small indentation that leaves the pole
+    on the stable side (right of it, outside the circle), and closes along the infinite arc.  The
+    closed loop then has ``Z = N + P`` unstable poles, with P the open-loop poles in the open
+    right half plane (outside the unit circle); see :func:`closed_loop_unstable_count`.
+
+    The angle of ``1 + L`` is tracked exactly: all zeros of ``Im L`` are found by root finding
+    and added to the grid, so between neighbouring points ``1 + L`` stays in one half plane and
+    its angle change is fixed by the end values.  Delay-induced rotation is thereby followed
+    wherever the grid resolves it; the mirrored half of the contour is taken by symmetry.
+
+    Parameters
+    ----------
+    fb : FreqBatch
+        Loop gains.
+    grid : ndarray, optional
+        Base grid (rad/s); :func:`frequency_grid` by default.
+    marginal_tol : float
+        If ``|1 + L| < marginal_tol`` somewhere on the contour, the closed loop has a pole on
+        the stability boundary and a :class:`ComputeError` is raised.
+    xrtol : float
+        Relative tolerance of the ``Im L = 0`` refinement.
+
+    Returns
+    -------
+    ndarray (V,) of int
+    """
+    V, dt = fb.nvar, fb.dt
+    w0 = _fr.frequency_grid(fb) if grid is None else np.asarray(grid, float)
+    axis = _fr._axis_roots(fb.poles, dt, axis_tol=1e-9)
+    L0 = _fr._call(fb.evaluate, w0, V)
+    mask0 = _fr._pole_interval_mask(w0, axis, V)
+    roots = _fr._phase_crossings_all(fb, w0, mask0, L0, xrtol)
+    w = np.unique(np.concatenate([w0] + [r for r in roots]))
+    w = _fr._thin(w, 1e-15)
+    mids = 0.5 * (w[:-1] + w[1:])
+    H = _fr._call(fb.evaluate, np.concatenate([w, mids]), V)
+    L, Lm = H[:, :w.size], H[:, w.size:]
+    mask = _fr._pole_interval_mask(w, axis, V)
+    F = 1.0 + L
+    angF = np.angle(F)
+    sgn = np.sign(Lm.imag)
+    wnyq = math.pi / dt if dt is not None else math.inf
+    out = np.zeros(V, dtype=int)
+    for v in range(V):
+        finite = np.isfinite(F[v])
+        if np.any(np.abs(F[v][finite]) < marginal_tol):
+            i = int(np.flatnonzero(finite & (np.abs(F[v]) < marginal_tol))[0])
+            raise ComputeError(f"variant {v}: 1 + L vanishes at {w[i]:.6g} rad/s, a closed-loop "
+                               "pole sits on the stability boundary; change the gain or design")
+        orders = {ar.w: ar.order for ar in axis if ar.variant == v}
+        total = 0.0
+        half = 0.0
+        for i in range(w.size - 1):
+            if mask[v, i]:
+                a, b = w[i], w[i + 1]
+                inside = [k for wk, k in orders.items() if a <= wk <= b]
+                k = sum(inside)
+                if a == 0.0 and 0.0 in orders:
+                    # small right-hand indentation round the integrator(s): traversed once
+                    total += -k * math.pi + _wrap(2.0 * angF[v, i + 1] + k * math.pi)
+                elif dt is not None and b >= wnyq * (1 - 1e-12) and wnyq in orders:
+                    total += -k * math.pi + _wrap(-2.0 * angF[v, i] + k * math.pi)
+                else:
+                    half += -k * math.pi + _wrap(angF[v, i + 1] - angF[v, i] + k * math.pi)
+                continue
+            s = sgn[v, i]
+            if not (np.isfinite(angF[v, i]) and np.isfinite(angF[v, i + 1])):
+                raise ComputeError(f"variant {v}: cannot follow the Nyquist curve near "
+                                   f"{w[i]:.6g} rad/s; check the loop for poles on the axis")
+            if s == 0:
+                # L real on this stretch: 1 + L keeps its sign (no turn) or passes through 0
+                if F[v, i].real * F[v, i + 1].real <= 0:
+                    raise ComputeError(f"variant {v}: 1 + L vanishes near {w[i]:.6g} rad/s, a "
+                                       "closed-loop pole sits on the stability boundary")
+                continue
+            half += s * (abs(angF[v, i + 1]) - abs(angF[v, i]))
+        total += 2.0 * half
+        if dt is None:
+            r = len(np.ravel(fb.poles[v])) - len(np.ravel(fb.zeros[v]))
+            lend = abs(L[v, -1])
+            if r < 0:
+                raise ComputeError(f"variant {v}: the loop gain is improper; add roll-off")
+            if r == 0 and lend >= 1.0 - 1e-9 and _fr.estimate_delay(fb)[v] * w[-1] > 1e-3:
+                raise ComputeError(f"variant {v}: |L| >= 1 at high frequency with a delay; "
+                                   "the closed loop is not of retarded type, reduce the feedthrough")
+            total += _wrap(-2.0 * angF[v, -1])
+        n = -total / (2.0 * math.pi)
+        if abs(n - round(n)) > 0.25:
+            raise ComputeError(f"variant {v}: Nyquist angle count {n:.3f} is not an integer; "
+                               "the frequency grid is too coarse, raise points_per_decade")
+        out[v] = int(round(n))
+    return out
+
+
+def _open_loop_unstable(fb: FreqBatch, axis_tol: float = 1e-9) -> np.ndarray:
+    P = np.zeros(fb.nvar, dtype=int)
+    for v, p in enumerate(fb.poles):
+        p = np.asarray(p, complex).ravel()
+        if fb.dt is None:
+            P[v] = int(np.sum(p.real > axis_tol * np.maximum(np.abs(p), 1.0)))
+        else:
+            P[v] = int(np.sum(np.abs(p) > 1.0 + axis_tol))
+    return P
+
+
+def closed_loop_unstable_count(fb: FreqBatch, **kwargs) -> np.ndarray:
+    """Closed-loop poles in the closed right half plane (on/outside the unit circle), per variant.
+
+    ``Z = N + P`` with N from :func:`encirclements` (keyword arguments are passed on) and P the
+    open-loop poles in the open right half plane (outside the unit circle) from ``fb.poles``.
+    ``Z == 0`` means the closed loop is stable.
+    """
+    return encirclements(fb, **kwargs) + _open_loop_unstable(fb)
+
+
+def disk_margin(fb: FreqBatch, *, grid: np.ndarray | None = None, xrtol: float = 1e-10,
+                check_stability: bool = True, unbounded_tol: float = 1e-9) -> DiskMargin:
+    """Balanced disk margin (skew 0) of every variant (see :class:`DiskMargin`).
+
+    ``alpha = 1 / sup_w |S(jw) - 1/2|`` with ``S = 1/(1+L)``; the peak is found by
+    :func:`peak_gain` on ``(1 - L) / (2 (1 + L))`` over the loop grid plus geometric points
+    around every gain and phase crossover.  Variants whose closed loop is unstable get
+    ``alpha = 0`` (no disk of perturbations keeps them stable) when ``check_stability``.
+    The gain interval is unbounded (``+-inf`` dB) once ``alpha/2 >= 1 - unbounded_tol``.
+    """
+    V = fb.nvar
+    w = _fr.frequency_grid(fb) if grid is None else np.asarray(grid, float)
+    extra = [w]
+    offs = np.concatenate([1 - np.logspace(-6, -1, 16), 1 + np.logspace(-6, -1, 16)])
+    for c in list(_fr.gain_crossovers(fb, grid=w)) + list(_fr.phase_crossovers(fb, grid=w)):
+        if c.size:
+            extra.append(np.outer(c, offs).ravel())
+    w = np.unique(np.concatenate(extra))
+
+    def ev(x):
+        L = fb.evaluate(np.asarray(x, float))
+        with np.errstate(divide="ignore", invalid="ignore"):
+            h = (1.0 - L) / (2.0 * (1.0 + L))
+        # a pole of L gives S - 1/2 = -1/2 exactly
+        return np.where(np.isfinite(L), h, -0.5)
+
+    feats = [np.concatenate([np.ravel(p), np.ravel(z)]) for p, z in zip(fb.poles, fb.zeros)]
+    dt = fb.dt
+    peak, wpk = _fr.peak_gain(ev, dt, [np.empty(0)] * V, feats, grid=w, xrtol=xrtol)
+    with np.errstate(divide="ignore"):
+        alpha = np.where(np.isfinite(peak), 1.0 / peak, 0.0)
+    if check_stability:
+        alpha = np.where(closed_loop_unstable_count(fb, grid=None if grid is None else grid) > 0,
+                         0.0, alpha)
+    half = alpha / 2.0
+    with np.errstate(divide="ignore", invalid="ignore"):
+        hi = np.where(half < 1.0 - unbounded_tol, 20.0 * np.log10((1.0 + half) / np.maximum(1.0 - half, 1e-300)),
+                      math.inf)
+    lo = -hi
+    ph = np.degrees(2.0 * np.arctan(half))
+    return DiskMargin(alpha=alpha, gain_low_db=lo, gain_high_db=hi, phase_deg=ph, frequency=wpk)
