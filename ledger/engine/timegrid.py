@@ -19,7 +19,7 @@ Discrete time: modes are ``log(z) / dt`` (``z = 0`` is a dead-beat mode that end
 samples), the step is ``dt`` and the horizon follows the same ``settle_factor`` rule.
 
 Continuous time with an internal delay ``tau``: the step is ``h = tau / m`` with ``m`` an
-integer (method of steps), small enough that ``h |lam| <= sqrt(12 delay_rtol)`` for the modes of
+integer (method of steps), small enough that ``h |lam| <= sqrt(6 delay_rtol)`` for the modes of
 ``A`` and of the delay-free loop ``A + Bw Cz / (1 - Dzw)``, and ``h <= tau / min_delay_steps``;
 the horizon is the same ``settle_factor`` rule over those modes, at least ``settle_factor`` delays
 long.  Delayed loops have modes that are not eigenvalues of either matrix, so the response
@@ -171,7 +171,7 @@ def horizon(sys: SSBatch, *, settle_factor: float = 15.0, points_per_period: flo
         Most samples; a wider spread of time scales raises :class:`ComputeError`.
     delay_rtol : float, default 1e-6
         Target relative accuracy of the first-order-hold method of steps (delay only):
-        ``h |lam| <= sqrt(12 delay_rtol)``.
+        ``h |lam| <= sqrt(6 delay_rtol)``.
     min_delay_steps : int, default 20
         Fewest steps per delay ``tau`` (delay only).
 
@@ -208,7 +208,7 @@ def horizon(sys: SSBatch, *, settle_factor: float = 15.0, points_per_period: flo
             lam = np.concatenate([lam, _eigs(A0).ravel()])
         lam = lam[lam.real < 0]
         rates = np.concatenate([np.abs(lam), [1.0 / tau]])
-        h = min(tau / min_delay_steps, math.sqrt(12.0 * delay_rtol) / float(np.max(rates)))
+        h = min(tau / min_delay_steps, math.sqrt(6.0 * delay_rtol) / float(np.max(rates)))
         m = int(math.ceil(tau / h - 1e-9))
         h = tau / m
         t_end = settle_factor * tau
