@@ -194,6 +194,9 @@ def test_discrete_family_and_state_space_family():
     assert all(v.system.dt == 0.001 for v in fam.variants)
     with pytest.raises(ModelError, match="sample time"):
         build_family("k*(z-0.9)/(z-1)", {"k": 0.8})
+    # a continuous model stays continuous even when the loop's sample time is passed
+    fam = build_family("k/(s+1)", {"k": {"nominal": 0.8, "tol": "10 %"}}, sample_time=0.001)
+    assert all(v.system.dt == 0 for v in fam.variants)
     fam = build_family("ss([[-b/J]], [[1/J]], [[1]], [[0]])",
                        {"J": {"nominal": 2.0, "tol": 0.5}, "b": 1.0})
     assert fam.names == ("nominal", "corner:J-", "corner:J+")

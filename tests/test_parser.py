@@ -87,14 +87,21 @@ def test_state_space_matches_control_ss():
         assert_allclose(got, want, rtol=0, atol=0)  # exact: same literal numbers
 
 
-def test_state_space_with_parameters_and_sample_time():
-    # Source: python-control control.ss (reference library); a variable-free model takes the
-    # time domain of the call.
-    ev = parse_model("ss([[-b/J]], [[1/J]], [[Kt]], [[0]])", PARAMS, sample_time=0.001)
-    ref = control.ss([[-4.0e-4 / 3.2e-5]], [[1 / 3.2e-5]], [[0.12]], [[0]], 0.001)
+def test_state_space_with_parameters():
+    # Source: python-control control.ss (reference library)
+    ev = parse_model("ss([[-b/J]], [[1/J]], [[Kt]], [[0]])", PARAMS)
+    ref = control.ss([[-4.0e-4 / 3.2e-5]], [[1 / 3.2e-5]], [[0.12]], [[0]])
     assert_allclose(ev.system.A, ref.A, rtol=1e-15)
     assert_allclose(ev.system.B, ref.B, rtol=1e-15)
-    assert ev.system.dt == 0.001
+    assert_allclose(ev.system.C, ref.C, rtol=1e-15)
+
+
+@pytest.mark.parametrize("text", ["1/(s+1)", "pid(1, 2)", "zpk([], [-1], 1)", "3",
+                                  "ss([[-1]], [[1]], [[1]], [[0]])"])
+def test_continuous_models_stay_continuous_when_a_loop_sample_time_is_passed(text):
+    # A digital loop passes its sample time for every text; only z models use it.
+    assert parse_model(text, sample_time=0.01).system.dt == 0
+    assert parse_model(text).system.dt == 0
 
 
 def test_discrete_model_matches_control_tf():
@@ -192,8 +199,6 @@ def test_long_flat_sum_does_not_exhaust_recursion():
 
 SEMANTIC_ERRORS = [
     ("0.8*(z-0.9)/(z-1)", None, None, "needs a sample time"),
-    ("1/(s+1)", None, 0.01, "continuous-time"),
-    ("pid(1, 2)", None, 0.01, "continuous-time"),
     ("Kt/(s*(J*s+b))", {"Kt": 1.0, "J": 1.0}, None, "'b' has no value"),
     ("K/(s+1)", {"K": float("nan")}, None, "not finite"),
     ("K/(s+1)", {"K": "3"}, None, "real number"),

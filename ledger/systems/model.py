@@ -91,8 +91,7 @@ class Model:
         The text as typed.
     variable : str
         ``"z"`` when the text uses ``z``, else ``"s"`` (also for texts naming neither, such as
-        ``zpk(...)``, ``ss(...)`` or a constant: those take the time domain of the call,
-        continuous unless a sample time is given).
+        ``zpk(...)``, ``ss(...)`` or a constant: those are continuous-time).
     parameters : frozenset of str
         Names that need values.
     canonical : str
@@ -104,7 +103,6 @@ class Model:
     variable: str
     parameters: frozenset
     canonical: str
-    fixed_domain: bool = field(default=True, repr=False, compare=False)
     tree: Any = field(default=None, repr=False, compare=False)
 
     @property
@@ -113,6 +111,7 @@ class Model:
         return self.tree.info.ss_pos >= 0
 
     def _dt(self, sample_time: float | None) -> float:
+        """Sample time of the evaluated system: ``sample_time`` for z models, else 0."""
         if sample_time is not None:
             if isinstance(sample_time, bool) or not isinstance(sample_time, (int, float)) \
                     or not math.isfinite(sample_time) or sample_time <= 0:
@@ -122,10 +121,9 @@ class Model:
             if sample_time is None:
                 raise ModelError("a z model needs a sample time; give sample_time in seconds")
             return float(sample_time)
-        if sample_time is not None and self.fixed_domain:
-            raise ModelError("this model is continuous-time (s, blocks or delay); give no "
-                             "sample_time, or write the model in z")
-        return 0.0 if sample_time is None else float(sample_time)
+        # s models (and texts naming neither s nor z) are continuous-time; a sample time is
+        # the loop's business (the engine discretises the continuous plant itself).
+        return 0.0
 
     def evaluate(self, params: Mapping[str, float] | None = None, *,
                  sample_time: float | None = None) -> Evaluated:
@@ -136,7 +134,8 @@ class Model:
         params : mapping of str to float, optional
             A value for every name in :attr:`parameters`; extra names are ignored.
         sample_time : float, optional
-            Sample time in seconds; required for ``z`` models, refused for ``s`` models.
+            Sample time in seconds; required for ``z`` models; not used by continuous-time
+            models (``dt = 0``), so a loop may pass its sample time for every text.
 
         Returns
         -------
@@ -227,7 +226,7 @@ class Model:
 def _compile_cached(text: str) -> Model:
     r = parse(text)
     return Model(text=text, variable=r.variable, parameters=r.parameters,
-                 canonical=r.canonical, fixed_domain=r.fixed_domain, tree=r.tree)
+                 canonical=r.canonical, tree=r.tree)
 
 
 def compile_model(text: str) -> Model:

@@ -158,9 +158,6 @@ class ParseResult:
         Root of the syntax tree.
     variable : str
         ``"s"`` or ``"z"``; ``"s"`` also when the text names neither.
-    fixed_domain : bool
-        True when the text fixes continuous or discrete time (uses ``s``, ``z``, a block
-        or ``delay``); false for constants, ``zpk`` and ``ss`` alone.
     parameters : frozenset of str
         Parameter names used.
     canonical : str
@@ -169,7 +166,6 @@ class ParseResult:
 
     tree: object
     variable: str
-    fixed_domain: bool
     parameters: frozenset
     canonical: str
 
@@ -201,7 +197,6 @@ class _Parser:
         self.depth = 0
         self.in_zpk_list = False
         self.params: set[str] = set()
-        self.fixed = False
 
     # -- helpers -------------------------------------------------------------------------
     def error(self, message: str, pos: int) -> ModelSyntaxError:
@@ -394,7 +389,6 @@ class _Parser:
         if name in ("s", "z"):
             if name != self.variable:
                 raise self.error("a model cannot use both s and z", t.pos)
-            self.fixed = True
             return Var(name, t.pos)
         if name == "pi":
             return Num(math.pi, t.pos)
@@ -460,7 +454,6 @@ class _Parser:
         if self.variable == "z":
             raise self.error(f"{t.text}() is a continuous-time block and cannot be used in a z "
                              f"model; discretise the controller or write it in z", t.pos)
-        self.fixed = True
         args = self.call_args(t, spec.args, spec.defaults, f"{t.text}()")
         return Block(t.text, args, t.pos, Info(spec.nlen, spec.dlen, True))
 
@@ -468,7 +461,6 @@ class _Parser:
         if self.variable == "z":
             raise self.error("delay(...) is continuous-time; in a z model write z^-n as "
                              "1/z^n", t.pos)
-        self.fixed = True
         (_, arg), = self.call_args(t, ("tau",), {}, "delay()")
         return Delay(arg, t.pos, Info(delay_pos=t.pos))
 
@@ -567,4 +559,4 @@ def parse(text: str) -> ParseResult:
     variable = _variable(text, tokens)
     p = _Parser(text, tokens, variable)
     tree = p.model()
-    return ParseResult(tree, variable, p.fixed, frozenset(p.params), _canonical(tokens))
+    return ParseResult(tree, variable, frozenset(p.params), _canonical(tokens))
