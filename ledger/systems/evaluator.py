@@ -12,7 +12,7 @@ import numpy as np
 
 from ledger.errors import ModelError
 from ledger.systems.blocks import block_coefficients
-from ledger.systems.parser import SS, Block, Delay, Neg, Num, Param, Pow, Prod, Sum, Var, Zpk
+from ledger.systems.nodes import SS, Block, Delay, Neg, Num, Param, Pow, Prod, Sum, Var, Zpk
 
 __all__ = ["evaluate_tree", "polymul", "polyadd", "CONJUGATE_RTOL"]
 

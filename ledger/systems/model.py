@@ -16,7 +16,8 @@ import numpy as np
 
 from ledger.errors import ModelError, ModelSyntaxError
 from ledger.systems.evaluator import _Eval, evaluate_tree
-from ledger.systems.parser import SS, Delay, Prod, parse
+from ledger.systems.nodes import SS, Delay, Prod
+from ledger.systems.parser import parse
 
 __all__ = ["Model", "Evaluated", "compile_model", "parse_model", "normalise_rows"]
 

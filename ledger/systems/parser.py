@@ -29,11 +29,10 @@ from dataclasses import dataclass
 from ledger.errors import ModelSyntaxError
 from ledger.systems.blocks import BLOCKS
 from ledger.systems.lexer import Token, tokenize
+from ledger.systems.nodes import (SS, Block, Delay, Info, Neg, Num, Param, Pow, Prod, Sum,
+                                  Var, Zpk)
 
-__all__ = [
-    "Info", "Num", "Var", "Param", "Sum", "Prod", "Neg", "Pow", "Block", "Delay", "Zpk",
-    "SS", "ParseResult", "parse", "MAX_DEGREE", "MAX_DEPTH", "RESERVED",
-]
+__all__ = ["ParseResult", "parse", "MAX_DEGREE", "MAX_DEPTH", "RESERVED"]
 
 MAX_DEGREE = 60
 """Highest polynomial degree a model may reach anywhere in its evaluation."""
@@ -43,109 +42,6 @@ MAX_DEPTH = 60
 _CALLS = ("delay", "zpk", "ss")
 RESERVED = frozenset({"s", "z", "pi", "j", *_CALLS, *BLOCKS})
 """Names that cannot be parameters."""
-
-
-@dataclass(frozen=True)
-class Info:
-    """Static facts of a node: coefficient counts and what it contains.
-
-    ``dynamic`` is true when the value depends on the Laplace/z variable (including blocks,
-    ``zpk`` and ``ss``); ``delay_pos``/``ss_pos`` give the position of a contained
-    ``delay``/``ss`` call or -1.
-    """
-
-    nlen: int = 1
-    dlen: int = 1
-    dynamic: bool = False
-    delay_pos: int = -1
-    ss_pos: int = -1
-
-
-_CONST = Info()
-
-
-@dataclass(frozen=True)
-class Num:
-    value: complex
-    pos: int
-    info: Info = _CONST
-
-
-@dataclass(frozen=True)
-class Var:
-    name: str
-    pos: int
-    info: Info = Info(nlen=2, dynamic=True)
-
-
-@dataclass(frozen=True)
-class Param:
-    name: str
-    pos: int
-    info: Info = _CONST
-
-
-@dataclass(frozen=True)
-class Sum:
-    terms: tuple  # of (sign "+"|"-", node, position of the sign or term)
-    pos: int
-    info: Info
-
-
-@dataclass(frozen=True)
-class Prod:
-    factors: tuple  # of (op "*"|"/", node, position of the operator or factor)
-    pos: int
-    info: Info
-
-
-@dataclass(frozen=True)
-class Neg:
-    operand: object
-    pos: int
-    info: Info
-
-
-@dataclass(frozen=True)
-class Pow:
-    base: object
-    exponent: int
-    pos: int
-    info: Info
-
-
-@dataclass(frozen=True)
-class Block:
-    name: str
-    args: tuple  # of (argument name, node or float default)
-    pos: int
-    info: Info
-
-
-@dataclass(frozen=True)
-class Delay:
-    arg: object
-    pos: int
-    info: Info
-
-
-@dataclass(frozen=True)
-class Zpk:
-    zeros: tuple
-    poles: tuple
-    gain: object
-    pos: int
-    info: Info
-
-
-@dataclass(frozen=True)
-class SS:
-    a: tuple  # matrices as tuples of rows of nodes
-    b: tuple
-    c: tuple
-    d: tuple
-    pos: int
-    info: Info
 
 
 @dataclass(frozen=True)
