@@ -13,7 +13,7 @@ import os
 import re
 from collections import deque
 from datetime import datetime, timezone
-from typing import Any, Iterable, Mapping, Sequence
+from typing import Any, Callable, Iterable, Mapping, Sequence
 
 from sqlalchemy import func, select
 from sqlalchemy.exc import IntegrityError
@@ -28,8 +28,8 @@ from .errors import (
     SpecError,
 )
 from .hashing import sha256_of
-from .records import LineageNode, LoopInfo, PlantInfo, RequirementInfo, RevisionInfo
-from .store.db import make_engine, resolve_url, session_scope
+from .records import LineageNode, LoopInfo, PlantInfo, RequirementInfo, ResultInfo, RevisionInfo
+from .store.db import is_sqlite, make_engine, resolve_url, session_scope
 from .store.migrate import ensure_schema
 from .store.models import (
     Loop,
@@ -39,6 +39,7 @@ from .store.models import (
     RequirementLoop,
     RequirementParent,
     RequirementVersion,
+    Result,
     Revision,
 )
 
@@ -132,11 +133,17 @@ class Ledger:
         self.author = author or default_author()
         self._engine = make_engine(url)
         self._sessions = sessionmaker(self._engine, expire_on_commit=False)
+        self._read_engine = make_engine(url, immediate=False) if is_sqlite(url) else self._engine
+        self._read_sessions = sessionmaker(self._read_engine, expire_on_commit=False)
         self.schema_action = "current"
+        self.auto_verify = True
+        #: number of (metric, settings) requests the engine evaluated through this object
+        self.kernel_requests = 0
 
     # -- plumbing -------------------------------------------------------------------------
     def close(self) -> None:
         self._engine.dispose()
+        self._read_engine.dispose()
 
     def __enter__(self) -> "Ledger":
         return self
@@ -145,8 +152,12 @@ class Ledger:
         self.close()
 
     def transaction(self):
-        """A session context manager: one transaction, committed on success."""
+        """A session context manager: one write transaction, committed on success."""
         return session_scope(self._sessions)
+
+    def reading(self):
+        """A session context manager for reads: one consistent snapshot, no write lock."""
+        return session_scope(self._read_sessions)
 
     def _write(self, fn, *args, **kwargs):
         with self.transaction() as s:
@@ -316,7 +327,7 @@ class Ledger:
 
     def plants(self) -> list[PlantInfo]:
         """Every plant at its latest version, by name."""
-        with self.transaction() as s:
+        with self.reading() as s:
             out = []
             for p in s.scalars(select(Plant).order_by(Plant.name)):
                 out.append(self._plant_info(s, p, self._latest_plant_version(s, p.id)))
@@ -324,7 +335,7 @@ class Ledger:
 
     def plant(self, name: str, version: int | None = None) -> PlantInfo:
         """One plant, at its latest version or at ``version``."""
-        with self.transaction() as s:
+        with self.reading() as s:
             p = self._plant_row(s, name)
             if version is None:
                 pv = self._latest_plant_version(s, p.id)
@@ -336,7 +347,7 @@ class Ledger:
             return self._plant_info(s, p, pv)
 
     def plant_history(self, name: str) -> list[PlantInfo]:
-        with self.transaction() as s:
+        with self.reading() as s:
             p = self._plant_row(s, name)
             rows = s.scalars(select(PlantVersion).where(PlantVersion.plant_id == p.id)
                              .order_by(PlantVersion.number)).all()
@@ -430,11 +441,11 @@ class Ledger:
         )
 
     def loops(self) -> list[LoopInfo]:
-        with self.transaction() as s:
+        with self.reading() as s:
             return [self._loop_info(s, r) for r in s.scalars(select(Loop).order_by(Loop.name))]
 
     def loop(self, name: str) -> LoopInfo:
-        with self.transaction() as s:
+        with self.reading() as s:
             return self._loop_info(s, self._loop_row(s, name))
 
     # -- requirements ---------------------------------------------------------------------
@@ -623,9 +634,6 @@ class Ledger:
         """Retire a requirement (a new version with status ``retired``)."""
         return self.edit_requirement(key, status="retired", note=note)
 
-    def _after_requirement_change(self, info: RequirementInfo) -> None:
-        """Hook for verification (overridden when the engine is available)."""
-
     def _req_info(self, s: Session, req: Requirement, v: RequirementVersion) -> RequirementInfo:
         latest = s.scalar(select(func.max(RequirementVersion.number))
                           .where(RequirementVersion.requirement_id == req.id))
@@ -651,7 +659,7 @@ class Ledger:
     def requirements(self, *, status: str | None = None, loop: str | None = None,
                      include_retired: bool = True) -> list[RequirementInfo]:
         """Latest version of every requirement, by ID; optionally filtered."""
-        with self.transaction() as s:
+        with self.reading() as s:
             out = []
             for req in s.scalars(select(Requirement).order_by(Requirement.key)):
                 info = self._req_info(s, req, self._latest_req_version(s, req.id))
@@ -665,7 +673,7 @@ class Ledger:
             return out
 
     def requirement(self, key: str, version: int | None = None) -> RequirementInfo:
-        with self.transaction() as s:
+        with self.reading() as s:
             req = self._req_row(s, key)
             if version is None:
                 v = self._latest_req_version(s, req.id)
@@ -678,7 +686,7 @@ class Ledger:
             return self._req_info(s, req, v)
 
     def requirement_history(self, key: str) -> list[RequirementInfo]:
-        with self.transaction() as s:
+        with self.reading() as s:
             req = self._req_row(s, key)
             rows = s.scalars(select(RequirementVersion)
                              .where(RequirementVersion.requirement_id == req.id)
@@ -734,8 +742,8 @@ class Ledger:
 
     def add_revision(self, loop: str, controller: str, *, rationale: str,
                      parent: str | None = "tip", author: str | None = None,
-                     label: str | None = None) -> RevisionInfo:
-        """Record a new controller revision of ``loop``.
+                     label: str | None = None, verify: bool = True) -> RevisionInfo:
+        """Record a new controller revision of ``loop`` and verify it.
 
         Parameters
         ----------
@@ -748,10 +756,156 @@ class Ledger:
             ``None`` = a new root.  Branching is allowed.
         label : str, optional
             Defaults to ``r<N>``.
+        verify : bool
+            Judge every applicable requirement on the new revision over the whole plant
+            family (default).  The metric values are computed before the write, and the
+            revision and all its results are recorded in one transaction.
+
+        Raises
+        ------
+        ModelError
+            The controller cannot close this loop (e.g. an ideal derivative without a filter,
+            a continuous controller in a digital loop); nothing is recorded.
         """
-        info, _ = self._write(self._add_revision, loop, controller, rationale=rationale,
-                              parent=parent, author=author, label=label)
+        from . import verify as V
+
+        payloads, fresh, plan = {}, set(), None
+        if verify:
+            with self.reading() as s:
+                lp = self._loop_row(s, loop)
+                canonical = _model_canonical(controller, what=f"revision of loop {loop!r}: controller",
+                                             sample_time=lp.sample_time)
+                plan = V.plan_revision(s, lp, controller_text=controller,
+                                       controller_canonical=canonical)
+                keys = [plan.metric_key(c.metric, c.settings) for c in plan.checks]
+                cached = V.load_cached(s, keys)
+            try:
+                V.validate_controller(plan)
+            except LedgerError as e:
+                raise type(e)(f"revision of loop {loop!r}: {e}") from e
+            payloads, n = V.compute_plan(plan, cached)
+            fresh = set(payloads) - set(cached)
+            self.kernel_requests += n
+
+        def op(s: Session):
+            info, created = self._add_revision(s, loop, controller, rationale=rationale,
+                                               parent=parent, author=author, label=label)
+            if created and plan is not None and plan.checks:
+                row = self._revision_row(s, self._loop_row(s, loop), info.label)
+                V.write_results(s, plan, row.id, payloads, fresh)
+            return info, created
+
+        info, _ = self._write(op)
         return info
+
+    # -- verification ---------------------------------------------------------------------
+    def verify(self, loop: str | None = None, *, label: str | None = None,
+               tips_only: bool = False, keys: Iterable[str] | None = None,
+               progress: Callable[[int, int, str], None] | None = None) -> list[dict]:
+        """Bring results up to date: judge the latest version of every applicable requirement
+        on revisions (all of them, the tips only, or one) against the latest plant version.
+
+        Only missing results are computed; metric values already in the cache are reused.
+        Each revision's results are written in one transaction.
+
+        Returns
+        -------
+        list of dict
+            One entry per revision touched: ``loop``, ``revision``, ``results`` (written),
+            ``computed`` (metric requests evaluated by the engine).
+        """
+        from . import verify as V
+
+        with self.reading() as s:
+            loops = [self._loop_row(s, loop)] if loop else list(s.scalars(select(Loop).order_by(Loop.name)))
+            targets = []
+            for lp in loops:
+                if label is not None:
+                    targets.append((lp.name, label))
+                elif tips_only:
+                    tip = self._tip_row(s, lp)
+                    if tip is not None:
+                        targets.append((lp.name, tip.label))
+                else:
+                    targets.extend((lp.name, lbl) for lbl in s.scalars(
+                        select(Revision.label).where(Revision.loop_id == lp.id).order_by(Revision.seq)))
+        report = []
+        for i, (lname, lbl) in enumerate(targets):
+            if progress:
+                progress(i, len(targets), f"{lname}/{lbl}")
+            with self.reading() as s:
+                lp = self._loop_row(s, lname)
+                rev = self._revision_row(s, lp, lbl)
+                plan = V.plan_revision(s, lp, revision=rev, keys=keys)
+                if not plan.checks:
+                    continue
+                cached = V.load_cached(s, [plan.metric_key(c.metric, c.settings) for c in plan.checks])
+            payloads, n = V.compute_plan(plan, cached)
+            self.kernel_requests += n
+            with self.transaction() as s:
+                V.write_results(s, plan, plan.revision_id, payloads, set(payloads) - set(cached))
+            report.append({"loop": lname, "revision": lbl, "results": len(plan.checks),
+                           "computed": n})
+        if progress:
+            progress(len(targets), len(targets), "done")
+        return report
+
+    def _after_requirement_change(self, info: RequirementInfo) -> None:
+        if self.auto_verify and info.metric and info.status != "retired" and info.loops:
+            for lname in info.loops:
+                self.verify(lname, tips_only=True, keys=[info.key])
+
+    def results(self, loop: str, label: str | None = None, *,
+                include_stale: bool = True) -> list[ResultInfo]:
+        """Verdicts on one revision (default: the loop's tip), one per requirement.
+
+        For each requirement the result judged against the latest requirement and plant
+        versions is given; when there is none, the newest older one is given marked stale.
+        """
+        from .catalogue import metric_unit
+        from .verify import uncap
+
+        with self.reading() as s:
+            lp = self._loop_row(s, loop)
+            rev = self._tip_row(s, lp) if label is None else self._revision_row(s, lp, label)
+            if rev is None:
+                raise NotFoundError(f"loop {loop!r} has no revisions yet")
+            pv = self._latest_plant_version(s, lp.plant_id)
+            rows = s.execute(
+                select(Result, RequirementVersion, Requirement, PlantVersion)
+                .join(RequirementVersion, Result.requirement_version_id == RequirementVersion.id)
+                .join(Requirement, RequirementVersion.requirement_id == Requirement.id)
+                .join(PlantVersion, Result.plant_version_id == PlantVersion.id)
+                .where(Result.revision_id == rev.id)
+            ).all()
+            latest_req = {}
+            best: dict[str, tuple] = {}
+            for res, rv, req, rpv in rows:
+                if req.key not in latest_req:
+                    latest_req[req.key] = self._latest_req_version(s, req.id)
+                lv = latest_req[req.key]
+                if lv.status == "retired":
+                    continue
+                stale = rv.id != lv.id or rpv.id != pv.id
+                rank = (not stale, rv.number, rpv.number, res.id)
+                if req.key not in best or rank > best[req.key][0]:
+                    best[req.key] = (rank, res, rv, rpv, stale)
+            out = []
+            for key in sorted(best):
+                _, res, rv, rpv, stale = best[key]
+                if stale and not include_stale:
+                    continue
+                out.append(ResultInfo(
+                    loop=lp.name, revision=rev.label, requirement=key,
+                    requirement_version=rv.number, plant_version=rpv.number,
+                    verdict="stale" if stale else res.verdict, value=uncap(res.value),
+                    unit=metric_unit(rv.metric) if rv.metric else "", limit_text=rv.limit_text,
+                    headroom=uncap(res.headroom), headroom_fraction=uncap(res.headroom_fraction),
+                    worst_variant=res.worst_variant, pass_fraction=res.pass_fraction,
+                    variants=res.variants, reason=res.reason, engine_version=res.engine_version,
+                    created_at=_utc(res.created_at), stale=stale,
+                ))
+            return out
 
     def _rev_info(self, s: Session, row: Revision) -> RevisionInfo:
         parent = s.get(Revision, row.parent_id).label if row.parent_id else None
@@ -765,7 +919,7 @@ class Ledger:
 
     def revisions(self, loop: str) -> list[RevisionInfo]:
         """Every revision of ``loop`` in the order recorded."""
-        with self.transaction() as s:
+        with self.reading() as s:
             lp = self._loop_row(s, loop)
             rows = s.scalars(select(Revision).where(Revision.loop_id == lp.id)
                              .order_by(Revision.seq)).all()
@@ -773,7 +927,7 @@ class Ledger:
 
     def revision(self, loop: str, label: str | None = None) -> RevisionInfo:
         """One revision; ``label=None`` gives the loop's tip (latest recorded)."""
-        with self.transaction() as s:
+        with self.reading() as s:
             lp = self._loop_row(s, loop)
             if label is None:
                 row = self._tip_row(s, lp)
@@ -810,7 +964,7 @@ class Ledger:
     def counts(self) -> dict[str, int]:
         from .store import models as m
 
-        with self.transaction() as s:
+        with self.reading() as s:
             return {
                 t.__tablename__: s.scalar(select(func.count()).select_from(t))
                 for t in (m.Plant, m.PlantVersion, m.Loop, m.Revision, m.Requirement,

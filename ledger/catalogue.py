@@ -39,12 +39,8 @@ def metric_unit(name: str) -> str:
 
 def check_settings(name: str, settings: Mapping[str, Any]) -> dict:
     """Validate a requirement's metric settings; return them with defaults left out."""
-    d = metric_def(name)
-    allowed = dict(getattr(d, "settings", {}) or {})
-    unknown = set(settings) - set(allowed)
-    if unknown:
-        raise IntegrityViolation(
-            f"metric {name!r} has no setting {sorted(unknown)[0]!r}; its settings: "
-            f"{', '.join(sorted(allowed)) or 'none'}"
-        )
+    from .engine.metrics import resolve_settings
+
+    metric_def(name)
+    resolve_settings(name, dict(settings))  # raises SpecError naming the setting
     return dict(settings)

@@ -132,7 +132,9 @@ def convert(value: float, unit_text: str, metric_unit: str) -> float:
         if u in ("",):
             return value
         raise UnitError(f"unit {unit_text!r} does not fit a metric without unit")
-    raise UnitError(f"metric unit {metric_unit!r} is not known")
+    if not u:
+        raise UnitError(f"a limit on a metric in {metric_unit} needs a unit")
+    return _pint_convert(value, u, metric_unit, metric_unit)
 
 
 def parse_limit(text: str, metric_unit: str) -> Limit:

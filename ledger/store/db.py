@@ -54,7 +54,7 @@ def sqlite_path(url: str) -> Path | None:
     return Path(u.database)
 
 
-def _install_sqlite_hooks(engine: Engine, *, wal: bool) -> None:
+def _install_sqlite_hooks(engine: Engine, *, wal: bool, immediate: bool) -> None:
     @event.listens_for(engine, "connect")
     def _on_connect(dbapi_conn, _record):  # pragma: no cover - exercised through every test
         dbapi_conn.isolation_level = None  # we issue BEGIN ourselves
@@ -68,15 +68,20 @@ def _install_sqlite_hooks(engine: Engine, *, wal: bool) -> None:
 
     @event.listens_for(engine, "begin")
     def _on_begin(conn):
-        conn.exec_driver_sql("BEGIN IMMEDIATE")
+        conn.exec_driver_sql("BEGIN IMMEDIATE" if immediate else "BEGIN")
 
 
-def make_engine(url: str, *, foreign_keys: bool = True) -> Engine:
-    """Create an engine for ``url`` with the ledger's connection settings."""
+def make_engine(url: str, *, foreign_keys: bool = True, immediate: bool = True) -> Engine:
+    """Create an engine for ``url`` with the ledger's connection settings.
+
+    ``immediate=True`` (writers) takes SQLite's write lock at BEGIN so that read-then-write
+    transactions serialise instead of losing updates; ``immediate=False`` (readers) starts a
+    deferred transaction that sees one consistent snapshot without blocking writers (WAL).
+    """
     if is_sqlite(url):
         path = sqlite_path(url)
         engine = create_engine(url, future=True)
-        _install_sqlite_hooks(engine, wal=path is not None)
+        _install_sqlite_hooks(engine, wal=path is not None, immediate=immediate)
         if not foreign_keys:
             @event.listens_for(engine, "connect")
             def _fk_off(dbapi_conn, _record):
