@@ -66,9 +66,12 @@ def _fail(msg: str) -> None:
 
 
 def _console():
+    import os
+
     from rich.console import Console
 
-    return Console(soft_wrap=False, highlight=False)
+    width = int(os.environ.get("COLUMNS", "0") or 0) or (None if sys.stdout.isatty() else 160)
+    return Console(soft_wrap=False, highlight=False, width=width)
 
 
 def _emit_json(obj) -> None:
@@ -157,14 +160,15 @@ def init_cmd(path: Optional[str] = typer.Argument(None, help="Ledger file or URL
 
 
 @app.command("import")
-def import_cmd(spec: Path = typer.Argument(..., help="Spec file (TOML) to import.")):
-    """Import plants, loops, requirements and revisions from a spec file (idempotent)."""
+def import_cmd(spec: Path = typer.Argument(..., help="Spec file (TOML) to import."),
+               no_verify: bool = typer.Option(False, "--no-verify", help="Record only; verify later.")):
+    """Import plants, loops, requirements and revisions from a spec file (idempotent), then
+    verify what is missing."""
     def body():
         from .spec import import_spec
 
         with _open(create=True) as lg:
             rep = import_spec(lg, spec)
-            after = getattr(lg, "after_import", None)
             for line in rep.created:
                 typer.echo(f"created   {line}")
             for line in rep.new_versions:
@@ -172,8 +176,8 @@ def import_cmd(spec: Path = typer.Argument(..., help="Spec file (TOML) to import
             for loop, label in rep.revisions_added:
                 typer.echo(f"recorded  revision {loop}/{label}")
             typer.echo(f"unchanged {len(rep.unchanged)} record(s)")
-            if after:
-                after(rep)
+        if not no_verify:
+            verify_cmd(loop=None, tips=False)
     run(body)
 
 
@@ -466,13 +470,17 @@ def rev_add(loop: str = typer.Argument(..., help="Loop name."),
             why: str = typer.Option(..., "--why", help="Rationale: why this change (required)."),
             parent: Optional[str] = typer.Option(None, "--parent", help="Parent revision label (default: the loop's tip)."),
             root: bool = typer.Option(False, "--root", help="Start a new root (no parent)."),
-            label: Optional[str] = typer.Option(None, "--label", help="Label (default r<N>).")):
-    """Record a controller revision (verified at once when the engine is available)."""
+            label: Optional[str] = typer.Option(None, "--label", help="Label (default r<N>)."),
+            no_verify: bool = typer.Option(False, "--no-verify", help="Record only; verify later with 'loopledger verify'.")):
+    """Record a controller revision and verify every applicable requirement on it at once."""
     def body():
         with _open() as lg:
             r = lg.add_revision(loop, controller, rationale=why,
-                                parent=None if root else (parent or "tip"), label=label)
+                                parent=None if root else (parent or "tip"), label=label,
+                                verify=not no_verify)
             typer.echo(f"revision {r.loop}/{r.label} recorded (parent {r.parent or 'none'})")
+            if not no_verify:
+                _print_results(lg.results(r.loop, r.label), f"verdicts for {r.loop}/{r.label}")
     run(body)
 
 
@@ -520,6 +528,101 @@ def rev_show(loop: str, label: Optional[str] = typer.Argument(None, help="Revisi
         for line in r.rationale.splitlines():
             typer.echo(f"    {line}")
     run(body)
+
+
+_MARK = {"pass": "ok  ", "fail": "FAIL", "error": "ERR ", "stale": "old ", "n/a": "n/a "}
+
+
+def _fmt(value, unit):
+    from .units import format_value
+
+    return format_value(value, unit)
+
+
+def _print_results(results, title: str) -> None:
+    if not results:
+        typer.echo("  no applicable requirements with a metric")
+        return
+    rows = []
+    for r in results:
+        head = "-" if r.headroom is None else _fmt(r.headroom, r.unit)
+        if r.headroom_fraction is not None and r.headroom is not None:
+            import math
+            if math.isfinite(r.headroom_fraction):
+                head += f" ({r.headroom_fraction:+.0%})"
+        rows.append([r.requirement, f"{_MARK.get(r.verdict, r.verdict)} {r.verdict}",
+                     _fmt(r.value, r.unit) if r.value is not None else "-", r.limit_text,
+                     head, r.worst_variant or "-",
+                     "-" if r.pass_fraction is None else f"{r.pass_fraction:.0%}",
+                     _short(r.reason, 50) or ""])
+    _table(["ID", "verdict", "worst value", "limit", "headroom", "worst variant", "pass", "note"],
+           rows, title=title)
+    counts = {}
+    for r in results:
+        counts[r.verdict] = counts.get(r.verdict, 0) + 1
+    typer.echo("  " + ", ".join(f"{v} {k}" for k, v in sorted(counts.items())))
+
+
+@app.command("verify")
+def verify_cmd(loop: Optional[str] = typer.Option(None, "--loop", help="Only this loop."),
+               tips: bool = typer.Option(False, "--tips", help="Only the latest revision of each loop.")):
+    """Bring verification up to date: compute every missing result (new requirement or plant
+    versions, interrupted runs), reusing cached metric values."""
+    def body():
+        from rich.progress import Progress
+
+        with _open() as lg, Progress(transient=True) as bar:
+            task = bar.add_task("verifying", total=None)
+
+            def progress(i, n, what):
+                bar.update(task, total=n, completed=i, description=f"verifying {what}")
+
+            rep = lg.verify(loop, tips_only=tips, progress=progress)
+        n_res = sum(r["results"] for r in rep)
+        n_cmp = sum(r["computed"] for r in rep)
+        typer.echo(f"verified {len(rep)} revision(s): {n_res} result(s) written, "
+                   f"{n_cmp} metric request(s) computed, the rest from the cache")
+    run(body)
+
+
+@app.command("results")
+def results_cmd(loop: str = typer.Argument(..., help="Loop name."),
+                label: Optional[str] = typer.Argument(None, help="Revision label (default: tip)."),
+                as_json: bool = typer.Option(False, "--json", help="Print JSON.")):
+    """Show the verdicts of one revision: worst value over the plant family, headroom,
+    the variant that produced it and the fraction of variants that pass."""
+    def body():
+        with _open() as lg:
+            res = lg.results(loop, label)
+            rev = lg.revision(loop, label)
+        if as_json:
+            return _emit_json(res)
+        _print_results(res, f"verdicts for {rev.loop}/{rev.label}")
+        typer.echo(CAUTION)
+    run(body)
+
+
+class _Tools:
+    """Shared helpers handed to the area modules that register their own commands."""
+
+    caution = CAUTION
+    open = staticmethod(_open)
+    run = staticmethod(run)
+    emit_json = staticmethod(_emit_json)
+    table = staticmethod(_table)
+    print_results = staticmethod(_print_results)
+    short = staticmethod(_short)
+    fail = staticmethod(_fail)
+
+
+def _register_areas() -> None:
+    from . import cli_exports, cli_history, cli_signoff, cli_ui
+
+    for mod in (cli_history, cli_exports, cli_signoff, cli_ui):
+        mod.register(app, _Tools)
+
+
+_register_areas()
 
 
 def main() -> None:  # console-script entry point

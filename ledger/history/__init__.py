@@ -1,0 +1,1 @@
+"""Views over recorded results: the verification matrix, regressions, traceability."""

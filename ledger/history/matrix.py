@@ -1,0 +1,118 @@
+"""The verification matrix: requirements x revisions with verdict, value and headroom.
+
+A *selection* names the revision columns: the tip of every loop (default), chosen revisions
+``[(loop, label), ...]``, or every revision of one loop.  Each entry pairs a requirement's
+latest version with one revision of a loop it applies to and the result the ledger holds
+for it (``None`` when never verified).  Exports, the terminal UI and sign-off all read this one
+structure.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from datetime import datetime, timezone
+from typing import Iterable, Sequence
+
+from ..records import RequirementInfo, ResultInfo, RevisionInfo
+
+__all__ = ["CAUTION", "MatrixEntry", "Matrix", "build_matrix"]
+
+CAUTION = (
+    "Model-based verification does not replace hardware testing, applicable safety standards "
+    "and qualified review."
+)
+
+
+@dataclass(frozen=True)
+class MatrixEntry:
+    requirement: RequirementInfo
+    loop: str
+    revision: RevisionInfo
+    result: ResultInfo | None
+
+    @property
+    def verdict(self) -> str:
+        """``pass``, ``fail``, ``error``, ``stale`` or ``unverified``."""
+        return self.result.verdict if self.result is not None else "unverified"
+
+
+@dataclass(frozen=True)
+class Matrix:
+    """Requirements (rows) x revisions (columns).
+
+    Attributes
+    ----------
+    requirements : tuple of RequirementInfo
+        Latest versions, every status except retired; needs without a metric included (they
+        have no entries of their own; see ``history.trace`` for their roll-up).
+    columns : tuple of RevisionInfo
+        The selected revisions, grouped by loop.
+    entries : tuple of MatrixEntry
+        One per (requirement with a metric, column of a loop it applies to).
+    generated_at : datetime
+    caution : str
+    """
+
+    requirements: tuple
+    columns: tuple
+    entries: tuple
+    generated_at: datetime
+    caution: str = CAUTION
+    title: str = "Verification matrix"
+
+    def cell(self, key: str, loop: str, label: str) -> MatrixEntry | None:
+        for e in self.entries:
+            if e.requirement.key == key and e.loop == loop and e.revision.label == label:
+                return e
+        return None
+
+    def counts(self) -> dict[str, int]:
+        out: dict[str, int] = {}
+        for e in self.entries:
+            out[e.verdict] = out.get(e.verdict, 0) + 1
+        return out
+
+    @property
+    def loops(self) -> tuple[str, ...]:
+        seen = []
+        for c in self.columns:
+            if c.loop not in seen:
+                seen.append(c.loop)
+        return tuple(seen)
+
+
+def build_matrix(lg, selection: str | Sequence[tuple[str, str]] = "tips", *,
+                 loop: str | None = None, title: str = "Verification matrix") -> Matrix:
+    """Build the matrix for a selection of revisions.
+
+    Parameters
+    ----------
+    lg : Ledger
+    selection : ``"tips"``, ``"all"`` or a sequence of ``(loop, label)``
+        Which revisions become columns: each loop's tip, every revision, or the named ones.
+    loop : str, optional
+        Restrict to one loop.
+    """
+    loops = [l.name for l in lg.loops() if loop is None or l.name == loop]
+    columns: list[RevisionInfo] = []
+    if selection == "tips":
+        for name in loops:
+            try:
+                columns.append(lg.revision(name))
+            except LookupError:
+                continue
+    elif selection == "all":
+        for name in loops:
+            columns.extend(lg.revisions(name))
+    else:
+        for lname, label in selection:
+            columns.append(lg.revision(lname, label))
+    reqs = tuple(r for r in lg.requirements() if r.status != "retired")
+    entries = []
+    for col in columns:
+        results = {r.requirement: r for r in lg.results(col.loop, col.label)}
+        for r in reqs:
+            if r.metric and col.loop in r.loops:
+                entries.append(MatrixEntry(r, col.loop, col, results.get(r.key)))
+    return Matrix(requirements=reqs, columns=tuple(columns), entries=tuple(entries),
+                  generated_at=datetime.now(timezone.utc), title=title)
