@@ -960,6 +960,35 @@ class Ledger:
             cur = revs.get(cur.parent) if cur.parent else None
         return out
 
+    # -- starter sets ---------------------------------------------------------------------
+    def add_starter_requirements(self, loop: str, kind: str | None = None) -> list[RequirementInfo]:
+        """Record the starter requirement set for ``loop``'s kind as draft requirements with
+        IDs ``<LOOP>-S01``...  (common-practice limits; edit them to the system's needs).
+        Requirements that already exist with those IDs are left as they are.  One transaction;
+        then each is verified on the loop's tip."""
+        from .starters import starter_set
+
+        def op(s: Session):
+            lp = self._loop_row(s, loop)
+            out = []
+            for st in starter_set(kind or lp.kind):
+                key = f"{lp.name.upper()}-{st.suffix}"[:40]
+                if s.scalar(select(Requirement).where(Requirement.key == key)) is not None:
+                    continue
+                info, _ = self._upsert_requirement(
+                    s, key, title=st.title, statement=st.statement,
+                    rationale=st.rationale + " (Starter limit, common practice: edit it to "
+                    "fit this system's needs.)", method="analysis", status="draft",
+                    metric=st.metric, settings=dict(st.settings), limit=st.limit,
+                    loops=[lp.name], must_exist=False)
+                out.append(info)
+            return out
+
+        infos = self._write(op)
+        if infos and self.auto_verify:
+            self.verify(loop, tips_only=True, keys=[i.key for i in infos])
+        return infos
+
     # -- counts (used by tests and the CLI summary) ----------------------------------------
     def counts(self) -> dict[str, int]:
         from .store import models as m

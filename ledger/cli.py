@@ -291,8 +291,9 @@ def loop_add(
     computation_delay: int = typer.Option(0, "--computation-delay", help="Whole samples of computation delay."),
     actuator_limit: Optional[float] = typer.Option(None, "--actuator-limit", help="Largest |u|, in the plant input unit."),
     description: str = typer.Option("", "--description", help="Free text."),
+    starter: bool = typer.Option(False, "--starter", help="Also record the starter requirement set for this kind of loop (common-practice limits, as drafts)."),
 ):
-    """Add a loop."""
+    """Add a loop (optionally with a starter set of common-practice requirements)."""
     def body():
         with _open() as lg:
             lp = lg.add_loop(name, plant, kind=kind, sensor=sensor, prefilter=prefilter,
@@ -300,6 +301,30 @@ def loop_add(
                              sample_time=sample_time, computation_delay=computation_delay,
                              actuator_limit=actuator_limit, description=description)
             typer.echo(f"loop {lp.name} on plant {lp.plant}")
+            if starter:
+                for r in lg.add_starter_requirements(lp.name):
+                    typer.echo(f"  draft {r.key}: {r.metric} {r.limit_text}  ({r.title})")
+            else:
+                typer.echo(f"  tip: 'loopledger starter {lp.kind}' lists common-practice "
+                           "requirements; add them with 'loop add --starter'")
+    run(body)
+
+
+@app.command("starter")
+def starter_cmd(kind: str = typer.Argument("position", help="Loop kind: position, speed, temperature, process, other."),
+                as_json: bool = typer.Option(False, "--json", help="Print JSON.")):
+    """List the starter requirement set for a kind of loop: limits customary in practice."""
+    def body():
+        from .starters import starter_set
+
+        try:
+            items = starter_set(kind)
+        except KeyError as e:
+            raise LedgerError(f"unknown loop kind {kind!r}; use position, speed, temperature, process or other") from e
+        if as_json:
+            return _emit_json(items)
+        _table(["ID suffix", "metric", "limit", "title", "why (common practice)"],
+               [[i.suffix, i.metric, i.limit, i.title, i.rationale] for i in items])
     run(body)
 
 
@@ -545,8 +570,8 @@ def _print_results(results, title: str) -> None:
         return
     rows = []
     for r in results:
-        head = "-" if r.headroom is None else _fmt(r.headroom, r.unit)
-        if r.headroom_fraction is not None and r.headroom is not None:
+        head = "-" if r.headroom is None or r.unit == "bool" else _fmt(r.headroom, r.unit)
+        if r.headroom_fraction is not None and r.headroom is not None and r.unit != "bool":
             import math
             if math.isfinite(r.headroom_fraction):
                 head += f" ({r.headroom_fraction:+.0%})"
