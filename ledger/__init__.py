@@ -1,2 +1,53 @@
-"""loopledger: a design-requirements ledger for feedback-control loops."""
+"""loopledger: a design-requirements ledger for feedback-control loops.
+
+Public API (imported lazily, so that ``import ledger`` stays cheap):
+
+* :func:`open_ledger` — open or create a ledger (``ledger.api``);
+* :func:`measure` — database-free metric evaluation (``ledger.engine.measure``);
+* the error classes in :mod:`ledger.errors`.
+"""
+
+from __future__ import annotations
+
+import importlib
+
+from .errors import (
+    ComputeError,
+    DuplicateError,
+    IntegrityViolation,
+    LedgerError,
+    ModelError,
+    ModelSyntaxError,
+    NotFoundError,
+    SchemaError,
+    SpecError,
+    UnitError,
+    UnstableLoopError,
+)
+
 __version__ = "0.1.0"
+
+__all__ = [
+    "open_ledger", "Ledger", "measure", "measure_family", "Measurement", "LoopSpec",
+    "PlantFamily", "Variant", "parse_model", "build_family",
+    "LedgerError", "ModelSyntaxError", "ModelError", "UnitError", "SpecError", "NotFoundError",
+    "DuplicateError", "IntegrityViolation", "SchemaError", "ComputeError", "UnstableLoopError",
+]
+
+_LAZY = {
+    "open_ledger": "ledger.api", "Ledger": "ledger.api",
+    "measure": "ledger.engine.measure", "measure_family": "ledger.engine.measure",
+    "Measurement": "ledger.engine.measure", "LoopSpec": "ledger.engine.loop",
+    "PlantFamily": "ledger.engine.types", "Variant": "ledger.engine.types",
+    "parse_model": "ledger.systems", "build_family": "ledger.systems",
+}
+
+
+def __getattr__(name: str):
+    if name in _LAZY:
+        return getattr(importlib.import_module(_LAZY[name]), name)
+    raise AttributeError(f"module 'ledger' has no attribute {name!r}")
+
+
+def __dir__():
+    return sorted(list(globals()) + __all__)
