@@ -329,3 +329,31 @@ def test_sample_cap_and_multirate_grid():
     # Source: the slow pole dominates: y ~ 1 - exp(-1e-5 t), so rise ~ ln 9 / 1e-5 (closed
     # form of the first-order response; fast pole shifts it by ~1e-3 s, i.e. ~5e-9 relative).
     assert_allclose(m.rise_time, math.log(9) / 1e-5, rtol=1e-6)
+
+
+def test_delay_loop_first_crossings_closed_form():
+    K, T, tau = 2.0, 0.5, 0.2
+    one = np.ones((1, 1))
+    sys = SSBatch(A=-one[None] / T, B=np.zeros((1, 1)), C=one, D=np.zeros(1), tau=tau,
+                  Bw=one / T, Cz=-K * one, Dz=np.array([K]), Dw=np.zeros(1), Dzw=np.zeros(1))
+    m = step_metrics(sys)
+    yf = K / (1 + K)
+    # Source: method of steps: y = 0 on [0, tau], y = K (1 - exp(-(t - tau)/T)) on
+    # [tau, 2 tau]; both 10 % and 90 % of yf are reached inside that step (closed form).
+    t10 = tau - T * math.log(1 - 0.1 * yf / K)
+    t90 = tau - T * math.log(1 - 0.9 * yf / K)
+    assert t90 < 2 * tau
+    assert_allclose(m.rise_time, t90 - t10, rtol=1e-9)
+    assert np.all(np.isfinite([m.rise_time, m.settling_time, m.overshoot, m.undershoot]))
+
+
+def test_recovery_absolute_band_and_no_nan():
+    G = 1 / (s + 1) ** 2
+    dy = control.feedback(G, 1 + 0.5 / s)
+    pk, tpk, rt = recovery(batch(dy), band=0.01, basis="absolute")
+    # Source: residual check on the exact response (evaluate_at, matrix exponential): the
+    # response sits on the absolute band edge 0.01 at the recovery time.
+    assert_allclose(abs(evaluate_at(batch(dy), rt)[0, 0]), 0.01, rtol=1e-9)
+    assert np.all(np.isfinite([pk, tpk, rt]))
+    with pytest.raises(ComputeError, match="basis"):
+        recovery(batch(dy), basis="relative")
