@@ -544,6 +544,8 @@ class Ledger:
             v.loops.append(RequirementLoop(loop_id=self._loop_row(s, ln).id))
         s.add(v)
         s.flush()
+        from .chain import append_link
+        append_link(s, "requirement_version", v)
         return v
 
     def _upsert_requirement(self, s: Session, key: str, *, title, statement, rationale="",
@@ -738,6 +740,8 @@ class Ledger:
                        created_at=created)
         s.add(row)
         s.flush()
+        from .chain import append_link
+        append_link(s, "revision", row)
         return self._rev_info(s, row), True
 
     def add_revision(self, loop: str, controller: str, *, rationale: str,

@@ -252,3 +252,83 @@ class MetricValue(Base):
     values_json: Mapped[str] = mapped_column(Text)
     engine_version: Mapped[str] = mapped_column(String(20))
     created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True))
+
+
+# -- baselines, sign-offs and the hash chain (migration 0003) ------------------------------
+__all__ += ["Baseline", "BaselineEntry", "Signoff", "ChainLink"]
+
+
+class Baseline(Base):
+    """A named, frozen set of revisions, requirement versions and plant versions with the
+    verdicts the ledger held for them; ``matrix_hash`` is the SHA-256 of its canonical matrix.
+    A signed baseline never changes; a newer one may supersede it."""
+
+    __tablename__ = "baseline"
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    name: Mapped[str] = mapped_column(String(80), unique=True)
+    note: Mapped[str] = mapped_column(Text, default="")
+    author: Mapped[str] = mapped_column(String(120), default="")
+    supersedes_id: Mapped[int | None] = mapped_column(
+        ForeignKey("baseline.id", ondelete="RESTRICT"), nullable=True, unique=True
+    )
+    matrix_hash: Mapped[str] = mapped_column(String(64))
+    created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True))
+
+
+class BaselineEntry(Base):
+    """One frozen item of a baseline: a revision column (``kind='column'``) or a matrix cell
+    (``kind='cell'``, a requirement version judged on that revision).  ``data_json`` is the
+    canonical JSON of what was frozen; the foreign keys keep the frozen records from deletion."""
+
+    __tablename__ = "baseline_entry"
+    __table_args__ = (CheckConstraint("kind IN ('column', 'cell')", name="kind_known"),)
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    baseline_id: Mapped[int] = mapped_column(
+        ForeignKey("baseline.id", ondelete="RESTRICT"), index=True
+    )
+    kind: Mapped[str] = mapped_column(String(10))
+    revision_id: Mapped[int] = mapped_column(ForeignKey("revision.id", ondelete="RESTRICT"))
+    requirement_version_id: Mapped[int | None] = mapped_column(
+        ForeignKey("requirement_version.id", ondelete="RESTRICT"), nullable=True
+    )
+    plant_version_id: Mapped[int] = mapped_column(
+        ForeignKey("plant_version.id", ondelete="RESTRICT")
+    )
+    data_json: Mapped[str] = mapped_column(Text)
+
+
+class Signoff(Base):
+    """A named approval of a baseline, bound to the SHA-256 of its canonical matrix and to the
+    hash-chain head at the moment of signing."""
+
+    __tablename__ = "signoff"
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    baseline_id: Mapped[int] = mapped_column(
+        ForeignKey("baseline.id", ondelete="RESTRICT"), index=True
+    )
+    name: Mapped[str] = mapped_column(String(120))
+    role: Mapped[str] = mapped_column(String(120))
+    statement: Mapped[str] = mapped_column(Text)
+    author: Mapped[str] = mapped_column(String(120), default="")
+    matrix_hash: Mapped[str] = mapped_column(String(64))
+    chain_head: Mapped[str] = mapped_column(String(64))
+    signed_at: Mapped[datetime] = mapped_column(DateTime(timezone=True))
+
+
+class ChainLink(Base):
+    """Append-only hash chain: ``chain_hash = SHA-256(prev_hash + kind + record_id +
+    record_hash)``; see ``ledger.chain``."""
+
+    __tablename__ = "chain_link"
+    __table_args__ = (Index("ix_chain_link_record", "kind", "record_id"),)
+
+    seq: Mapped[int] = mapped_column(Integer, primary_key=True, autoincrement=False)
+    kind: Mapped[str] = mapped_column(String(30))
+    record_id: Mapped[int] = mapped_column(Integer)
+    record_hash: Mapped[str] = mapped_column(String(64))
+    prev_hash: Mapped[str] = mapped_column(String(64))
+    chain_hash: Mapped[str] = mapped_column(String(64), unique=True)
+    created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True))
