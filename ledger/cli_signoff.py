@@ -1,9 +1,159 @@
-"""CLI commands for the signoff area, registered on the main app by ``ledger.cli``."""
+"""CLI commands for baselines, sign-offs and the audit, registered on the main app by
+``ledger.cli``.  Each command opens the ledger, calls one library function and prints."""
 
 from __future__ import annotations
 
+from typing import List, Optional
+
+import typer
+
+from .errors import LedgerError
+
+__all__ = ["register", "parse_revision_arg"]
+
+
+def parse_revision_arg(items: list[str]) -> list[tuple[str, str]] | None:
+    """``LOOP:LABEL`` strings to pairs; an empty list means the default (tips)."""
+    out = []
+    for item in items or []:
+        loop, sep, label = item.partition(":")
+        if not sep or not loop or not label:
+            raise LedgerError(f"--revision {item!r} must look like LOOP:LABEL, e.g. pz:r3")
+        out.append((loop, label))
+    return out or None
+
+
+def _fmt(x) -> str:
+    if x is None:
+        return "-"
+    if isinstance(x, float):
+        return f"{x:.6g}"
+    return str(x)
+
 
 def register(app, tools) -> None:
-    """Add this area's commands to app.  tools gives the shared CLI helpers:
-    tools.open(), tools.run(fn), tools.emit_json(obj), tools.table(cols, rows),
-    tools.print_results(results, title), tools.caution."""
+    """Add ``baseline create/list/show``, ``sign`` and ``audit`` to ``app``."""
+    baseline_app = typer.Typer(help="Baselines: frozen sets of revisions, requirement versions "
+                               "and plant versions with their verdicts.", no_args_is_help=True)
+    app.add_typer(baseline_app, name="baseline")
+
+    def show(b) -> None:
+        typer.echo(f"baseline {b.name}  frozen {b.created_at:%Y-%m-%d %H:%M} UTC by {b.author}")
+        typer.echo(f"  matrix SHA-256 {b.matrix_hash}")
+        if b.supersedes:
+            typer.echo(f"  supersedes {b.supersedes}")
+        if b.superseded_by:
+            typer.echo(f"  superseded by {b.superseded_by}")
+        if b.note:
+            typer.echo(f"  note: {b.note}")
+        tools.table(["loop", "revision", "plant", "revision hash"],
+                    [[c.loop, c.revision, f"{c.plant} v{c.plant_version}", c.revision_hash[:12]]
+                     for c in b.columns], title="revisions")
+        tools.table(["ID", "ver", "loop/revision", "verdict", "value", "limit", "headroom"],
+                    [[c.requirement, c.requirement_version, f"{c.loop}/{c.revision}", c.verdict,
+                      _fmt(c.value), c.limit, _fmt(c.headroom)] for c in b.cells], title="cells")
+        for so in b.signoffs:
+            typer.echo(f"  signed {so.signed_at:%Y-%m-%d %H:%M} UTC by {so.name} ({so.role}): "
+                       f"{so.statement}")
+        if not b.signoffs:
+            typer.echo("  not signed")
+        typer.echo(tools.caution)
+
+    @baseline_app.command("create")
+    def baseline_create(
+        name: str = typer.Argument(..., help="Name of the new baseline."),
+        revision: List[str] = typer.Option([], "--revision", metavar="LOOP:LABEL",
+                                           help="A revision to freeze (repeatable); default: "
+                                           "the tip of every loop."),
+        note: str = typer.Option("", "--note", help="Free text kept with the baseline."),
+        supersedes: Optional[str] = typer.Option(None, "--supersedes",
+                                                 help="Name of the baseline this one replaces."),
+        replace: bool = typer.Option(False, "--replace",
+                                     help="Refreeze an existing unsigned baseline of that name."),
+    ):
+        """Freeze a baseline: revisions with the requirement versions, plant versions and
+        verdicts the ledger holds for them now."""
+        def body():
+            from .signoff import create_baseline
+
+            with tools.open() as lg:
+                b = create_baseline(lg, name, revisions=parse_revision_arg(revision), note=note,
+                                    supersedes=supersedes, replace=replace)
+            counts = ", ".join(f"{v} {k}" for k, v in sorted(b.counts().items())) or "no cells"
+            typer.echo(f"baseline {b.name}: {len(b.columns)} revision(s), {counts}")
+            typer.echo(f"  matrix SHA-256 {b.matrix_hash}")
+        tools.run(body)
+
+    @baseline_app.command("list")
+    def baseline_list(as_json: bool = typer.Option(False, "--json", help="Print JSON.")):
+        """List baselines with their state (signed, superseded) and matrix hash."""
+        def body():
+            from .signoff import baselines
+
+            with tools.open() as lg:
+                bs = baselines(lg)
+            if as_json:
+                return tools.emit_json(bs)
+            tools.table(["baseline", "frozen", "revisions", "cells", "signed by", "superseded by",
+                         "matrix hash"],
+                        [[b.name, f"{b.created_at:%Y-%m-%d %H:%M}", len(b.columns), len(b.cells),
+                          ", ".join(f"{s.name} ({s.role})" for s in b.signoffs) or "-",
+                          b.superseded_by or "-", b.matrix_hash[:16]] for b in bs])
+        tools.run(body)
+
+    @baseline_app.command("show")
+    def baseline_show(name: str = typer.Argument(..., help="Baseline name."),
+                      as_json: bool = typer.Option(False, "--json", help="Print JSON.")):
+        """Show one baseline: frozen revisions, cells and sign-offs."""
+        def body():
+            from .signoff import baseline
+
+            with tools.open() as lg:
+                b = baseline(lg, name)
+            if as_json:
+                return tools.emit_json(b)
+            show(b)
+        tools.run(body)
+
+    @app.command("sign")
+    def sign_cmd(
+        baseline_name: str = typer.Argument(..., metavar="BASELINE", help="Baseline to sign."),
+        name: str = typer.Option(..., "--name", help="Who approves."),
+        role: str = typer.Option(..., "--role", help="In what role (e.g. controls lead)."),
+        statement: str = typer.Option(..., "--statement", help="What is approved, in words."),
+    ):
+        """Sign a baseline: record an approval bound to the SHA-256 of its matrix.  Refused when
+        the ledger's results no longer match the frozen ones."""
+        def body():
+            from .signoff import sign_baseline
+
+            with tools.open() as lg:
+                so = sign_baseline(lg, baseline_name, signer=name, role=role, statement=statement)
+            typer.echo(f"signed {so.baseline} by {so.name} ({so.role})")
+            typer.echo(f"  matrix SHA-256 {so.matrix_hash}")
+            typer.echo(f"  chain head before signing {so.chain_head}")
+        tools.run(body)
+
+    @app.command("audit")
+    def audit_cmd(as_json: bool = typer.Option(False, "--json", help="Print JSON.")):
+        """Recompute every record hash, the hash chain and every sign-off's matrix; exit 1 when
+        anything is wrong."""
+        def body():
+            from .audit import audit
+
+            with tools.open() as lg:
+                rep = audit(lg)
+            if as_json:
+                tools.emit_json({"ok": rep.ok, "links": rep.links, "records": rep.records,
+                                 "signoffs": rep.signoffs, "head": rep.head,
+                                 "checked_at": rep.checked_at, "findings": list(rep.findings)})
+            else:
+                recs = ", ".join(f"{v} {k}" for k, v in rep.records.items())
+                typer.echo(f"audit: {rep.links} chain link(s); {recs}")
+                typer.echo(f"  chain head {rep.head}")
+                for f in rep.findings:
+                    typer.echo(f"  {f}")
+                typer.echo("  ledger intact" if rep.ok else f"  {len(rep.findings)} problem(s) found")
+            if not rep.ok:
+                raise typer.Exit(1)
+        tools.run(body)
