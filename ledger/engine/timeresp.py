@@ -28,15 +28,15 @@ once; this plays the role of a scalar root finder (brentq) applied per problem.
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass
 
 import numpy as np
 import scipy.linalg
 
-from ledger.engine.timegrid import TimeGrid, check_stable, horizon
+from ledger.engine.timegrid import (Pieces, check_stable, equilibrium, has_delay, mats,
+                                    simulate)
 from ledger.engine.types import SSBatch
-from ledger.errors import ComputeError, UnstableLoopError
+from ledger.errors import ComputeError
 
 __all__ = [
     "StepResponse",
@@ -50,75 +50,7 @@ __all__ = [
 ]
 
 
-# --------------------------------------------------------------------------- matrices
-def _mats(sys: SSBatch):
-    A = np.asarray(sys.A, dtype=float)
-    V, n = A.shape[0], A.shape[1]
-    B = np.asarray(sys.B, dtype=float).reshape(V, n)
-    C = np.asarray(sys.C, dtype=float).reshape(V, n)
-    D = np.asarray(sys.D, dtype=float).reshape(V)
-    for name, arr in (("A", A), ("B", B), ("C", C), ("D", D)):
-        if not np.all(np.isfinite(arr)):
-            raise ComputeError(f"matrix {name} of the closed loop holds NaN or inf; check the model")
-    return A, B, C, D
-
-
-def _channel(sys: SSBatch):
-    V, n = sys.nvar, sys.nstate
-
-    def get(x, shape):
-        return np.zeros(shape) if x is None else np.asarray(x, dtype=float).reshape(shape)
-
-    return (get(sys.Bw, (V, n)), get(sys.Cz, (V, n)), get(sys.Dz, (V,)),
-            get(sys.Dw, (V,)), get(sys.Dzw, (V,)))
-
-
-def _has_delay(sys: SSBatch) -> bool:
-    return sys.dt is None and float(sys.tau or 0.0) > 0.0
-
-
 # --------------------------------------------------------------------------- final value
-def _equilibrium(sys: SSBatch, amplitude: float, singular_rcond: float):
-    """Return (x_ss (V,n), w_ss (V,), y_ss (V,)) for a constant input ``amplitude``."""
-    A, B, C, D = _mats(sys)
-    V, n = A.shape[0], A.shape[1]
-    u = float(amplitude)
-    Aeq = A - np.eye(n) if sys.dt is not None else A
-    delay = _has_delay(sys)
-    if delay:
-        Bw, Cz, Dz, Dw, Dzw = _channel(sys)
-        Meq = np.zeros((V, n + 1, n + 1))
-        Meq[:, :n, :n] = Aeq
-        Meq[:, :n, n] = Bw
-        Meq[:, n, :n] = Cz
-        Meq[:, n, n] = Dzw - 1.0
-        rhs = -np.concatenate([B, Dz[:, None]], axis=1) * u
-    else:
-        Meq, rhs = Aeq, -B * u
-    if Meq.shape[1] > 0:
-        sv = np.linalg.svd(Meq, compute_uv=False)
-        rc = np.where(sv[:, 0] > 0, sv[:, -1] / np.where(sv[:, 0] > 0, sv[:, 0], 1.0), 0.0)
-        bad = rc < singular_rcond
-        if np.any(bad):
-            idx = np.nonzero(bad)[0].tolist()
-            raise ComputeError(
-                f"equilibrium is singular for variant(s) {idx[:10]} (reciprocal condition"
-                f" {float(rc[bad][0]):.2e}): the output integrates a step (pole at"
-                f" {'z=1' if sys.dt is not None else 's=0'}), so there is no final value;"
-                " use a path without a free integrator")
-        sol = np.linalg.solve(Meq, rhs[:, :, None])[:, :, 0]
-    else:
-        sol = np.zeros((V, 0))
-    x = sol[:, :n]
-    if delay:
-        w = sol[:, n]
-        y = np.einsum("vi,vi->v", C, x) + D * u + Dw * w
-    else:
-        w = np.zeros(V)
-        y = np.einsum("vi,vi->v", C, x) + D * u
-    return x, w, y
-
-
 def final_value(sys: SSBatch, amplitude: float = 1.0, *, singular_rcond: float = 1e-12) -> np.ndarray:
     """Steady-state output for a step, by the final-value theorem from the matrices.
 
@@ -146,205 +78,13 @@ def final_value(sys: SSBatch, amplitude: float = 1.0, *, singular_rcond: float =
         A continuous (no delay) or discrete batch has an eigenvalue that is not strictly stable
         (the theorem does not apply).  Delayed loops are checked by :func:`step_response`.
     """
-    _, _, y = _equilibrium(sys, amplitude, singular_rcond)
-    if not _has_delay(sys):
+    _, _, y = equilibrium(sys, amplitude, singular_rcond)
+    if not has_delay(sys):
         check_stable(sys)
     return y
 
 
-# --------------------------------------------------------------------------- simulation
-@dataclass(frozen=True)
-class _Pieces:
-    """Exact response on each grid step ``[t_k, t_{k+1}]`` (internal)."""
-
-    t: np.ndarray          # (N,) sample times, no io_delay
-    M: np.ndarray          # (V, m, m) augmented generator
-    Cy: np.ndarray         # (V, m) augmented output row
-    Z0: np.ndarray         # (V, N-1, m) augmented state at the start of each step
-    ya: np.ndarray         # (V, N-1) y at t_k (right limit)
-    yb: np.ndarray         # (V, N-1) y at t_{k+1} (left limit)
-    te: np.ndarray         # (V, N-1) time of the interior extremum, NaN if none
-    ye: np.ndarray         # (V, N-1) its value (an estimate until refined by _refine)
-    final: np.ndarray      # (V,)
-    io_delay: float
-    discrete: bool
-    da: np.ndarray | None = None     # (V, N-1) y' at t_k (right limit)
-    db: np.ndarray | None = None     # (V, N-1) y' at t_{k+1} (left limit)
-    exact: np.ndarray | None = None  # (V, N-1) True where te, ye are refined (or absent)
-
-
-def _propagate(E: np.ndarray, z0: np.ndarray, nsteps: int) -> np.ndarray:
-    """States ``E^k z0`` for k = 0..nsteps, blocked: (V, nsteps+1, m)."""
-    V, m = z0.shape
-    out = np.empty((V, nsteps + 1, m))
-    out[:, 0] = z0
-    b = max(1, min(nsteps, int(math.sqrt(nsteps)) + 1))
-    P = np.empty((b, V, m, m))
-    P[0] = E
-    for j in range(1, b):
-        P[j] = P[j - 1] @ E
-    k = 0
-    while k < nsteps:
-        j = min(b, nsteps - k)
-        out[:, k + 1:k + 1 + j] = np.moveaxis((P[:j] @ out[:, k, :, None])[..., 0], 0, 1)
-        k += j
-    return out
-
-
-def _sim_nodelay(sys: SSBatch, u: float, grid: TimeGrid):
-    A, B, C, D = _mats(sys)
-    V, n = A.shape[0], A.shape[1]
-    M = np.zeros((V, n + 1, n + 1))
-    M[:, :n, :n] = A
-    M[:, :n, n] = B
-    Cy = np.concatenate([C, D[:, None]], axis=1)
-    z = np.zeros((V, n + 1))
-    z[:, n] = u
-    parts = [z[:, None, :]]
-    for h, count in grid.segments:
-        if sys.dt is not None:
-            E = np.zeros_like(M)
-            E[:, :n, :n] = A
-            E[:, :n, n] = B
-            E[:, n, n] = 1.0
-        else:
-            E = scipy.linalg.expm(M * h)
-        blk = _propagate(E, parts[-1][:, -1], count)
-        parts.append(blk[:, 1:])
-    Z = np.concatenate(parts, axis=1)                       # (V, N, m)
-    y = (Z @ Cy[:, :, None])[..., 0]
-    if sys.dt is not None:
-        return M, Cy, Z[:, :-1], y[:, :-1], y[:, 1:], None, None, Z[:, -1, :n]
-    dy = (Z @ np.einsum("vm,vmk->vk", Cy, M)[:, :, None])[..., 0]
-    return M, Cy, Z[:, :-1], y[:, :-1], y[:, 1:], dy[:, :-1], dy[:, 1:], Z[:, -1, :n]
-
-
-def _sim_delay(sys: SSBatch, u: float, grid: TimeGrid):
-    A, B, C, D = _mats(sys)
-    Bw, Cz, Dz, Dw, Dzw = _channel(sys)
-    V, n = A.shape[0], A.shape[1]
-    h = grid.segments[0][0]
-    count = sum(c for _, c in grid.segments)
-    tau = float(sys.tau)
-    lag = int(round(tau / h))
-    if lag < 1 or abs(lag * h - tau) > 1e-9 * tau:
-        raise ComputeError(f"delay step h={h:g} s does not divide tau={tau:g} s; use horizon()")
-    m = n + 3
-    M = np.zeros((V, m, m))
-    M[:, :n, :n] = A
-    M[:, :n, n] = B
-    M[:, :n, n + 1] = Bw
-    M[:, n + 1, n + 2] = 1.0
-    Cy = np.concatenate([C, D[:, None], Dw[:, None], np.zeros((V, 1))], axis=1)
-    E = scipy.linalg.expm(M * h)[:, :n, :]                  # (V, n, m)
-    N = count + 1
-    x = np.zeros((V, N, n))
-    zR = np.zeros((V, N))
-    zL = np.zeros((V, N))
-    wR = np.zeros((V, N))
-    wL = np.zeros((V, N))
-    zR[:, 0] = Dz * u
-    for k in range(N - 1):
-        wL[:, k + 1] = zL[:, k + 1 - lag] if k + 1 >= lag else 0.0
-        wR[:, k + 1] = zR[:, k + 1 - lag] if k + 1 >= lag else 0.0
-        slope = (wL[:, k + 1] - wR[:, k]) / h
-        zk = np.concatenate([x[:, k], np.full((V, 1), u), wR[:, k, None], slope[:, None]], axis=1)
-        x[:, k + 1] = np.einsum("vim,vm->vi", E, zk)
-        cx = np.einsum("vi,vi->v", Cz, x[:, k + 1]) + Dz * u
-        zR[:, k + 1] = cx + Dzw * wR[:, k + 1]
-        zL[:, k + 1] = cx + Dzw * wL[:, k + 1]
-    slope = (wL[:, 1:] - wR[:, :-1]) / h                   # (V, N-1)
-    uu = np.full((V, N - 1, 1), u)
-    Z0 = np.concatenate([x[:, :-1], uu, wR[:, :-1, None], slope[:, :, None]], axis=2)
-    Z1 = np.concatenate([x[:, 1:], uu, wL[:, 1:, None], slope[:, :, None]], axis=2)
-    CyM = np.einsum("vm,vmk->vk", Cy, M)
-    ya = np.einsum("vnm,vm->vn", Z0, Cy)
-    yb = np.einsum("vnm,vm->vn", Z1, Cy)
-    da = np.einsum("vnm,vm->vn", Z0, CyM)
-    db = np.einsum("vnm,vm->vn", Z1, CyM)
-    return M, Cy, Z0, ya, yb, da, db, (x, zR)
-
-
-def _settled(yb, yf, yscale, tail_rtol, window, t):
-    """True when ``|y - yf|`` stayed below ``tail_rtol * yscale`` over the last ``window`` steps.
-
-    The window is at least a tenth of the horizon (1.5 time constants of the slowest mode
-    with the default grid), so a slow mode cannot hide in it behind a zero crossing.
-    """
-    late = int(np.count_nonzero(t[-yb.shape[1]:] >= 0.9 * t[-1]))
-    w = min(yb.shape[1], max(window, late, 20))
-    dev = np.max(np.abs(yb[:, -w:] - yf[:, None]), axis=1)
-    return bool(np.all(dev <= tail_rtol * yscale))
-
-
-def _simulate(sys: SSBatch, amplitude: float, *, tail_rtol: float, max_samples: int,
-              singular_rcond: float = 1e-12, **grid_kw) -> _Pieces:
-    u = float(amplitude)
-    xss, wss, yf = _equilibrium(sys, u, singular_rcond)
-    delay = _has_delay(sys)
-    grid = horizon(sys, max_samples=max_samples, **grid_kw)
-    while True:
-        if delay:
-            M, Cy, Z0, ya, yb, da, db, tail = _sim_delay(sys, u, grid)
-        else:
-            M, Cy, Z0, ya, yb, da, db, _ = _sim_nodelay(sys, u, grid)
-        yscale = np.maximum(np.maximum(np.max(np.abs(ya), axis=1), np.abs(yb[:, -1])), np.abs(yf))
-        yscale = np.where(yscale > 0, yscale, 1.0)
-        if delay:
-            lag = int(round(float(sys.tau) / grid.dt))
-            _, zR = tail
-            zscale = np.max(np.abs(zR), axis=1)
-            ok = (_settled(yb, yf, yscale, tail_rtol, 2 * lag + 1, grid.t)
-                  and _settled(zR[:, 1:], wss, np.where(zscale > 0, zscale, 1.0), tail_rtol,
-                               2 * lag + 1, grid.t))
-        else:
-            ok = sys.nstate == 0 or _settled(yb, yf, yscale, tail_rtol, 0, grid.t)
-        if ok:
-            break
-        nxt = grid.extended(2.0)
-        if nxt.nsamples > max_samples:
-            msg = (f"step response has not settled after {grid.t_end:.6g} s"
-                   f" ({grid.nsamples} samples, max_samples={max_samples})")
-            if delay:
-                raise UnstableLoopError(msg + "; the delayed loop is probably unstable or too"
-                                        " lightly damped: check its margins")
-            raise ComputeError(msg + "; raise max_samples")
-        grid = nxt
-    t = grid.t
-    Vn, K = ya.shape
-    te = np.full((Vn, K), np.nan)
-    ye = np.full((Vn, K), np.nan)
-    exact = np.ones((Vn, K), dtype=bool)
-    if da is not None:
-        vi, ki = np.nonzero(da * db < 0)
-        if vi.size:
-            h = np.diff(t)[ki]
-            se, ve = _hermite_extremum(ya[vi, ki], yb[vi, ki], da[vi, ki], db[vi, ki], h)
-            te[vi, ki] = t[ki] + se
-            ye[vi, ki] = ve
-            exact[vi, ki] = False
-    return _Pieces(t=t, M=M, Cy=Cy, Z0=Z0, ya=ya, yb=yb, te=te, ye=ye, final=yf,
-                   io_delay=float(sys.io_delay or 0.0), discrete=sys.dt is not None,
-                   da=da, db=db, exact=exact)
-
-
-def _hermite_extremum(y0, y1, d0, d1, h):
-    """Estimate of the interior extremum of the cubic Hermite interpolant (d0 d1 < 0)."""
-    dd = (y1 - y0) / h
-    c2 = (3 * dd - 2 * d0 - d1) / h
-    c3 = (d0 + d1 - 2 * dd) / h ** 2
-    disc = np.maximum(c2 * c2 - 3 * c3 * d0, 0.0)
-    q = -(c2 + np.where(c2 >= 0, 1.0, -1.0) * np.sqrt(disc))
-    with np.errstate(divide="ignore", invalid="ignore"):
-        r1 = q / (3 * c3)
-        r2 = d0 / q
-    sec = h * d0 / (d0 - d1)
-    s = np.where((r2 > 0) & (r2 < h), r2, np.where((r1 > 0) & (r1 < h), r1, sec))
-    s = np.where(np.isfinite(s), s, sec)
-    return s, y0 + s * (d0 + s * (c2 + s * c3))
-
-
-def _refine(p: _Pieces, levels=(), near_extremes: bool = True, margin: float = 1e-2) -> None:
+def _refine(p: Pieces, levels=(), near_extremes: bool = True, margin: float = 1e-2) -> None:
     """Refine, in place, the estimated extrema that can change a metric.
 
     An estimate is refined when it lies within ``margin`` (fraction of the largest ``|y|`` of
@@ -503,7 +243,7 @@ def step_response(sys: SSBatch, *, amplitude: float = 1.0, t=None, tail_rtol: fl
         yf = final_value(sys, amplitude)
         return StepResponse(t=tt, y=evaluate_at(sys, tt, amplitude=amplitude), final=yf,
                             amplitude=float(amplitude), dt=sys.dt)
-    p = _simulate(sys, amplitude, tail_rtol=tail_rtol, max_samples=max_samples, **grid_kw)
+    p = simulate(sys, amplitude, tail_rtol=tail_rtol, max_samples=max_samples, **grid_kw)
     y = np.concatenate([p.ya, p.yb[:, -1:]], axis=1)
     tt = p.t + p.io_delay
     if p.io_delay > 0:
@@ -529,10 +269,10 @@ def evaluate_at(sys: SSBatch, t_points, *, amplitude: float = 1.0) -> np.ndarray
     -------
     ndarray (V, P)
     """
-    if sys.dt is not None or _has_delay(sys):
+    if sys.dt is not None or has_delay(sys):
         raise ComputeError("evaluate_at needs a continuous system without internal delay;"
                            " use step_response for discrete or delayed loops")
-    A, B, C, D = _mats(sys)
+    A, B, C, D = mats(sys)
     V, n = A.shape[0], A.shape[1]
     tp = np.asarray(t_points, dtype=float).ravel() - float(sys.io_delay or 0.0)
     M = np.zeros((V, n + 1, n + 1))
@@ -575,7 +315,7 @@ class StepMetrics:
     final_value: np.ndarray
 
 
-def _extreme(p: _Pieces, sgn: np.ndarray, largest: bool, absolute: bool = False):
+def _extreme(p: Pieces, sgn: np.ndarray, largest: bool, absolute: bool = False):
     """Largest (or smallest) of ``sgn y`` (or ``|y|``) over samples and extrema, and its time.
 
     Ties go to the earliest time.  Returns (value (V,), time (V,)), io_delay not added.
@@ -603,7 +343,7 @@ def _extreme(p: _Pieces, sgn: np.ndarray, largest: bool, absolute: bool = False)
     return best_v, best_t
 
 
-def _first_reach(p: _Pieces, sgn: np.ndarray, L: np.ndarray) -> np.ndarray:
+def _first_reach(p: Pieces, sgn: np.ndarray, L: np.ndarray) -> np.ndarray:
     """First time ``sgn * y >= L`` (per variant), refined; io_delay not added."""
     V, K = p.ya.shape
     rows = np.arange(V)
@@ -642,7 +382,7 @@ def _first_reach(p: _Pieces, sgn: np.ndarray, L: np.ndarray) -> np.ndarray:
     return res
 
 
-def _last_exceed(p: _Pieces, c: np.ndarray, band: np.ndarray) -> np.ndarray:
+def _last_exceed(p: Pieces, c: np.ndarray, band: np.ndarray) -> np.ndarray:
     """Last time ``|y - c| > band`` (per variant; 0 if never), refined; io_delay not added."""
     V, K = p.ya.shape
     rows = np.arange(V)
@@ -694,7 +434,7 @@ def _shift_settle(ts: np.ndarray, c: np.ndarray, band: np.ndarray, io_delay: flo
     return np.where(out_before | (ts > 0), ts + io_delay, 0.0)
 
 
-def _sup_abs(p: _Pieces):
+def _sup_abs(p: Pieces):
     v, t = _extreme(p, np.ones(p.ya.shape[0]), largest=True, absolute=True)
     lim = np.abs(p.final)
     never = v < lim
@@ -745,7 +485,7 @@ def step_metrics(sys: SSBatch, *, amplitude: float = 1.0, rise_limits=(0.1, 0.9)
         raise ComputeError(f"settling_basis {settling_basis!r} must be 'final' or 'step'")
     if not settling_band > 0:
         raise ComputeError(f"settling_band {settling_band!r} must be positive")
-    p = _simulate(sys, amplitude, tail_rtol=tail_rtol, max_samples=max_samples, **grid_kw)
+    p = simulate(sys, amplitude, tail_rtol=tail_rtol, max_samples=max_samples, **grid_kw)
     yf = p.final
     sgn0 = np.where(yf >= 0, 1.0, -1.0)
     a0 = np.abs(yf)
@@ -794,7 +534,7 @@ def peak_abs(sys: SSBatch, *, amplitude: float = 1.0, tail_rtol: float = 1e-6,
     time : ndarray (V,)
         Time of the supremum, s; ``inf`` when it is only approached as t -> inf (``|yf|``).
     """
-    p = _simulate(sys, amplitude, tail_rtol=tail_rtol, max_samples=max_samples, **grid_kw)
+    p = simulate(sys, amplitude, tail_rtol=tail_rtol, max_samples=max_samples, **grid_kw)
     _refine(p)
     return _sup_abs(p)
 
@@ -827,7 +567,7 @@ def recovery(sys: SSBatch, *, amplitude: float = 1.0, band: float = 0.02, basis:
         raise ComputeError(f"basis {basis!r} must be 'peak' or 'absolute'")
     if not band > 0:
         raise ComputeError(f"band {band!r} must be positive")
-    p = _simulate(sys, amplitude, tail_rtol=tail_rtol, max_samples=max_samples, **grid_kw)
+    p = simulate(sys, amplitude, tail_rtol=tail_rtol, max_samples=max_samples, **grid_kw)
     _refine(p)
     pk, tpk = _sup_abs(p)
     b = band * pk if basis == "peak" else np.full_like(pk, float(band))
