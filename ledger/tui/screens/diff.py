@@ -1,0 +1,114 @@
+"""Diff view: pick two revisions of a loop; broke / fixed / eroded / improved lists with
+values and deltas."""
+
+from __future__ import annotations
+
+from rich.text import Text
+from textual.containers import Horizontal, VerticalScroll
+from textual.widgets import Label, Select, Static
+
+from .. import bindings
+from ..compare import compare
+from ..widgets.verdict import SYMBOL, fmt_value
+from .base import ViewScreen
+
+__all__ = ["DiffScreen"]
+
+_HEAD = {"broke": "BROKE (pass -> fail)", "fixed": "FIXED (fail -> pass)",
+         "eroded": "ERODED (still pass, less headroom)", "improved": "IMPROVED (more headroom)",
+         "unchanged": "unchanged", "other": "other (error, stale or on one side only)"}
+_STYLE = {"broke": "bold red", "fixed": "bold green", "eroded": "yellow", "improved": "green",
+          "unchanged": "dim", "other": "magenta"}
+
+
+class DiffScreen(ViewScreen):
+    """Regressions between two revisions of the current loop."""
+
+    BINDINGS = bindings.DIFF
+
+    def __init__(self, *a, **kw):
+        super().__init__(*a, **kw)
+        self.old_label: str | None = None
+        self.new_label: str | None = None
+        self.comparison = None
+        self._loop = None
+        self._quiet = False
+
+    def compose(self):
+        header, footer = self.header_footer()
+        yield header
+        with Horizontal(id="diff-pick"):
+            yield Label("older", classes="pick-label")
+            yield Select([], id="diff-old", allow_blank=True, prompt="older revision")
+            yield Label("newer", classes="pick-label")
+            yield Select([], id="diff-new", allow_blank=True, prompt="newer revision")
+        with VerticalScroll():
+            yield Static("", id="diff-body")
+        yield footer
+
+    def fetch(self):
+        lg = self.app.lg
+        loop = self.app.current_loop or next((l.name for l in lg.loops()), None)
+        if loop is None:
+            return None
+        revs = lg.revisions(loop)
+        if loop != self._loop:
+            self.old_label = self.new_label = None
+        new = self.new_label or (self.app.current_label if any(
+            r.label == self.app.current_label for r in revs) else (revs[-1].label if revs else None))
+        if new is None:
+            return (loop, revs, None, None, None)
+        parent = next(r.parent for r in revs if r.label == new)
+        old = self.old_label or parent
+        if old is None or old == new:
+            return (loop, revs, old, new, None)
+        return (loop, revs, old, new, compare(lg, loop, new, old))
+
+    def present(self, data) -> None:
+        body = self.query_one("#diff-body", Static)
+        if data is None:
+            body.update("No loops yet.")
+            return
+        loop, revs, old, new, cmp_ = data
+        self._loop, self.old_label, self.new_label, self.comparison = loop, old, new, cmp_
+        opts = [(f"{loop}/{r.label}", r.label) for r in revs]
+        self._quiet = True
+        for sel_id, value in (("#diff-old", old), ("#diff-new", new)):
+            sel = self.query_one(sel_id, Select)
+            sel.set_options(opts)
+            if value is not None:
+                sel.value = value
+        self.call_after_refresh(self._unquiet)
+        if cmp_ is None:
+            body.update(f"loop {loop}: pick two different revisions (the newer one has no parent).")
+            return
+        t = Text()
+        t.append(f"loop {loop}: {cmp_.old_label} -> {cmp_.new_label}\n\n", style="bold")
+        for kind in ("broke", "fixed", "eroded", "improved", "other", "unchanged"):
+            items = cmp_.by_kind(kind)
+            t.append(f"{_HEAD[kind]}: {len(items)}\n", style=_STYLE[kind])
+            for c in items:
+                t.append(f"  {c.requirement:<12} {SYMBOL.get(c.old_verdict, '?')} {c.old_verdict}"
+                         f" -> {SYMBOL.get(c.new_verdict, '?')} {c.new_verdict:<6} "
+                         f"{fmt_value(c.old_value, c.unit)} -> {fmt_value(c.new_value, c.unit)}")
+                if c.delta is not None:
+                    t.append(f"  (delta {c.delta:+.4g}{' ' + c.unit if c.unit else ''})")
+                t.append(f"  limit {c.limit_text}\n")
+            t.append("\n")
+        body.update(t)
+
+    def _unquiet(self) -> None:
+        self._quiet = False
+
+    def on_select_changed(self, event: Select.Changed) -> None:
+        if self._quiet or event.value is Select.BLANK:
+            return
+        if event.select.id == "diff-old":
+            self.old_label = event.value
+        else:
+            self.new_label = event.value
+            self.app.current_label = event.value
+        self.reload()
+
+    def action_compare(self) -> None:
+        self.reload()

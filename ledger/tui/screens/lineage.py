@@ -1,0 +1,98 @@
+"""Lineage view: each loop's revision tree with verdict counts; the selected revision's
+rationale and controller beside it."""
+
+from __future__ import annotations
+
+from rich.text import Text
+from textual.containers import Horizontal, VerticalScroll
+from textual.widgets import Static, Tree
+
+from ..data import load_lineage
+from ..widgets.verdict import counts_text
+from .base import ViewScreen
+
+__all__ = ["LineageScreen"]
+
+
+def _first_line(text: str, n: int = 48) -> str:
+    line = (text or "").strip().splitlines()[0] if (text or "").strip() else ""
+    return line if len(line) <= n else line[: n - 1] + "…"
+
+
+class LineageScreen(ViewScreen):
+    """Revision trees of every loop."""
+
+    def compose(self):
+        header, footer = self.header_footer()
+        yield header
+        with Horizontal():
+            yield Tree("loops", id="lineage-tree")
+            with VerticalScroll(id="lineage-side"):
+                yield Static("", id="lineage-detail")
+        yield footer
+
+    def on_mount(self) -> None:
+        self.query_one(Tree).show_root = False
+        self.query_one(Tree).focus()
+
+    def fetch(self):
+        return load_lineage(self.app.lg)
+
+    def present(self, data) -> None:
+        tree = self.query_one(Tree)
+        tree.clear()
+        self._rows = {}
+        want = (self.app.current_loop, self.app.current_label)
+        target = None
+        for lname, rows in data.loops.items():
+            node = tree.root.add(Text(f"loop {lname}", style="bold"), data=(lname, None),
+                                 expand=True)
+            stack = [node]
+            for row in rows:
+                r = row.revision
+                label = Text(f"{r.label} ")
+                label.append_text(counts_text(row.counts))
+                label.append(f" {r.author} {r.created_at:%Y-%m-%d %H:%M}  ", style="dim")
+                label.append(_first_line(r.rationale))
+                del stack[row.depth + 1:]
+                child = stack[-1].add(label, data=(lname, r.label), expand=True)
+                stack.append(child)
+                self._rows[(lname, r.label)] = row
+                if (lname, r.label) == want:
+                    target = child
+        if target is not None:
+            tree.move_cursor(target)
+        elif tree.root.children:
+            tree.move_cursor(tree.root.children[0])
+        self._detail(tree.cursor_node)
+
+    def on_tree_node_highlighted(self, event: Tree.NodeHighlighted) -> None:
+        self._detail(event.node)
+
+    def _detail(self, node) -> None:
+        box = self.query_one("#lineage-detail", Static)
+        if node is None or node.data is None:
+            box.update("No loops yet.")
+            return
+        lname, label = node.data
+        self.app.current_loop = lname
+        if label is None:
+            box.update(Text(f"loop {lname}: pick a revision below it.", style="dim"))
+            return
+        self.app.current_label = label
+        row = self._rows[(lname, label)]
+        r = row.revision
+        t = Text()
+        t.append(f"{lname}/{r.label}\n", style="bold")
+        t.append(f"by {r.author}, {r.created_at:%Y-%m-%d %H:%M} UTC\n")
+        t.append(f"parent: {r.parent or 'none (root)'}\n")
+        if r.children:
+            t.append(f"children: {', '.join(r.children)}\n")
+        t.append("verdicts: ")
+        t.append_text(counts_text(row.counts))
+        t.append("(pass, fail, error, stale)\n\n")
+        t.append("controller\n", style="bold underline")
+        t.append(f"{r.controller}\n\n")
+        t.append("rationale\n", style="bold underline")
+        t.append(r.rationale + "\n")
+        box.update(t)

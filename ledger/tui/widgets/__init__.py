@@ -1,0 +1,1 @@
+"""Small widgets and cell formatting shared by the screens."""
