@@ -1,9 +1,283 @@
-"""CLI commands for the history area, registered on the main app by ``ledger.cli``."""
+"""CLI commands for the history area, registered on the main app by ``ledger.cli``.
+
+``diff`` (regressions between two revisions), ``since`` (first failing revision) and ``trace``
+(requirement tree with roll-up, coverage gaps, orphans); plus :func:`print_regressions`, which
+``revision add`` calls to show what a new revision changed against its parent.
+"""
 
 from __future__ import annotations
+
+import math
+from enum import Enum
+from typing import Optional
+
+import typer
+
+__all__ = ["register", "print_regressions", "EXIT_REGRESSION", "diff_rows", "trace_lines"]
+
+#: exit status of ``loopledger diff --exit-on ...`` when the condition holds
+EXIT_REGRESSION = 3
+
+
+class ExitOn(str, Enum):
+    broke = "broke"
+    approved_broke = "approved-broke"
+    any = "any"
+
+
+def _fmt(value, unit: str) -> str:
+    from .units import format_value
+
+    return format_value(value, unit)
+
+
+def _delta(c) -> str:
+    if c.headroom_delta is None:
+        return "-"
+    text = _fmt(c.headroom_delta, c.unit)
+    if c.headroom_delta > 0 and not text.startswith("+"):
+        text = "+" + text
+    if c.headroom_change is not None and math.isfinite(c.headroom_change):
+        text += f" ({c.headroom_change:+.0%})"
+    return text
+
+
+def _versions(c) -> str:
+    a = c.old_requirement_version
+    b = c.new_requirement_version
+    if a is None or b is None or a == b:
+        return f"v{a if b is None else b}"
+    return f"v{a}->v{b}"
+
+
+def diff_rows(changes) -> list[list[str]]:
+    """Table rows for a sequence of :class:`~ledger.history.diff.Change`."""
+    rows = []
+    for c in changes:
+        worst = c.old_worst_variant or "-"
+        if c.new_worst_variant and c.new_worst_variant != c.old_worst_variant:
+            worst = f"{c.old_worst_variant or '-'} -> {c.new_worst_variant}"
+        rows.append([
+            c.requirement, c.kind.upper() if c.kind in ("broke", "eroded") else c.kind,
+            f"{c.old_verdict or '-'} -> {c.new_verdict or '-'}",
+            _fmt(c.old_value, c.unit), _fmt(c.new_value, c.unit), c.limit_text or "-",
+            _delta(c), worst, _versions(c), c.note,
+        ])
+    return rows
+
+
+_DIFF_COLS = ["ID", "change", "verdict", "old value", "new value", "limit", "headroom change",
+              "worst variant", "req", "note"]
+
+
+def _diff_json(d) -> dict:
+    return {
+        "loop": d.loop, "new": d.new.label, "old": d.old.label if d.old else None,
+        "threshold": d.threshold, "counts": d.counts(), "changes": list(d.changes),
+    }
+
+
+def _counts_line(d) -> str:
+    from .history.diff import CLASSES
+
+    counts = d.counts()
+    return ", ".join(f"{counts[k]} {k}" for k in CLASSES if k in counts) or "nothing judged"
+
+
+def print_regressions(lg, loop: str, label: str, tools) -> object:
+    """Print what revision ``label`` of ``loop`` changed against its parent.
+
+    Only the requirements whose class is not ``unchanged`` are listed, regressions first.
+    Called by ``loopledger revision add`` after a revision is recorded and verified.
+
+    Returns
+    -------
+    Diff
+    """
+    from .history.diff import diff
+
+    d = diff(lg, loop, label)
+    if d.old is None:
+        typer.echo(f"{loop}/{d.new.label} is a root revision: no parent to compare against")
+        return d
+    moved = [c for c in d.changes if c.kind != "unchanged"]
+    if not moved:
+        typer.echo(f"against parent {d.old.label}: no change beyond {d.threshold:.0%} of headroom "
+                   f"({_counts_line(d)})")
+        return d
+    tools.table(_DIFF_COLS, diff_rows(moved),
+                title=f"changes of {loop}/{d.new.label} against parent {d.old.label}")
+    typer.echo("  " + _counts_line(d))
+    return d
+
+
+def _exit_status(d, exit_on: Optional[ExitOn]) -> int:
+    if exit_on is None:
+        return 0
+    if exit_on is ExitOn.broke:
+        hit = d.of("broke")
+    elif exit_on is ExitOn.approved_broke:
+        hit = tuple(c for c in d.of("broke") if c.status == "approved")
+    else:
+        hit = d.regressions
+    return EXIT_REGRESSION if hit else 0
+
+
+def trace_lines(t) -> list[str]:
+    """The rolled-up tree as indented text lines."""
+    from .history.trace import TraceNode  # noqa: F401  (documented type of t.roots)
+
+    lines = []
+    for root in t.roots:
+        for depth, n in root.walk():
+            r = n.requirement
+            head = f"{'   ' * depth}{'- ' if depth else ''}{r.key}  [{n.state}]  {r.title}"
+            if r.status != "approved":
+                head += f"  ({r.status})"
+            lines.append(head)
+            for v in n.verdicts:
+                res = v.result
+                value = _fmt(res.value, res.unit) if res is not None else "-"
+                where = f"{v.loop}/{v.revision}" if v.revision else v.loop
+                lines.append(f"{'   ' * depth}{'  ' if depth else ''}    {where}: {v.verdict}  "
+                             f"{r.metric} {value} (limit {r.limit_text})")
+            if r.metric and not n.verdicts:
+                lines.append(f"{'   ' * depth}{'  ' if depth else ''}    no loop to judge it on")
+    return lines
+
+
+def _trace_json(t) -> dict:
+    def node(n) -> dict:
+        r = n.requirement
+        return {
+            "key": r.key, "version": r.version, "title": r.title, "status": r.status,
+            "metric": r.metric, "limit": r.limit_text or None, "own_state": n.own_state,
+            "state": n.state,
+            "verdicts": [{"loop": v.loop, "revision": v.revision, "verdict": v.verdict,
+                          "value": v.result.value if v.result else None,
+                          "unit": v.result.unit if v.result else r.unit,
+                          "headroom": v.result.headroom if v.result else None}
+                         for v in n.verdicts],
+            "children": [node(c) for c in n.children],
+        }
+
+    return {"tree": [node(r) for r in t.roots], "counts": t.counts(), "gaps": list(t.gaps),
+            "orphans": list(t.orphans), "generated_at": t.generated_at, "caution": t.caution}
 
 
 def register(app, tools) -> None:
     """Add this area's commands to app.  tools gives the shared CLI helpers:
     tools.open(), tools.run(fn), tools.emit_json(obj), tools.table(cols, rows),
     tools.print_results(results, title), tools.caution."""
+
+    @app.command("diff")
+    def diff_cmd(
+        loop: str = typer.Argument(..., help="Loop name."),
+        new: Optional[str] = typer.Argument(None, help="Newer revision label (default: the tip)."),
+        old: Optional[str] = typer.Argument(None, help="Older revision label (default: the parent of NEW)."),
+        threshold: float = typer.Option(0.25, "--threshold", min=0.0,
+                                        help="Fraction of the older headroom a passing requirement must lose (gain) by more than to count as eroded (improved)."),
+        as_json: bool = typer.Option(False, "--json", help="Print JSON."),
+        show_all: bool = typer.Option(False, "--all", help="List unchanged requirements too."),
+        exit_on: Optional[ExitOn] = typer.Option(None, "--exit-on", case_sensitive=False,
+                                                 help="Exit with status 3 when a requirement broke ('broke'), an approved one broke ('approved-broke'), or anything broke or eroded ('any')."),
+    ):
+        """Regressions between two revisions of a loop, requirement by requirement: broke,
+        eroded, fixed, improved, new, dropped, incomparable, unchanged."""
+        status = {"code": 0}
+
+        def body():
+            from .history.diff import diff
+
+            with tools.open() as lg:
+                d = diff(lg, loop, new, old, threshold)
+            status["code"] = _exit_status(d, exit_on)
+            if as_json:
+                tools.emit_json(_diff_json(d))
+                return
+            against = f"{d.old.label}" + (" (parent)" if d.old and d.old.label == d.new.parent else "") \
+                if d.old else "nothing (root revision)"
+            typer.echo(f"loop {loop}: {d.new.label} against {against}, threshold {d.threshold:.0%} of headroom")
+            shown = d.changes if show_all else tuple(c for c in d.changes if c.kind != "unchanged")
+            if shown:
+                tools.table(_DIFF_COLS, diff_rows(shown))
+            typer.echo("  " + _counts_line(d))
+            typer.echo(tools.caution)
+
+        tools.run(body)
+        if status["code"]:
+            raise typer.Exit(status["code"])
+
+    @app.command("since")
+    def since_cmd(
+        loop: str = typer.Argument(..., help="Loop name."),
+        requirement: str = typer.Argument(..., help="Requirement ID."),
+        label: Optional[str] = typer.Argument(None, help="Revision to start from (default: the tip)."),
+        as_json: bool = typer.Option(False, "--json", help="Print JSON."),
+    ):
+        """Find the revision where a requirement's current failing run began (walking back
+        through the parents), with that revision's rationale."""
+        def body():
+            from .history.since import first_failing
+
+            with tools.open() as lg:
+                run = first_failing(lg, loop, requirement, label)
+                revs = {r.label: r for r in lg.ancestry(loop, run.label)}
+                results = {lbl: next((x for x in lg.results(loop, lbl) if x.requirement == requirement), None)
+                           for lbl in run.run}
+            if as_json:
+                tools.emit_json({"loop": run.loop, "requirement": run.requirement,
+                                 "label": run.label, "state": run.state,
+                                 "first": run.first.label if run.first else None,
+                                 "first_rationale": run.first.rationale if run.first else None,
+                                 "run": list(run.run), "since_root": run.since_root,
+                                 "boundary": run.boundary.label if run.boundary else None,
+                                 "boundary_verdict": run.boundary_verdict,
+                                 "certain": run.certain, "summary": run.summary()})
+                return
+            typer.echo(run.summary())
+            if run.run:
+                rows = []
+                for lbl in run.run:
+                    res = results[lbl]
+                    rows.append([lbl, res.verdict if res else "-",
+                                 _fmt(res.value, res.unit) if res else "-",
+                                 res.worst_variant if res and res.worst_variant else "-",
+                                 tools.short(revs[lbl].rationale, 60)])
+                tools.table(["revision", "verdict", "worst value", "worst variant", "rationale"],
+                            rows, title=f"failing run of {requirement} on {loop}, oldest first")
+
+        tools.run(body)
+
+    @app.command("trace")
+    def trace_cmd(as_json: bool = typer.Option(False, "--json", help="Print JSON.")):
+        """The requirement tree (system needs down to loop requirements) with each loop tip's
+        verdicts rolled up (satisfied, incomplete, violated), then coverage gaps and orphans."""
+        def body():
+            from .history.trace import build_trace
+
+            with tools.open() as lg:
+                t = build_trace(lg)
+            if as_json:
+                tools.emit_json(_trace_json(t))
+                return
+            if not t.roots:
+                typer.echo("no live requirements")
+            for line in trace_lines(t):
+                typer.echo(line)
+            counts = t.counts()
+            typer.echo("  " + ", ".join(f"{counts[s]} {s}" for s in ("satisfied", "incomplete", "violated")
+                                        if s in counts))
+            if t.gaps:
+                tools.table(["ID", "gap", "loop", "revision", "detail"],
+                            [[g.requirement, g.kind, g.loop or "-", g.revision or "-", g.detail]
+                             for g in t.gaps], title="coverage gaps")
+            else:
+                typer.echo("no coverage gaps")
+            if t.orphans:
+                tools.table(["ID", "retired parents"],
+                            [[o.requirement, ", ".join(o.retired_parents)] for o in t.orphans],
+                            title="orphans (derived from a retired requirement)")
+            typer.echo(tools.caution)
+
+        tools.run(body)

@@ -251,8 +251,8 @@ def test_diff_across_branches_and_threshold(kloop):
 # -- first failing revision on a branching lineage ----------------------------------------
 def test_first_failing_branching(kloop):
     # PM verdicts from the closed form: r1 pass, r2 pass, r3 fail, r4 fail, b1 pass
-    run = first_failing(kloop, "ax", "PM")            # the tip is the latest recorded: b1
-    assert run.label == "b1" and run.state == "passes"
+    run = first_failing(kloop, "ax", "PM")            # default: the tip (latest recorded)
+    assert run.label == kloop.revision("ax").label and run.state == "passes"  # k <= 0.6 there
     run = first_failing(kloop, "ax", "PM", "r4")
     assert run.state == "failing" and run.first.label == "r3" and run.run == ("r3", "r4")
     assert run.boundary.label == "r2" and run.boundary_verdict == "pass" and run.certain
@@ -289,3 +289,72 @@ def test_first_failing_stops_at_unverified(tmp_path):
         run = first_failing(lg, "ax", "PM")
         assert run.first.label == "a" and run.since_root and run.certain
         assert run.run == ("a", "b", "c", "d")
+
+
+# -- command line ---------------------------------------------------------------------------
+@pytest.fixture
+def cli(kloop, monkeypatch):
+    import json
+
+    from typer.testing import CliRunner
+
+    from ledger.cli import app
+
+    monkeypatch.setenv("LOOPLEDGER_DB", kloop.url)
+    monkeypatch.setenv("COLUMNS", "200")
+    runner = CliRunner()
+
+    def call(*args):
+        return runner.invoke(app, list(args))
+
+    call.json = lambda *a: json.loads(call(*a).output)
+    return call
+
+
+def test_cli_diff_exit_codes(cli):
+    # r2 -> r3: approved PM broke (closed form 51.8 -> 38.7 deg)
+    res = cli("diff", "ax", "r3")
+    assert res.exit_code == 0, res.output
+    assert "BROKE" in res.output and "PM" in res.output
+    assert cli("diff", "ax", "r3", "--exit-on", "broke").exit_code == 3
+    assert cli("diff", "ax", "r3", "--exit-on", "approved-broke").exit_code == 3
+    # r1 -> r2: PM eroded, draft WC fixed; nothing broke
+    assert cli("diff", "ax", "r2", "--exit-on", "broke").exit_code == 0
+    assert cli("diff", "ax", "r2", "--exit-on", "any").exit_code == 3
+    data = cli.json("diff", "ax", "r2", "--json")
+    kinds = {c["requirement"]: c["kind"] for c in data["changes"]}
+    assert kinds == {"PM": "eroded", "WC": "fixed", "GM": "unchanged"}
+    assert data["old"] == "r1" and data["counts"]["eroded"] == 1
+    gm = next(c for c in data["changes"] if c["requirement"] == "GM")
+    assert gm["old_value"] == "inf" and gm["headroom_delta"] is None
+    bad = cli("diff", "ax", "nope")
+    assert bad.exit_code == 1 and "nope" in bad.output
+
+
+def test_cli_approved_broke_ignores_drafts(cli, kloop):
+    # WC (a draft) breaks from r2 (k=1, wc 0.786) to a k=0.4 branch (wc 0.37 < 0.5, closed form)
+    wc = math.sqrt((math.sqrt(1 + 4 * 0.4 ** 2) - 1) / 2)
+    assert wc < 0.5
+    kloop.add_revision("ax", "gain(0.4)", rationale="slow branch", parent="r2", label="s1")
+    d = diff(kloop, "ax", "s1")
+    assert {c.requirement: c.kind for c in d.changes}["WC"] == "broke"
+    assert not [c for c in d.of("broke") if c.status == "approved"]
+    assert cli("diff", "ax", "s1", "--exit-on", "approved-broke").exit_code == 0
+    assert cli("diff", "ax", "s1", "--exit-on", "broke").exit_code == 3
+
+
+def test_cli_since_and_print_regressions(cli, kloop, capsys):
+    res = cli("since", "ax", "PM", "r4")
+    assert res.exit_code == 0, res.output
+    assert "began at r3" in res.output and "faster still for settling" in res.output
+    data = cli.json("since", "ax", "PM", "r4", "--json")
+    assert data["first"] == "r3" and data["run"] == ["r3", "r4"] and data["certain"] is True
+
+    from ledger.cli import _Tools
+    from ledger.cli_history import print_regressions
+
+    d = print_regressions(kloop, "ax", "r3", _Tools)
+    out = capsys.readouterr().out
+    assert d.of("broke") and "BROKE" in out and "against parent r2" in out
+    print_regressions(kloop, "ax", "r1", _Tools)
+    assert "root revision" in capsys.readouterr().out

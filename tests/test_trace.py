@@ -161,3 +161,29 @@ def test_orphan_becomes_root(tree):
     assert "KID" in [r.key for r in t.roots]
     assert t.node("KID").state == "satisfied"  # ax k=1: pm 51.8 >= 40 (closed form above)
     assert _pm(1.0) >= 40
+
+
+def test_cli_trace(tree, monkeypatch):
+    import json
+
+    from typer.testing import CliRunner
+
+    from ledger.cli import app
+
+    monkeypatch.setenv("LOOPLEDGER_DB", tree.url)
+    monkeypatch.setenv("COLUMNS", "200")
+    tree.add_requirement("BARE", title="bare need", statement="nothing derives from it",
+                         status="approved")
+    runner = CliRunner()
+    res = runner.invoke(app, ["trace"])
+    assert res.exit_code == 0, res.output
+    assert "NEED-1  [violated]" in res.output and "ay/y1: fail" in res.output
+    assert "coverage gaps" in res.output and "no evidence" in res.output
+    data = json.loads(runner.invoke(app, ["trace", "--json"]).output)
+    need1 = next(n for n in data["tree"] if n["key"] == "NEED-1")
+    sub2 = next(c for c in need1["children"] if c["key"] == "SUB-2")
+    assert sub2["state"] == "violated" and sub2["own_state"] is None
+    assert [c["key"] for c in sub2["children"]] == ["AX-WC", "AY-PM"]
+    assert data["gaps"] == [{"requirement": "BARE", "kind": "no evidence",
+                             "detail": "no metric and no requirement derived from it",
+                             "loop": None, "revision": None}]
