@@ -436,6 +436,7 @@ def _sim_delay(sys: SSBatch, u: float, grid: TimeGrid):
     M[:, n + 1, n + 2] = 1.0
     Cy = np.concatenate([C, D[:, None], Dw[:, None], np.zeros((V, 1))], axis=1)
     E = scipy.linalg.expm(M * h)[:, :n, :]                  # (V, n, m)
+    Ex, Eu, Ew, Es = E[:, :, :n], E[:, :, n] * u, E[:, :, n + 1], E[:, :, n + 2]
     N = count + 1
     x = np.zeros((V, N, n))
     zR = np.zeros((V, N))
@@ -443,15 +444,23 @@ def _sim_delay(sys: SSBatch, u: float, grid: TimeGrid):
     wR = np.zeros((V, N))
     wL = np.zeros((V, N))
     zR[:, 0] = Dz * u
-    for k in range(N - 1):
-        wL[:, k + 1] = zL[:, k + 1 - lag] if k + 1 >= lag else 0.0
-        wR[:, k + 1] = zR[:, k + 1 - lag] if k + 1 >= lag else 0.0
-        slope = (wL[:, k + 1] - wR[:, k]) / h
-        zk = np.concatenate([x[:, k], np.full((V, 1), u), wR[:, k, None], slope[:, None]], axis=1)
-        x[:, k + 1] = np.einsum("vim,vm->vi", E, zk)
-        cx = np.einsum("vi,vi->v", Cz, x[:, k + 1]) + Dz * u
-        zR[:, k + 1] = cx + Dzw * wR[:, k + 1]
-        zL[:, k + 1] = cx + Dzw * wL[:, k + 1]
+    # Blocks of ``lag`` steps: every delayed value a block needs was made by earlier blocks.
+    for k0 in range(0, N - 1, lag):
+        k1 = min(k0 + lag, N - 1)
+        j = np.arange(k0 + 1, k1 + 1)
+        src = j - lag
+        ok = src >= 0
+        wL[:, j[ok]] = zL[:, src[ok]]
+        wR[:, j[ok]] = zR[:, src[ok]]
+        slope = (wL[:, k0 + 1:k1 + 1] - wR[:, k0:k1]) / h               # (V, steps)
+        g = (Eu[:, None, :] + Ew[:, None, :] * wR[:, k0:k1, None]
+             + Es[:, None, :] * slope[:, :, None])                       # (V, steps, n)
+        if n:
+            for i, k in enumerate(range(k0, k1)):
+                x[:, k + 1] = (Ex @ x[:, k, :, None])[..., 0] + g[:, i]
+        cx = np.einsum("vi,vji->vj", Cz, x[:, k0 + 1:k1 + 1]) + (Dz * u)[:, None]
+        zR[:, k0 + 1:k1 + 1] = cx + Dzw[:, None] * wR[:, k0 + 1:k1 + 1]
+        zL[:, k0 + 1:k1 + 1] = cx + Dzw[:, None] * wL[:, k0 + 1:k1 + 1]
     slope = (wL[:, 1:] - wR[:, :-1]) / h                   # (V, N-1)
     uu = np.full((V, N - 1, 1), u)
     Z0 = np.concatenate([x[:, :-1], uu, wR[:, :-1, None], slope[:, :, None]], axis=2)
