@@ -20,6 +20,7 @@ from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session, sessionmaker
 
 from .errors import (
+    SchemaError,
     DuplicateError,
     IntegrityViolation,
     LedgerError,
@@ -137,6 +138,8 @@ class Ledger:
         self._read_sessions = sessionmaker(self._read_engine, expire_on_commit=False)
         self.schema_action = "current"
         self.auto_verify = True
+        #: write transactions retried because the database was busy
+        self.retries = 0
         #: number of (metric, settings) requests the engine evaluated through this object
         self.kernel_requests = 0
 
@@ -159,14 +162,46 @@ class Ledger:
         """A session context manager for reads: one consistent snapshot, no write lock."""
         return session_scope(self._read_sessions)
 
+    #: how many times a write may be retried when the database is busy (bounded)
+    WRITE_RETRIES = 5
+
     def _write(self, fn, *args, **kwargs):
-        with self.transaction() as s:
+        """Run ``fn(session, ...)`` in one write transaction.
+
+        A busy database (SQLite lock held past the busy timeout; PostgreSQL serialisation
+        failure or deadlock) rolls the whole transaction back and retries it, at most
+        :attr:`WRITE_RETRIES` times with growing pauses; each retry is counted in
+        :attr:`retries`.  Past that the error says so and nothing is written.
+        """
+        import random
+        import time
+
+        attempt = 0
+        while True:
             try:
-                out = fn(s, *args, **kwargs)
-                s.flush()
-            except IntegrityError as e:
-                raise IntegrityViolation(f"database refused the change: {e.orig}") from e
-        return out
+                with self.transaction() as s:
+                    try:
+                        out = fn(s, *args, **kwargs)
+                        s.flush()
+                    except IntegrityError as e:
+                        raise IntegrityViolation(f"database refused the change: {e.orig}") from e
+                return out
+            except SchemaError as e:
+                if not _is_busy(e.__cause__) or attempt >= self.WRITE_RETRIES:
+                    if _is_busy(e.__cause__):
+                        raise SchemaError(f"database busy after {attempt} retries; nothing was "
+                                          "written, try again") from e
+                    raise
+                attempt += 1
+                self.retries += 1
+                time.sleep(min(2.0, 0.05 * 2 ** attempt) * (0.5 + random.random()))
+
+    @staticmethod
+    def _lock(s: Session, model, row_id: int) -> None:
+        """Row lock for read-then-write sequences on PostgreSQL (SQLite writers already hold
+        the database write lock from BEGIN IMMEDIATE)."""
+        if s.get_bind().dialect.name == "postgresql":
+            s.execute(select(model.id).where(model.id == row_id).with_for_update())
 
     # -- lookups --------------------------------------------------------------------------
     @staticmethod
@@ -568,6 +603,7 @@ class Ledger:
             return self._req_info(s, req, v), True
         if must_exist is False:
             raise DuplicateError(f"requirement {key!r} exists; edit it to make a new version")
+        self._lock(s, Requirement, req.id)  # serialise version numbering (PostgreSQL)
         latest = self._latest_req_version(s, req.id)
         if latest.content_hash == self._hash_req(fields):
             return self._req_info(s, req, latest), False
@@ -700,6 +736,7 @@ class Ledger:
                       parent: str | None = "tip", author: str | None = None,
                       label: str | None = None) -> tuple[RevisionInfo, bool]:
         lp = self._loop_row(s, loop)
+        self._lock(s, Loop, lp.id)  # serialise label/seq allocation per loop (PostgreSQL)
         what = f"revision of loop {loop!r}"
         if not isinstance(rationale, str) or not rationale.strip():
             raise IntegrityViolation(f"{what}: a rationale is required (why this change?)")
@@ -846,8 +883,8 @@ class Ledger:
                 cached = V.load_cached(s, [plan.metric_key(c.metric, c.settings) for c in plan.checks])
             payloads, n = V.compute_plan(plan, cached)
             self.kernel_requests += n
-            with self.transaction() as s:
-                V.write_results(s, plan, plan.revision_id, payloads, set(payloads) - set(cached))
+            fresh = set(payloads) - set(cached)
+            self._write(lambda s: V.write_results(s, plan, plan.revision_id, payloads, fresh))
             report.append({"loop": lname, "revision": lbl, "results": len(plan.checks),
                            "computed": n})
         if progress:
@@ -1004,6 +1041,18 @@ class Ledger:
                           m.RequirementVersion, m.RequirementParent, m.RequirementLoop,
                           m.Result, m.MetricValue)
             }
+
+
+def _is_busy(exc) -> bool:
+    """True for a database error that a retry may cure (lock contention)."""
+    from sqlalchemy.exc import OperationalError as SAOperationalError
+
+    orig = getattr(exc, "orig", None)
+    text = str(orig or exc or "").lower()
+    if isinstance(exc, SAOperationalError) and ("locked" in text or "busy" in text):
+        return True
+    code = getattr(orig, "sqlstate", None) or getattr(orig, "pgcode", None)
+    return code in ("40001", "40P01")
 
 
 def open_ledger(target: str | os.PathLike | None = None, *, create: bool = False,

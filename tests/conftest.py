@@ -1,6 +1,16 @@
-"""Shared fixtures: temporary ledgers on SQLite files."""
+"""Shared fixtures: temporary ledgers on SQLite files and, when a server is configured, on
+PostgreSQL (a fresh database per test).
+
+PostgreSQL cases need ``LOOPLEDGER_TEST_PG`` (an admin URL, e.g.
+``postgresql+psycopg://postgres@127.0.0.1:55432/postgres``; ``. .ci/postgres`` starts a
+throwaway cluster and sets it).  Without it they are skipped with that reason, except when
+``LOOPLEDGER_REQUIRE_PG=1`` (CI), where a missing server fails the run.
+"""
 
 from __future__ import annotations
+
+import os
+import uuid
 
 import pytest
 
@@ -11,6 +21,51 @@ FULL_TEXT = "K/(s*(tau_m*s+1)*(tau_e*s+1))"
 PLANT_PARAMS = {"K": {"nominal": 180.0, "tol": "10 %"}, "tau_m": {"nominal": 0.03, "tol": "20 %"},
                 "tau_e": 0.0004}
 
+PG_ADMIN_URL = os.environ.get("LOOPLEDGER_TEST_PG", "")
+REQUIRE_PG = os.environ.get("LOOPLEDGER_REQUIRE_PG") == "1"
+BACKENDS = ["sqlite", "postgresql"]
+
+
+def pg_database():
+    """Create a fresh PostgreSQL database; return (url, drop_function)."""
+    from sqlalchemy import create_engine, text
+    from sqlalchemy.engine import make_url
+
+    if not PG_ADMIN_URL:
+        if REQUIRE_PG:
+            pytest.fail("LOOPLEDGER_REQUIRE_PG=1 but LOOPLEDGER_TEST_PG is not set: "
+                        "PostgreSQL must run in CI")
+        pytest.skip("PostgreSQL not configured: set LOOPLEDGER_TEST_PG or run '. .ci/postgres'")
+    name = f"ll_{uuid.uuid4().hex[:16]}"
+    admin = create_engine(PG_ADMIN_URL, isolation_level="AUTOCOMMIT")
+    try:
+        with admin.connect() as c:
+            c.execute(text(f'CREATE DATABASE "{name}"'))
+    except Exception as e:  # noqa: BLE001 - report any connection failure clearly
+        admin.dispose()
+        if REQUIRE_PG:
+            pytest.fail(f"PostgreSQL at {PG_ADMIN_URL} is not reachable: {e}")
+        pytest.skip(f"PostgreSQL at {PG_ADMIN_URL} is not reachable")
+    url = make_url(PG_ADMIN_URL).set(database=name).render_as_string(hide_password=False)
+
+    def drop():
+        with admin.connect() as c:
+            c.execute(text(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)'))
+        admin.dispose()
+
+    return url, drop
+
+
+@pytest.fixture(params=BACKENDS)
+def db_url(request, tmp_path):
+    """A ledger location on each back end: an SQLite file path or a fresh PostgreSQL URL."""
+    if request.param == "sqlite":
+        yield str(tmp_path / "t.db")
+        return
+    url, drop = pg_database()
+    yield url
+    drop()
+
 
 @pytest.fixture
 def ledger_path(tmp_path):
@@ -18,7 +73,14 @@ def ledger_path(tmp_path):
 
 
 @pytest.fixture
-def lg(ledger_path):
+def lg(db_url):
+    ledger = open_ledger(db_url, create=True, author="tester")
+    yield ledger
+    ledger.close()
+
+
+@pytest.fixture
+def sqlite_lg(ledger_path):
     ledger = open_ledger(ledger_path, create=True, author="tester")
     yield ledger
     ledger.close()

@@ -19,8 +19,8 @@ ROOT = Path(__file__).resolve().parents[1]
 
 
 @pytest.fixture
-def cli(tmp_path, monkeypatch):
-    monkeypatch.setenv("LOOPLEDGER_DB", str(tmp_path / "c.db"))
+def cli(db_url, monkeypatch):
+    monkeypatch.setenv("LOOPLEDGER_DB", db_url)
     monkeypatch.setenv("LOOPLEDGER_AUTHOR", "tester")
     monkeypatch.setenv("COLUMNS", "200")
     runner = CliRunner()
