@@ -2,8 +2,9 @@
 
 Every function works on a batch of ``V`` SISO responses at once (variant axis 0).  Grids are
 evaluated for all variants in one call of the evaluator; crossings and peaks are then refined per
-variant by scalar root finding (:func:`scipy.optimize.brentq`) or bounded local optimisation
-(:func:`scipy.optimize.minimize_scalar`), so no reported number is read off a grid.
+variant by bracketed root finding or golden-section search, vectorised over all brackets of all
+variants at once (see ``_Sampler``, ``_vsolve``, ``_vmaximize``), so no reported number is read
+off a grid.
 
 Margins, Nyquist encirclements and disk margins live in :mod:`ledger.engine.margins` and are
 re-exported here.
@@ -18,7 +19,6 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.optimize import brentq, minimize_scalar
 
 from ledger.errors import ComputeError
 from ledger.engine.types import FreqBatch
@@ -57,11 +57,6 @@ def _call(evaluate, w, nvar: int) -> np.ndarray:
             f"frequency evaluator returned shape {h.shape}, expected {(nvar, w.size)}; "
             "fix the evaluator to return (variants, frequencies)")
     return h
-
-
-def _row(evaluate, w: float, v: int, nvar: int) -> complex:
-    """Value of variant ``v`` at a single frequency ``w``."""
-    return complex(_call(evaluate, [w], nvar)[v, 0])
 
 
 def _s_equivalent(roots, dt) -> np.ndarray:
@@ -124,41 +119,206 @@ def estimate_delay(fb: FreqBatch, *, w_start: float | None = None, w_stop: float
     """Estimate the pure delay in a continuous loop gain, per variant (s).
 
     Divides the rational part (from ``fb.poles`` and ``fb.zeros``) out of L(jw); what remains is
-    ``K exp(-jw tau)`` with real ``K``.  Its phase is unwrapped along frequencies that double from
-    ``w_start`` to ``w_stop`` while predicting the next value with the running slope, so delays
-    up to about ``pi / w_start`` seconds are recovered.  Used only to set grid density.
+    ``K exp(-jw tau)`` with constant ``K``.  Its phase is unwrapped along frequencies that double
+    from ``w_start`` to ``w_stop`` while predicting the next value with the running slope, so
+    delays up to about ``pi / w_start`` seconds are recovered.  Used to set grid density and to
+    build the fast exact model that the refinement uses once it is verified (see ``_Sampler``).
 
     Returns
     -------
     ndarray (V,)
         Delay in seconds, >= 0 (0 for discrete loops, whose delays are poles at z = 0).
     """
-    nvar = fb.nvar
-    if fb.dt is not None:
+    return _estimate_delay(fb.evaluate, fb.dt, fb.poles, fb.zeros, w_start=w_start, w_stop=w_stop)
+
+
+def _estimate_delay(evaluate, dt, poles, zeros, *, w_start=None, w_stop=None) -> np.ndarray:
+    nvar = len(poles)
+    if dt is not None:
         return np.zeros(nvar)
-    feats = [np.abs(_s_equivalent(list(p) + list(z), None)) for p, z in zip(fb.poles, fb.zeros)]
+    feats = [np.abs(np.concatenate([np.ravel(p), np.ravel(z)])) for p, z in zip(poles, zeros)]
     allf = np.concatenate([f[f > 0] for f in feats] + [np.array([1.0])])
     w0 = w_start if w_start is not None else 1e-6 * float(np.min(allf))
     w1 = w_stop if w_stop is not None else 1e3 * float(np.max(allf))
     k = max(2, int(math.ceil(math.log2(w1 / w0))) + 1)
     w = w0 * 2.0 ** np.arange(k)
-    L = _call(fb.evaluate, w, nvar)
-    s = 1j * w
+    L = _call(evaluate, w, nvar)
+    x = 1j * w
     tau = np.zeros(nvar)
+    P, Pm = _pad(poles)
+    Z, Zm = _pad(zeros)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ph = (np.angle(L)
+              + np.sum(np.where(Pm[:, None, :], np.angle(x[None, :, None] - P[:, None, :]), 0), axis=2)
+              - np.sum(np.where(Zm[:, None, :], np.angle(x[None, :, None] - Z[:, None, :]), 0), axis=2))
     for v in range(nvar):
-        ph = np.angle(L[v])
-        ph = ph + np.sum(np.angle(s[:, None] - np.asarray(fb.poles[v], complex)[None, :]), axis=1)
-        ph = ph - np.sum(np.angle(s[:, None] - np.asarray(fb.zeros[v], complex)[None, :]), axis=1)
-        if not np.all(np.isfinite(ph)):
+        if not np.all(np.isfinite(ph[v])):
             continue
-        theta = ph[0]
+        theta = ph[v, 0]
         est = 0.0
         for i in range(1, k):
             pred = theta - (w[i] - w[i - 1]) * est
-            theta = pred + (math.remainder(ph[i] - pred, 2 * math.pi))
-            est = -(theta - ph[0]) / (w[i] - w[0])
+            theta = pred + math.remainder(ph[v, i] - pred, 2 * math.pi)
+            est = -(theta - ph[v, 0]) / (w[i] - w[0])
         tau[v] = max(est, 0.0)
     return tau
+
+
+def _pad(roots_list) -> tuple[np.ndarray, np.ndarray]:
+    """Roots per variant as a padded (V, m) complex array and its validity mask."""
+    m = max((np.size(r) for r in roots_list), default=0)
+    out = np.zeros((len(roots_list), m), complex)
+    mask = np.zeros((len(roots_list), m), bool)
+    for v, r in enumerate(roots_list):
+        r = np.asarray(r, complex).ravel()
+        out[v, :r.size] = r
+        mask[v, :r.size] = True
+    return out, mask
+
+
+# ----------------------------------------------------------------------------------------------
+# batched exact evaluation at one frequency per (variant, point) pair
+# ----------------------------------------------------------------------------------------------
+
+class _Sampler:
+    """Values of variant ``vi[k]`` at frequency ``x[k]`` for many pairs at once.
+
+    The batch evaluator gives every variant at every frequency, which costs V times too much
+    when each variant needs its own points.  So each variant's response is also written as
+    ``c exp(-jw tau) prod(x - z) / prod(x - p)`` (``x = jw`` or ``exp(jw dt)``) from its poles,
+    zeros and estimated delay, with ``c`` fitted at one grid point; the model is used for a
+    variant only if it reproduces the evaluator to ``model_rtol`` (relative) at every grid point
+    where ``1e-6 <= |H| <= 1e6``.  Other variants (e.g. S of a delayed loop, not of that form)
+    are evaluated by the batch evaluator, picking the wanted entries.
+    """
+
+    def __init__(self, evaluate, dt, poles, zeros, w, H, *, model_rtol: float = 1e-9):
+        self.evaluate, self.dt, self.nvar = evaluate, dt, len(poles)
+        self.P, self.Pm = _pad(poles)
+        self.Z, self.Zm = _pad(zeros)
+        self.tau = _estimate_delay(evaluate, dt, poles, zeros)
+        V = self.nvar
+        self.logc = np.zeros(V, complex)
+        self.ok = np.zeros(V, bool)
+        w = np.asarray(w, float)
+        n = w.size
+        m = max(1, self.P.shape[1] + self.Z.shape[1])
+        chunk = max(1, int(2_000_000 // (n * m)))
+        for v0 in range(0, V, chunk):
+            v1 = min(V, v0 + chunk)
+            rows = np.arange(v0, v1)
+            E = self._expo(np.repeat(rows, n), np.tile(w, rows.size)).reshape(rows.size, n)
+            Hc = H[v0:v1]
+            with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+                mag = np.abs(Hc)
+                valid = np.isfinite(Hc) & np.isfinite(E) & (mag >= 1e-6) & (mag <= 1e6)
+                dist = np.where(valid, np.abs(np.log(np.where(valid, mag, 1.0))), np.inf)
+                j = np.argmin(dist, axis=1)
+                r = np.arange(rows.size)
+                logc = np.log(Hc[r, j]) - E[r, j]
+                model = np.exp(logc[:, None] + E)
+                err = np.where(valid, np.abs(model - Hc) / np.where(valid, mag, 1.0), 0.0)
+            has = valid.any(axis=1)
+            self.logc[v0:v1] = np.where(has, logc, 0.0)
+            self.ok[v0:v1] = has & (np.max(err, axis=1) <= model_rtol)
+
+    def _expo(self, vi, w):
+        """log of the model without ``c``: sum log(x - z) - sum log(x - p) - jw tau."""
+        w = np.asarray(w, float)
+        x = 1j * w if self.dt is None else np.exp(1j * w * self.dt)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            e = -1j * w * (self.tau[vi] if self.dt is None else 0.0)
+            if self.Z.shape[1]:
+                e = e + np.sum(np.where(self.Zm[vi], np.log(x[:, None] - self.Z[vi]), 0), axis=1)
+            if self.P.shape[1]:
+                e = e - np.sum(np.where(self.Pm[vi], np.log(x[:, None] - self.P[vi]), 0), axis=1)
+        return e
+
+    def at(self, vi, w) -> np.ndarray:
+        """Complex values H_{vi[k]}(w[k])."""
+        vi = np.asarray(vi, int)
+        w = np.asarray(w, float)
+        out = np.empty(w.size, complex)
+        m = self.ok[vi]
+        if m.any():
+            with np.errstate(over="ignore", invalid="ignore"):
+                out[m] = np.exp(self.logc[vi[m]] + self._expo(vi[m], w[m]))
+        if (~m).any():
+            uw, inv = np.unique(w[~m], return_inverse=True)
+            vals = _call(self.evaluate, uw, self.nvar)
+            out[~m] = vals[vi[~m], inv]
+        return out
+
+
+def _vsolve(fun, vi, a, b, fa, fb, *, xrtol: float, maxiter: int = 200) -> np.ndarray:
+    """Roots of ``fun(vi, x)`` in the brackets ``[a, b]`` (sign change), all at once.
+
+    Illinois false position with a bisection step every third iteration; stops when the
+    bracket is narrower than ``xrtol * b`` or the function is exactly zero.
+    """
+    a, b = np.array(a, float), np.array(b, float)
+    fa, fb = np.array(fa, float), np.array(fb, float)
+    vi = np.asarray(vi, int)
+    root = 0.5 * (a + b)
+    side = np.zeros(a.size, int)
+    active = np.flatnonzero(b - a > xrtol * b)
+    for it in range(maxiter):
+        if active.size == 0:
+            break
+        A, B, FA, FB = a[active], b[active], fa[active], fb[active]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            c = B - FB * (B - A) / (FB - FA)
+        bis = (it % 3 == 2) | ~np.isfinite(c) | (c <= A) | (c >= B)
+        c = np.where(bis, 0.5 * (A + B), c)
+        fc = np.asarray(fun(vi[active], c), float)
+        if not np.all(np.isfinite(fc)):
+            k = int(np.flatnonzero(~np.isfinite(fc))[0])
+            raise ComputeError(f"crossing refinement met a non-finite value at {c[k]:.6g} rad/s "
+                               f"(variant {vi[active][k]}); check the loop near that frequency")
+        left = np.sign(fc) == np.sign(FA)          # root lies in [c, B]
+        s = side[active]
+        na, nfa = np.where(left, c, A), np.where(left, fc, FA)
+        nb, nfb = np.where(left, B, c), np.where(left, FB, fc)
+        nfb = np.where(left & (s == -1), nfb / 2, nfb)
+        nfa = np.where(~left & (s == 1), nfa / 2, nfa)
+        side[active] = np.where(left, -1, 1)
+        a[active], fa[active], b[active], fb[active] = na, nfa, nb, nfb
+        root[active] = c
+        done = (fc == 0) | (nb - na <= xrtol * nb)
+        root[active[~done]] = 0.5 * (na + nb)[~done]
+        active = active[~done]
+    return root
+
+
+def _vmaximize(fun, vi, a, b, *, xrtol: float, maxiter: int = 300) -> tuple[np.ndarray, np.ndarray]:
+    """Golden-section search for the maximum of ``fun(vi, x)`` on every ``[a, b]`` at once."""
+    g = (math.sqrt(5.0) - 1.0) / 2.0
+    a, b = np.array(a, float), np.array(b, float)
+    vi = np.asarray(vi, int)
+    c, d = b - g * (b - a), a + g * (b - a)
+    fc, fd = fun(vi, c), fun(vi, d)
+    for _ in range(maxiter):
+        act = b - a > xrtol * np.maximum(b, 1e-300)
+        if not act.any():
+            break
+        left = act & (fc >= fd)          # maximum in [a, d]
+        right = act & ~left
+        b = np.where(left, d, b)
+        a = np.where(right, c, a)
+        nd = np.where(left, c, d)
+        nfd = np.where(left, fc, fd)
+        nc = np.where(right, d, c)
+        nfc = np.where(right, fd, fc)
+        newx = np.where(left, b - g * (b - a), a + g * (b - a))
+        idx = np.flatnonzero(act)
+        fnew = np.full(a.size, -np.inf)
+        fnew[idx] = fun(vi[idx], newx[idx])
+        c = np.where(left, newx, nc)
+        fc = np.where(left, fnew, nfc)
+        d = np.where(right, newx, nd)
+        fd = np.where(right, fnew, nfd)
+    x = np.where(fc >= fd, c, d)
+    return x, np.maximum(fc, fd)
 
 
 def _grid(evaluate, dt, poles, zeros, *, points_per_decade: int, w_min, w_max,
@@ -362,31 +522,26 @@ def _pole_interval_mask(w: np.ndarray, axis: list[_AxisRoot], nvar: int) -> np.n
     return mask
 
 
-def _roots_on_grid(fun_grid: np.ndarray, fun_scalar, w: np.ndarray, mask: np.ndarray,
-                   *, xrtol: float, interior: slice) -> list[np.ndarray]:
-    """Per variant, refined roots of a real function from its sign changes on the grid."""
-    nvar = fun_grid.shape[0]
-    out = []
-    for v in range(nvar):
-        f = fun_grid[v]
-        roots = []
-        idx = np.arange(w.size)[interior]
-        for i in idx[:-1]:
-            a, b = f[i], f[i + 1]
-            if mask[v, i] or not (np.isfinite(a) and np.isfinite(b)):
-                continue
-            if a == 0.0 and i != idx[0]:
-                roots.append(w[i])
-            elif a * b < 0:
-                try:
-                    r = brentq(lambda x: fun_scalar(x, v), w[i], w[i + 1],
-                               xtol=xrtol * w[i + 1], rtol=4 * np.finfo(float).eps)
-                except ValueError as e:
-                    raise ComputeError(f"crossing refinement failed near {w[i]:.6g} rad/s for "
-                                       f"variant {v}: {e}") from e
-                roots.append(r)
-        out.append(np.array(sorted(roots)))
-    return out
+def _roots_on_grid(G: np.ndarray, fun, w: np.ndarray, mask: np.ndarray, *, xrtol: float,
+                   interior: slice) -> list[np.ndarray]:
+    """Per variant, roots of a real function from its sign changes on the grid, refined for all
+    variants at once by :func:`_vsolve`.  ``G`` (V, n) holds the function on the grid."""
+    nvar = G.shape[0]
+    idx = np.arange(w.size)[interior]
+    if idx.size < 2:
+        return [np.empty(0) for _ in range(nvar)]
+    lo, hi = int(idx[0]), int(idx[-1])
+    ga, gb = G[:, lo:hi], G[:, lo + 1:hi + 1]
+    fin = np.isfinite(ga) & np.isfinite(gb) & ~mask[:, lo:hi]
+    v, i = np.nonzero(fin & (ga * gb < 0))
+    i = i + lo
+    r = _vsolve(fun, v, w[i], w[i + 1], G[v, i], G[v, i + 1], xrtol=xrtol)
+    v0, i0 = np.nonzero(fin & (ga == 0))
+    keep = i0 > 0
+    v0, i0 = v0[keep], i0[keep] + lo
+    allv = np.concatenate([v, v0])
+    allr = np.concatenate([r, w[i0]])
+    return [np.unique(allr[allv == k]) for k in range(nvar)]
 
 
 def _crossing_setup(fb: FreqBatch, grid):
@@ -394,7 +549,16 @@ def _crossing_setup(fb: FreqBatch, grid):
     axis = _axis_roots(fb.poles, fb.dt, axis_tol=1e-9)
     mask = _pole_interval_mask(w, axis, fb.nvar)
     L = _call(fb.evaluate, w, fb.nvar)
-    return w, axis, mask, L
+    smp = _Sampler(fb.evaluate, fb.dt, fb.poles, fb.zeros, w, L)
+    return w, mask, L, smp
+
+
+def _gain_crossings(smp, w, mask, L, xrtol):
+    with np.errstate(divide="ignore"):
+        g = np.log(np.abs(L) + _TINY)
+    start = 1 if w[0] == 0.0 else 0
+    return _roots_on_grid(g, lambda vi, x: np.log(np.abs(smp.at(vi, x)) + _TINY), w, mask,
+                          xrtol=xrtol, interior=slice(start, None))
 
 
 def gain_crossovers(fb: FreqBatch, *, grid: np.ndarray | None = None,
@@ -402,49 +566,49 @@ def gain_crossovers(fb: FreqBatch, *, grid: np.ndarray | None = None,
     """Every frequency w > 0 with |L(jw)| = 1, per variant (rad/s).
 
     Sign changes of ``ln|L|`` on the grid (:func:`frequency_grid` unless ``grid`` is given) are
-    refined with :func:`scipy.optimize.brentq` to relative tolerance ``xrtol``.  Intervals holding
-    a pole on the imaginary axis (unit circle) are skipped.
+    refined by bracketed root finding (Illinois false position with bisection safeguard) to
+    relative tolerance ``xrtol``.  Intervals holding a pole on the imaginary axis (unit circle)
+    are skipped.
     """
-    w, axis, mask, L = _crossing_setup(fb, grid)
-    g = np.log(np.abs(L) + _TINY)
-    start = 1 if w[0] == 0.0 else 0
-    return _roots_on_grid(g, lambda x, v: math.log(abs(_row(fb.evaluate, x, v, fb.nvar)) + _TINY),
-                          w, mask, xrtol=xrtol, interior=slice(start, None))
+    w, mask, L, smp = _crossing_setup(fb, grid)
+    return _gain_crossings(smp, w, mask, L, xrtol)
 
 
-def _phase_crossings_all(fb: FreqBatch, w, mask, L, xrtol) -> list[np.ndarray]:
+def _phase_crossings_all(smp, dt, w, mask, L, xrtol) -> list[np.ndarray]:
     """All w > 0 (below pi/dt) with Im L = 0, whatever the sign of Re L."""
     with np.errstate(divide="ignore", invalid="ignore"):
         g = L.imag / (np.abs(L) + _TINY)
 
-    def scalar(x, v):
-        val = _row(fb.evaluate, x, v, fb.nvar)
-        return val.imag / (abs(val) + _TINY)
+    def fun(vi, x):
+        val = smp.at(vi, x)
+        return val.imag / (np.abs(val) + _TINY)
 
     start = 1 if w[0] == 0.0 else 0
-    stop = w.size - 1 if (fb.dt is not None and w[-1] >= math.pi / fb.dt * (1 - 1e-12)) else w.size
-    return _roots_on_grid(g, scalar, w, mask, xrtol=xrtol, interior=slice(start, stop))
+    stop = w.size - 1 if (dt is not None and w[-1] >= math.pi / dt * (1 - 1e-12)) else w.size
+    return _roots_on_grid(g, fun, w, mask, xrtol=xrtol, interior=slice(start, stop))
 
 
 def phase_crossovers(fb: FreqBatch, *, grid: np.ndarray | None = None,
                      xrtol: float = 1e-14) -> list[np.ndarray]:
     """Every phase crossover per variant (rad/s): L real and negative.
 
-    Zeros of ``Im L / |L|`` with ``w > 0`` refined by :func:`scipy.optimize.brentq` and kept
-    where ``Re L < 0``; plus ``w = 0`` when L(0) is finite and negative; plus ``pi/dt`` for a
+    Zeros of ``Im L / |L|`` with ``w > 0``, refined like :func:`gain_crossovers`, kept where
+    ``Re L < 0``; plus ``w = 0`` when L(0) is finite and negative; plus ``pi/dt`` for a
     discrete loop when ``L(-1) < 0``.
     """
-    w, axis, mask, L = _crossing_setup(fb, grid)
-    return _phase_crossovers_from(fb, w, mask, L, xrtol)
+    w, mask, L, smp = _crossing_setup(fb, grid)
+    return _phase_crossovers_from(fb, smp, w, mask, L, xrtol)
 
 
-def _phase_crossovers_from(fb, w, mask, L, xrtol):
-    allc = _phase_crossings_all(fb, w, mask, L, xrtol)
-    out = []
+def _phase_crossovers_from(fb, smp, w, mask, L, xrtol):
+    allc = _phase_crossings_all(smp, fb.dt, w, mask, L, xrtol)
+    vi = np.concatenate([np.full(c.size, v) for v, c in enumerate(allc)] + [np.empty(0, int)])
+    vals = smp.at(vi.astype(int), np.concatenate(allc + [np.empty(0)]))
     end = _call(fb.evaluate, [0.0] + ([math.pi / fb.dt] if fb.dt is not None else []), fb.nvar)
+    out = []
     for v, c in enumerate(allc):
-        vals = _call(fb.evaluate, c, fb.nvar)[v] if c.size else np.empty(0, complex)
-        keep = list(c[(vals.real < 0) & (np.abs(vals) > _TINY)])
+        lv = vals[vi == v]
+        keep = list(c[(lv.real < 0) & (np.abs(lv) > _TINY)])
         l0 = end[v, 0]
         if np.isfinite(l0) and l0.real < 0:
             keep.insert(0, 0.0)
@@ -462,8 +626,8 @@ def _phase_crossovers_from(fb, w, mask, L, xrtol):
 
 def peak_gain(evaluate, dt, poles, zeros, *, w_range: tuple[float, float] = (0.0, math.inf),
               grid: np.ndarray | None = None, candidate_ratio: float = 0.5,
-              xrtol: float = 1e-10, far_factor: float = 1e8, max_candidates: int = 50
-              ) -> tuple[np.ndarray, np.ndarray]:
+              xrtol: float = 1e-10, far_factor: float = 1e8, max_candidates: int = 50,
+              pairwise=None) -> tuple[np.ndarray, np.ndarray]:
     """Supremum of |H(jw)| over ``w_range`` for a batch of transfer functions.
 
     Parameters
@@ -480,15 +644,20 @@ def peak_gain(evaluate, dt, poles, zeros, *, w_range: tuple[float, float] = (0.0
         Extra grid points (rad/s), e.g. the loop's :func:`frequency_grid`.
     candidate_ratio : float
         Every local grid maximum whose value is at least this fraction of the largest grid value
-        is refined by bounded optimisation between its grid neighbours (at most
+        is refined by golden-section search between its grid neighbours (at most
         ``max_candidates`` of them, the highest first; flat stretches, where both neighbours
         agree to 1e-12, are not refined).
     xrtol : float
-        Relative frequency tolerance of that optimisation.
+        Relative frequency tolerance of that search (the peak value is then exact to about
+        ``xrtol**2``).
     far_factor : float
         Continuous H with an unbounded range: the limit at infinite frequency is taken as
         ``|H|`` at ``far_factor`` times the grid end (exact to ``far_factor**-r`` for a
         rational H of relative degree r).
+    pairwise : callable, optional
+        ``pairwise(vi, w) -> complex (K,)``: H of variant ``vi[k]`` at ``w[k]``, for the
+        refinement; by default the exact rational-and-delay model of H when it matches
+        ``evaluate``, else ``evaluate`` itself (which costs V evaluations per point).
 
     Returns
     -------
@@ -512,44 +681,59 @@ def peak_gain(evaluate, dt, poles, zeros, *, w_range: tuple[float, float] = (0.0
         w = np.unique(np.concatenate([w[(w >= lo) & (w <= hi)], [lo, hi]]))
     else:
         w = np.unique(np.concatenate([w[w >= lo], [lo]]))
-    axis = _axis_roots(poles, dt, axis_tol=1e-9)
-    peak = np.zeros(nvar)
+    Hc = _call(evaluate, w, nvar)
+    h = np.abs(Hc)
+    peak = np.full(nvar, -math.inf)
     wpk = np.zeros(nvar)
-    h = np.abs(_call(evaluate, w, nvar))
-    for ar in axis:
-        if lo <= ar.w <= hi:
-            peak[ar.variant] = math.inf
-            wpk[ar.variant] = ar.w
+    at_pole = np.zeros(nvar, bool)
+    # poles on the axis inside the range: infinite peak, if |H| really grows there (a listed
+    # pole may be cancelled, e.g. an open-loop integrator listed among the features of S)
+    wref = float(w[w > 0][0]) if np.any(w > 0) else 1.0
+    for ar in _axis_roots(poles, dt, axis_tol=1e-9):
+        if lo <= ar.w <= hi and not at_pole[ar.variant]:
+            d = max(ar.w, wref)
+            side = -1.0 if (dt is not None and ar.w >= math.pi / dt * (1 - 1e-12)) else 1.0
+            near = np.abs(_call(evaluate, [ar.w + side * 1e-6 * d, ar.w + side * 1e-8 * d],
+                                nvar)[ar.variant])
+            if not np.all(np.isfinite(near)) or near[1] > 10.0 * near[0]:
+                peak[ar.variant], wpk[ar.variant] = math.inf, ar.w
+                at_pole[ar.variant] = True
+    # grid maxima; points where the evaluator gave no finite value (0/0 of an integrator at
+    # w = 0, say) are left out
+    hm = np.where(np.isfinite(h), h, -math.inf)
+    top = np.max(hm, axis=1)
     for v in range(nvar):
-        if math.isinf(peak[v]):
-            continue
-        ok = np.isfinite(h[v])
-        if not ok.any():
+        if not np.isfinite(top[v]) and not at_pole[v]:
             raise ComputeError(f"variant {v}: the response is not finite at any grid frequency; "
                                "check the evaluator")
-        # points where the evaluator could not give a finite value (no pole there, e.g. 0/0
-        # of an integrator at w = 0) are left out
-        hv, wv = h[v][ok], w[ok]
-        top = float(np.max(hv))
-        best, wbest = top, float(wv[int(np.argmax(hv))])
-        n = wv.size
-        left = np.concatenate([[-math.inf], hv[:-1]])
-        right = np.concatenate([hv[1:], [-math.inf]])
-        flat = (np.abs(left - hv) <= 1e-12 * hv) & (np.abs(right - hv) <= 1e-12 * hv)
-        cand = np.flatnonzero((hv >= left) & (hv >= right) & (hv >= candidate_ratio * top) & ~flat)
-        cand = cand[np.argsort(-hv[cand], kind="stable")][:max_candidates]
-        for i in cand:
-            a = wv[max(i - 1, 0)]
-            b = wv[min(i + 1, n - 1)]
-            if b <= a:
-                continue
-            res = minimize_scalar(lambda x: -abs(_row(evaluate, x, v, nvar)), bounds=(a, b),
-                                  method="bounded",
-                                  options={"xatol": max(xrtol * b, 1e-300), "maxiter": 500})
-            val = -float(res.fun)
-            if np.isfinite(val) and val > best:
-                best, wbest = val, float(res.x)
-        peak[v], wpk[v] = best, wbest
+        if np.isfinite(top[v]) and not at_pole[v]:
+            k = int(np.argmax(hm[v]))
+            peak[v], wpk[v] = top[v], w[k]
+    left = np.concatenate([np.full((nvar, 1), -math.inf), hm[:, :-1]], axis=1)
+    right = np.concatenate([hm[:, 1:], np.full((nvar, 1), -math.inf)], axis=1)
+    with np.errstate(invalid="ignore"):
+        flat = (np.abs(left - hm) <= 1e-12 * hm) & (np.abs(right - hm) <= 1e-12 * hm)
+    cand = ((hm >= left) & (hm >= right) & (hm >= candidate_ratio * top[:, None]) & ~flat
+            & np.isfinite(hm) & ~at_pole[:, None])
+    vs, ks = [], []
+    for v in np.flatnonzero(cand.any(axis=1)):
+        k = np.flatnonzero(cand[v])
+        k = k[np.argsort(-hm[v, k], kind="stable")][:max_candidates]
+        vs.append(np.full(k.size, v))
+        ks.append(k)
+    if vs:
+        vi, k = np.concatenate(vs), np.concatenate(ks)
+        a, b = w[np.maximum(k - 1, 0)], w[np.minimum(k + 1, w.size - 1)]
+        at = pairwise if pairwise is not None else _Sampler(evaluate, dt, poles, zeros, w, Hc).at
+
+        def fun(vv, x):
+            val = np.abs(at(vv, x))
+            return np.where(np.isfinite(val), val, -math.inf)
+
+        x, f = _vmaximize(fun, vi, a, b, xrtol=xrtol)
+        for j in range(vi.size):
+            if np.isfinite(f[j]) and f[j] > peak[vi[j]]:
+                peak[vi[j]], wpk[vi[j]] = f[j], x[j]
     if dt is None and not math.isfinite(hi):
         # the supremum may be the limit at infinite frequency (biproper H): compare with a
         # value far beyond every feature and report w_peak = inf when it wins
@@ -565,8 +749,7 @@ def bandwidth(evaluate_T, dt, poles, zeros, *, drop_db: float = 3.0, grid: np.nd
     """Closed-loop bandwidth: first w where |T| falls to ``10^(-drop_db/20) |T(0)|`` (rad/s).
 
     The absolute DC gain is used (a negative DC gain is fine).  The first grid point below the
-    level brackets the crossing, which is refined with :func:`scipy.optimize.brentq` on
-    ``ln|T|``.
+    level brackets the crossing, which is refined by bracketed root finding on ``ln|T|``.
 
     Returns
     -------
@@ -588,20 +771,30 @@ def bandwidth(evaluate_T, dt, poles, zeros, *, drop_db: float = 3.0, grid: np.nd
         w = np.unique(np.concatenate([w, np.asarray(grid, float)]))
     if dt is not None:
         w = w[w <= math.pi / dt]
-    h = np.abs(_call(evaluate_T, w, nvar))
+    Tc = _call(evaluate_T, w, nvar)
+    h = np.abs(Tc)
     out = np.full(nvar, math.inf)
+    t0 = h[:, 0]
     for v in range(nvar):
-        t0 = h[v, 0]
-        if not np.isfinite(t0) or t0 == 0.0:
+        if not np.isfinite(t0[v]) or t0[v] == 0.0:
             raise ComputeError(f"bandwidth needs a finite nonzero DC gain; variant {v} has "
-                               f"|T(0)| = {t0}; check the loop (integrators, zeros at 0)")
-        level = math.log(t0) - drop_db / 20.0 * math.log(10.0)
-        below = np.flatnonzero(np.log(h[v] + _TINY) < level)
-        if below.size == 0:
-            continue
-        i = int(below[0])
-        out[v] = brentq(lambda x: math.log(abs(_row(evaluate_T, x, v, nvar)) + _TINY) - level,
-                        w[i - 1], w[i], xtol=xrtol * w[i], rtol=4 * np.finfo(float).eps)
+                               f"|T(0)| = {t0[v]}; check the loop (integrators, zeros at 0)")
+    level = np.log(t0) - drop_db / 20.0 * math.log(10.0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        below = np.log(h + _TINY) < level[:, None]
+    has = below.any(axis=1)
+    vi = np.flatnonzero(has)
+    if vi.size:
+        i = np.argmax(below[vi], axis=1)
+        smp = _Sampler(evaluate_T, dt, poles, zeros, w, Tc)
+
+        def fun(vv, x):
+            return np.log(np.abs(smp.at(vv, x)) + _TINY) - level[vv]
+
+        a, b = w[i - 1], w[i]
+        fa = np.log(h[vi, i - 1] + _TINY) - level[vi]
+        fb = np.log(h[vi, i] + _TINY) - level[vi]
+        out[vi] = _vsolve(fun, vi, a, b, fa, fb, xrtol=xrtol)
     return out
 
 

@@ -199,9 +199,8 @@ def encirclements(fb: FreqBatch, *, grid: np.ndarray | None = None, marginal_tol
     V, dt = fb.nvar, fb.dt
     w0 = _fr.frequency_grid(fb) if grid is None else np.asarray(grid, float)
     axis = _fr._axis_roots(fb.poles, dt, axis_tol=1e-9)
-    L0 = _fr._call(fb.evaluate, w0, V)
-    mask0 = _fr._pole_interval_mask(w0, axis, V)
-    roots = _fr._phase_crossings_all(fb, w0, mask0, L0, xrtol)
+    w0, mask0, L0, smp = _fr._crossing_setup(fb, w0)
+    roots = _fr._phase_crossings_all(smp, dt, w0, mask0, L0, xrtol)
     w = np.unique(np.concatenate([w0] + [r for r in roots]))
     w = _fr._thin(w, 1e-15)
     mids = 0.5 * (w[:-1] + w[1:])
@@ -212,56 +211,64 @@ def encirclements(fb: FreqBatch, *, grid: np.ndarray | None = None, marginal_tol
     angF = np.angle(F)
     sgn = np.sign(Lm.imag)
     wnyq = math.pi / dt if dt is not None else math.inf
-    out = np.zeros(V, dtype=int)
-    for v in range(V):
-        finite = np.isfinite(F[v])
-        if np.any(np.abs(F[v][finite]) < marginal_tol):
-            i = int(np.flatnonzero(finite & (np.abs(F[v]) < marginal_tol))[0])
-            raise ComputeError(f"variant {v}: 1 + L vanishes at {w[i]:.6g} rad/s, a closed-loop "
-                               "pole sits on the stability boundary; change the gain or design")
-        orders = {ar.w: ar.order for ar in axis if ar.variant == v}
-        total = 0.0
-        half = 0.0
-        for i in range(w.size - 1):
-            if mask[v, i]:
-                a, b = w[i], w[i + 1]
-                inside = [k for wk, k in orders.items() if a <= wk <= b]
-                k = sum(inside)
-                if a == 0.0 and 0.0 in orders:
-                    # small right-hand indentation round the integrator(s): traversed once
-                    total += -k * math.pi + _wrap(2.0 * angF[v, i + 1] + k * math.pi)
-                elif dt is not None and b >= wnyq * (1 - 1e-12) and wnyq in orders:
-                    total += -k * math.pi + _wrap(-2.0 * angF[v, i] + k * math.pi)
-                else:
-                    half += -k * math.pi + _wrap(angF[v, i + 1] - angF[v, i] + k * math.pi)
-                continue
-            s = sgn[v, i]
-            if not (np.isfinite(angF[v, i]) and np.isfinite(angF[v, i + 1])):
-                raise ComputeError(f"variant {v}: cannot follow the Nyquist curve near "
-                                   f"{w[i]:.6g} rad/s; check the loop for poles on the axis")
-            if s == 0:
-                # L real on this stretch: 1 + L keeps its sign (no turn) or passes through 0
-                if F[v, i].real * F[v, i + 1].real <= 0:
-                    raise ComputeError(f"variant {v}: 1 + L vanishes near {w[i]:.6g} rad/s, a "
-                                       "closed-loop pole sits on the stability boundary")
-                continue
-            half += s * (abs(angF[v, i + 1]) - abs(angF[v, i]))
-        total += 2.0 * half
-        if dt is None:
+    finite = np.isfinite(F)
+    small = finite & (np.abs(np.where(finite, F, 1.0)) < marginal_tol)
+    if small.any():
+        v, i = (int(x[0]) for x in np.nonzero(small))
+        raise ComputeError(f"variant {v}: 1 + L vanishes at {w[i]:.6g} rad/s, a closed-loop "
+                           "pole sits on the stability boundary; change the gain or design")
+    # ordinary intervals: 1 + L stays in the half plane given by the sign of Im L at the middle
+    a0, a1 = angF[:, :-1], angF[:, 1:]
+    ok = ~mask
+    bad = ok & ~(np.isfinite(a0) & np.isfinite(a1))
+    if bad.any():
+        v, i = (int(x[0]) for x in np.nonzero(bad))
+        raise ComputeError(f"variant {v}: cannot follow the Nyquist curve near {w[i]:.6g} rad/s; "
+                           "check the loop for poles on the axis")
+    flat = ok & (sgn == 0)
+    cross = flat & (F[:, :-1].real * F[:, 1:].real <= 0)
+    if cross.any():
+        # L real on this stretch and 1 + L changes sign: it passes through 0
+        v, i = (int(x[0]) for x in np.nonzero(cross))
+        raise ComputeError(f"variant {v}: 1 + L vanishes near {w[i]:.6g} rad/s, a closed-loop "
+                           "pole sits on the stability boundary; change the gain or design")
+    with np.errstate(invalid="ignore"):
+        step = np.where(ok & ~flat, sgn * (np.abs(a1) - np.abs(a0)), 0.0)
+    half = np.sum(step, axis=1)
+    total = np.zeros(V)
+    # indentations round boundary poles (the contour keeps them on the stable side)
+    for ar in axis:
+        v, k = ar.variant, ar.order
+        if ar.w == 0.0:
+            # small right-hand indentation round the integrator(s), traversed once
+            total[v] += -k * math.pi + _wrap(2.0 * angF[v, 1] + k * math.pi)
+        elif dt is not None and ar.w >= wnyq * (1 - 1e-12):
+            total[v] += -k * math.pi + _wrap(-2.0 * angF[v, -2] + k * math.pi)
+        else:
+            i = int(np.searchsorted(w, ar.w))
+            half[v] += -k * math.pi + _wrap(angF[v, i] - angF[v, i - 1] + k * math.pi)
+    total += 2.0 * half
+    if dt is None:
+        tau = None
+        for v in range(V):
             r = len(np.ravel(fb.poles[v])) - len(np.ravel(fb.zeros[v]))
-            lend = abs(L[v, -1])
             if r < 0:
                 raise ComputeError(f"variant {v}: the loop gain is improper; add roll-off")
-            if r == 0 and lend >= 1.0 - 1e-9 and _fr.estimate_delay(fb)[v] * w[-1] > 1e-3:
-                raise ComputeError(f"variant {v}: |L| >= 1 at high frequency with a delay; "
-                                   "the closed loop is not of retarded type, reduce the feedthrough")
-            total += _wrap(-2.0 * angF[v, -1])
-        n = -total / (2.0 * math.pi)
-        if abs(n - round(n)) > 0.25:
-            raise ComputeError(f"variant {v}: Nyquist angle count {n:.3f} is not an integer; "
-                               "the frequency grid is too coarse, raise points_per_decade")
-        out[v] = int(round(n))
-    return out
+            if r == 0 and abs(L[v, -1]) >= 1.0 - 1e-9:
+                tau = _fr.estimate_delay(fb) if tau is None else tau
+                if tau[v] * w[-1] > 1e-3:
+                    raise ComputeError(f"variant {v}: |L| >= 1 at high frequency with a delay; "
+                                       "the closed loop is not of retarded type, reduce the "
+                                       "feedthrough")
+        # closing arc at infinite frequency (|L| < 1 there, so 1 + L turns less than pi)
+        total += -2.0 * np.angle(F[:, -1])
+    n = -total / (2.0 * math.pi)
+    frac = np.abs(n - np.round(n))
+    if np.any(frac > 0.25):
+        v = int(np.argmax(frac))
+        raise ComputeError(f"variant {v}: Nyquist angle count {n[v]:.3f} is not an integer; "
+                           "the frequency grid is too coarse, raise points_per_decade")
+    return np.round(n).astype(int)
 
 
 def _open_loop_unstable(fb: FreqBatch, axis_tol: float = 1e-9) -> np.ndarray:
@@ -290,30 +297,27 @@ def disk_margin(fb: FreqBatch, *, grid: np.ndarray | None = None, xrtol: float =
     """Balanced disk margin (skew 0) of every variant (see :class:`DiskMargin`).
 
     ``alpha = 1 / sup_w |S(jw) - 1/2|`` with ``S = 1/(1+L)``; the peak is found by
-    :func:`peak_gain` on ``(1 - L) / (2 (1 + L))`` over the loop grid plus geometric points
-    around every gain and phase crossover.  Variants whose closed loop is unstable get
+    :func:`peak_gain` on ``(1 - L) / (2 (1 + L))`` over the loop grid, which the adaptive
+    refinement densifies wherever ``S`` changes fast (a near approach to -1).  Variants whose closed loop is unstable get
     ``alpha = 0`` (no disk of perturbations keeps them stable) when ``check_stability``.
     The gain interval is unbounded (``+-inf`` dB) once ``alpha/2 >= 1 - unbounded_tol``.
     """
     V = fb.nvar
     w = _fr.frequency_grid(fb) if grid is None else np.asarray(grid, float)
-    extra = [w]
-    offs = np.concatenate([1 - np.logspace(-6, -1, 16), 1 + np.logspace(-6, -1, 16)])
-    for c in list(_fr.gain_crossovers(fb, grid=w)) + list(_fr.phase_crossovers(fb, grid=w)):
-        if c.size:
-            extra.append(np.outer(c, offs).ravel())
-    w = np.unique(np.concatenate(extra))
 
-    def ev(x):
-        L = fb.evaluate(np.asarray(x, float))
+    def half_diff(L):
         with np.errstate(divide="ignore", invalid="ignore"):
             h = (1.0 - L) / (2.0 * (1.0 + L))
-        # a pole of L gives S - 1/2 = -1/2 exactly
+        # at a pole of L, S - 1/2 = -1/2 exactly
         return np.where(np.isfinite(L), h, -0.5)
 
+    def ev(x):
+        return half_diff(_fr._call(fb.evaluate, x, V))
+
+    smp = _fr._Sampler(fb.evaluate, fb.dt, fb.poles, fb.zeros, w, _fr._call(fb.evaluate, w, V))
     feats = [np.concatenate([np.ravel(p), np.ravel(z)]) for p, z in zip(fb.poles, fb.zeros)]
-    dt = fb.dt
-    peak, wpk = _fr.peak_gain(ev, dt, [np.empty(0)] * V, feats, grid=w, xrtol=xrtol)
+    peak, wpk = _fr.peak_gain(ev, fb.dt, [np.empty(0)] * V, feats, grid=w, xrtol=xrtol,
+                              pairwise=lambda vi, x: half_diff(smp.at(vi, x)))
     with np.errstate(divide="ignore"):
         alpha = np.where(np.isfinite(peak), 1.0 / peak, 0.0)
     if check_stability:
