@@ -8,7 +8,6 @@ from textual.containers import Horizontal, VerticalScroll
 from textual.widgets import Label, Select, Static
 
 from .. import bindings
-from ..compare import compare
 from ..widgets.verdict import SYMBOL, fmt_value
 from .base import ViewScreen
 
@@ -16,9 +15,11 @@ __all__ = ["DiffScreen"]
 
 _HEAD = {"broke": "BROKE (pass -> fail)", "fixed": "FIXED (fail -> pass)",
          "eroded": "ERODED (still pass, less headroom)", "improved": "IMPROVED (more headroom)",
-         "unchanged": "unchanged", "other": "other (error, stale or on one side only)"}
+         "new": "new (judged on the newer one only)", "dropped": "dropped (older one only)",
+         "incomparable": "incomparable (error or stale on a side)", "unchanged": "unchanged"}
 _STYLE = {"broke": "bold red", "fixed": "bold green", "eroded": "yellow", "improved": "green",
-          "unchanged": "dim", "other": "magenta"}
+          "new": "cyan", "dropped": "cyan", "incomparable": "magenta", "unchanged": "dim"}
+_ORDER = ("broke", "fixed", "eroded", "improved", "incomparable", "new", "dropped", "unchanged")
 
 
 class DiffScreen(ViewScreen):
@@ -62,7 +63,9 @@ class DiffScreen(ViewScreen):
         old = self.old_label or parent
         if old is None or old == new:
             return (loop, revs, old, new, None)
-        return (loop, revs, old, new, compare(lg, loop, new, old))
+        from ...history.diff import diff
+
+        return (loop, revs, old, new, diff(lg, loop, new, old))
 
     def present(self, data) -> None:
         body = self.query_one("#diff-body", Static)
@@ -83,16 +86,21 @@ class DiffScreen(ViewScreen):
             body.update(f"loop {loop}: pick two different revisions (the newer one has no parent).")
             return
         t = Text()
-        t.append(f"loop {loop}: {cmp_.old_label} -> {cmp_.new_label}\n\n", style="bold")
-        for kind in ("broke", "fixed", "eroded", "improved", "other", "unchanged"):
-            items = cmp_.by_kind(kind)
+        t.append(f"loop {loop}: {cmp_.old.label} -> {cmp_.new.label}  "
+                 f"(eroded/improved: headroom change beyond {cmp_.threshold:.0%})\n\n",
+                 style="bold")
+        for kind in _ORDER:
+            items = cmp_.of(kind)
+            if not items and kind in ("new", "dropped", "incomparable"):
+                continue
             t.append(f"{_HEAD[kind]}: {len(items)}\n", style=_STYLE[kind])
             for c in items:
-                t.append(f"  {c.requirement:<12} {SYMBOL.get(c.old_verdict, '?')} {c.old_verdict}"
-                         f" -> {SYMBOL.get(c.new_verdict, '?')} {c.new_verdict:<6} "
+                ov, nv = c.old_verdict or "n/a", c.new_verdict or "n/a"
+                t.append(f"  {c.requirement:<12} {SYMBOL.get(ov, '?')} {ov}"
+                         f" -> {SYMBOL.get(nv, '?')} {nv:<6} "
                          f"{fmt_value(c.old_value, c.unit)} -> {fmt_value(c.new_value, c.unit)}")
-                if c.delta is not None:
-                    t.append(f"  (delta {c.delta:+.4g}{' ' + c.unit if c.unit else ''})")
+                if c.value_delta is not None:
+                    t.append(f"  (delta {c.value_delta:+.4g}{' ' + c.unit if c.unit else ''})")
                 t.append(f"  limit {c.limit_text}\n")
             t.append("\n")
         body.update(t)

@@ -1,0 +1,340 @@
+"""Terminal UI: Pilot tests on a small closed-form ledger, snapshots, and the import boundary.
+
+The ledger: plant G = 1/(s (s+1)), unity feedback, proportional controllers K.
+Closed forms used below (textbook second-order results, e.g. Ogata, Modern Control
+Engineering, ch. 5 (step response of s^2 + 2 zeta wn s + wn^2) and ch. 7 (phase margin)):
+
+* closed loop s^2 + s + K: wn = sqrt(K), zeta = 1/(2 sqrt(K)),
+  overshoot = 100 exp(-pi zeta / sqrt(1 - zeta^2)) %;
+* |L(j wc)| = 1 gives wc^4 + wc^2 - K^2 = 0, wc = sqrt((-1 + sqrt(1 + 4 K^2)) / 2),
+  phase margin = 90 deg - atan(wc) (in deg);
+* arg L never reaches -180 deg, so there is no phase crossover: gain margin = inf.
+
+K = 1: PM 51.83 deg (pass >= 45), wc 0.786 rad/s (fail >= 1), overshoot 16.3 % (pass <= 25).
+K = 4: PM 28.02 deg (fail), wc 1.879 rad/s (pass), overshoot 44.4 % (fail).
+So r1 -> r2 breaks PM-1 and OS-1, fixes WC-1, leaves GM-1 unchanged.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import shutil
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from ledger.api import open_ledger
+
+SNAPSHOTS = Path(__file__).parent / "snapshots"
+
+
+def wc_of(k: float) -> float:
+    # Source: closed form |K/(jw (jw+1))| = 1 (see module docstring)
+    return math.sqrt((-1 + math.sqrt(1 + 4 * k * k)) / 2)
+
+
+def pm_of(k: float) -> float:
+    # Source: closed form PM = 180 - 90 - atan(wc) deg
+    return 90.0 - math.degrees(math.atan(wc_of(k)))
+
+
+def os_of(k: float) -> float:
+    # Source: second-order overshoot 100 exp(-pi zeta / sqrt(1 - zeta^2)), zeta = 1/(2 sqrt K)
+    z = 1 / (2 * math.sqrt(k))
+    return 100 * math.exp(-math.pi * z / math.sqrt(1 - z * z))
+
+
+@pytest.fixture(scope="module")
+def built(tmp_path_factory):
+    path = tmp_path_factory.mktemp("tui") / "base.db"
+    lg = open_ledger(path, create=True, author="tester")
+    lg.add_plant("servo", "1/(s*(s+1))")
+    lg.add_loop("pos", "servo")
+    lg.add_requirement("SYS-1", title="Robust move", statement="The axis moves robustly.")
+    lg.add_requirement("PM-1", title="Phase margin", statement="PM at least 45 deg.",
+                       metric="phase_margin", limit=">= 45 deg", parents=["SYS-1"],
+                       loops=["pos"], status="approved")
+    lg.add_requirement("WC-1", title="Crossover", statement="Gain crossover at least 1 rad/s.",
+                       metric="gain_crossover", limit=">= 1 rad/s", parents=["SYS-1"],
+                       loops=["pos"])
+    lg.add_requirement("GM-1", title="Gain margin", statement="GM at least 6 dB.",
+                       metric="gain_margin", limit=">= 6 dB", loops=["pos"])
+    lg.add_requirement("OS-1", title="Overshoot", statement="Step overshoot at most 25 %.",
+                       metric="overshoot", limit="<= 25 %", parents=["SYS-1"], loops=["pos"])
+    lg.add_revision("pos", "1", rationale="unity gain: first closed loop", label="r1")
+    lg.add_revision("pos", "4", rationale="raise the gain to 4 for a faster crossover",
+                    label="r2")
+    lg.close()
+    return path
+
+
+@pytest.fixture
+def ledger(built, tmp_path):
+    path = tmp_path / "t.db"
+    shutil.copy(built, path)
+    lg = open_ledger(path, author="tester")
+    yield lg
+    lg.close()
+
+
+def make_app(lg):
+    from ledger.tui.app import LedgerApp
+
+    return LedgerApp(ledger=lg)
+
+
+async def settle(pilot, rounds: int = 3):
+    from textual.worker import WorkerCancelled
+
+    for _ in range(rounds):
+        await pilot.pause()
+        try:
+            await pilot.app.workers.wait_for_complete()
+        except WorkerCancelled:  # an exclusive reload replaced an older load; wait again
+            continue
+        await pilot.pause()
+
+
+async def press(pilot, *keys):
+    for k in keys:
+        await pilot.press(k)
+    await settle(pilot, rounds=2)
+
+
+def test_core_imports_without_textual():
+    code = ("import sys, ledger, ledger.api, ledger.engine, ledger.cli; "
+            "bad = sorted(m for m in sys.modules if m.split('.')[0] in "
+            "('textual', 'textual_plotext') or m.startswith('ledger.tui')); print(bad)")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         check=True, env={**os.environ, "PYTHONPATH": str(Path(__file__).parents[1])})
+    assert out.stdout.strip() == "[]", out.stdout + out.stderr
+
+
+async def test_lineage_view_tree_counts_and_navigation(ledger):
+    from textual.widgets import Static, Tree
+
+    app = make_app(ledger)
+    async with app.run_test(size=(120, 40)) as pilot:
+        await settle(pilot)
+        tree = app.screen.query_one(Tree)
+        loop_node = tree.root.children[0]
+        assert loop_node.data == ("pos", None)
+        r1 = loop_node.children[0]
+        r2 = r1.children[0]
+        assert (r1.data, r2.data) == (("pos", "r1"), ("pos", "r2"))
+        # verdict counts from lg.results: r1 passes PM, GM, OS and fails WC (closed forms above)
+        assert "✓3 ✗1 !0 ~0" in str(r1.label)
+        assert "✓2 ✗2 !0 ~0" in str(r2.label)
+        assert tree.cursor_node is loop_node
+        await press(pilot, "down")
+        assert tree.cursor_node is r1
+        await press(pilot, "down")
+        assert tree.cursor_node is r2
+        assert (app.current_loop, app.current_label) == ("pos", "r2")
+        detail = str(app.screen.query_one("#lineage-detail", Static).render())
+        assert "raise the gain to 4" in detail and "controller" in detail
+
+
+async def test_matrix_view_cells_navigation_and_filters(ledger):
+    from textual.widgets import DataTable
+
+    app = make_app(ledger)
+    async with app.run_test(size=(120, 40)) as pilot:
+        await settle(pilot)
+        await press(pilot, "2")
+        scr = app.screen
+        assert type(scr).__name__ == "MatrixScreen"
+        table = scr.query_one(DataTable)
+        assert table.row_count == 4 and len(table.columns) == 3
+        keys = [r.key for r in scr.visible_rows()]
+        assert keys == ["GM-1", "OS-1", "PM-1", "WC-1"]  # no parent first, then under SYS-1
+        pm_r2 = str(table.get_cell_at((2, 2)))
+        assert "✗ fail" in pm_r2 and "BROKE" in pm_r2  # symbol and word, not colour alone
+        assert "✓ pass" in str(table.get_cell_at((2, 1)))
+        row0 = table.cursor_row
+        await press(pilot, "down")
+        assert table.cursor_row == row0 + 1
+        assert app.current_req == keys[row0 + 1]
+        col0 = table.cursor_column
+        await press(pilot, "left")
+        assert table.cursor_column == col0 - 1
+        # status filter cycles: first "fail" keeps rows with any failing cell
+        await press(pilot, "s")
+        assert scr.status_filter == "fail"
+        assert [r.key for r in scr.visible_rows()] == ["OS-1", "PM-1", "WC-1"]
+        # text filter
+        await press(pilot, "s", "s", "s", "s", "s")
+        assert scr.status_filter is None
+        await press(pilot, "slash", "c", "r", "o", "s", "s", "enter")
+        assert [r.key for r in scr.visible_rows()] == ["WC-1"]
+        assert table.row_count == 1
+        # loop filter cycles to the only loop
+        await press(pilot, "l")
+        assert scr.loop_filter == "pos"
+
+
+async def test_requirement_view_detail_and_trend(ledger):
+    from textual.widgets import Static
+
+    app = make_app(ledger)
+    app.current_req = "PM-1"
+    async with app.run_test(size=(120, 40)) as pilot:
+        await settle(pilot)
+        await press(pilot, "3")
+        scr = app.screen
+        d = scr._data
+        assert d.requirement.key == "PM-1"
+        assert [p.key for p in d.parents] == ["SYS-1"]
+        vals = [res.value for _, _, res in d.trend]
+        # Source: closed-form phase margins of K=1 and K=4 (module docstring)
+        np.testing.assert_allclose(vals, [pm_of(1), pm_of(4)], rtol=1e-6)
+        text = str(scr.query_one("#req-detail", Static).render())
+        assert "PM at least 45 deg." in text and "derives from" in text
+        await press(pilot, "n")
+        assert scr._data.requirement.key != "PM-1"
+        # SYS-1 lists its children with verdicts
+        app.current_req = "SYS-1"
+        scr.reload()
+        await settle(pilot)
+        assert {c.key for c in scr._data.children} == {"PM-1", "WC-1", "OS-1"}
+
+
+async def test_diff_view_broke_fixed_sets(ledger):
+    app = make_app(ledger)
+    app.current_loop, app.current_label = "pos", "r2"
+    async with app.run_test(size=(120, 40)) as pilot:
+        await settle(pilot)
+        await press(pilot, "4")
+        cmp_ = app.screen.comparison
+        assert (cmp_.old.label, cmp_.new.label) == ("r1", "r2")
+        # Source: closed forms in the module docstring (PM 51.8 -> 28.0 deg, OS 16.3 -> 44.4 %,
+        # wc 0.786 -> 1.879 rad/s, GM inf -> inf)
+        assert {c.requirement for c in cmp_.of("broke")} == {"PM-1", "OS-1"}
+        assert {c.requirement for c in cmp_.of("fixed")} == {"WC-1"}
+        assert {c.requirement for c in cmp_.of("unchanged")} == {"GM-1"}
+        pm = next(c for c in cmp_.of("broke") if c.requirement == "PM-1")
+        np.testing.assert_allclose(pm.value_delta, pm_of(4) - pm_of(1), rtol=1e-6)
+        body = str(app.screen.query_one("#diff-body").render())
+        assert "BROKE (pass -> fail): 2" in body and "FIXED (fail -> pass): 1" in body
+
+
+async def test_plots_view_margins(ledger):
+    app = make_app(ledger)
+    app.current_loop, app.current_label = "pos", "r2"
+    async with app.run_test(size=(120, 40)) as pilot:
+        await settle(pilot)
+        await press(pilot, "5")
+        d = app.screen.plot_data
+        assert d is not None and d.label == "r2" and d.variant == "nominal"
+        # Source: closed forms (module docstring); final value 1 for a type-1 unity loop
+        np.testing.assert_allclose(d.phase_margin_deg, pm_of(4), rtol=1e-6)
+        np.testing.assert_allclose(d.gain_crossover, wc_of(4), rtol=1e-6)
+        assert math.isinf(d.gain_margin_db)
+        np.testing.assert_allclose(d.final, 1.0, rtol=1e-9)
+        np.testing.assert_allclose(d.y.max(), 1 + os_of(4) / 100, rtol=2e-2)  # sampled peak
+        assert {b.key for b in d.bounds} == {"OS-1"}
+        np.testing.assert_allclose(d.bounds[0].value, 1.25, rtol=1e-12)  # 25 % above final 1
+        await press(pilot, "w")
+        assert app.screen.use_worst and app.screen.plot_data.variant == "nominal"  # one variant
+
+
+async def test_add_revision_form_records_and_shows_verdicts(ledger):
+    from textual.widgets import DataTable
+
+    app = make_app(ledger)
+    app.current_loop, app.current_label = "pos", "r2"
+    async with app.run_test(size=(120, 40)) as pilot:
+        await settle(pilot)
+        await press(pilot, "a")
+        assert type(app.screen).__name__ == "RevisionForm"
+        assert app.screen.query_one("#form-parent").value == "r2"
+        await press(pilot, "2", "tab", "tab")  # digits go into the field, not to the views
+        for ch in "halve the gain":
+            await pilot.press("space" if ch == " " else ch)
+        await press(pilot, "ctrl+s")
+        await settle(pilot, rounds=6)
+        assert type(app.screen).__name__ == "MatrixScreen"
+        revs = ledger.revisions("pos")
+        assert [r.label for r in revs] == ["r1", "r2", "r3"]
+        assert revs[-1].parent == "r2" and revs[-1].rationale == "halve the gain"
+        res = {r.requirement: r for r in ledger.results("pos", "r3")}
+        # Source: closed forms with K = 2: PM 38.67 deg, wc 1.25 rad/s, OS 30.5 %
+        np.testing.assert_allclose(res["PM-1"].value, pm_of(2), rtol=1e-6)
+        np.testing.assert_allclose(res["OS-1"].value, os_of(2), rtol=1e-6)
+        assert {k: r.verdict for k, r in res.items()} == {
+            "PM-1": "fail", "OS-1": "fail", "WC-1": "pass", "GM-1": "pass"}
+        table = app.screen.query_one(DataTable)
+        assert len(table.columns) == 4
+        assert table.cursor_column == 3  # the new column is selected
+        assert "✗ fail" in str(table.get_cell_at((2, 3)))
+        assert "BROKE" not in str(table.get_cell_at((2, 3)))  # r2 already failed PM-1
+
+
+async def test_bad_model_text_shows_error_and_writes_nothing(ledger):
+    from textual.widgets import Static
+
+    before = ledger.counts()
+    app = make_app(ledger)
+    async with app.run_test(size=(120, 40)) as pilot:
+        await settle(pilot)
+        await press(pilot, "a")
+        for ch in "2*(s+":
+            await pilot.press({"*": "asterisk", "(": "left_parenthesis", "+": "plus"}.get(ch, ch))
+        await press(pilot, "tab", "tab", "x", "ctrl+s")
+        assert type(app.screen).__name__ == "RevisionForm"
+        msg = str(app.screen.query_one("#form-error", Static).render())
+        assert "column" in msg
+        await press(pilot, "escape")
+        assert type(app.screen).__name__ != "RevisionForm"
+    assert ledger.counts() == before
+
+
+async def test_help_lists_every_key_and_quit(ledger):
+    from ledger.tui import bindings
+    from ledger.tui.screens.help import help_text
+
+    text = help_text().plain
+    for _, table in bindings.ALL:
+        for b in table:
+            for key in b.key.split(","):
+                assert key.strip() in text
+    app = make_app(ledger)
+    async with app.run_test(size=(80, 24)) as pilot:
+        await settle(pilot)
+        await press(pilot, "question_mark")
+        assert type(app.screen).__name__ == "HelpScreen"
+        await press(pilot, "escape")
+        assert type(app.screen).__name__ == "LineageScreen"
+        await press(pilot, "a")
+        await pilot.press("ctrl+q")  # priority: quits even with a text field focused
+        await pilot.pause()
+    assert app.return_code == 0
+
+
+def _check_snapshot(svg: str, name: str) -> None:
+    path = SNAPSHOTS / name
+    if os.environ.get("LOOPLEDGER_UPDATE_SNAPSHOTS") == "1" or not path.exists():
+        if not path.exists() and os.environ.get("LOOPLEDGER_UPDATE_SNAPSHOTS") != "1":
+            pytest.fail(f"missing snapshot {name}; run with LOOPLEDGER_UPDATE_SNAPSHOTS=1")
+        path.write_text(svg)
+        return
+    assert svg == path.read_text(), f"screen differs from {path}; inspect and update if intended"
+
+
+async def test_snapshots(ledger):
+    """Matrix, diff and help at 80x24 (no clocks or times on these screens)."""
+    app = make_app(ledger)
+    app.current_loop, app.current_label = "pos", "r2"
+    shots = {}
+    async with app.run_test(size=(80, 24)) as pilot:
+        await settle(pilot)
+        for keys, name in ((("2",), "matrix_80x24.svg"), (("4",), "diff_80x24.svg"),
+                           (("question_mark",), "help_80x24.svg")):
+            await press(pilot, *keys)
+            shots[name] = app.export_screenshot(title="loopledger")
+    for name, svg in shots.items():
+        _check_snapshot(svg, name)
