@@ -22,7 +22,7 @@ from datetime import datetime, timezone
 
 from sqlalchemy import select
 
-from .chain import CHAINED_KINDS, GENESIS, _TABLES, link_hash, record_hash
+from .chain import CHAINED_KINDS, GENESIS, chained_table, link_hash, record_hash
 from .signoff import frozen_matrix_hash
 from .store.models import Baseline, ChainLink, Signoff
 
@@ -116,12 +116,12 @@ def audit(lg) -> AuditReport:
         for ln in links:
             newest[(ln.kind, ln.record_id)] = ln
         for key, ln in newest.items():
-            if key[0] not in _TABLES:
+            if key[0] not in CHAINED_KINDS:
                 findings.append(Finding("link altered", "chain_link", ln.seq,
                                         f"unknown record kind {key[0]!r}"))
         counts: dict[str, int] = {}
         for kind in CHAINED_KINDS:
-            table = _TABLES[kind]
+            table = chained_table(kind)
             ids = set(s.scalars(select(table.c.id)).all())
             counts[kind] = len(ids)
             linked = {rid for (k, rid) in newest if k == kind}

@@ -44,6 +44,7 @@ __all__ = [
     "ADVISORY_LOCK_KEY",
     "HASHED_FIELDS",
     "CHAINED_KINDS",
+    "chained_table",
     "record_content",
     "record_hash",
     "link_hash",
@@ -78,6 +79,13 @@ _TABLES = {
 
 #: Record kinds that carry chain links, in the order the audit reports them.
 CHAINED_KINDS = tuple(HASHED_FIELDS)
+
+
+def chained_table(kind: str):
+    """The SQLAlchemy table holding records of ``kind`` (one of :data:`CHAINED_KINDS`)."""
+    if kind not in _TABLES:
+        raise IntegrityViolation(f"record kind {kind!r} is not chained; use one of {CHAINED_KINDS}")
+    return _TABLES[kind]
 
 
 def _norm(value: Any, *, is_float: bool) -> Any:

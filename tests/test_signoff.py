@@ -211,3 +211,18 @@ def test_upgrade_from_0002_keeps_records_and_backfills_chain(tmp_path):
         assert rep.ok and rep.links == 8
     finally:
         lg.close()
+
+
+def test_infinite_gain_margin_is_frozen_and_hashed(lg):
+    # k/(s(s+1)) never reaches -180 deg of phase: no phase crossover, gain margin infinite.
+    # Source: textbook (phase of 1/(s(s+1)) is -90 deg - atan(w) > -180 deg for all w > 0).
+    build_small(lg)
+    lg.add_requirement("X-2", title="Gain margin", statement="GM at least 6 dB.",
+                       metric="gain_margin", limit=">= 6 dB", loops=["x"], status="approved")
+    b = create_baseline(lg, "B1")
+    cells = {c.requirement: c for c in b.cells}
+    assert cells["X-2"].verdict == "pass"
+    assert math.isinf(cells["X-2"].value) and cells["X-2"].value > 0
+    assert b.matrix_hash == independent_matrix_hash(b)
+    sign_baseline(lg, "B1", signer="A", role="lead", statement="ok")
+    assert audit(lg).ok
