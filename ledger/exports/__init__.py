@@ -1,0 +1,85 @@
+"""Exports of the verification matrix: CSV, JSON, XLSX, HTML report, JUnit XML, ReqIF.
+
+Every export reads one :class:`~ledger.history.matrix.Matrix` (build it with
+:func:`ledger.history.matrix.build_matrix`), carries the matrix's caution, and is written
+atomically (temporary file in the target folder, then one rename).  Formats and schemas are
+described in docs/exports.md.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from ..errors import LedgerError
+from .junit import export_junit
+from .reqif import export_reqif
+from .rows import COLUMNS, SCHEMA_VERSION, ExportRow, matrix_rows
+from .tabular import export_csv, export_json
+from .workbook import export_xlsx
+
+__all__ = ["FORMATS", "SUFFIXES", "format_for", "export_matrix", "export_csv", "export_json",
+           "export_xlsx", "export_html", "export_junit", "export_reqif", "matrix_rows",
+           "ExportRow", "COLUMNS", "SCHEMA_VERSION"]
+
+#: Format names.
+FORMATS = ("csv", "json", "xlsx", "html", "junit", "reqif")
+
+#: File suffix -> format name.
+SUFFIXES = {".csv": "csv", ".json": "json", ".xlsx": "xlsx", ".html": "html", ".htm": "html",
+            ".xml": "junit", ".reqif": "reqif"}
+
+
+def export_html(matrix, path, lg) -> Path:
+    """Write the HTML report; see :func:`ledger.exports.html.export_html`."""
+    from .html import export_html as _export_html
+
+    return _export_html(matrix, path, lg)
+
+
+def format_for(path, fmt: str | None = None) -> str:
+    """The format name for ``path``: ``fmt`` when given, else from the suffix.
+
+    Raises
+    ------
+    LedgerError
+        Unknown format or suffix.
+    """
+    if fmt is not None:
+        f = fmt.lower()
+        if f not in FORMATS:
+            raise LedgerError(f"unknown export format {fmt!r}; use one of {', '.join(FORMATS)}")
+        return f
+    suffix = Path(path).suffix.lower()
+    if suffix not in SUFFIXES:
+        raise LedgerError(f"cannot tell the format from {Path(path).name!r}; use a suffix of "
+                          f"{', '.join(sorted(SUFFIXES))} or give the format")
+    return SUFFIXES[suffix]
+
+
+def export_matrix(matrix, path, fmt: str | None = None, *, ledger=None) -> Path:
+    """Write ``matrix`` to ``path`` in one format.
+
+    Parameters
+    ----------
+    matrix : ledger.history.matrix.Matrix
+    path : str or Path
+    fmt : str, optional
+        One of :data:`FORMATS`; default from the suffix (``.csv .json .xlsx .html .xml``
+        (JUnit) ``.reqif``).
+    ledger : Ledger, optional
+        The ledger the matrix came from; required for ``html`` (the curves are rebuilt from
+        the revisions).
+
+    Returns
+    -------
+    Path
+        Absolute path written.
+    """
+    f = format_for(path, fmt)
+    if f == "html":
+        if ledger is None:
+            raise LedgerError("the HTML report needs the ledger to draw its curves; pass "
+                              "ledger=lg")
+        return export_html(matrix, path, ledger)
+    return {"csv": export_csv, "json": export_json, "xlsx": export_xlsx,
+            "junit": export_junit, "reqif": export_reqif}[f](matrix, path)

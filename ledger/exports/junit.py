@@ -1,0 +1,101 @@
+"""JUnit XML export, so a CI job can gate on the verification matrix.
+
+Layout (the common JUnit XML structure that CI servers read)::
+
+    <testsuites name tests failures errors skipped timestamp>
+      <properties><property name="caution" value="..."/></properties>   (on each suite)
+      <testsuite name="LOOP/REVISION" tests failures errors skipped timestamp>
+        <testcase classname="LOOP" name="REQUIREMENT-ID" time="0">
+          <failure message="value ... does not meet limit ..." type="fail">...</failure>
+          <error message="..." type="error">reason</error>
+          <skipped message="stale: ..."/>
+        </testcase>
+
+One test case per (requirement, revision column); with the default selection (each loop's
+tip) that is one per (requirement, loop).  ``pass`` has no child, ``fail`` a ``<failure>``
+carrying value and limit, ``error`` an ``<error>`` with the reason, ``stale`` and
+``unverified`` a ``<skipped>``.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from .rows import matrix_rows, number_text, write_atomic
+
+__all__ = ["export_junit", "junit_tree"]
+
+
+def _value_text(r) -> str:
+    if r.value is None:
+        return "no value"
+    unit = f" {r.unit}" if r.unit and r.unit not in ("bool", "ratio") else ""
+    return f"{number_text(r.value, digits=6)}{unit}"
+
+
+def junit_tree(matrix):
+    """The JUnit XML document as an lxml element tree."""
+    from lxml import etree
+
+    rows = matrix_rows(matrix)
+    stamp = matrix.generated_at.replace(microsecond=0).isoformat()
+    root = etree.Element("testsuites", name=matrix.title)
+    totals = {"tests": 0, "failures": 0, "errors": 0, "skipped": 0}
+    for col in matrix.columns:
+        mine = [r for r in rows if r.loop == col.loop and r.revision == col.label]
+        suite = etree.SubElement(root, "testsuite", name=f"{col.loop}/{col.label}",
+                                 timestamp=stamp)
+        props = etree.SubElement(suite, "properties")
+        etree.SubElement(props, "property", name="caution", value=matrix.caution)
+        etree.SubElement(props, "property", name="revision_hash", value=col.content_hash)
+        n = {"tests": 0, "failures": 0, "errors": 0, "skipped": 0}
+        for r in mine:
+            n["tests"] += 1
+            case = etree.SubElement(suite, "testcase", classname=r.loop, name=r.requirement,
+                                    time="0")
+            detail = (f"{r.requirement} v{r.version} ({r.metric}) on {r.loop}/{r.revision}: "
+                      f"value {_value_text(r)}, limit {r.limit}, headroom "
+                      f"{number_text(r.headroom, digits=6) or 'none'}, worst variant "
+                      f"{r.worst_variant or 'none'}")
+            if r.verdict == "fail":
+                n["failures"] += 1
+                msg = (f"value {_value_text(r)} does not meet limit {r.limit}"
+                       + (f" ({r.reason})" if r.reason else ""))
+                f = etree.SubElement(case, "failure", message=msg, type="fail")
+                f.text = detail
+            elif r.verdict == "error":
+                n["errors"] += 1
+                e = etree.SubElement(case, "error", message=r.reason or "could not be computed",
+                                     type="error")
+                e.text = detail
+            elif r.verdict in ("stale", "unverified"):
+                n["skipped"] += 1
+                why = ("judged against an older requirement or plant version; re-verify"
+                       if r.verdict == "stale" else "never verified; run verify")
+                etree.SubElement(case, "skipped", message=f"{r.verdict}: {why}")
+        for k, v in n.items():
+            suite.set(k, str(v))
+            totals[k] += v
+        suite.set("time", "0")
+    for k, v in totals.items():
+        root.set(k, str(v))
+    root.set("time", "0")
+    root.addprevious(etree.Comment(" " + " ".join(matrix.caution.split()) + " "))
+    return etree.ElementTree(root)
+
+
+def export_junit(matrix, path) -> Path:
+    """Write the matrix as JUnit XML (UTF-8).
+
+    Parameters
+    ----------
+    matrix : ledger.history.matrix.Matrix
+    path : str or Path
+
+    Returns
+    -------
+    Path
+    """
+    tree = junit_tree(matrix)
+    return write_atomic(path, lambda tmp: tree.write(str(tmp), xml_declaration=True,
+                                                     encoding="UTF-8", pretty_print=True))

@@ -1,0 +1,196 @@
+"""Flat rows of a verification matrix: the one record layout every export writes.
+
+Each :class:`MatrixEntry` becomes one :class:`ExportRow` holding the requirement (ID, version,
+statement, method, limit), the result the ledger holds (value with unit, headroom, verdict,
+worst variant) and where it came from (loop, revision, plant version, time, engine version).
+Nothing is recomputed here: values and verdicts are the ledger's own.
+
+Also holds the small helpers every writer shares: number formatting with infinities as the
+strings ``"inf"``/``"-inf"`` (never NaN), and an atomic file write (temp file + rename).
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import tempfile
+from dataclasses import dataclass, fields
+from pathlib import Path
+from typing import Callable
+
+from ..errors import ComputeError, LedgerError
+
+__all__ = ["SCHEMA_VERSION", "COLUMNS", "VERDICT_ORDER", "ExportRow", "matrix_rows",
+           "number_text", "parse_number", "write_atomic", "verdict_counts"]
+
+#: Version of the CSV/JSON record layout (docs/exports.md); bump on any incompatible change.
+SCHEMA_VERSION = "loopledger-matrix/1"
+
+#: Verdict words in the order summaries list them.
+VERDICT_ORDER = ("pass", "fail", "error", "stale", "unverified")
+
+
+@dataclass(frozen=True)
+class ExportRow:
+    """One (requirement, revision) cell of the matrix, flattened.
+
+    Attributes
+    ----------
+    requirement : str
+        Requirement ID.
+    version : int
+        Latest requirement version (the one the matrix shows).
+    judged_version : int or None
+        Requirement version the result judged (older than ``version`` when stale).
+    title, statement, method, status, metric : str
+    limit : str
+        Limit as written, with its unit, e.g. ``">= 45 deg"``.
+    value : float or None
+        Worst-case value over the plant family, in ``unit``; ``inf``/``-inf`` allowed.
+    unit : str
+        Unit of ``value`` and ``headroom``.
+    headroom : float or None
+        Signed distance from the limit, in ``unit``, positive on the passing side.
+    headroom_fraction : float or None
+        Headroom divided by ``|limit|``, dimensionless.
+    verdict : str
+        ``pass``, ``fail``, ``error``, ``stale`` or ``unverified``.
+    worst_variant : str
+        Plant variant that produced ``value``.
+    pass_fraction : float or None
+        Fraction of the family's variants that pass, 0..1.
+    variants : int or None
+        Number of plant variants judged.
+    loop, revision : str
+    plant_version : int or None
+    verified_at : str
+        ISO 8601 UTC time the result was written ("" when unverified).
+    engine_version : str
+    reason : str
+        Why a result is an error (or an unstable fail); "" otherwise.
+    """
+
+    requirement: str
+    version: int
+    judged_version: int | None
+    title: str
+    statement: str
+    method: str
+    status: str
+    metric: str
+    limit: str
+    value: float | None
+    unit: str
+    headroom: float | None
+    headroom_fraction: float | None
+    verdict: str
+    worst_variant: str
+    pass_fraction: float | None
+    variants: int | None
+    loop: str
+    revision: str
+    plant_version: int | None
+    verified_at: str
+    engine_version: str
+    reason: str
+
+
+#: Column names, in file order.
+COLUMNS = tuple(f.name for f in fields(ExportRow))
+
+_NUMERIC = {"value", "headroom", "headroom_fraction", "pass_fraction"}
+_INTEGER = {"version", "judged_version", "variants", "plant_version"}
+
+
+def _finite_or_inf(x) -> float | None:
+    if x is None:
+        return None
+    x = float(x)
+    if math.isnan(x):
+        raise ComputeError("a result holds NaN; re-verify the revision to replace it")
+    return x
+
+
+def matrix_rows(matrix) -> list[ExportRow]:
+    """One :class:`ExportRow` per matrix entry, in the matrix's order.
+
+    Parameters
+    ----------
+    matrix : ledger.history.matrix.Matrix
+    """
+    out = []
+    for e in matrix.entries:
+        q, r = e.requirement, e.result
+        out.append(ExportRow(
+            requirement=q.key, version=q.version,
+            judged_version=r.requirement_version if r else None,
+            title=q.title, statement=q.statement, method=q.method, status=q.status,
+            metric=q.metric or "", limit=q.limit_text,
+            value=_finite_or_inf(r.value) if r else None,
+            unit=(r.unit if r else q.unit) or "",
+            headroom=_finite_or_inf(r.headroom) if r else None,
+            headroom_fraction=_finite_or_inf(r.headroom_fraction) if r else None,
+            verdict=e.verdict, worst_variant=r.worst_variant if r else "",
+            pass_fraction=_finite_or_inf(r.pass_fraction) if r else None,
+            variants=r.variants if r else None, loop=e.loop, revision=e.revision.label,
+            plant_version=r.plant_version if r else None,
+            verified_at=r.created_at.isoformat() if r else "",
+            engine_version=r.engine_version if r else "", reason=r.reason if r else "",
+        ))
+    return out
+
+
+def verdict_counts(rows, loop: str | None = None) -> dict[str, int]:
+    """Number of rows per verdict word (every word of :data:`VERDICT_ORDER` present)."""
+    out = {v: 0 for v in VERDICT_ORDER}
+    for r in rows:
+        if loop is None or r.loop == loop:
+            out[r.verdict] = out.get(r.verdict, 0) + 1
+    return out
+
+
+def number_text(x: float | None, *, digits: int = 17) -> str:
+    """Text of a number for files: ``""`` for None, ``"inf"``/``"-inf"``, else ``repr``-exact
+    (``digits=17`` round-trips a float; fewer for display)."""
+    if x is None:
+        return ""
+    if math.isinf(x):
+        return "inf" if x > 0 else "-inf"
+    if digits >= 17:
+        return repr(float(x))
+    return f"{x:.{digits}g}"
+
+
+def parse_number(text: str) -> float | None:
+    """Inverse of :func:`number_text`."""
+    if text is None or text == "":
+        return None
+    return float(text)
+
+
+def write_atomic(path, writer: Callable[[Path], None]) -> Path:
+    """Write a file atomically: ``writer(tmp_path)`` fills a temporary file in the target's
+    folder, which then replaces ``path`` in one rename.  On failure ``path`` is untouched.
+
+    Returns
+    -------
+    Path
+        The absolute path written.
+    """
+    path = Path(path).expanduser().resolve()
+    if not path.parent.is_dir():
+        raise LedgerError(f"folder {path.parent} does not exist; create it first")
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent)
+    os.close(fd)
+    tmp_path = Path(tmp)
+    try:
+        writer(tmp_path)
+        os.replace(tmp_path, path)
+    except OSError as e:
+        tmp_path.unlink(missing_ok=True)
+        raise LedgerError(f"cannot write {path}: {e.strerror or e}; check the path and "
+                          "permissions") from e
+    except BaseException:
+        tmp_path.unlink(missing_ok=True)
+        raise
+    return path

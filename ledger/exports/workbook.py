@@ -1,0 +1,137 @@
+"""XLSX export of the verification matrix (openpyxl).
+
+A ``Summary`` sheet (title, generation time, the caution, counts by verdict per loop) and one
+sheet per loop with a row per (requirement, revision).  Verdict cells are filled with a colour
+of our own palette, and the verdict word is always in the cell (colour is never the only
+cue).  Every loop sheet has a frozen header row, an auto-filter and column widths fitted to
+the content.
+"""
+
+from __future__ import annotations
+
+import math
+import re
+from pathlib import Path
+
+from .rows import COLUMNS, VERDICT_ORDER, matrix_rows, verdict_counts, write_atomic
+
+__all__ = ["export_xlsx", "VERDICT_FILLS", "sheet_name"]
+
+#: Fill colour (RGB hex) per verdict word: soft green, coral, amber, slate blue, light grey.
+VERDICT_FILLS = {
+    "pass": "C8E6C9",
+    "fail": "F4B6A6",
+    "error": "FFE08A",
+    "stale": "C5CAE9",
+    "unverified": "E0E0E0",
+}
+
+_HEADERS = {
+    "requirement": "Requirement", "version": "Version", "judged_version": "Judged version",
+    "title": "Title", "statement": "Statement", "method": "Method", "status": "Status",
+    "metric": "Metric", "limit": "Limit", "value": "Value", "unit": "Unit",
+    "headroom": "Headroom", "headroom_fraction": "Headroom fraction", "verdict": "Verdict",
+    "worst_variant": "Worst variant", "pass_fraction": "Pass fraction", "variants": "Variants",
+    "loop": "Loop", "revision": "Revision", "plant_version": "Plant version",
+    "verified_at": "Verified at (UTC)", "engine_version": "Engine version", "reason": "Reason",
+}
+
+_BAD_SHEET_CHARS = re.compile(r"[\[\]:*?/\\]")
+
+
+def sheet_name(loop: str, taken: set[str]) -> str:
+    """A valid, unique sheet name (<= 31 characters, none of ``[]:*?/\\``) for a loop."""
+    base = _BAD_SHEET_CHARS.sub("_", loop)[:31] or "loop"
+    name, i = base, 2
+    while name.lower() in taken or name.lower() == "summary":
+        suffix = f"~{i}"
+        name = base[:31 - len(suffix)] + suffix
+        i += 1
+    taken.add(name.lower())
+    return name
+
+
+def _cell_value(v):
+    """openpyxl cell value: infinities as the text 'inf'/'-inf' (XLSX has no infinity)."""
+    if isinstance(v, float) and math.isinf(v):
+        return "inf" if v > 0 else "-inf"
+    return v
+
+
+def export_xlsx(matrix, path) -> Path:
+    """Write the matrix as an XLSX workbook.
+
+    Parameters
+    ----------
+    matrix : ledger.history.matrix.Matrix
+    path : str or Path
+
+    Returns
+    -------
+    Path
+    """
+    from openpyxl import Workbook
+    from openpyxl.styles import Alignment, Font, PatternFill
+    from openpyxl.utils import get_column_letter
+
+    rows = matrix_rows(matrix)
+    wb = Workbook()
+    ws = wb.active
+    ws.title = "Summary"
+    bold = Font(bold=True)
+    ws["A1"] = matrix.title
+    ws["A1"].font = Font(bold=True, size=14)
+    ws["A2"] = "Generated (UTC)"
+    ws["B2"] = matrix.generated_at.isoformat(timespec="seconds")
+    ws["A3"] = "Caution"
+    ws["B3"] = matrix.caution
+    ws["A3"].font = bold
+    ws["B3"].font = Font(bold=True, color="9C2A00")
+    ws["B3"].alignment = Alignment(wrap_text=True, vertical="top")
+    ws.row_dimensions[3].height = 45
+    head = ["Loop", "Revisions"] + [v.capitalize() for v in VERDICT_ORDER] + ["Total"]
+    ws.append([])
+    ws.append(head)
+    for c in ws[5]:
+        c.font = bold
+    for loop in matrix.loops:
+        counts = verdict_counts(rows, loop)
+        labels = ", ".join(c.label for c in matrix.columns if c.loop == loop)
+        ws.append([loop, labels] + [counts[v] for v in VERDICT_ORDER] + [sum(counts.values())])
+    total = verdict_counts(rows)
+    ws.append(["All loops", ""] + [total[v] for v in VERDICT_ORDER] + [sum(total.values())])
+    for c in ws[ws.max_row]:
+        c.font = bold
+    # colour the verdict header cells with the same palette, word kept in the cell
+    for j, v in enumerate(VERDICT_ORDER):
+        ws.cell(row=5, column=3 + j).fill = PatternFill("solid", fgColor=VERDICT_FILLS[v])
+    ws.column_dimensions["A"].width = 18
+    ws.column_dimensions["B"].width = 60
+    for j in range(len(VERDICT_ORDER) + 1):
+        ws.column_dimensions[get_column_letter(3 + j)].width = 12
+
+    taken: set[str] = set()
+    vcol = COLUMNS.index("verdict") + 1
+    for loop in matrix.loops:
+        sh = wb.create_sheet(sheet_name(loop, taken))
+        sh.append([_HEADERS[c] for c in COLUMNS])
+        for c in sh[1]:
+            c.font = bold
+        widths = [len(_HEADERS[c]) for c in COLUMNS]
+        for r in rows:
+            if r.loop != loop:
+                continue
+            values = [_cell_value(getattr(r, c)) for c in COLUMNS]
+            sh.append(values)
+            for j, v in enumerate(values):
+                widths[j] = max(widths[j], len(str(v)) if v is not None else 0)
+            cell = sh.cell(row=sh.max_row, column=vcol)
+            cell.fill = PatternFill("solid", fgColor=VERDICT_FILLS.get(r.verdict, "FFFFFF"))
+            cell.font = bold
+        sh.freeze_panes = "A2"
+        sh.auto_filter.ref = f"A1:{get_column_letter(len(COLUMNS))}{max(sh.max_row, 1)}"
+        for j, w in enumerate(widths):
+            sh.column_dimensions[get_column_letter(j + 1)].width = min(max(w + 2, 8), 60)
+    wb.properties.title = matrix.title
+    wb.properties.description = matrix.caution
+    return write_atomic(path, lambda tmp: wb.save(tmp))
