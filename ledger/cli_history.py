@@ -37,7 +37,8 @@ def _delta(c) -> str:
     text = _fmt(c.headroom_delta, c.unit)
     if c.headroom_delta > 0 and not text.startswith("+"):
         text = "+" + text
-    if c.headroom_change is not None and math.isfinite(c.headroom_change):
+    both_pass = c.old_verdict == "pass" and c.new_verdict == "pass"
+    if both_pass and c.headroom_change is not None and math.isfinite(c.headroom_change):
         text += f" ({c.headroom_change:+.0%})"
     return text
 
