@@ -285,6 +285,12 @@ def test_first_failing_stops_at_unverified(tmp_path):
         assert run.boundary.label == "b" and run.boundary_verdict == "unverified"
         assert not run.certain and "verify" in run.summary()
         assert first_failing(lg, "ax", "PM", "b").state == "unknown"
+        # diff with an unverified side: dropped / new, and the note says to verify
+        d = diff(lg, "ax", "b")
+        (c,) = d.changes
+        assert c.kind == "dropped" and "not verified on b" in c.note
+        (c,) = diff(lg, "ax", "c").changes
+        assert c.kind == "new" and "not verified on b" in c.note
         lg.verify("ax")
         run = first_failing(lg, "ax", "PM")
         assert run.first.label == "a" and run.since_root and run.certain
@@ -358,3 +364,27 @@ def test_cli_since_and_print_regressions(cli, kloop, capsys):
     assert d.of("broke") and "BROKE" in out and "against parent r2" in out
     print_regressions(kloop, "ax", "r1", _Tools)
     assert "root revision" in capsys.readouterr().out
+
+
+def test_diff_after_requirement_edit_is_incomparable(tmp_path):
+    from ledger.api import open_ledger
+
+    with open_ledger(tmp_path / "e.db", create=True, author="t") as lg:
+        lg.add_plant("servo", "1/(s*(s+1))")
+        lg.add_loop("ax", "servo")
+        lg.add_requirement("PM", title="pm", statement="PM >= 45 deg", metric="phase_margin",
+                           limit=">= 45 deg", loops=["ax"], status="approved")
+        lg.add_revision("ax", "gain(0.5)", rationale="first", label="a")
+        lg.add_revision("ax", "gain(1)", rationale="second", label="b")
+        # a new requirement version is verified on the tip only: the parent's result is stale
+        lg.edit_requirement("PM", limit=">= 50 deg", note="tighter")
+        (c,) = diff(lg, "ax").changes
+        assert c.kind == "incomparable" and "older" in c.note and "newer" not in c.note
+        assert (c.old_verdict, c.new_verdict) == ("stale", "pass")   # closed form pm(1) = 51.8
+        assert _pm_closed_form(1.0)[0] >= 50
+        lg.verify("ax")
+        (c,) = diff(lg, "ax").changes
+        assert c.kind == "eroded" and c.new_requirement_version == 2 == c.old_requirement_version
+        pm_a, pm_b = _pm_closed_form(0.5)[0], _pm_closed_form(1.0)[0]
+        assert_allclose(c.headroom_delta, pm_b - pm_a, rtol=1e-6)
+        assert (pm_b - pm_a) < -0.25 * (pm_a - 50)
