@@ -1,0 +1,371 @@
+"""Exports of the verification matrix: CSV/JSON parsed back equal to the ledger's results, XLSX
+re-read with openpyxl, JUnit XML validated against tests/junit.xsd and counted, ReqIF parsed
+back with its IDs and relations, the HTML report's figures and caution, a headless-browser
+screenshot that is not blank, and the evidence curves against python-control."""
+
+from __future__ import annotations
+
+import csv
+import dataclasses
+import io
+import json
+import math
+import shutil
+import subprocess
+import tempfile
+from pathlib import Path
+
+import numpy as np
+import pytest
+from numpy.testing import assert_allclose
+
+from ledger.api import open_ledger
+from ledger.errors import LedgerError
+from ledger.exports import SCHEMA_VERSION, export_matrix
+from ledger.exports.reqif import REQIF_NS, reqif_identifier
+from ledger.exports.rows import COLUMNS, write_atomic
+from ledger.exports.workbook import VERDICT_FILLS
+from ledger.history.matrix import CAUTION, build_matrix
+
+HERE = Path(__file__).resolve().parent
+PLANT = "K/(s*(tau_m*s+1))"
+PARAMS = {"K": {"nominal": 180.0, "tol": "10 %"}, "tau_m": {"nominal": 0.03, "tol": "20 %"}}
+REQS = [  # key, metric, limit
+    ("PZ-1", "phase_margin", ">= 45 deg"),
+    ("PZ-2", "settling_time", "<= 60 ms"),
+    ("PZ-3", "overshoot", "<= 25 %"),
+    ("PZ-4", "peak_sensitivity", "<= 1.6"),
+    ("PZ-5", "gain_margin", ">= 6 dB"),      # no phase crossover: inf on this loop
+]
+
+
+@pytest.fixture(scope="module")
+def book(tmp_path_factory):
+    """A ledger with two loops; revisions r1, r2 on pz; a stale and an unverified entry."""
+    d = tmp_path_factory.mktemp("exp")
+    lg = open_ledger(d / "x.db", create=True, author="tester")
+    lg.add_plant("pz", PLANT, params=PARAMS, output_unit="mm", input_unit="A")
+    lg.add_plant("sh", "K/(tau*s+1)", params={"K": 4.0, "tau": 0.2}, output_unit="rad/s",
+                 input_unit="V")
+    lg.add_loop("pz", "pz", kind="position")
+    lg.add_loop("sh", "sh", kind="speed")
+    lg.add_requirement("SYS-1", title="Moves <settle> & stay", statement="Moves settle.")
+    for key, metric, limit in REQS:
+        lg.add_requirement(key, title=f"{metric} bound", statement=f"{metric} {limit}.",
+                           metric=metric, limit=limit, parents=["SYS-1"], loops=["pz"],
+                           status="approved")
+    lg.add_requirement("SH-1", title="Shaker margin", statement="PM >= 60 deg.",
+                       metric="phase_margin", limit=">= 60 deg", parents=["SYS-1", "PZ-1"],
+                       loops=["sh"], status="approved")
+    lg.add_revision("pz", "pid(kp=0.4, ki=4, kd=0.006, tf=0.0008)", rationale="first tuning")
+    lg.add_revision("pz", "pid(kp=0.6, ki=4, kd=0.004, tf=0.0008)", rationale="more gain")
+    lg.add_revision("sh", "pi(0.5, 5)", rationale="speed PI", verify=False)
+    # a tighter PZ-3 re-verifies the tip r2 only, so r1's PZ-3 result turns stale
+    lg.edit_requirement("PZ-3", limit="<= 20 %", note="tighter")
+    yield lg
+    lg.close()
+
+
+def _data_lines(path: Path) -> str:
+    return "".join(l for l in path.read_text(encoding="utf-8").splitlines(True)
+                   if not l.startswith("#"))
+
+
+def _results(lg, loop, label):
+    return {r.requirement: r for r in lg.results(loop, label)}
+
+
+def test_csv_round_trip(book, tmp_path):
+    m = build_matrix(book, "all")
+    p = export_matrix(m, tmp_path / "m.csv")
+    text = p.read_text(encoding="utf-8")
+    assert f"# caution: {CAUTION}" in text
+    rows = list(csv.DictReader(io.StringIO(_data_lines(p))))
+    assert tuple(rows[0].keys()) == COLUMNS
+    assert len(rows) == len(m.entries) == 2 * len(REQS) + 1
+    seen_inf = seen_stale = seen_unverified = 0
+    for row in rows:
+        if row["verdict"] == "unverified":
+            seen_unverified += 1
+            assert row["value"] == "" and row["loop"] == "sh"
+            continue
+        # Source: the ledger's own results (lg.results), the record the export must carry
+        r = _results(book, row["loop"], row["revision"])[row["requirement"]]
+        assert row["verdict"] == r.verdict
+        assert row["worst_variant"] == r.worst_variant and row["unit"] == r.unit
+        assert int(row["plant_version"]) == r.plant_version
+        if math.isinf(r.value):
+            seen_inf += 1
+            assert row["value"] == ("inf" if r.value > 0 else "-inf")
+        assert_allclose(float(row["value"]), r.value, rtol=0)       # exact round trip (repr)
+        assert_allclose(float(row["headroom"]), r.headroom, rtol=0)
+        seen_stale += row["verdict"] == "stale"
+    assert seen_inf == 2 and seen_stale == 1 and seen_unverified == 1
+
+
+def test_json_schema_and_values(book, tmp_path):
+    m = build_matrix(book, "all")
+    p = export_matrix(m, tmp_path / "m.json")
+
+    def no_nan(name):
+        raise AssertionError(f"JSON holds {name}")
+
+    doc = json.loads(p.read_text(encoding="utf-8"), parse_constant=no_nan)
+    assert doc["schema"] == SCHEMA_VERSION and doc["caution"] == CAUTION
+    assert doc["counts"] == {k: m.counts().get(k, 0) for k in doc["counts"]}
+    assert sum(doc["counts"].values()) == len(m.entries)
+    for row in doc["rows"]:
+        if row["verdict"] == "unverified":
+            assert row["value"] is None
+            continue
+        r = _results(book, row["loop"], row["revision"])[row["requirement"]]
+        # Source: the ledger's own results; infinities are the strings "inf"/"-inf"
+        if math.isinf(r.value):
+            assert row["value"] == "inf" and row["headroom"] == "inf"
+        else:
+            assert_allclose(row["value"], r.value, rtol=0)
+            assert_allclose(row["headroom"], r.headroom, rtol=0)
+            assert_allclose(row["headroom_fraction"], r.headroom_fraction, rtol=0)
+        assert row["verdict"] == r.verdict and row["engine_version"] == r.engine_version
+
+
+def test_xlsx_values_fills_panes_filters(book, tmp_path):
+    from openpyxl import load_workbook
+
+    m = build_matrix(book, "all")
+    p = export_matrix(m, tmp_path / "m.xlsx")
+    wb = load_workbook(p)
+    assert wb.sheetnames == ["Summary", "pz", "sh"]
+    summary = wb["Summary"]
+    assert summary["B3"].value == CAUTION
+    head = [c.value for c in summary[5]]
+    pz_row = [c.value for c in summary[6]]
+    counts = {h.lower(): v for h, v in zip(head[2:], pz_row[2:])}
+    pz_entries = [e for e in m.entries if e.loop == "pz"]
+    for word in ("pass", "fail", "stale"):
+        assert counts[word] == sum(e.verdict == word for e in pz_entries)
+    ws = wb["pz"]
+    assert ws.freeze_panes == "A2"
+    assert ws.auto_filter.ref == f"A1:W{1 + len(pz_entries)}"
+    cols = [c.value for c in ws[1]]
+    vi, ki, ri, vali = (cols.index(n) for n in ("Verdict", "Requirement", "Revision", "Value"))
+    for row in ws.iter_rows(min_row=2):
+        word = row[vi].value
+        assert row[vi].fill.fgColor.rgb.endswith(VERDICT_FILLS[word])   # colour ...
+        assert word in VERDICT_FILLS                                       # ... and the word
+        r = _results(book, "pz", row[ri].value)[row[ki].value]
+        # Source: the ledger's results; openpyxl writes numbers with 16 significant digits
+        if math.isinf(r.value):
+            assert row[vali].value == "inf"
+        else:
+            assert_allclose(row[vali].value, r.value, rtol=1e-15)
+    assert ws.column_dimensions["E"].width > 8
+
+
+def _junit_counts(path):
+    from lxml import etree
+
+    tree = etree.parse(str(path))
+    cases = tree.findall(".//testcase")
+    return tree, {"tests": len(cases), "failures": len(tree.findall(".//testcase/failure")),
+                  "errors": len(tree.findall(".//testcase/error")),
+                  "skipped": len(tree.findall(".//testcase/skipped"))}
+
+
+def test_junit_valid_and_counted(book, tmp_path):
+    from lxml import etree
+
+    m = build_matrix(book, "all")
+    # one entry turned into an error, as a result that could not be computed reads
+    i = next(k for k, e in enumerate(m.entries) if e.verdict == "pass")
+    e = m.entries[i]
+    bad = dataclasses.replace(e.result, verdict="error", value=None, headroom=None,
+                              reason="cannot compute on nominal: test")
+    m = dataclasses.replace(m, entries=m.entries[:i] + (dataclasses.replace(e, result=bad),)
+                            + m.entries[i + 1:])
+    p = export_matrix(m, tmp_path / "m.xml")
+    # Source: tests/junit.xsd, the common JUnit XML layout CI servers read
+    schema = etree.XMLSchema(etree.parse(str(HERE / "junit.xsd")))
+    tree, n = _junit_counts(p)
+    schema.assertValid(tree)
+    c = m.counts()
+    assert n == {"tests": len(m.entries), "failures": c.get("fail", 0),
+                 "errors": c.get("error", 0),
+                 "skipped": c.get("stale", 0) + c.get("unverified", 0)}
+    root = tree.getroot()
+    assert {k: int(root.get(k)) for k in n} == n
+    assert c.get("error") == 1 and c.get("fail", 0) >= 1
+    for case in tree.findall(".//testcase"):
+        f = case.find("failure")
+        if f is not None:
+            r = _results(book, case.get("classname"),
+                         case.getparent().get("name").split("/")[1])[case.get("name")]
+            assert f"limit {r.limit_text}" in f.get("message")
+            assert f"{r.value:.6g}" in f.get("message")
+
+
+def test_junit_schema_catches_wrong_counts(tmp_path):
+    from lxml import etree
+
+    # the schema must be able to fail: a suite without its required counts
+    schema = etree.XMLSchema(etree.parse(str(HERE / "junit.xsd")))
+    doc = etree.fromstring(b"<testsuites><testsuite name='x'><testcase name='a' classname='b'>"
+                           b"<failure/><error/></testcase></testsuite></testsuites>")
+    assert not schema.validate(doc)
+
+
+def test_reqif_ids_and_relations(book, tmp_path):
+    from lxml import etree
+
+    m = build_matrix(book)
+    p = export_matrix(m, tmp_path / "m.reqif")
+    ns = {"r": REQIF_NS}
+    tree = etree.parse(str(p))
+    assert tree.getroot().tag == f"{{{REQIF_NS}}}REQ-IF"
+    objs = tree.findall(".//r:SPEC-OBJECTS/r:SPEC-OBJECT", ns)
+    by_id = {o.get("IDENTIFIER"): o.get("LONG-NAME") for o in objs}
+    assert sorted(by_id.values()) == sorted(q.key for q in m.requirements)
+    attr_name = {a.get("IDENTIFIER"): a.get("LONG-NAME")
+                 for a in tree.findall(".//r:ATTRIBUTE-DEFINITION-STRING", ns)}
+    for o in objs:
+        vals = {attr_name[v.find(".//r:ATTRIBUTE-DEFINITION-STRING-REF", ns).text]:
+                v.get("THE-VALUE") for v in o.findall(".//r:ATTRIBUTE-VALUE-STRING", ns)}
+        q = next(q for q in m.requirements if q.key == vals["ID"])
+        assert vals["Statement"] == q.statement and vals["Limit"] == q.limit_text
+        assert o.get("IDENTIFIER") == reqif_identifier("req", q.key)
+    rels = {(by_id[r.find("r:SOURCE/r:SPEC-OBJECT-REF", ns).text],
+             by_id[r.find("r:TARGET/r:SPEC-OBJECT-REF", ns).text])
+            for r in tree.findall(".//r:SPEC-RELATION", ns)}
+    expect = {(q.key, p_) for q in m.requirements for p_ in q.parents}
+    assert rels == expect and ("SH-1", "PZ-1") in rels
+    refs = [h.text for h in tree.findall(".//r:SPECIFICATION//r:SPEC-HIERARCHY/r:OBJECT/"
+                                         "r:SPEC-OBJECT-REF", ns)]
+    assert sorted(refs) == sorted(by_id)                 # each requirement once in the hierarchy
+    ids = [e.get("IDENTIFIER") for e in tree.iter() if e.get("IDENTIFIER")]
+    assert len(ids) == len(set(ids))
+    p2 = export_matrix(build_matrix(book), tmp_path / "again.reqif")
+    ids2 = [e.get("IDENTIFIER") for e in etree.parse(str(p2)).iter() if e.get("IDENTIFIER")]
+    assert ids2 == ids                                    # deterministic identifiers
+
+
+@pytest.fixture(scope="module")
+def report(book, tmp_path_factory):
+    m = build_matrix(book, "tips")
+    p = export_matrix(m, tmp_path_factory.mktemp("html") / "report.html", ledger=book)
+    return m, p
+
+
+def test_html_figures_caution_escaping(report):
+    m, p = report
+    text = p.read_text(encoding="utf-8")
+    with_metric = [e for e in m.entries if e.requirement.metric]
+    assert text.count("<svg") == len(with_metric) == len(REQS) + 1
+    assert text.count("class='evidence'") == len(with_metric)
+    assert CAUTION in text and "class='caution'" in text
+    assert "<settle>" not in text                      # the need's title, escaped or absent
+    for bad in ("<script", "<link", " src=\"http", "@import", "url(http"):
+        assert bad not in text
+    assert "break-before: page" in text and "@media print" in text
+    for e in with_metric:
+        assert f"{e.requirement.key} v{e.requirement.version}" in text
+
+
+def test_html_needs_the_ledger(book, tmp_path):
+    with pytest.raises(LedgerError, match="needs the ledger"):
+        export_matrix(build_matrix(book), tmp_path / "r.html")
+
+
+CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
+
+
+@pytest.mark.skipif(CHROMIUM is None, reason="chromium not installed (Debian: apt-get install "
+                    "-y chromium); needed to screenshot the HTML report")
+def test_html_screenshot_not_blank(report, tmp_path):
+    from PIL import Image
+
+    _, p = report
+    shot = tmp_path / "shot.png"
+    with tempfile.TemporaryDirectory() as profile:
+        subprocess.run([CHROMIUM, "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic",
+                        "--no-first-run", "--disable-background-networking",
+                        "--disable-component-update", "--disable-sync",
+                        f"--user-data-dir={profile}", f"--screenshot={shot}",
+                        "--window-size=1280,2000", p.as_uri()],
+                       check=True, capture_output=True, timeout=120)
+    img = np.asarray(Image.open(shot).convert("L"), dtype=float)
+    assert img.shape == (2000, 1280)
+    dark = (img < 128).mean()
+    # common practice, no source: a rendered text page has a few percent dark pixels
+    assert 0.005 < dark < 0.5, dark
+    assert img.std() > 10.0
+
+
+def test_evidence_curves_match_python_control(book):
+    """The curves drawn are the engine's; check them against python-control on the nominal."""
+    import control
+
+    from ledger.exports.evidence import column_curves
+
+    cc = column_curves(book, "pz", "r2", worst=set())
+    assert cc.variants == ("nominal",)
+    s = control.tf("s")
+    G = 180.0 / (s * (0.03 * s + 1))
+    C = 0.6 + 4 / s + 0.004 * s / (0.0008 * s + 1)
+    T = control.feedback(C * G, 1)
+    st = cc.step("r->y")
+    t, y = st.t["nominal"], st.y["nominal"]
+    pick = np.unique(np.linspace(1, t.size - 1, 12).astype(int))
+    # Source: python-control 0.10 step_response (reference library); a step input is held
+    # constant, so its exact discretisation on [0, t_i] gives y(t_i) exactly
+    ref = np.array([control.step_response(T, T=np.linspace(0.0, t[i], 3)).outputs[-1]
+                    for i in pick])
+    assert_allclose(y[pick], ref, rtol=1e-6, atol=1e-9)
+    fc = cc.freq()
+    gm, pm, _, _, wp, _ = control.stability_margins(C * G)
+    # Source: python-control stability_margins (pm in deg; gm is a ratio: inf here, as the
+    # phase of this type-2 loop never reaches -180 deg)
+    assert_allclose(fc.phase_margin["nominal"], pm, rtol=1e-6)
+    assert_allclose(fc.gain_crossover["nominal"], wp, rtol=1e-6)
+    assert math.isinf(fc.gain_margin["nominal"]) and math.isinf(gm)
+    w = fc.w["nominal"][::97]
+    L_ref = (C * G)(1j * w)
+    assert_allclose(fc.L["nominal"][::97], L_ref, rtol=1e-9)
+    assert_allclose(fc.S["nominal"][::97], 1 / (1 + L_ref), rtol=1e-9)
+
+
+def test_suffix_and_atomic_write(book, tmp_path):
+    m = build_matrix(book)
+    with pytest.raises(LedgerError, match="cannot tell the format"):
+        export_matrix(m, tmp_path / "m.zip")
+    with pytest.raises(LedgerError, match="unknown export format"):
+        export_matrix(m, tmp_path / "m.csv", "pdf")
+    target = tmp_path / "keep.csv"
+    target.write_text("old")
+
+    def broken(tmp):
+        tmp.write_text("half")
+        raise OSError(28, "No space left on device")
+
+    with pytest.raises(LedgerError, match="cannot write"):
+        write_atomic(target, broken)
+    assert target.read_text() == "old"
+    assert [x.name for x in tmp_path.iterdir() if x.name.endswith(".part")] == []
+    export_matrix(m, target, "json")                 # explicit format wins over the suffix
+    assert json.loads(target.read_text())["schema"] == SCHEMA_VERSION
+
+
+def test_cli_export_matrix(book, tmp_path, monkeypatch):
+    from typer.testing import CliRunner
+
+    from ledger.cli import app
+
+    monkeypatch.setenv("LOOPLEDGER_DB", book.url)
+    out = tmp_path / "cols.json"
+    res = CliRunner().invoke(app, ["export-matrix", str(out), "--revision", "pz:r1",
+                                   "--revision", "pz:r2"])
+    assert res.exit_code == 0, res.output
+    assert "wrote" in res.output and "pz/r1, pz/r2" in res.output and "Caution" in res.output
+    doc = json.loads(out.read_text())
+    assert [(c["loop"], c["revision"]) for c in doc["revisions"]] == [("pz", "r1"), ("pz", "r2")]
+    res = CliRunner().invoke(app, ["export-matrix", str(tmp_path / "x.csv"), "--revision", "pz"])
+    assert res.exit_code == 1 and "LOOP:LABEL" in res.output
