@@ -126,8 +126,6 @@ def _exit_status(d, exit_on: Optional[ExitOn]) -> int:
 
 def trace_lines(t) -> list[str]:
     """The rolled-up tree as indented text lines."""
-    from .history.trace import TraceNode  # noqa: F401  (documented type of t.roots)
-
     lines = []
     for root in t.roots:
         for depth, n in root.walk():

@@ -6,7 +6,6 @@ from __future__ import annotations
 import math
 from datetime import datetime, timezone
 
-import numpy as np
 import pytest
 from numpy.testing import assert_allclose
 
