@@ -26,7 +26,7 @@ _COMPARATOR_ALIASES = {"≤": "<=", "≥": ">=", "=": "==", "=<": "<=", "=>": ">
 
 _LIMIT_RE = re.compile(
     r"^\s*(?P<cmp><=|>=|==|=<|=>|<|>|=|≤|≥)\s*"
-    r"(?P<num>[-+]?(?:\d+\.?\d*|\.\d+)(?:[eE][-+]?\d+)?|[-+]?inf)\s*(?P<unit>.*?)\s*$"
+    r"(?P<num>[-+]?(?:\d+\.?\d*|\.\d+)(?:[eE][-+]?\d+)?)\s*(?P<unit>.*?)\s*$"
 )
 _BOOL_RE = re.compile(r"^\s*(?:==\s*)?(?P<b>true|false|yes|no)\s*$", re.IGNORECASE)
 
@@ -161,8 +161,8 @@ def parse_limit(text: str, metric_unit: str) -> Limit:
         )
     cmp_ = _COMPARATOR_ALIASES.get(m["cmp"], m["cmp"])
     raw = float(m["num"])
-    if math.isnan(raw):
-        raise UnitError(f"limit {text!r} is not a number")
+    if not math.isfinite(raw):
+        raise UnitError(f"limit {text!r} is not a finite number")
     value = convert(raw, m["unit"], metric_unit)
     if math.isnan(value):
         raise UnitError(f"limit {text!r} is not a number")
