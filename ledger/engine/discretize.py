@@ -92,12 +92,11 @@ def zoh_matrices(A, B, sample_time: float, frac: float = 0.0):
     n = A.shape[0]
     if n == 0:
         return np.zeros((0, 0)), np.zeros(0), np.zeros(0)
-    Phi, _ = _integral(A, B, sample_time)
     E1, G0 = _integral(A, B, sample_time - frac)
     if frac == 0.0:
-        return Phi, G0, np.zeros(n)
-    _, Gf = _integral(A, B, frac)
-    return Phi, G0, E1 @ Gf
+        return E1, G0, np.zeros(n)
+    Ef, Gf = _integral(A, B, frac)
+    return E1 @ Ef, G0, E1 @ Gf
 
 
 def shift_register(m: int):

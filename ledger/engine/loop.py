@@ -431,7 +431,7 @@ def _variant_matrices(F, K, G, H, tau: float, *, algebraic_tol: float):
 
 
 def assemble(family: PlantFamily, controller, loop: LoopSpec | None = None, *,
-             algebraic_tol: float = 1e-12) -> Assembly:
+             algebraic_tol: float = 1e-12, batch_size: int = 48) -> Assembly:
     """Close ``controller`` round every variant of ``family``.
 
     Parameters
@@ -443,6 +443,9 @@ def assemble(family: PlantFamily, controller, loop: LoopSpec | None = None, *,
         Loop settings (default: unity feedback, continuous, no delays).
     algebraic_tol : float, optional
         ``|1 + D_C D_G D_H|`` below this is an algebraic loop (default 1e-12, dimensionless).
+    batch_size : int, optional
+        Most variants per group (default 48); frequency grids are shared within a group, so
+        very large groups cost more than several smaller ones.
 
     Returns
     -------
@@ -465,9 +468,11 @@ def assemble(family: PlantFamily, controller, loop: LoopSpec | None = None, *,
     for i, (G, tau, _) in enumerate(plants):
         keys.setdefault((G.order, tau, plants[i][2]), []).append(i)
     groups = []
-    for (ng, tau, (d_in, d_plant)), idx in keys.items():
-        groups.append(_build_group(np.asarray(idx), [plants[i][0] for i in idx], F, K, H,
-                                   tau, d_in, d_plant, ts, algebraic_tol))
+    for (ng, tau, (d_in, d_plant)), idx_all in keys.items():
+        for start in range(0, len(idx_all), max(1, int(batch_size))):
+            idx = idx_all[start:start + max(1, int(batch_size))]
+            groups.append(_build_group(np.asarray(idx), [plants[i][0] for i in idx], F, K, H,
+                                       tau, d_in, d_plant, ts, algebraic_tol))
     return Assembly(variants=family.names, dt=ts, loop=loop, groups=tuple(groups))
 
 
@@ -507,13 +512,29 @@ def _build_group(idx, Gs, F, K, H, tau, d_in, d_plant, ts, algebraic_tol) -> Loo
     point = (lambda w: np.exp(1j * np.asarray(w, float) * ts)) if ts else \
         (lambda w: 1j * np.asarray(w, dtype=float))
 
+    same_shape = len({(G.zeros.size, G.poles.size) for G in Gs}) == 1
+    if same_shape:
+        Zs = np.stack([G.zeros for G in Gs])      # (V, nz)
+        Ps = np.stack([G.poles for G in Gs])      # (V, np)
+        gains = np.array([G.gain for G in Gs])
+
+    def plant_parts(x):
+        """Plant numerator and denominator products (V, len(x)), vectorised when possible."""
+        if not same_shape:
+            ng, dg = zip(*(G.parts(x) for G in Gs))
+            return np.stack(ng), np.stack(dg)
+        ng = np.prod(x[None, None, :] - Zs[:, :, None], axis=1) if Zs.shape[1] else \
+            np.ones((len(Gs), x.size), complex)
+        dg = np.prod(x[None, None, :] - Ps[:, :, None], axis=1) if Ps.shape[1] else \
+            np.ones((len(Gs), x.size), complex)
+        return gains[:, None] * ng, dg
+
     def parts(w):
         """Numerator and denominator of L per variant, block by block, delay in the numerator."""
         x = point(w)
         nk, dk = K.parts(x)
         nh, dh = H.parts(x)
-        ng, dg = zip(*(G.parts(x) for G in Gs))
-        ng, dg = np.stack(ng), np.stack(dg)
+        ng, dg = plant_parts(x)
         num = ng * (nk * nh)[None, :]
         if tau > 0:
             num = num * np.exp(-1j * np.asarray(w, float) * tau)[None, :]
