@@ -505,7 +505,11 @@ def rev_add(loop: str = typer.Argument(..., help="Loop name."),
                                 verify=not no_verify)
             typer.echo(f"revision {r.loop}/{r.label} recorded (parent {r.parent or 'none'})")
             if not no_verify:
+                from .cli_history import print_regressions
+
+                print_regressions(lg, r.loop, r.label, _Tools)
                 _print_results(lg.results(r.loop, r.label), f"verdicts for {r.loop}/{r.label}")
+                typer.echo(CAUTION)
     run(body)
 
 
