@@ -128,13 +128,17 @@ def test_frozen_baseline_entry_altered_is_named(lg):
     assert len(found(rep, "sign-off mismatch")) == 1
 
 
-@pytest.mark.parametrize("column", ["record_hash", "chain_hash", "kind"])
-def test_chain_link_altered_is_named(lg, column):
+def test_chain_link_altered_is_named(lg):
     build(lg)
-    value = "'requirement_version'" if column == "kind" else f"'{'0f' * 32}'"
-    sql(lg, f"UPDATE chain_link SET {column} = {value} WHERE seq = 3")
-    rep = audit(lg)
-    assert ("chain_link", 3) in found(rep, "link altered")
+    for column in ("record_hash", "chain_hash", "kind", "record_id"):
+        (old,) = rows(lg, f"SELECT {column} FROM chain_link WHERE seq = 3")[0]
+        value = {"kind": "'requirement_version'", "record_id": "77"}.get(column, f"'{'0f' * 32}'")
+        sql(lg, f"UPDATE chain_link SET {column} = {value} WHERE seq = 3")
+        rep = audit(lg)
+        assert ("chain_link", 3) in found(rep, "link altered"), column
+        old_sql = old if column == "record_id" else f"'{old}'"
+        sql(lg, f"UPDATE chain_link SET {column} = {old_sql} WHERE seq = 3")
+        assert audit(lg).ok, column
 
 
 def test_link_removed_and_row_inserted_behind_the_back(lg):
