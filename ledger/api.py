@@ -842,12 +842,19 @@ class Ledger:
     # -- verification ---------------------------------------------------------------------
     def verify(self, loop: str | None = None, *, label: str | None = None,
                tips_only: bool = False, keys: Iterable[str] | None = None,
-               progress: Callable[[int, int, str], None] | None = None) -> list[dict]:
+               progress: Callable[[int, int, str], None] | None = None,
+               workers: int = 1) -> list[dict]:
         """Bring results up to date: judge the latest version of every applicable requirement
         on revisions (all of them, the tips only, or one) against the latest plant version.
 
         Only missing results are computed; metric values already in the cache are reused.
-        Each revision's results are written in one transaction.
+        Each revision's results are written in one transaction, as soon as they are computed.
+
+        Parameters
+        ----------
+        workers : int
+            Processes computing in parallel (``0`` = one per core).  Writing stays in this
+            process, one transaction per revision.
 
         Returns
         -------
@@ -859,36 +866,55 @@ class Ledger:
 
         with self.reading() as s:
             loops = [self._loop_row(s, loop)] if loop else list(s.scalars(select(Loop).order_by(Loop.name)))
-            targets = []
+            plans = []
             for lp in loops:
                 if label is not None:
-                    targets.append((lp.name, label))
+                    revs = [self._revision_row(s, lp, label)]
                 elif tips_only:
                     tip = self._tip_row(s, lp)
-                    if tip is not None:
-                        targets.append((lp.name, tip.label))
+                    revs = [tip] if tip is not None else []
                 else:
-                    targets.extend((lp.name, lbl) for lbl in s.scalars(
-                        select(Revision.label).where(Revision.loop_id == lp.id).order_by(Revision.seq)))
-        report = []
-        for i, (lname, lbl) in enumerate(targets):
-            if progress:
-                progress(i, len(targets), f"{lname}/{lbl}")
-            with self.reading() as s:
-                lp = self._loop_row(s, lname)
-                rev = self._revision_row(s, lp, lbl)
-                plan = V.plan_revision(s, lp, revision=rev, keys=keys)
-                if not plan.checks:
-                    continue
-                cached = V.load_cached(s, [plan.metric_key(c.metric, c.settings) for c in plan.checks])
-            payloads, n = V.compute_plan(plan, cached)
+                    revs = list(s.scalars(select(Revision).where(Revision.loop_id == lp.id)
+                                          .order_by(Revision.seq)))
+                for rev in revs:
+                    plan = V.plan_revision(s, lp, revision=rev, keys=keys)
+                    if plan.checks:
+                        cached = V.load_cached(s, [plan.metric_key(c.metric, c.settings)
+                                                   for c in plan.checks])
+                        plans.append((plan, cached))
+        report: list[dict] = []
+        total = len(plans)
+
+        def record(i: int, plan, cached, payloads, n):
             self.kernel_requests += n
             fresh = set(payloads) - set(cached)
             self._write(lambda s: V.write_results(s, plan, plan.revision_id, payloads, fresh))
-            report.append({"loop": lname, "revision": lbl, "results": len(plan.checks),
-                           "computed": n})
+            report.append({"loop": plan.loop, "revision": plan.label,
+                           "results": len(plan.checks), "computed": n})
+            if progress:
+                progress(i + 1, total, f"{plan.loop}/{plan.label}")
+
         if progress:
-            progress(len(targets), len(targets), "done")
+            progress(0, total, "planning done")
+        workers = (os.cpu_count() or 1) if workers == 0 else max(1, int(workers))
+        if workers == 1 or total < 2:
+            for i, (plan, cached) in enumerate(plans):
+                payloads, n = V.compute_plan(plan, cached)
+                record(i, plan, cached, payloads, n)
+        else:
+            import multiprocessing as mp
+            from concurrent.futures import ProcessPoolExecutor, as_completed
+
+            ctx = mp.get_context("fork" if "fork" in mp.get_all_start_methods() else "spawn")
+            with ProcessPoolExecutor(max_workers=min(workers, total), mp_context=ctx) as pool:
+                futures = {pool.submit(V.compute_plan, plan, cached): (plan, cached)
+                           for plan, cached in plans}
+                for i, fut in enumerate(as_completed(futures)):
+                    plan, cached = futures[fut]
+                    payloads, n = fut.result()
+                    record(i, plan, cached, payloads, n)
+            order = {(p.loop, p.label): k for k, (p, _) in enumerate(plans)}
+            report.sort(key=lambda r: order[(r["loop"], r["revision"])])
         return report
 
     def _after_requirement_change(self, info: RequirementInfo) -> None:

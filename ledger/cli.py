@@ -177,7 +177,7 @@ def import_cmd(spec: Path = typer.Argument(..., help="Spec file (TOML) to import
                 typer.echo(f"recorded  revision {loop}/{label}")
             typer.echo(f"unchanged {len(rep.unchanged)} record(s)")
         if not no_verify:
-            verify_cmd(loop=None, tips=False)
+            verify_cmd(loop=None, tips=False, workers=0)
     run(body)
 
 
@@ -594,7 +594,8 @@ def _print_results(results, title: str) -> None:
 
 @app.command("verify")
 def verify_cmd(loop: Optional[str] = typer.Option(None, "--loop", help="Only this loop."),
-               tips: bool = typer.Option(False, "--tips", help="Only the latest revision of each loop.")):
+               tips: bool = typer.Option(False, "--tips", help="Only the latest revision of each loop."),
+               workers: int = typer.Option(0, "--workers", help="Parallel processes (0 = one per core).")):
     """Bring verification up to date: compute every missing result (new requirement or plant
     versions, interrupted runs), reusing cached metric values."""
     def body():
@@ -606,7 +607,7 @@ def verify_cmd(loop: Optional[str] = typer.Option(None, "--loop", help="Only thi
             def progress(i, n, what):
                 bar.update(task, total=n, completed=i, description=f"verifying {what}")
 
-            rep = lg.verify(loop, tips_only=tips, progress=progress)
+            rep = lg.verify(loop, tips_only=tips, progress=progress, workers=workers)
         n_res = sum(r["results"] for r in rep)
         n_cmp = sum(r["computed"] for r in rep)
         typer.echo(f"verified {len(rep)} revision(s): {n_res} result(s) written, "
