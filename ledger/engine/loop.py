@@ -30,6 +30,7 @@ from typing import Any, Callable
 
 import control
 import numpy as np
+import scipy.linalg
 
 from ..errors import ModelError
 from .discretize import shift_register, zoh_discretize
@@ -154,6 +155,22 @@ class Block:
             return np.where(den == 0, complex(np.inf, 0.0), num / np.where(den == 0, 1, den))
 
 
+def _balance(A, B, C):
+    """Diagonal state scaling that balances ``[[A, B], [C, 0]]`` (transfer function unchanged).
+
+    Canonical realisations of plants with widely spread time constants have entries many
+    orders of magnitude apart, which makes closed-loop equilibria needlessly ill-conditioned.
+    """
+    n = A.shape[0]
+    if n == 0:
+        return A, B, C
+    M = np.zeros((n + 1, n + 1))
+    M[:n, :n], M[:n, n], M[n, :n] = A, B, C
+    _, (scale, _) = scipy.linalg.matrix_balance(M, permute=False, separate=True)
+    t = scale[:n] / scale[n]
+    return A * t[None, :] / t[:, None], B / t, C * t
+
+
 def make_block(sys, role: str) -> Block:
     """Check one python-control SISO system and return it as a :class:`Block`.
 
@@ -191,6 +208,7 @@ def make_block(sys, role: str) -> Block:
     B = np.asarray(ss.B, dtype=float).reshape(ss.nstates)
     C = np.asarray(ss.C, dtype=float).reshape(ss.nstates)
     D = float(np.asarray(ss.D, dtype=float).reshape(-1)[0])
+    A, B, C = _balance(A, B, C)
     if A.shape[0] == 0:
         dt = "any"
     elif sys.dt is None or sys.dt == 0:
