@@ -21,7 +21,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from .rows import matrix_rows, number_text, write_atomic
+from .rows import require, matrix_rows, number_text, write_atomic
 
 __all__ = ["export_junit", "junit_tree"]
 
@@ -35,7 +35,7 @@ def _value_text(r) -> str:
 
 def junit_tree(matrix):
     """The JUnit XML document as an lxml element tree."""
-    from lxml import etree
+    etree = require("lxml.etree")
 
     rows = matrix_rows(matrix)
     stamp = matrix.generated_at.replace(microsecond=0).isoformat()

@@ -25,6 +25,7 @@ import re
 import numpy as np
 
 from ..errors import LedgerError
+from .rows import require
 
 __all__ = ["entry_figure", "figure_kind", "PALETTE"]
 
@@ -370,13 +371,14 @@ def _draw_disk(fig, curves, req, res, worst):
     fc = curves.freq()
     ax = fig.add_subplot(111)
     for n, lab, col in _labels(curves, worst):
-        ax.loglog(*_thin(fc.w[n], np.abs(fc.S[n] - fc.T[n])), color=col, lw=1.5, label=f"|S - T| {lab}")
+        ax.semilogx(*_thin(fc.w[n], np.abs(fc.S[n] - fc.T[n])), color=col, lw=1.5,
+                    label=f"|S - T| {lab}")
     a = _alpha_from_limit(req.metric, req.limit_value)
     if a > 0:
         ax.axhline(2.0 / a, color=PALETTE["limit"], ls="--", lw=1.3,
                    label=f"bound 2/alpha = {_num(2 / a)} for limit {req.limit_text}")
     _freq_range(ax, fc, curves.variants)
-    _fit_log_y(ax)
+    ax.set_ylim(bottom=0.0)
     ax.set_xlabel("frequency w (rad/s)")
     ax.set_ylabel("|S - T| (ratio)")
     ax.set_title("Balanced disk margin: alpha = 2 / max |S - T|")
@@ -392,7 +394,12 @@ def _draw_poles(fig, curves, req, res, worst):
     for (n, lab, col), mk in zip(_labels(curves, worst), ("x", "+")):
         p = poles[n]
         ax.plot(p.real, p.imag, mk, color=col, ms=8, mew=1.6, label=f"closed-loop poles, {lab}")
-    span = float(np.max(np.abs(allp))) * 1.1 or 1.0
+    mags = np.abs(allp[allp != 0])
+    near = mags[mags <= 20.0 * mags.min()] if mags.size else np.ones(1)
+    span = float(near.max()) * 1.3 or 1.0
+    hidden = int(sum(np.sum(np.abs(p) > span) for p in poles.values()))
+    if hidden:
+        ax.plot([], [], " ", label=f"{hidden} faster pole(s) beyond the frame")
     ax.axvline(0.0, color=PALETTE["extra"], lw=0.8, label="imaginary axis")
     lim, m = req.limit_value, req.metric
     if m == "min_damping" and 0 <= lim <= 1:
@@ -405,6 +412,7 @@ def _draw_poles(fig, curves, req, res, worst):
         ax.axvline(-lim, color=PALETTE["limit"], ls="--", lw=1.3,
                    label=f"decay-rate limit {req.limit_text}")
     ax.set_xlim(-span, span * 0.3)
+    ax.set_ylim(-span, span)
     ax.set_xlabel("real part (1/s)")
     ax.set_ylabel("imaginary part (rad/s)")
     ax.set_title("Closed-loop poles" + (" (discrete: s = ln z / Ts)" if curves.assembly.dt else ""))
@@ -429,6 +437,7 @@ def entry_figure(curves, requirement, result, *, width_in: float = 10.0,
     LedgerError
         The curves cannot be computed (for example an unstable loop's step response).
     """
+    require("matplotlib")
     from matplotlib.figure import Figure
 
     kind = figure_kind(requirement.metric)

@@ -21,7 +21,7 @@ import hashlib
 import re
 from pathlib import Path
 
-from .rows import matrix_rows, write_atomic
+from .rows import require, matrix_rows, write_atomic
 
 __all__ = ["REQIF_NS", "export_reqif", "reqif_tree", "reqif_identifier", "REQIF_ATTRIBUTES"]
 
@@ -46,7 +46,7 @@ def _stamp(dt) -> str:
 
 def reqif_tree(matrix):
     """The ReqIF document as an lxml element tree."""
-    from lxml import etree
+    etree = require("lxml.etree")
 
     N = "{%s}" % REQIF_NS
 

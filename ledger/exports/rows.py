@@ -20,7 +20,7 @@ from typing import Callable
 
 from ..errors import ComputeError, LedgerError
 
-__all__ = ["SCHEMA_VERSION", "COLUMNS", "VERDICT_ORDER", "ExportRow", "matrix_rows",
+__all__ = ["require", "SCHEMA_VERSION", "COLUMNS", "VERDICT_ORDER", "ExportRow", "matrix_rows",
            "number_text", "parse_number", "write_atomic", "verdict_counts"]
 
 #: Version of the CSV/JSON record layout (docs/exports.md); bump on any incompatible change.
@@ -109,6 +109,17 @@ def _finite_or_inf(x) -> float | None:
     if math.isnan(x):
         raise ComputeError("a result holds NaN; re-verify the revision to replace it")
     return x
+
+
+def require(module: str):
+    """Import an optional export dependency, or say how to install it."""
+    import importlib
+
+    try:
+        return importlib.import_module(module)
+    except ImportError as e:
+        raise LedgerError(f"this export needs the Python package {module.split('.')[0]!r}; "
+                          "install the extra: pip install 'loopledger[export]'") from e
 
 
 def matrix_rows(matrix) -> list[ExportRow]:

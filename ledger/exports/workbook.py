@@ -13,7 +13,7 @@ import math
 import re
 from pathlib import Path
 
-from .rows import COLUMNS, VERDICT_ORDER, matrix_rows, verdict_counts, write_atomic
+from .rows import require, COLUMNS, VERDICT_ORDER, matrix_rows, verdict_counts, write_atomic
 
 __all__ = ["export_xlsx", "VERDICT_FILLS", "sheet_name"]
 
@@ -70,6 +70,7 @@ def export_xlsx(matrix, path) -> Path:
     -------
     Path
     """
+    require("openpyxl")
     from openpyxl import Workbook
     from openpyxl.styles import Alignment, Font, PatternFill
     from openpyxl.utils import get_column_letter
