@@ -263,7 +263,8 @@ def create_baseline(lg, name: str, *, revisions: Sequence[tuple[str, str]] | Non
         Name of the baseline this one replaces (each baseline is superseded at most once).
     replace : bool
         Refreeze an existing *unsigned* baseline of that name from the ledger as it is now.
-        A signed baseline is never changed.
+        A signed baseline is never changed.  An earlier supersession is kept unless
+        ``supersedes`` names another baseline.
 
     Raises
     ------
@@ -312,7 +313,8 @@ def create_baseline(lg, name: str, *, revisions: Sequence[tuple[str, str]] | Non
                 s.execute(delete(BaselineEntry).where(BaselineEntry.baseline_id == row.id))
                 row.note, row.author, row.matrix_hash, row.created_at = (
                     note or "", author or lg.author, mh, now)
-                row.supersedes_id = sup.id if sup else None
+                if sup is not None:
+                    row.supersedes_id = sup.id
             s.flush()
             rev_id, rv_id, pv_id = _ids(s)
             for c in columns:
