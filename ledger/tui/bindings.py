@@ -7,7 +7,15 @@ from __future__ import annotations
 
 from textual.binding import Binding
 
-__all__ = ["APP", "MATRIX", "REQUIREMENT", "DIFF", "PLOTS", "FORM", "HELP", "ALL"]
+__all__ = ["key_display", "APP", "MATRIX", "REQUIREMENT", "DIFF", "PLOTS", "FORM", "HELP", "ALL"]
+
+_DISPLAY = {"question_mark": "?", "slash": "/", "escape": "esc"}
+
+
+def key_display(key: str) -> str:
+    """How a key name is written for people (``question_mark`` -> ``?``)."""
+    return _DISPLAY.get(key.strip(), key.strip())
+
 
 #: keys that work on every view
 APP = [

@@ -18,7 +18,7 @@ def help_text() -> Text:
     for title, table in bindings.ALL:
         t.append(f"{title}\n", style="bold underline")
         for b in table:
-            keys = ", ".join(k.strip() for k in b.key.split(","))
+            keys = ", ".join(bindings.key_display(k) for k in b.key.split(","))
             t.append(f"  {keys:<28} {b.description}\n")
         t.append("\n")
     t.append("Inside lists and tables\n", style="bold underline")
