@@ -100,10 +100,10 @@ def stability(assembly: Assembly, *, tol: float = 1e-12, nyquist_points: int = 4
                            reasons=tuple(reasons))
 
 
-def _F(group: LoopGroup, s: np.ndarray) -> np.ndarray:
+def _F(group: LoopGroup, j: int, s: np.ndarray) -> np.ndarray:
+    """``1 + L(s)`` of variant ``j`` of the group at complex points ``s``, shape (1, len(s))."""
     K, Gs, H = group.blocks
-    KH = K(s) * H(s) * np.exp(-s * group.tau)
-    return 1.0 + np.stack([G(s) for G in Gs]) * KH[None, :]
+    return (1.0 + Gs[j](s) * K(s) * H(s) * np.exp(-s * group.tau))[None, :]
 
 
 def _refine(path, t: np.ndarray, F_of, max_refine: int, max_step: float):
@@ -166,7 +166,7 @@ def nyquist_unstable_count(group: LoopGroup, *, points: int = 400, max_refine: i
         eps = 1e-6 * scale if gaps.size == 0 else min(1e-6 * scale, 0.01 * float(np.min(gaps)))
 
         def F_of(s, _j=j):
-            return _F(group, np.asarray(s, dtype=complex))[_j:_j + 1]
+            return _F(group, _j, np.asarray(s, dtype=complex))
 
         w_top = 1e3 * scale
         if group.tau > 0:
