@@ -84,6 +84,11 @@ class ColumnCurves:
     assembly: object
     output_unit: str = ""
     input_unit: str = ""
+    #: Time-grid settings for display (looser than verification: samples stay exact for
+    #: delay-free loops; the method of steps for delays is accurate to about 1e-3 relative).
+    grid: dict = field(default_factory=lambda: {"settle_factor": 10.0, "points_per_period": 16.0,
+                                                "delay_rtol": 1e-3, "max_samples": 100_000,
+                                                "tail_rtol": 1e-4})
     _steps: dict = field(default_factory=dict)
     _freq: FreqCurves | None = None
 
@@ -103,7 +108,7 @@ class ColumnCurves:
         if key not in self._steps:
             t, y, fin = {}, {}, {}
             for g in self.assembly.groups:
-                sr = step_response(g.paths[path], amplitude=amplitude, max_samples=20_000)
+                sr = step_response(g.paths[path], amplitude=amplitude, **self.grid)
                 for j, i in enumerate(np.asarray(g.index)):
                     name = self.variants[int(i)]
                     t[name], y[name], fin[name] = sr.t, sr.y[j], float(sr.final[j])
