@@ -33,8 +33,8 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.linalg
 
-from ledger.engine.timegrid import (Pieces, check_stable, equilibrium, has_delay, mats,
-                                    simulate)
+from ledger.engine.timegrid import (Pieces, balance, check_stable, equilibrium, expm_batch,
+                                    has_delay, mats, simulate)
 from ledger.engine.types import SSBatch
 from ledger.errors import ComputeError
 
@@ -135,7 +135,7 @@ class _Problems:
         """y, y', y'' at ``t_k + s`` for the problems ``idx``."""
         v, k = self.v[idx], self.k[idx]
         Mv = self.M[v]
-        E = scipy.linalg.expm(Mv * s[:, None, None])
+        E = expm_batch(Mv * s[:, None, None])
         Z = np.einsum("pab,pb->pa", E, self.Z0[v, k])
         MZ = np.einsum("pab,pb->pa", Mv, Z)
         MMZ = np.einsum("pab,pb->pa", Mv, MZ)
@@ -272,7 +272,7 @@ def evaluate_at(sys: SSBatch, t_points, *, amplitude: float = 1.0) -> np.ndarray
     if sys.dt is not None or has_delay(sys):
         raise ComputeError("evaluate_at needs a continuous system without internal delay;"
                            " use step_response for discrete or delayed loops")
-    A, B, C, D = mats(sys)
+    A, B, C, D = mats(balance(sys))
     V, n = A.shape[0], A.shape[1]
     tp = np.asarray(t_points, dtype=float).ravel() - float(sys.io_delay or 0.0)
     M = np.zeros((V, n + 1, n + 1))
