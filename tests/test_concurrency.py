@@ -76,18 +76,11 @@ def test_concurrent_writers_lose_nothing(db_url):
     retries = sum(o[2] for o in outcomes)
     print(f"\n{WRITERS} writers x ({REVISIONS_EACH} revisions + {EDITS_EACH} requirement "
           f"versions): nothing lost; {retries} bounded retries on {db_url.split(':')[0]}")
-    audit = getattr(__import__("ledger.audit", fromlist=["x"]), "audit_ledger", None) \
-        if _has_module("ledger.audit") else None
-    if audit is not None:
-        report = audit(lg)
-        assert report.ok, report
+    from ledger.audit import audit
+
+    report = audit(lg)
+    assert report.ok, report
     lg.close()
-
-
-def _has_module(name: str) -> bool:
-    import importlib.util
-
-    return importlib.util.find_spec(name) is not None
 
 
 SCRIPT = r"""
