@@ -333,3 +333,20 @@ def test_every_metric_is_documented():
     for name, mdef in METRICS.items():
         assert f"`{name}`" in text, name
         assert mdef.better in ("higher", "lower") and mdef.unit is not None
+
+
+def test_digital_loop_with_fractional_delay_converges_to_continuous():
+    # Internal invariant: with an exactly discretised fractional input delay, the digital
+    # loop's phase margin approaches the continuous delayed loop's as Ts -> 0; the extra lag of
+    # the hold (Tustin controller, ZOH plant) is about wc Ts / 2 rad (common practice, no
+    # source).  Rounding the delay to whole samples would be off by up to wc Ts / 2 as well.
+    G = control.tf([1], [0.02, 1, 0])
+    C = control.tf([1.5, 30.0], [0.005, 1])
+    tau = 0.0061
+    mc = measure(G, C, ["phase_margin", "gain_crossover"], delay=tau)
+    wc = mc["gain_crossover"]
+    for ts in (4e-3, 1e-3, 2.5e-4):  # 1.525, 6.1 and 24.4 samples of delay
+        md = measure(G, C, ["phase_margin"], delay=tau, sample_time=ts,
+                     controller_discretization="tustin")
+        lag = math.degrees(wc * ts / 2)
+        assert_allclose(mc["phase_margin"] - md["phase_margin"], lag, rtol=0.03)
