@@ -369,3 +369,78 @@ def test_cli_export_matrix(book, tmp_path, monkeypatch):
     assert [(c["loop"], c["revision"]) for c in doc["revisions"]] == [("pz", "r1"), ("pz", "r2")]
     res = CliRunner().invoke(app, ["export-matrix", str(tmp_path / "x.csv"), "--revision", "pz"])
     assert res.exit_code == 1 and "LOOP:LABEL" in res.output
+
+
+def _req(metric, limit_value, limit_text, settings=None):
+    """A requirement record for drawing only (not stored)."""
+    from datetime import datetime, timezone
+
+    from ledger.records import RequirementInfo
+
+    return RequirementInfo(key="T-1", version=1, title="t", statement="s", rationale="",
+                           method="analysis", status="approved", metric=metric,
+                           settings=settings or {}, comparator="<=", limit_value=limit_value,
+                           limit_text=limit_text, unit="", parents=(), loops=("pz",),
+                           author="t", note="", content_hash="", created_at=datetime.now(timezone.utc))
+
+
+def test_every_metric_gets_a_labelled_figure(book):
+    """Each metric of the catalogue draws without error, with axis labels, units and a legend."""
+    from ledger.engine.metrics import METRICS
+    from ledger.exports.evidence import column_curves
+    from ledger.exports.plots import entry_plot
+
+    cc = column_curves(book, "pz", "r2", worst={"corner:K-,tau_m+"})
+    assert cc.variants == ("nominal", "corner:K-,tau_m+")
+    res = {r.requirement: r for r in book.results("pz", "r2")}["PZ-1"]
+    for name, d in METRICS.items():
+        settings = {"frequency": 20.0} if dict(d.settings).get("frequency", 0) is None else {}
+        fig = entry_plot(cc, _req(name, 0.5, "<= 0.5", settings), res)
+        for ax in fig.axes:
+            assert "(" in ax.get_xlabel() and ")" in ax.get_xlabel(), (name, ax.get_xlabel())
+            assert ax.get_ylabel(), name
+            texts = [t.get_text() for t in ax.get_legend().get_texts()]
+            assert any("nominal" in t for t in texts), (name, texts)
+
+
+def test_limits_drawn_where_the_definitions_put_them(book):
+    """Overshoot line at y_final (1 + limit/100), settling band at y_final (1 +- band), Ms line
+    at the limit, disk-margin bound 2/alpha."""
+    import control
+
+    from ledger.exports.evidence import column_curves
+    from ledger.exports.plots import entry_plot
+
+    cc = column_curves(book, "pz", "r2", worst=set())
+    res = {r.requirement: r for r in book.results("pz", "r2")}
+    s = control.tf("s")
+    L = (0.6 + 4 / s + 0.004 * s / (0.0008 * s + 1)) * 180.0 / (s * (0.03 * s + 1))
+    # Source: final-value theorem, evaluated by python-control dcgain of T = L/(1+L) (= 1 for
+    # an integrating loop)
+    yf = float(control.dcgain(control.feedback(L, 1)))
+
+    def line(fig, start):
+        for ax in fig.axes:
+            for ln in ax.get_lines():
+                if ln.get_label().startswith(start):
+                    return ln
+        raise AssertionError(f"no line labelled {start!r}")
+
+    fig = entry_plot(cc, _req("overshoot", 20.0, "<= 20 %"), res["PZ-3"])
+    assert_allclose(line(fig, "overshoot limit").get_ydata(), [yf * 1.2] * 2, rtol=1e-9)
+    fig = entry_plot(cc, _req("settling_time", 0.06, "<= 60 ms"), res["PZ-2"])
+    assert_allclose(line(fig, "settling-time limit").get_xdata(), [0.06] * 2, rtol=1e-12)
+    assert_allclose(line(fig, "settling time (ledger").get_xdata(), [res["PZ-2"].value] * 2,
+                    rtol=1e-12)
+    band = next(p for ax in fig.axes for p in ax.patches if "settling band" in p.get_label())
+    ys = band.get_transform().transform(band.get_path().vertices)[:, 1]
+    ys = fig.axes[0].transData.inverted().transform(
+        np.column_stack([np.zeros_like(ys), ys]))[:, 1]
+    assert_allclose([ys.min(), ys.max()], [yf * 0.98, yf * 1.02], rtol=1e-9)
+    fig = entry_plot(cc, _req("peak_sensitivity", 1.6, "<= 1.6"), res["PZ-4"])
+    assert_allclose(line(fig, "Ms limit").get_ydata(), [1.6] * 2, rtol=1e-12)
+    # Source: the balanced disk margin alpha = 2 / max|S - T| and its phase interval
+    # 2 atan(alpha/2) (Seiler, Packard and Gahinet, IEEE Control Systems Magazine 2020)
+    fig = entry_plot(cc, _req("disk_phase_margin", 30.0, ">= 30 deg"), res["PZ-1"])
+    alpha = 2 * math.tan(math.radians(30.0) / 2)
+    assert_allclose(line(fig, "bound 2/alpha").get_ydata(), [2 / alpha] * 2, rtol=1e-12)

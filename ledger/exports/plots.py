@@ -24,10 +24,9 @@ import re
 
 import numpy as np
 
-from ..errors import LedgerError
 from .rows import require
 
-__all__ = ["entry_figure", "figure_kind", "PALETTE"]
+__all__ = ["entry_figure", "entry_plot", "figure_kind", "PALETTE"]
 
 #: Colours: nominal, worst variant, limit, ledger value marker, band fill.
 PALETTE = {"nominal": "#1f5fa8", "worst": "#c2410c", "limit": "#7a1f1f", "value": "#2f6f3e",
@@ -309,7 +308,8 @@ def _draw_bode(fig, curves, req, res, worst):
         _freq_range(ax, fc, curves.variants)
     axm.set_ylabel("|L| (dB)")
     axp.set_ylabel("phase of L (deg)")
-    axp.set_xlabel("frequency w (rad/s)")
+    for ax in (axm, axp):
+        ax.set_xlabel("frequency w (rad/s)")
     axm.set_title("Loop gain L (Bode): crossovers and margins marked")
     for ax in (axm, axp):
         ax.grid(True, which="both", alpha=0.3)
@@ -419,9 +419,9 @@ def _draw_poles(fig, curves, req, res, worst):
     ax.grid(True, alpha=0.3)
 
 
-def entry_figure(curves, requirement, result, *, width_in: float = 10.0,
-                 height_in: float = 3.8) -> str:
-    """The evidence figure of one entry as inline SVG text.
+def entry_plot(curves, requirement, result, *, width_in: float = 10.0,
+               height_in: float = 3.8):
+    """The evidence figure of one entry as a matplotlib ``Figure`` (no pyplot state).
 
     Parameters
     ----------
@@ -466,4 +466,9 @@ def entry_figure(curves, requirement, result, *, width_in: float = 10.0,
     else:
         _draw_bode(fig, curves, requirement, result, worst)
     _finish(fig, fig.axes)
-    return _svg(fig)
+    return fig
+
+
+def entry_figure(curves, requirement, result, **size) -> str:
+    """The evidence figure of one entry as inline SVG text (see :func:`entry_plot`)."""
+    return _svg(entry_plot(curves, requirement, result, **size))
