@@ -448,22 +448,22 @@ class Pieces:
     exact: np.ndarray | None = None  # (V, N-1) True where te, ye are refined (or absent)
 
 
-def _propagate(E: np.ndarray, z0: np.ndarray, nsteps: int) -> np.ndarray:
-    """States ``E^k z0`` for k = 0..nsteps, blocked: (V, nsteps+1, m)."""
-    V, m = z0.shape
-    out = np.empty((V, nsteps + 1, m))
-    out[:, 0] = z0
+def _propagate(E: np.ndarray, out: np.ndarray) -> None:
+    """Fill ``out[:, k] = E^k out[:, 0]`` for k >= 1, in blocks of powers: out (V, K+1, m)."""
+    V, K1, m = out.shape
+    nsteps = K1 - 1
+    if nsteps <= 0:
+        return
     b = max(1, min(nsteps, int(math.sqrt(nsteps)) + 1))
-    P = np.empty((b, V, m, m))
-    P[0] = E
+    P = np.empty((V, b, m, m))
+    P[:, 0] = E
     for j in range(1, b):
-        P[j] = P[j - 1] @ E
+        P[:, j] = P[:, j - 1] @ E
     k = 0
     while k < nsteps:
         j = min(b, nsteps - k)
-        out[:, k + 1:k + 1 + j] = np.moveaxis((P[:j] @ out[:, k, :, None])[..., 0], 0, 1)
+        out[:, k + 1:k + 1 + j] = (P[:, :j] @ out[:, k, None, :, None])[..., 0]
         k += j
-    return out
 
 
 def _sim_nodelay(sys: SSBatch, u: float, grid: TimeGrid):
@@ -473,9 +473,10 @@ def _sim_nodelay(sys: SSBatch, u: float, grid: TimeGrid):
     M[:, :n, :n] = A
     M[:, :n, n] = B
     Cy = np.concatenate([C, D[:, None]], axis=1)
-    z = np.zeros((V, n + 1))
-    z[:, n] = u
-    parts = [z[:, None, :]]
+    Z = np.empty((V, grid.nsamples, n + 1))                 # augmented states at the samples
+    Z[:, 0, :n] = 0.0
+    Z[:, 0, n] = u
+    k = 0
     for h, count in grid.segments:
         if sys.dt is not None:
             E = np.zeros_like(M)
@@ -484,13 +485,14 @@ def _sim_nodelay(sys: SSBatch, u: float, grid: TimeGrid):
             E[:, n, n] = 1.0
         else:
             E = expm_batch(M * h)
-        blk = _propagate(E, parts[-1][:, -1], count)
-        parts.append(blk[:, 1:])
-    Z = np.concatenate(parts, axis=1)                       # (V, N, m)
-    y = (Z @ Cy[:, :, None])[..., 0]
+        _propagate(E, Z[:, k:k + count + 1])
+        k += count
     if sys.dt is not None:
+        y = (Z @ Cy[:, :, None])[..., 0]
         return M, Cy, Z[:, :-1], y[:, :-1], y[:, 1:], None, None, Z[:, -1, :n]
-    dy = (Z @ np.einsum("vm,vmk->vk", Cy, M)[:, :, None])[..., 0]
+    W = np.stack([Cy, np.einsum("vm,vmk->vk", Cy, M)], axis=2)     # (V, m, 2): y and y'
+    yd = Z @ W
+    y, dy = yd[..., 0], yd[..., 1]
     return M, Cy, Z[:, :-1], y[:, :-1], y[:, 1:], dy[:, :-1], dy[:, 1:], Z[:, -1, :n]
 
 
