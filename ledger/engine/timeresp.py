@@ -84,6 +84,7 @@ def final_value(sys: SSBatch, amplitude: float = 1.0, *, singular_rcond: float =
     return y
 
 
+# --------------------------------------------------------------------------- refinement
 def _refine(p: Pieces, levels=(), near_extremes: bool = True, margin: float = 1e-2) -> None:
     """Refine, in place, the estimated extrema that can change a metric.
 
@@ -122,7 +123,6 @@ def _refine(p: Pieces, levels=(), near_extremes: bool = True, margin: float = 1e
     p.exact[vi, ki] = True
 
 
-# --------------------------------------------------------------------------- refinement
 @dataclass(frozen=True)
 class _Problems:
     M: np.ndarray
@@ -181,8 +181,9 @@ def _solve(P: _Problems, lo, hi, f_lo, f_hi, level, *, order: int, xtol: float =
                (hi[active] - lo[active] <= tol[active])
         s[active] = np.where(f == 0, s[active], new)
         active = active[~done]
-    else:
-        raise ComputeError("refinement of a crossing did not converge; report this system")
+    if active.size:
+        raise ComputeError("refinement of a crossing or extremum did not converge in"
+                           f" {maxiter} steps; report this system")
     val = P.eval(np.arange(s.size), s)[0] if s.size else s
     return s, val
 
