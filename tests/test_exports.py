@@ -266,6 +266,8 @@ def test_html_figures_caution_escaping(report):
     for bad in ("<script", "<link", " src=\"http", "@import", "url(http"):
         assert bad not in text
     assert "break-before: page" in text and "@media print" in text
+    # the evidence heading starts a printed page and the first section follows it directly
+    assert ".evidence-head + .evidence { break-before: auto;" in text
     for e in with_metric:
         assert f"{e.requirement.key} v{e.requirement.version}" in text
 

@@ -48,7 +48,8 @@ table.fields th { width: 150px; }
 .evidence { margin-top: 26px; border-top: 1px solid #bbb; padding-top: 10px; }
 @media print {
   body { margin: 0; font-size: 10pt; }
-  .evidence { break-before: page; page-break-before: always; border-top: none; }
+  .evidence, .evidence-head { break-before: page; page-break-before: always; border-top: none; }
+  .evidence-head + .evidence { break-before: auto; page-break-before: auto; }
   .figure, table { break-inside: avoid; page-break-inside: avoid; }
   h2, h3 { break-after: avoid; page-break-after: avoid; }
   .caution { -webkit-print-color-adjust: exact; print-color-adjust: exact; }
@@ -175,9 +176,10 @@ def render_html(matrix, lg) -> str:
            f"<div class='caution'>Caution: {_e(matrix.caution)}</div>"]
     out += _summary(matrix, rows)
     out += _matrix_table(matrix)
-    out.append("<h2>Evidence</h2><p class='meta'>One section per entry: the ledger's result "
-               "and the curves of the nominal plant and the worst variant, recomputed from the "
-               "revision for display (the verdict is the ledger's).</p>")
+    out.append("<div class='evidence-head'><h2>Evidence</h2><p class='meta'>One section per "
+               "entry: the ledger's result and the curves of the nominal plant and the worst "
+               "variant, recomputed from the revision for display (the verdict is the "
+               "ledger's).</p></div>")
     cache: dict = {}
     for entry, row in zip(matrix.entries, rows):
         key = (entry.loop, entry.revision.label)

@@ -95,7 +95,7 @@ def _finish(fig, axes) -> None:
                 axis.set_major_formatter(FuncFormatter(lambda v, _: f"{v:g}"))
                 axis.set_minor_locator(NullLocator())
         if ax.get_legend_handles_labels()[0]:
-            ax.legend(loc="upper left", bbox_to_anchor=(1.02, 1.0), fontsize=7.5,
+            ax.legend(loc="upper left", bbox_to_anchor=(1.02, 1.0), fontsize=8.5,
                       borderaxespad=0.0, frameon=False)
     fig.subplots_adjust(left=0.09, right=0.60, bottom=0.12, top=0.90, hspace=0.35)
 
