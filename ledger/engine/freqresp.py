@@ -16,6 +16,7 @@ discrete ones at ``z = exp(jw dt)`` for ``0 <= w <= pi/dt``.
 from __future__ import annotations
 
 import math
+import weakref
 from dataclasses import dataclass
 
 import numpy as np
@@ -30,6 +31,7 @@ __all__ = [
     "peak_gain",
     "bandwidth",
     "estimate_delay",
+    "loop_pairwise",
     "Margins",
     "DiskMargin",
     "margins",
@@ -39,6 +41,21 @@ __all__ = [
 ]
 
 _TINY = 1e-300
+
+# per-FreqBatch memo of the default grid, delay estimate and crossing set-up (a FreqBatch is
+# immutable, and margins, encirclements and disk margins all start from the same grid)
+_CACHE: "weakref.WeakKeyDictionary" = weakref.WeakKeyDictionary()
+
+
+# values of the last adaptive-refinement pass (grid, H), so a caller can reuse them
+_LAST_VALUES: list = [None]
+
+
+def _memo(fb) -> dict:
+    try:
+        return _CACHE.setdefault(fb, {})
+    except TypeError:          # not weak-referenceable: no memo
+        return {}
 
 
 # ----------------------------------------------------------------------------------------------
@@ -129,6 +146,11 @@ def estimate_delay(fb: FreqBatch, *, w_start: float | None = None, w_stop: float
     ndarray (V,)
         Delay in seconds, >= 0 (0 for discrete loops, whose delays are poles at z = 0).
     """
+    if w_start is None and w_stop is None:
+        memo = _memo(fb)
+        if "tau" not in memo:
+            memo["tau"] = _estimate_delay(fb.evaluate, fb.dt, fb.poles, fb.zeros)
+        return memo["tau"].copy()
     return _estimate_delay(fb.evaluate, fb.dt, fb.poles, fb.zeros, w_start=w_start, w_stop=w_stop)
 
 
@@ -187,20 +209,25 @@ class _Sampler:
     when each variant needs its own points.  So each variant's response is also written as
     ``c exp(-jw tau) prod(x - z) / prod(x - p)`` (``x = jw`` or ``exp(jw dt)``) from its poles,
     zeros and estimated delay, with ``c`` fitted at one grid point; the model is used for a
-    variant only if it reproduces the evaluator to ``model_rtol`` (relative) at every grid point
-    where ``1e-6 <= |H| <= 1e6``.  Other variants (e.g. S of a delayed loop, not of that form)
+    variant only if it reproduces the evaluator to ``model_rtol`` (relative) at ``check_points``
+    grid points spread over the grid, wherever ``1e-6 <= |H| <= 1e6`` there.  Other variants (e.g. S of a delayed loop, not of that form)
     are evaluated by the batch evaluator, picking the wanted entries.
     """
 
-    def __init__(self, evaluate, dt, poles, zeros, w, H, *, model_rtol: float = 1e-9):
+    def __init__(self, evaluate, dt, poles, zeros, w, H, *, model_rtol: float = 1e-10, tau=None,
+                 check_points: int = 256):
         self.evaluate, self.dt, self.nvar = evaluate, dt, len(poles)
         self.P, self.Pm = _pad(poles)
         self.Z, self.Zm = _pad(zeros)
-        self.tau = _estimate_delay(evaluate, dt, poles, zeros)
+        self.tau = _estimate_delay(evaluate, dt, poles, zeros) if tau is None else np.asarray(tau)
         V = self.nvar
         self.logc = np.zeros(V, complex)
         self.ok = np.zeros(V, bool)
         w = np.asarray(w, float)
+        if w.size > check_points:
+            # the model is checked on check_points grid points spread over the whole grid
+            pick = np.unique(np.linspace(0, w.size - 1, check_points).round().astype(int))
+            w, H = w[pick], H[:, pick]
         n = w.size
         m = max(1, self.P.shape[1] + self.Z.shape[1])
         chunk = max(1, int(2_000_000 // (n * m)))
@@ -443,6 +470,7 @@ def _refine_adaptively(evaluate, w, nvar, axis_w, *, phase_step, passes, max_poi
                 if 0 < i < w.size:
                     bad[i - 1] = False
         if not bad.any() or w.size + bad.sum() > max_points:
+            _LAST_VALUES[0] = (w, h)
             break
         mids = 0.5 * (w[:-1][bad] + w[1:][bad])
         w = np.unique(np.concatenate([w, mids]))
@@ -497,11 +525,25 @@ def frequency_grid(fb: FreqBatch, *, points_per_decade: int = 40, w_min: float |
     ndarray
         Sorted, unique frequencies in rad/s.
     """
+    defaults = (points_per_decade, w_min, w_max, resonance_zeta, phase_step, axis_tol,
+                max_points, refine_passes) == (40, None, None, 0.3, 0.35, 1e-9, 200_000, 6)
+    memo = _memo(fb) if defaults else {}
+    if "grid" in memo:
+        return memo["grid"]
     delay = estimate_delay(fb) if fb.dt is None else None
-    return _grid(fb.evaluate, fb.dt, fb.poles, fb.zeros, points_per_decade=points_per_decade,
+    _LAST_VALUES[0] = None
+    w = _grid(fb.evaluate, fb.dt, fb.poles, fb.zeros, points_per_decade=points_per_decade,
                  w_min=w_min, w_max=w_max, resonance_zeta=resonance_zeta, delay=delay,
                  axis_tol=axis_tol, max_points=max_points, phase_step=phase_step,
                  refine_passes=refine_passes, extend_for_loop=True)
+    w.flags.writeable = False
+    if defaults:
+        memo["grid"] = w
+        last = _LAST_VALUES[0]
+        if last is not None and last[0].shape == w.shape and np.array_equal(last[0], w):
+            memo["grid_values"] = last[1]
+    _LAST_VALUES[0] = None
+    return w
 
 
 # ----------------------------------------------------------------------------------------------
@@ -545,12 +587,61 @@ def _roots_on_grid(G: np.ndarray, fun, w: np.ndarray, mask: np.ndarray, *, xrtol
 
 
 def _crossing_setup(fb: FreqBatch, grid):
-    w = frequency_grid(fb) if grid is None else np.asarray(grid, float)
+    """Grid, boundary-pole mask, L on the grid and the pairwise sampler of L (memoised for the
+    default grid)."""
+    memo = _memo(fb)
+    default = frequency_grid(fb)
+    if grid is None or grid is default:
+        if "setup" in memo:
+            return memo["setup"]
+        grid = default
+    w = np.asarray(grid, float)
     axis = _axis_roots(fb.poles, fb.dt, axis_tol=1e-9)
     mask = _pole_interval_mask(w, axis, fb.nvar)
-    L = _call(fb.evaluate, w, fb.nvar)
-    smp = _Sampler(fb.evaluate, fb.dt, fb.poles, fb.zeros, w, L)
-    return w, mask, L, smp
+    L = memo.get("grid_values") if w is default else None
+    if L is None:
+        L = _call(fb.evaluate, w, fb.nvar)
+    tau = estimate_delay(fb) if fb.dt is None else None
+    smp = _Sampler(fb.evaluate, fb.dt, fb.poles, fb.zeros, w, L, tau=tau)
+    out = (w, mask, L, smp)
+    if w is default:
+        memo["setup"] = out
+    return out
+
+
+def loop_pairwise(fb: FreqBatch, kind: str = "L"):
+    """Fast pairwise evaluator of a loop function, for ``peak_gain(..., pairwise=...)``.
+
+    Parameters
+    ----------
+    fb : FreqBatch
+        The loop gains.
+    kind : {"L", "S", "T", "S-1/2"}
+        ``L``, ``S = 1/(1+L)``, ``T = L/(1+L)`` or ``S - 1/2 = (1-L)/(2(1+L))``.
+
+    Returns
+    -------
+    callable
+        ``at(vi, w) -> complex (K,)``: the function of variant ``vi[k]`` at ``w[k]`` rad/s,
+        from the verified rational-and-delay model of L (see ``_Sampler``) where it holds, else
+        from ``fb.evaluate``.  At a pole of L the limits (S = 0, T = 1, S - 1/2 = -1/2) are used.
+    """
+    if kind not in ("L", "S", "T", "S-1/2"):
+        raise ValueError(f"unknown loop function {kind!r}; use 'L', 'S', 'T' or 'S-1/2'")
+    smp = _crossing_setup(fb, None)[3]
+
+    def at(vi, x):
+        lv = smp.at(vi, x)
+        if kind == "L":
+            return lv
+        fin = np.isfinite(lv)
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            if kind == "S":
+                return np.where(fin, 1.0 / (1.0 + lv), 0.0)
+            if kind == "T":
+                return np.where(fin, lv / (1.0 + lv), 1.0)
+            return np.where(fin, (1.0 - lv) / (2.0 * (1.0 + lv)), -0.5)
+    return at
 
 
 def _gain_crossings(smp, w, mask, L, xrtol):
@@ -689,12 +780,18 @@ def peak_gain(evaluate, dt, poles, zeros, *, w_range: tuple[float, float] = (0.0
     # poles on the axis inside the range: infinite peak, if |H| really grows there (a listed
     # pole may be cancelled, e.g. an open-loop integrator listed among the features of S)
     wref = float(w[w > 0][0]) if np.any(w > 0) else 1.0
-    for ar in _axis_roots(poles, dt, axis_tol=1e-9):
-        if lo <= ar.w <= hi and not at_pole[ar.variant]:
+    cands = [ar for ar in _axis_roots(poles, dt, axis_tol=1e-9) if lo <= ar.w <= hi]
+    if cands:
+        pts = []
+        for ar in cands:
             d = max(ar.w, wref)
             side = -1.0 if (dt is not None and ar.w >= math.pi / dt * (1 - 1e-12)) else 1.0
-            near = np.abs(_call(evaluate, [ar.w + side * 1e-6 * d, ar.w + side * 1e-8 * d],
-                                nvar)[ar.variant])
+            pts.append((ar.w + side * 1e-6 * d, ar.w + side * 1e-8 * d))
+        pts = np.array(pts)
+        uw, inv = np.unique(pts.ravel(), return_inverse=True)
+        vals = np.abs(_call(evaluate, uw, nvar))
+        for j, ar in enumerate(cands):
+            near = vals[ar.variant, inv.reshape(-1, 2)[j]]
             if not np.all(np.isfinite(near)) or near[1] > 10.0 * near[0]:
                 peak[ar.variant], wpk[ar.variant] = math.inf, ar.w
                 at_pole[ar.variant] = True

@@ -103,13 +103,12 @@ class DiskMargin:
     frequency: np.ndarray
 
 
-def _values_at(fb: FreqBatch, per_variant: list[np.ndarray]) -> list[np.ndarray]:
-    """L at each variant's own frequencies, from one batched evaluation."""
-    allw = np.unique(np.concatenate([np.asarray(c, float) for c in per_variant] + [np.empty(0)]))
-    if allw.size == 0:
-        return [np.empty(0, complex) for _ in per_variant]
-    L = _fr._call(fb.evaluate, allw, fb.nvar)
-    return [L[v, np.searchsorted(allw, c)] for v, c in enumerate(per_variant)]
+def _values_at(smp, per_variant: list[np.ndarray]) -> list[np.ndarray]:
+    """L at each variant's own frequencies, evaluated pairwise."""
+    vi = np.concatenate([np.full(np.size(c), v, int) for v, c in enumerate(per_variant)]
+                        + [np.empty(0, int)])
+    vals = smp.at(vi, np.concatenate([np.asarray(c, float) for c in per_variant] + [np.empty(0)]))
+    return [vals[vi == v] for v in range(len(per_variant))]
 
 
 def margins(fb: FreqBatch, *, grid: np.ndarray | None = None, xrtol: float = 1e-14) -> Margins:
@@ -124,11 +123,11 @@ def margins(fb: FreqBatch, *, grid: np.ndarray | None = None, xrtol: float = 1e-
     xrtol : float
         Relative frequency tolerance of the crossover refinement.
     """
-    w = _fr.frequency_grid(fb) if grid is None else np.asarray(grid, float)
-    pcs = _fr.phase_crossovers(fb, grid=w, xrtol=xrtol)
-    gcs = _fr.gain_crossovers(fb, grid=w, xrtol=xrtol)
-    lp = _values_at(fb, pcs)
-    lg = _values_at(fb, gcs)
+    w, mask, L, smp = _fr._crossing_setup(fb, grid)
+    pcs = _fr._phase_crossovers_from(fb, smp, w, mask, L, xrtol)
+    gcs = _fr._gain_crossings(smp, w, mask, L, xrtol)
+    lp = _values_at(smp, pcs)
+    lg = _values_at(smp, gcs)
     V = fb.nvar
     gm, gml = np.full(V, math.inf), np.full(V, -math.inf)
     wpc, wpcl = np.full(V, math.inf), np.full(V, math.inf)
@@ -197,27 +196,27 @@ def encirclements(fb: FreqBatch, *, grid: np.ndarray | None = None, marginal_tol
     ndarray (V,) of int
     """
     V, dt = fb.nvar, fb.dt
-    w0 = _fr.frequency_grid(fb) if grid is None else np.asarray(grid, float)
     axis = _fr._axis_roots(fb.poles, dt, axis_tol=1e-9)
-    w0, mask0, L0, smp = _fr._crossing_setup(fb, w0)
+    w0, mask0, L0, smp = _fr._crossing_setup(fb, grid)
     roots = _fr._phase_crossings_all(smp, dt, w0, mask0, L0, xrtol)
-    w = np.unique(np.concatenate([w0] + [r for r in roots]))
-    w = _fr._thin(w, 1e-15)
-    mids = 0.5 * (w[:-1] + w[1:])
-    H = _fr._call(fb.evaluate, np.concatenate([w, mids]), V)
-    L, Lm = H[:, :w.size], H[:, w.size:]
-    mask = _fr._pole_interval_mask(w, axis, V)
+    w, mask, L = w0, mask0, L0
+    n = w.size
     F = 1.0 + L
     angF = np.angle(F)
-    sgn = np.sign(Lm.imag)
     wnyq = math.pi / dt if dt is not None else math.inf
+
+    def marginal(v, wv):
+        return ComputeError(f"variant {v}: 1 + L vanishes near {wv:.6g} rad/s, a closed-loop "
+                            "pole sits on the stability boundary; change the gain or design")
+
     finite = np.isfinite(F)
     small = finite & (np.abs(np.where(finite, F, 1.0)) < marginal_tol)
     if small.any():
         v, i = (int(x[0]) for x in np.nonzero(small))
-        raise ComputeError(f"variant {v}: 1 + L vanishes at {w[i]:.6g} rad/s, a closed-loop "
-                           "pole sits on the stability boundary; change the gain or design")
-    # ordinary intervals: 1 + L stays in the half plane given by the sign of Im L at the middle
+        raise marginal(v, w[i])
+    # an interval without a root of Im L keeps 1 + L in the half plane of its end points
+    im = np.where(np.isfinite(L.imag), L.imag, 0.0)
+    sgn = np.sign(im[:, :-1] + im[:, 1:])
     a0, a1 = angF[:, :-1], angF[:, 1:]
     ok = ~mask
     bad = ok & ~(np.isfinite(a0) & np.isfinite(a1))
@@ -228,12 +227,45 @@ def encirclements(fb: FreqBatch, *, grid: np.ndarray | None = None, marginal_tol
     flat = ok & (sgn == 0)
     cross = flat & (F[:, :-1].real * F[:, 1:].real <= 0)
     if cross.any():
-        # L real on this stretch and 1 + L changes sign: it passes through 0
         v, i = (int(x[0]) for x in np.nonzero(cross))
-        raise ComputeError(f"variant {v}: 1 + L vanishes near {w[i]:.6g} rad/s, a closed-loop "
-                           "pole sits on the stability boundary; change the gain or design")
+        raise marginal(v, w[i])
     with np.errstate(invalid="ignore"):
         step = np.where(ok & ~flat, sgn * (np.abs(a1) - np.abs(a0)), 0.0)
+    # intervals holding roots of Im L: split them at the roots (each variant its own roots,
+    # evaluated pairwise) and take every piece in its own half plane
+    vr = np.concatenate([np.full(r.size, v, int) for v, r in enumerate(roots)] + [np.empty(0, int)])
+    rr = np.concatenate(list(roots) + [np.empty(0)])
+    if rr.size:
+        Fr = 1.0 + smp.at(vr, rr)
+        tiny = np.abs(Fr) < marginal_tol
+        if tiny.any():
+            k = int(np.flatnonzero(tiny)[0])
+            raise marginal(int(vr[k]), rr[k])
+        iv = np.clip(np.searchsorted(w, rr, side="right") - 1, 0, n - 2)
+        key = vr * n + iv
+        first = np.ones(rr.size, bool)
+        first[1:] = key[1:] != key[:-1]
+        last = np.ones(rr.size, bool)
+        last[:-1] = key[:-1] != key[1:]
+        # pieces ending at each root, then the piece from the last root of a group onward
+        sw = np.where(first, w[iv], np.roll(rr, 1))
+        sF = np.where(first, F[vr, iv], np.roll(Fr, 1))
+        ew, eF = rr, Fr
+        sw = np.concatenate([sw, rr[last]])
+        sF = np.concatenate([sF, Fr[last]])
+        ew = np.concatenate([ew, w[iv[last] + 1]])
+        eF = np.concatenate([eF, F[vr[last], iv[last] + 1]])
+        pv = np.concatenate([vr, vr[last]])
+        pk = np.concatenate([iv, iv[last]])
+        mid = smp.at(pv, 0.5 * (sw + ew)).imag
+        ps = np.sign(np.where(np.isfinite(mid), mid, 0.0))
+        flatp = ps == 0
+        if np.any(flatp & (sF.real * eF.real <= 0)):
+            k = int(np.flatnonzero(flatp & (sF.real * eF.real <= 0))[0])
+            raise marginal(int(pv[k]), sw[k])
+        piece = np.where(flatp, 0.0, ps * (np.abs(np.angle(eF)) - np.abs(np.angle(sF))))
+        step[vr, iv] = 0.0
+        np.add.at(step, (pv, pk), piece)
     half = np.sum(step, axis=1)
     total = np.zeros(V)
     # indentations round boundary poles (the contour keeps them on the stable side)
@@ -314,7 +346,7 @@ def disk_margin(fb: FreqBatch, *, grid: np.ndarray | None = None, xrtol: float =
     def ev(x):
         return half_diff(_fr._call(fb.evaluate, x, V))
 
-    smp = _fr._Sampler(fb.evaluate, fb.dt, fb.poles, fb.zeros, w, _fr._call(fb.evaluate, w, V))
+    smp = _fr._crossing_setup(fb, w)[3]
     feats = [np.concatenate([np.ravel(p), np.ravel(z)]) for p, z in zip(fb.poles, fb.zeros)]
     peak, wpk = _fr.peak_gain(ev, fb.dt, [np.empty(0)] * V, feats, grid=w, xrtol=xrtol,
                               pairwise=lambda vi, x: half_diff(smp.at(vi, x)))
