@@ -15,7 +15,6 @@ against is older); the HTML says so for stale entries.
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass, field
 
 import numpy as np
