@@ -391,3 +391,34 @@ def test_badly_scaled_realisation():
     assert_allclose(m1.final_value, control.dcgain(control.feedback(g, 1)), rtol=1e-10)
     for f in ("rise_time", "settling_time", "overshoot", "peak_time"):
         assert_allclose(getattr(m2, f), getattr(m1, f), rtol=1e-9)
+
+
+from hypothesis import given, settings, strategies as st  # noqa: E402
+
+
+@settings(max_examples=8, deadline=None)
+@given(zeta=st.floats(0.05, 1.5), wn=st.floats(0.5, 20.0), p=st.floats(0.2, 50.0),
+       c=st.floats(-0.5, 0.5))
+def test_metrics_against_dense_reference(zeta, wn, p, c):
+    g = wn ** 2 / (s ** 2 + 2 * zeta * wn * s + wn ** 2) * p / (s + p)
+    if abs(c) > 1e-3:                                   # a tiny c only makes a bad numerator
+        g = g * (1 + c * s)
+    b = batch(g)
+    m = step_metrics(b)
+    t_end = 2 * m.settling_time[0] + 30 / min(zeta * wn, p)
+    tt = np.linspace(0, t_end, 20_001)
+    yr = np.ravel(control.step_response(g, T=tt).outputs)
+    dt = tt[1]
+    # Source: python-control step_response on a dense grid (reference library): the sampled
+    # maximum cannot exceed the true supremum, and is within the curvature bound of it.
+    ypp = float(np.max(np.abs(np.diff(yr, 2)))) / dt ** 2
+    assert np.max(yr) <= max(m.peak[0], 1.0) * (1 + 1e-9) + 1e-12
+    if m.overshoot[0] > 0:
+        assert m.peak[0] - np.max(yr) <= ypp * dt ** 2 / 2 + 1e-9
+    # after our settling time every dense sample is inside the 2 % band ...
+    after = tt > m.settling_time[0] * (1 + 1e-9)
+    assert np.all(np.abs(yr[after] - 1.0) <= 0.02 * (1 + 1e-7))
+    # ... and the exact response (scipy expm) is on the band edge at that time (residual).
+    if m.settling_time[0] > 0:
+        y_ts = evaluate_at(b, m.settling_time)[0, 0]
+        assert_allclose(abs(y_ts - 1.0), 0.02, rtol=1e-7)
