@@ -173,9 +173,13 @@ async def test_matrix_view_cells_navigation_and_filters(ledger):
         await press(pilot, "slash", "c", "r", "o", "s", "s", "enter")
         assert [r.key for r in scr.visible_rows()] == ["WC-1"]
         assert table.row_count == 1
+        assert scr.status_filter is None  # the "s" typed into the filter stayed text
         # loop filter cycles to the only loop
         await press(pilot, "l")
         assert scr.loop_filter == "pos"
+        await press(pilot, "t")  # tips only: one column (r2) beside the requirement column
+        assert scr.tips_only and len(table.columns) == 2
+        assert [c.label for c in scr._data.columns] == ["r2"]
 
 
 async def test_requirement_view_detail_and_trend(ledger):

@@ -35,6 +35,7 @@ MATRIX = [
     Binding("slash", "focus_filter", "Filter text"),
     Binding("s", "cycle_status", "Status filter"),
     Binding("l", "cycle_loop", "Loop filter"),
+    Binding("t", "toggle_tips", "Tips only / all revisions"),
     Binding("enter", "open_requirement", "Requirement detail", show=False),
     Binding("escape", "focus_table", "Back to table", show=False),
 ]

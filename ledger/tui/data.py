@@ -82,11 +82,12 @@ def _group_order(reqs: list[RequirementInfo], loops: list[str]) -> list[Requirem
     return sorted(reqs, key=sort_key)
 
 
-def load_matrix(lg, loop: str | None = None) -> MatrixData:
-    """Every revision of ``loop`` (or of every loop) against the requirements with a metric."""
+def load_matrix(lg, loop: str | None = None, *, tips_only: bool = False) -> MatrixData:
+    """Every revision (or each loop's tip) of ``loop`` (or of every loop) against the
+    requirements with a metric."""
     from ..history.matrix import build_matrix
 
-    m = build_matrix(lg, "all", loop=loop)
+    m = build_matrix(lg, "tips" if tips_only else "all", loop=loop)
     loops = [c.loop for c in m.columns]
     loops = list(dict.fromkeys(loops))
     cells = {(e.requirement.key, e.loop, e.revision.label): e.result for e in m.entries}

@@ -25,6 +25,7 @@ class MatrixScreen(ViewScreen):
         self.status_filter: str | None = None
         self.loop_filter: str | None = None
         self.text_filter = ""
+        self.tips_only = False
         self._data = None
 
     def compose(self):
@@ -45,7 +46,7 @@ class MatrixScreen(ViewScreen):
             "where the parent revision passed", style="dim"))
 
     def fetch(self):
-        return load_matrix(self.app.lg, self.loop_filter)
+        return load_matrix(self.app.lg, self.loop_filter, tips_only=self.tips_only)
 
     def present(self, data) -> None:
         self._data = data
@@ -88,7 +89,8 @@ class MatrixScreen(ViewScreen):
                                        broke=(r.key, c.loop, c.label) in d.broke))
             table.add_row(*cells, key=r.key)
         status = Text()
-        status.append(f"loop: {self.loop_filter or 'all'}   status: {self.status_filter or 'all'}"
+        status.append(f"columns: {'tips' if self.tips_only else 'all revisions'}   "
+                      f"loop: {self.loop_filter or 'all'}   status: {self.status_filter or 'all'}"
                       f"   text: {self.text_filter or '-'}   ")
         status.append(f"{len(rows)} of {len(d.rows)} requirement(s), {len(d.columns)} revision(s)",
                       style="dim")
@@ -126,6 +128,10 @@ class MatrixScreen(ViewScreen):
         loops = (None,) + tuple(self._data.loops if self._data else ())
         i = loops.index(self.loop_filter) if self.loop_filter in loops else 0
         self.loop_filter = loops[(i + 1) % len(loops)]
+        self.reload()
+
+    def action_toggle_tips(self) -> None:
+        self.tips_only = not self.tips_only
         self.reload()
 
     def selected(self):
