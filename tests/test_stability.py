@@ -50,6 +50,10 @@ def _pade_unstable(G, C, tau, order=14):
     (control.tf([2], [1, -1]), 1.0, [0.1, 0.5, 0.58, 0.63, 0.9]),       # limit 0.6046
     (control.tf([4], [1, 1.2, 1]), control.tf([1, 1], [0.1, 1]), [0.01, 0.1, 0.3, 0.8]),
     (control.tf([1], [1, 0.2, 1, 0]), 0.1, [0.0, 0.5, 4.0]),
+    # open-loop poles on the imaginary axis (undamped mode, double integrator): the contour
+    # passes them on small half circles
+    (control.tf([1], [1, 0, 1]), control.tf([2, 1], [0.1, 1]), [0.02, 0.3, 0.6, 2.0]),
+    (control.tf([1], [1, 0, 0]), control.tf([2, 1], [0.1, 1]), [0.02, 0.3, 0.6, 2.0]),
 ])
 def test_delayed_loop_nyquist_matches_pade_reference(G, C, delays):
     # Source: reference library -- closed-loop poles of the loop with control.pade(tau, 14);
