@@ -47,10 +47,6 @@ _TINY = 1e-300
 _CACHE: "weakref.WeakKeyDictionary" = weakref.WeakKeyDictionary()
 
 
-# values of the last adaptive-refinement pass (grid, H), so a caller can reuse them
-_LAST_VALUES: list = [None]
-
-
 def _memo(fb) -> dict:
     try:
         return _CACHE.setdefault(fb, {})
@@ -350,8 +346,9 @@ def _vmaximize(fun, vi, a, b, *, xrtol: float, maxiter: int = 300) -> tuple[np.n
 
 def _grid(evaluate, dt, poles, zeros, *, points_per_decade: int, w_min, w_max,
           resonance_zeta: float, delay=None, axis_tol: float, max_points: int,
-          phase_step: float, refine_passes: int, extend_for_loop: bool) -> np.ndarray:
-    """Shared grid builder (see :func:`frequency_grid` for the rule)."""
+          phase_step: float, refine_passes: int, extend_for_loop: bool):
+    """Shared grid builder (see :func:`frequency_grid` for the rule); returns (w, values on w
+    or None)."""
     nvar = len(poles)
     wnyq = math.pi / dt if dt is not None else math.inf
     feats_w, feats_z = [], []
@@ -454,7 +451,10 @@ def _extend_ends(evaluate, dt, poles, zeros, lo, hi, axis, nvar):
 
 def _refine_adaptively(evaluate, w, nvar, axis_w, *, phase_step, passes, max_points):
     """Bisect intervals where any variant's phase turns more than ``phase_step`` rad or its
-    magnitude changes by more than a factor e^phase_step (boundary-pole intervals excluded)."""
+    magnitude changes by more than a factor e^phase_step (boundary-pole intervals excluded).
+
+    Returns the grid and the values on it when the last pass evaluated exactly that grid
+    (else ``None``)."""
     for _ in range(passes):
         h = _call(evaluate, w, nvar)
         with np.errstate(divide="ignore", invalid="ignore"):
@@ -470,11 +470,10 @@ def _refine_adaptively(evaluate, w, nvar, axis_w, *, phase_step, passes, max_poi
                 if 0 < i < w.size:
                     bad[i - 1] = False
         if not bad.any() or w.size + bad.sum() > max_points:
-            _LAST_VALUES[0] = (w, h)
-            break
+            return w, h
         mids = 0.5 * (w[:-1][bad] + w[1:][bad])
         w = np.unique(np.concatenate([w, mids]))
-    return w
+    return w, None
 
 
 def frequency_grid(fb: FreqBatch, *, points_per_decade: int = 40, w_min: float | None = None,
@@ -531,18 +530,15 @@ def frequency_grid(fb: FreqBatch, *, points_per_decade: int = 40, w_min: float |
     if "grid" in memo:
         return memo["grid"]
     delay = estimate_delay(fb) if fb.dt is None else None
-    _LAST_VALUES[0] = None
-    w = _grid(fb.evaluate, fb.dt, fb.poles, fb.zeros, points_per_decade=points_per_decade,
+    w, h = _grid(fb.evaluate, fb.dt, fb.poles, fb.zeros, points_per_decade=points_per_decade,
                  w_min=w_min, w_max=w_max, resonance_zeta=resonance_zeta, delay=delay,
                  axis_tol=axis_tol, max_points=max_points, phase_step=phase_step,
                  refine_passes=refine_passes, extend_for_loop=True)
     w.flags.writeable = False
     if defaults:
         memo["grid"] = w
-        last = _LAST_VALUES[0]
-        if last is not None and last[0].shape == w.shape and np.array_equal(last[0], w):
-            memo["grid_values"] = last[1]
-    _LAST_VALUES[0] = None
+        if h is not None:
+            memo["grid_values"] = h
     return w
 
 
@@ -763,7 +759,7 @@ def peak_gain(evaluate, dt, poles, zeros, *, w_range: tuple[float, float] = (0.0
         hi = min(hi, math.pi / dt)
     if not (0.0 <= lo <= hi):
         raise ComputeError(f"frequency range {w_range} is empty; give 0 <= low <= high")
-    w = _grid(evaluate, dt, poles, zeros, points_per_decade=40, w_min=None, w_max=None,
+    w, _ = _grid(evaluate, dt, poles, zeros, points_per_decade=40, w_min=None, w_max=None,
               resonance_zeta=0.3, delay=None, axis_tol=1e-9, max_points=200_000,
               phase_step=0.35, refine_passes=6, extend_for_loop=False)
     if grid is not None:
@@ -861,7 +857,7 @@ def bandwidth(evaluate_T, dt, poles, zeros, *, drop_db: float = 3.0, grid: np.nd
         When ``|T(0)|`` is zero or not finite.
     """
     nvar = len(poles)
-    w = _grid(evaluate_T, dt, poles, zeros, points_per_decade=40, w_min=None, w_max=None,
+    w, _ = _grid(evaluate_T, dt, poles, zeros, points_per_decade=40, w_min=None, w_max=None,
               resonance_zeta=0.3, delay=None, axis_tol=1e-9, max_points=200_000,
               phase_step=0.35, refine_passes=6, extend_for_loop=False)
     if grid is not None:
