@@ -9,7 +9,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 
-from ..records import RequirementInfo, ResultInfo, RevisionInfo
+from ..records import RequirementInfo, RevisionInfo
 
 __all__ = ["RevisionRow", "LineageData", "load_lineage", "MatrixData", "load_matrix",
            "TraceLink", "RequirementData", "load_requirement", "verdict_counts"]
