@@ -430,6 +430,7 @@ def test_grid_resolves_lightly_damped_loop_resonance():
 # discrete loops
 # ----------------------------------------------------------------------------------------------
 
+@pytest.mark.filterwarnings("ignore:stability_margins:UserWarning")
 @pytest.mark.parametrize("dt", [0.1, 0.02])
 def test_discrete_against_python_control(dt):
     # Source: python-control 0.10 stability_margins on the discrete system (gm as a ratio).
@@ -509,6 +510,8 @@ def _pade_Z(L, tau, order=12):
     (1 / (s * (s + 1)), 2.0),
     (5 / (s + 1), 0.2),
     (5 / (s + 1), 0.5),
+    (0.5 * (s + 2) / (s + 1), 1.0),
+    (0.9 * (s - 2) / (s + 1), 0.3),
 ])
 def test_encirclements_with_delay(L, tau):
     # Source: closed forms where available (2/(s-1) is stable for tau < pi/(3 sqrt 3) = 0.6046 s,
@@ -549,6 +552,13 @@ def test_undamped_open_loop_mode():
         fb = make_fb(L)
         assert fr.closed_loop_unstable_count(fb)[0] == rhp_roots(np.ravel(L.num[0][0]),
                                                                 np.ravel(L.den[0][0]))
+
+
+def test_feedthrough_with_delay_raises():
+    # Source: common practice, no source: with |L(inf)| >= 1 and a delay the closed loop has
+    # infinitely many poles near or right of the axis (a neutral system), so no count is given.
+    with pytest.raises(ComputeError, match="retarded"):
+        fr.encirclements(make_fb(2 * (s + 1) / (s + 1), [0.1]))
 
 
 def test_marginal_loop_raises():

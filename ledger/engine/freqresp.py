@@ -522,7 +522,8 @@ def frequency_grid(fb: FreqBatch, *, points_per_decade: int = 40, w_min: float |
     Returns
     -------
     ndarray
-        Sorted, unique frequencies in rad/s.
+        Sorted, unique frequencies in rad/s (read-only; with default arguments the grid is
+        computed once per :class:`FreqBatch` and reused).
     """
     defaults = (points_per_decade, w_min, w_max, resonance_zeta, phase_step, axis_tol,
                 max_points, refine_passes) == (40, None, None, 0.3, 0.35, 1e-9, 200_000, 6)
