@@ -373,3 +373,19 @@ def test_delayed_loop_step_and_disturbance_against_pade_reference():
     # then shifted by the plant delay tp
     last = t[np.flatnonzero(np.abs(yd - 1.0) > 0.02 * np.max(np.abs(yd)))[-1]]
     assert_allclose(m["disturbance_recovery"], last + tp, atol=2e-4)
+
+
+def test_package_exports_and_cheap_catalogue_import():
+    # Product rule: listing metrics must not import python-control (about 2 s); and
+    # `from ledger.engine import measure` is the function even after the submodule of that
+    # name was imported.  No numeric source.
+    import subprocess
+    import sys
+
+    code = ("import sys, ledger.engine.metrics as m; assert 'control' not in sys.modules; "
+            "import ledger.engine.measure; from ledger.engine import measure; "
+            "assert callable(measure) and measure.__module__ == 'ledger.engine.measure'; "
+            "print(len(m.METRICS))")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         check=True)
+    assert out.stdout.strip() == str(len(METRICS))
