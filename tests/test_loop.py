@@ -220,3 +220,44 @@ def test_tustin_controller_accepted_when_asked():
                            * control.sample_system(G, ts, "zoh"))
     assert_allclose(np.sort_complex(asm.groups[0].poles[0]), np.sort_complex(ref.poles()),
                     rtol=1e-8)
+
+
+def test_digital_disturbance_enters_after_controller_delays():
+    # Source: reference library -- control.sample_system(G, Ts, 'zoh') and control.feedback:
+    # with a computation delay of 2 samples the disturbance reaches the plant directly,
+    # d->y = Gd / (1 + C z^-2 Gd), while r->y = C z^-2 Gd / (1 + C z^-2 Gd).
+    ts = 0.01
+    G = control.tf([4.0], [1, 1.5, 0])
+    Gd = control.sample_system(G, ts, "zoh")
+    Cd = control.tf([3.0, -2.7], [1, -0.4], ts)
+    z2 = control.tf([1], [1, 0, 0], ts)
+    asm = assemble(PlantFamily.single(G), Cd, LoopSpec(sample_time=ts, computation_delay=2))
+    g = asm.groups[0]
+    z = np.exp(1j * np.array([0.1, 3.0, 40.0, 250.0]) * ts)
+    assert_allclose(_freq_ss(g.paths["d->y"], 0, z), control.feedback(Gd, Cd * z2)(z),
+                    rtol=1e-9)
+    assert_allclose(_freq_ss(g.paths["r->y"], 0, z), control.feedback(Cd * z2 * Gd)(z),
+                    rtol=1e-9)
+
+
+def test_static_plant_and_discrete_plant_with_whole_sample_delay():
+    # Source: reference library -- control.feedback of the same discrete loop with z^-2.
+    ts = 0.1
+    asm = assemble(PlantFamily.single(control.tf(0.5, 1)), control.tf([1], [1, -1], ts),
+                   LoopSpec(sample_time=ts))
+    ref = control.feedback(control.tf([0.5], [1, -1], ts))
+    assert_allclose(np.sort_complex(asm.groups[0].poles[0]), np.sort_complex(ref.poles()),
+                    rtol=1e-10)
+    Gd = control.tf([0.2], [1, -0.9], ts)
+    fam = PlantFamily((Variant("nominal", "nominal", Gd, delay=0.2),))
+    asm = assemble(fam, control.tf(0.8, 1), LoopSpec(sample_time=ts))
+    ref = control.feedback(0.8 * Gd * control.tf([1], [1, 0, 0], ts))
+    poles = asm.groups[0].poles[0]
+    # the disturbance has its own 2-sample delay line (the plant delay): two poles at z = 0
+    # that r cannot reach
+    assert np.sum(poles == 0) == 2
+    assert_allclose(np.sort_complex(poles[poles != 0]), np.sort_complex(ref.poles()),
+                    rtol=1e-8)
+    with pytest.raises(ModelError, match="not whole samples"):
+        assemble(PlantFamily((Variant("nominal", "nominal", Gd, delay=0.15),)), 0.8,
+                 LoopSpec(sample_time=ts))

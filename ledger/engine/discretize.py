@@ -26,7 +26,8 @@ import scipy.linalg
 
 from ..errors import ModelError
 
-__all__ = ["split_delay", "zoh_matrices", "zoh_discretize", "shift_register"]
+__all__ = ["split_delay", "zoh_matrices", "zoh_discretize", "zoh_discretize_inputs",
+           "shift_register"]
 
 
 def split_delay(delay: float, sample_time: float, *, rel_tol: float = 1e-9) -> tuple[int, float]:
@@ -172,3 +173,98 @@ def zoh_discretize(A, B, C, D, sample_time: float, delay: float = 0.0):
     else:
         Ad, Bd, Cd, Dd = Phi, G0, C.copy(), D
     return _series(shift_register(m), (Ad, Bd, Cd, Dd))
+
+
+def _delayed_inputs(Phi, C, D, parts, n):
+    """Assemble x[k+1] = Phi x + sum_i (G0_i v_i[k-m_i] + G1_i v_i[k-m_i-1]) with delay lines.
+
+    ``parts`` is a list of ``(G0, G1, m, frac_positive)`` per input.  Each input gets a delay
+    line ``s_j = v[k-j]``, ``j = 1..L`` with ``L = m + frac_positive``.
+    """
+    lengths = [m + (1 if fp else 0) for (_, _, m, fp) in parts]
+    N = n + sum(lengths)
+    k = len(parts)
+    A = np.zeros((N, N))
+    A[:n, :n] = Phi
+    B = np.zeros((N, k))
+    Cd = np.zeros(N)
+    Cd[:n] = C
+    Dd = np.zeros(k)
+    start = n
+    for i, ((G0, G1, m, fp), L) in enumerate(zip(parts, lengths)):
+        def place(vec, lag, i=i, start=start):
+            """Add ``vec * v_i[k - lag]`` to x[k+1]."""
+            if lag == 0:
+                B[:n, i] += vec
+            else:
+                A[:n, start + lag - 1] += vec
+        place(G0, m)
+        if fp:
+            place(G1, m + 1)
+        lag_feed = m + (1 if fp else 0)
+        if lag_feed == 0:
+            Dd[i] += D
+        else:
+            Cd[start + lag_feed - 1] += D
+        if L:
+            B[start, i] = 1.0
+            for j in range(1, L):
+                A[start + j, start + j - 1] = 1.0
+        start += L
+    return A, B, Cd, Dd
+
+
+def zoh_discretize_inputs(A, B, C, D, sample_time: float, delays, *, discrete: bool = False):
+    """Exact ZOH discretisation of a plant driven by several inputs with their own delays.
+
+    All inputs enter where ``B`` does (e.g. the controller output and an input disturbance)
+    but reach it through different delays.
+
+    Parameters
+    ----------
+    A, B, C, D : array_like
+        SISO state-space matrices of the plant (``B``, ``C`` 1-D, ``D`` scalar).
+    sample_time : float
+        Ts in seconds, > 0.
+    delays : sequence of float
+        Delay in seconds of each input, >= 0.
+    discrete : bool, optional
+        The matrices are already discrete with sample time Ts (default False); delays must
+        then be whole samples.
+
+    Returns
+    -------
+    tuple (Ad (N, N), Bd (N, k), Cd (N,), Dd (k,))
+
+    Raises
+    ------
+    ModelError
+        A non-positive sample time, a negative delay, or a fractional delay on a discrete plant.
+    """
+    if not (math.isfinite(sample_time) and sample_time > 0):
+        raise ModelError(f"sample time {sample_time!r} s is not positive and finite; give Ts > 0")
+    A = np.atleast_2d(np.asarray(A, dtype=float))
+    if A.size == 0:
+        A = np.zeros((0, 0))
+    B = np.asarray(B, dtype=float).reshape(-1)
+    C = np.asarray(C, dtype=float).reshape(-1)
+    D = float(np.asarray(D, dtype=float).reshape(-1)[0]) if np.size(D) else 0.0
+    n = A.shape[0]
+    parts = []
+    Phi = A if discrete else None
+    for delay in delays:
+        if not (math.isfinite(delay) and delay >= 0):
+            raise ModelError(f"delay {delay!r} s is negative or not finite; give a delay >= 0")
+        m, frac = split_delay(delay, sample_time)
+        if discrete:
+            if frac:
+                raise ModelError(f"delay {delay} s is not a whole number of samples of "
+                                 f"{sample_time} s; give a continuous plant instead")
+            parts.append((B, np.zeros(n), m, False))
+            continue
+        P, G0, G1 = zoh_matrices(A, B, sample_time, frac)
+        Phi = P
+        parts.append((G0, G1, m, frac > 0.0))
+    if Phi is None:
+        Phi = zoh_matrices(A, B, sample_time, 0.0)[0]
+    return _delayed_inputs(Phi, C, D, parts, n)

@@ -18,8 +18,10 @@ at the measurement (``z = y``, ``w = z(t - tau)``) and handed to the kernels as 
 
 Digital loops (``sample_time`` set): the continuous plant and every loop delay are
 discretised exactly with a zero-order hold (:mod:`ledger.engine.discretize`), the
-computation delay becomes ``z^-d``; the disturbance then enters ahead of all loop delays and
-``y`` is the sampled measured output.  Frequency responses run up to ``pi / Ts``.
+computation delay becomes ``z^-d``.  The controller output reaches the plant through all
+loop delays and the computation delay, the input disturbance (a held step) only through the
+plant and output delays; ``y`` is the sampled measured output ``y(k Ts - output_delay)``.
+Frequency responses run up to ``pi / Ts``.
 """
 
 from __future__ import annotations
@@ -33,7 +35,7 @@ import numpy as np
 import scipy.linalg
 
 from ..errors import ModelError
-from .discretize import shift_register, zoh_discretize
+from .discretize import zoh_discretize_inputs
 from .types import FreqBatch, PlantFamily, SSBatch
 
 __all__ = ["LoopSpec", "Block", "ClosedLoopResponse", "LoopGroup", "Assembly", "PATHS",
@@ -124,6 +126,8 @@ class Block:
     """One SISO block: state-space matrices and zero/pole/gain for exact evaluation.
 
     ``dt`` is ``None`` (continuous), a float (discrete) or ``"any"`` (static gain).
+    ``Bdist``/``Ddist`` are set for a discretised plant whose input disturbance reaches the
+    plant through fewer delays than the controller output.
     """
 
     A: np.ndarray
@@ -134,10 +138,22 @@ class Block:
     poles: np.ndarray
     gain: float
     dt: Any
+    Bdist: np.ndarray | None = None
+    Ddist: float | None = None
 
     @property
     def order(self) -> int:
         return self.A.shape[0]
+
+    @property
+    def B_d(self) -> np.ndarray:
+        """Input matrix of the plant-input disturbance (``B`` unless delays differ)."""
+        return self.B if self.Bdist is None else self.Bdist
+
+    @property
+    def D_d(self) -> float:
+        """Feedthrough of the plant-input disturbance (``D`` unless delays differ)."""
+        return self.D if self.Ddist is None else self.Ddist
 
     def parts(self, x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Numerator (gain included) and denominator products at complex points ``x``."""
@@ -164,11 +180,13 @@ def _balance(A, B, C):
     n = A.shape[0]
     if n == 0:
         return A, B, C
-    M = np.zeros((n + 1, n + 1))
-    M[:n, :n], M[:n, n], M[n, :n] = A, B, C
+    B2 = B.reshape(n, -1)
+    k = B2.shape[1]
+    M = np.zeros((n + k, n + k))
+    M[:n, :n], M[:n, n:], M[n, :n] = A, B2, C
     _, (scale, _) = scipy.linalg.matrix_balance(M, permute=False, separate=True)
     t = scale[:n] / scale[n]
-    return A * t[None, :] / t[:, None], B / t, C * t
+    return A * t[None, :] / t[:, None], (B2 / t[:, None]).reshape(B.shape), C * t
 
 
 def make_block(sys, role: str) -> Block:
@@ -224,11 +242,13 @@ def make_block(sys, role: str) -> Block:
     return Block(A, B, C, D, zeros, poles, gain, dt)
 
 
-def _block_from_matrices(A, B, C, D, dt) -> Block:
-    ss = control.ss(A, np.reshape(B, (-1, 1)), np.reshape(C, (1, -1)), D,
-                    dt if dt is not None else 0)
-    blk = make_block(ss, "discretised plant")
-    return Block(blk.A, blk.B, blk.C, blk.D, blk.zeros, blk.poles, blk.gain, dt)
+def _block_from_matrices(A, B2, C, D2, dt) -> Block:
+    """Discrete plant block from matrices with inputs (controller output, disturbance)."""
+    ss = control.ss(A, B2[:, :1], np.reshape(C, (1, -1)), D2[0], dt)
+    zpk = make_block(ss, "discretised plant")
+    Ab, Bb, Cb = _balance(np.asarray(A, float), np.asarray(B2, float), np.asarray(C, float))
+    return Block(Ab, Bb[:, 0].copy(), Cb, float(D2[0]), zpk.zeros, zpk.poles, zpk.gain, dt,
+                 Bdist=Bb[:, 1].copy(), Ddist=float(D2[1]))
 
 
 # --------------------------------------------------------------------------- assembly
@@ -360,25 +380,23 @@ def _plant_block(variant, loop: LoopSpec) -> tuple[Block, float, float]:
             raise ModelError(f"plant variant {variant.name!r} is discrete (dt={blk.dt} s) but "
                              "the loop is continuous; set sample_time")
         return blk, total, (loop.input_delay, pd)
-    extra = loop.computation_delay
+    # controller output: every loop delay plus the computation delay; input disturbance:
+    # only the delays after the plant input (plant and output delay)
+    delays = [total + loop.computation_delay * ts, pd + loop.output_delay]
     if blk.dt in (None, "any"):
-        A, B, C, D = zoh_discretize(blk.A, blk.B, blk.C, blk.D, ts, total)
-        A, B, C, D = _series_d(shift_register(extra), (A, B, C, D))
-        return _block_from_matrices(A, B, C, D, ts), 0.0, (0.0, 0.0)
+        A, B2, C, D2 = zoh_discretize_inputs(blk.A, blk.B, blk.C, blk.D, ts, delays)
+        return _block_from_matrices(A, B2, C, D2, ts), 0.0, (0.0, 0.0)
     if blk.dt is True or not math.isclose(blk.dt, ts, rel_tol=1e-9):
         raise ModelError(f"plant variant {variant.name!r} has dt={blk.dt} s but the loop "
                          f"sample_time is {ts} s; resample the plant or change sample_time")
-    m = total / ts
-    if abs(m - round(m)) > 1e-9 * max(1.0, m):
+    try:
+        A, B2, C, D2 = zoh_discretize_inputs(blk.A, blk.B, blk.C, blk.D, ts, delays,
+                                             discrete=True)
+    except ModelError as e:
         raise ModelError(f"plant variant {variant.name!r} is discrete but the loop delays "
-                         f"({total} s) are not whole samples; give a continuous plant instead")
-    A, B, C, D = _series_d(shift_register(int(round(m)) + extra), (blk.A, blk.B, blk.C, blk.D))
-    return _block_from_matrices(A, B, C, D, ts), 0.0, (0.0, 0.0)
-
-
-def _series_d(first, second):
-    from .discretize import _series
-    return _series(first, second)
+                         f"({total} s) are not whole samples; give a continuous plant "
+                         "instead") from e
+    return _block_from_matrices(A, B2, C, D2, ts), 0.0, (0.0, 0.0)
 
 
 def _interconnect(F: Block, K: Block, G: Block, H: Block):
@@ -404,16 +422,16 @@ def _interconnect(F: Block, K: Block, G: Block, H: Block):
     e -= ym
     u = K.D * e
     u[oc:oc + nc] += K.C
-    v = u.copy()
-    v[idd] += 1.0
-    y = G.D * v
+    y = G.D * u
+    y[idd] += G.D_d
     y[og:og + ng] += G.C
     X = np.zeros((N, N + 4))
     X[of:of + nf, of:of + nf] = F.A
     X[of:of + nf, ir] = F.B
     X[oc:oc + nc, :] = np.outer(K.B, e)
     X[oc:oc + nc, oc:oc + nc] += K.A
-    X[og:og + ng, :] = np.outer(G.B, v)
+    X[og:og + ng, :] = np.outer(G.B, u)
+    X[og:og + ng, idd] += G.B_d
     X[og:og + ng, og:og + ng] += G.A
     X[oh:oh + nh, iw] = H.B
     X[oh:oh + nh, oh:oh + nh] += H.A
