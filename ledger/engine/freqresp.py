@@ -712,6 +712,21 @@ def _phase_crossovers_from(fb, smp, w, mask, L, xrtol):
 # peaks and bandwidth
 # ----------------------------------------------------------------------------------------------
 
+def _base_grid(evaluate, dt, poles, zeros, grid) -> np.ndarray:
+    """Grid for a closed-loop function: the pole/zero-aware grid of :func:`frequency_grid`, or
+    the given one; either way refined adaptively on this function."""
+    if grid is None:
+        return _grid(evaluate, dt, poles, zeros, points_per_decade=40, w_min=None, w_max=None,
+                     resonance_zeta=0.3, delay=None, axis_tol=1e-9, max_points=200_000,
+                     phase_step=0.35, refine_passes=6, extend_for_loop=False)[0]
+    w = np.unique(np.concatenate([np.asarray(grid, float), [0.0]]))
+    wnyq = math.pi / dt if dt is not None else math.inf
+    axis_w = np.array(sorted({ar.w for ar in _axis_roots(poles, dt, axis_tol=1e-9)
+                              if 0.0 < ar.w < wnyq}))
+    return _refine_adaptively(evaluate, w, len(poles), axis_w, phase_step=0.35, passes=6,
+                              max_points=200_000)[0]
+
+
 def peak_gain(evaluate, dt, poles, zeros, *, w_range: tuple[float, float] = (0.0, math.inf),
               grid: np.ndarray | None = None, candidate_ratio: float = 0.5,
               xrtol: float = 1e-10, far_factor: float = 1e8, max_candidates: int = 50,
@@ -729,7 +744,9 @@ def peak_gain(evaluate, dt, poles, zeros, *, w_range: tuple[float, float] = (0.0
     w_range : (float, float)
         Closed range in rad/s; the ends are always candidates.
     grid : ndarray, optional
-        Extra grid points (rad/s), e.g. the loop's :func:`frequency_grid`.
+        Base grid (rad/s) to use instead of the one built from ``poles`` and ``zeros``, e.g.
+        the loop's :func:`frequency_grid` (cheaper; it is still refined adaptively wherever H
+        turns or changes fast, which catches lightly damped closed-loop poles).
     candidate_ratio : float
         Every local grid maximum whose value is at least this fraction of the largest grid value
         is refined by golden-section search between its grid neighbours (at most
@@ -760,11 +777,7 @@ def peak_gain(evaluate, dt, poles, zeros, *, w_range: tuple[float, float] = (0.0
         hi = min(hi, math.pi / dt)
     if not (0.0 <= lo <= hi):
         raise ComputeError(f"frequency range {w_range} is empty; give 0 <= low <= high")
-    w, _ = _grid(evaluate, dt, poles, zeros, points_per_decade=40, w_min=None, w_max=None,
-              resonance_zeta=0.3, delay=None, axis_tol=1e-9, max_points=200_000,
-              phase_step=0.35, refine_passes=6, extend_for_loop=False)
-    if grid is not None:
-        w = np.unique(np.concatenate([w, np.asarray(grid, float)]))
+    w = _base_grid(evaluate, dt, poles, zeros, grid)
     if math.isfinite(hi):
         w = np.unique(np.concatenate([w[(w >= lo) & (w <= hi)], [lo, hi]]))
     else:
@@ -839,8 +852,12 @@ def peak_gain(evaluate, dt, poles, zeros, *, w_range: tuple[float, float] = (0.0
 
 
 def bandwidth(evaluate_T, dt, poles, zeros, *, drop_db: float = 3.0, grid: np.ndarray | None = None,
-              xrtol: float = 1e-14) -> np.ndarray:
+              xrtol: float = 1e-14, pairwise=None) -> np.ndarray:
     """Closed-loop bandwidth: first w where |T| falls to ``10^(-drop_db/20) |T(0)|`` (rad/s).
+
+    ``grid`` and ``pairwise`` work as in :func:`peak_gain`; ``drop_db`` is the level in dB
+    (3 by default, exactly ``10^(-3/20)``).  If the evaluator gives NaN at ``w = 0`` (0/0),
+    ``|T(0)|`` is taken at ``1e-9`` times the first positive grid frequency.
 
     The absolute DC gain is used (a negative DC gain is fine).  The first grid point below the
     level brackets the crossing, which is refined by bracketed root finding on ``ln|T|``.
@@ -858,17 +875,18 @@ def bandwidth(evaluate_T, dt, poles, zeros, *, drop_db: float = 3.0, grid: np.nd
         When ``|T(0)|`` is zero or not finite.
     """
     nvar = len(poles)
-    w, _ = _grid(evaluate_T, dt, poles, zeros, points_per_decade=40, w_min=None, w_max=None,
-              resonance_zeta=0.3, delay=None, axis_tol=1e-9, max_points=200_000,
-              phase_step=0.35, refine_passes=6, extend_for_loop=False)
-    if grid is not None:
-        w = np.unique(np.concatenate([w, np.asarray(grid, float)]))
+    w = _base_grid(evaluate_T, dt, poles, zeros, grid)
     if dt is not None:
         w = w[w <= math.pi / dt]
     Tc = _call(evaluate_T, w, nvar)
     h = np.abs(Tc)
     out = np.full(nvar, math.inf)
-    t0 = h[:, 0]
+    t0 = h[:, 0].copy()
+    if np.any(np.isnan(t0)) and w.size > 1:
+        # 0/0 at w = 0 (e.g. L/(1+L) formed from an infinite L): take the limit from w > 0
+        near = np.abs(_call(evaluate_T, [1e-9 * w[1]], nvar))[:, 0]
+        t0 = np.where(np.isnan(t0), near, t0)
+        h[:, 0] = t0
     for v in range(nvar):
         if not np.isfinite(t0[v]) or t0[v] == 0.0:
             raise ComputeError(f"bandwidth needs a finite nonzero DC gain; variant {v} has "
@@ -880,10 +898,10 @@ def bandwidth(evaluate_T, dt, poles, zeros, *, drop_db: float = 3.0, grid: np.nd
     vi = np.flatnonzero(has)
     if vi.size:
         i = np.argmax(below[vi], axis=1)
-        smp = _Sampler(evaluate_T, dt, poles, zeros, w, Tc)
+        at = pairwise if pairwise is not None else _Sampler(evaluate_T, dt, poles, zeros, w, Tc).at
 
         def fun(vv, x):
-            return np.log(np.abs(smp.at(vv, x)) + _TINY) - level[vv]
+            return np.log(np.abs(at(vv, x)) + _TINY) - level[vv]
 
         a, b = w[i - 1], w[i]
         fa = np.log(h[vi, i - 1] + _TINY) - level[vi]
