@@ -29,7 +29,8 @@ __version__ = "0.1.0"
 
 __all__ = [
     "open_ledger", "Ledger", "measure", "measure_family", "Measurement", "LoopSpec",
-    "PlantFamily", "Variant", "parse_model", "build_family",
+    "PlantFamily", "Variant", "parse_model", "build_family", "build_matrix", "diff",
+    "first_failing", "build_trace", "export_matrix", "create_baseline", "sign_baseline", "audit",
     "LedgerError", "ModelSyntaxError", "ModelError", "UnitError", "SpecError", "NotFoundError",
     "DuplicateError", "IntegrityViolation", "SchemaError", "ComputeError", "UnstableLoopError",
 ]
@@ -40,6 +41,10 @@ _LAZY = {
     "Measurement": "ledger.engine.measure", "LoopSpec": "ledger.engine.loop",
     "PlantFamily": "ledger.engine.types", "Variant": "ledger.engine.types",
     "parse_model": "ledger.systems", "build_family": "ledger.systems",
+    "build_matrix": "ledger.history.matrix", "diff": "ledger.history.diff",
+    "first_failing": "ledger.history.since", "build_trace": "ledger.history.trace",
+    "export_matrix": "ledger.exports", "create_baseline": "ledger.signoff",
+    "sign_baseline": "ledger.signoff", "audit": "ledger.audit",
 }
 
 
