@@ -30,7 +30,7 @@ __version__ = "0.1.0"
 __all__ = [
     "open_ledger", "Ledger", "measure", "measure_family", "Measurement", "LoopSpec",
     "PlantFamily", "Variant", "parse_model", "build_family", "build_matrix", "diff",
-    "first_failing", "build_trace", "export_matrix", "create_baseline", "sign_baseline", "audit",
+    "first_failing", "build_trace", "export_matrix", "create_baseline", "sign_baseline", "audit_ledger",
     "LedgerError", "ModelSyntaxError", "ModelError", "UnitError", "SpecError", "NotFoundError",
     "DuplicateError", "IntegrityViolation", "SchemaError", "ComputeError", "UnstableLoopError",
 ]
@@ -44,13 +44,18 @@ _LAZY = {
     "build_matrix": "ledger.history.matrix", "diff": "ledger.history.diff",
     "first_failing": "ledger.history.since", "build_trace": "ledger.history.trace",
     "export_matrix": "ledger.exports", "create_baseline": "ledger.signoff",
-    "sign_baseline": "ledger.signoff", "audit": "ledger.audit",
+    "sign_baseline": "ledger.signoff",
 }
+#: public name -> (module, attribute) where the two differ (``ledger.audit`` is a module)
+_RENAMED = {"audit_ledger": ("ledger.audit", "audit")}
 
 
 def __getattr__(name: str):
     if name in _LAZY:
         return getattr(importlib.import_module(_LAZY[name]), name)
+    if name in _RENAMED:
+        mod, attr = _RENAMED[name]
+        return getattr(importlib.import_module(mod), attr)
     raise AttributeError(f"module 'ledger' has no attribute {name!r}")
 
 
