@@ -276,8 +276,9 @@ class _Sampler:
 def _vsolve(fun, vi, a, b, fa, fb, *, xrtol: float, maxiter: int = 200) -> np.ndarray:
     """Roots of ``fun(vi, x)`` in the brackets ``[a, b]`` (sign change), all at once.
 
-    Illinois false position with a bisection step every third iteration; stops when the
-    bracket is narrower than ``xrtol * b`` or the function is exactly zero.
+    Illinois false position (bisection where the secant point leaves the bracket, and for
+    every step after the 40th); stops when the bracket is narrower than ``xrtol * b`` or the
+    function is exactly zero.
     """
     a, b = np.array(a, float), np.array(b, float)
     fa, fb = np.array(fa, float), np.array(fb, float)
@@ -291,7 +292,7 @@ def _vsolve(fun, vi, a, b, fa, fb, *, xrtol: float, maxiter: int = 200) -> np.nd
         A, B, FA, FB = a[active], b[active], fa[active], fb[active]
         with np.errstate(divide="ignore", invalid="ignore"):
             c = B - FB * (B - A) / (FB - FA)
-        bis = (it % 3 == 2) | ~np.isfinite(c) | (c <= A) | (c >= B)
+        bis = (it >= 40) | ~np.isfinite(c) | (c <= A) | (c >= B)
         c = np.where(bis, 0.5 * (A + B), c)
         fc = np.asarray(fun(vi[active], c), float)
         if not np.all(np.isfinite(fc)):
