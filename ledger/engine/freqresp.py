@@ -492,7 +492,8 @@ def frequency_grid(fb: FreqBatch, *, points_per_decade: int = 40, w_min: float |
     * then the ends are pushed out until the loop gain's power-law asymptotes can no longer
       cross unity outside the grid (``|L| >= 100`` at the low end of an integrating loop,
       ``|L| <= 0.01`` at the high end of a strictly proper one);
-    * ``w = 0`` always (dropped only where a variant has a pole there);
+    * ``w = 0`` always (a variant with a pole there is infinite at that point, and its first
+      interval is then handled as the small indentation round the pole);
     * 41 points across ``+-10 zeta wn`` of every pole or zero with damping below
       ``resonance_zeta`` plus geometric points approaching its damped frequency;
     * geometric points approaching every pole on the imaginary axis (unit circle) from both
