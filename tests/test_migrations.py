@@ -78,3 +78,14 @@ def test_downgrade_to_base_and_back(db_url):
     lg = open_ledger(url)
     assert lg.schema_action == "current"
     lg.close()
+
+
+def test_light_head_check_agrees_with_alembic():
+    # Reference: Alembic's own script directory (the light reader parses the headers only).
+    from alembic.script import ScriptDirectory
+
+    from ledger.store.migrate import known_revisions
+
+    script = ScriptDirectory.from_config(alembic_config("sqlite://"))
+    assert head_revision() == script.get_current_head()
+    assert known_revisions() == {r.revision for r in script.walk_revisions()}

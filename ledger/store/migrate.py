@@ -10,13 +10,11 @@ check runs afterwards.
 
 from __future__ import annotations
 
+import re
 from datetime import datetime, timezone
+from functools import lru_cache
 from pathlib import Path
 
-from alembic import command
-from alembic.config import Config
-from alembic.runtime.migration import MigrationContext
-from alembic.script import ScriptDirectory
 from sqlalchemy import inspect, text
 from sqlalchemy.exc import DatabaseError, OperationalError
 
@@ -36,24 +34,54 @@ def migrations_dir() -> Path:
     raise SchemaError("migration scripts not found; reinstall loopledger")
 
 
-def alembic_config(url: str) -> Config:
+def alembic_config(url: str):
+    from alembic.config import Config
+
     cfg = Config()
     cfg.set_main_option("script_location", str(migrations_dir()))
     cfg.set_main_option("sqlalchemy.url", url.replace("%", "%%"))
     return cfg
 
 
+_REV_RE = re.compile(r"^revision\s*=\s*['\"]([^'\"]+)['\"]", re.M)
+_DOWN_RE = re.compile(r"^down_revision\s*=\s*(?:None|['\"]([^'\"]+)['\"])", re.M)
+
+
+@lru_cache(maxsize=1)
+def _revision_graph() -> dict[str, str | None]:
+    """revision -> down_revision, read from the scripts' text.
+
+    Opening a ledger that is already current must not pay for importing Alembic (about a
+    tenth of a second); the scripts' two header assignments are all the head check needs.
+    Alembic itself runs only for an actual upgrade, and a test checks both agree.
+    """
+    graph: dict[str, str | None] = {}
+    for path in sorted((migrations_dir() / "versions").glob("*.py")):
+        text_ = path.read_text(encoding="utf-8")
+        rev, down = _REV_RE.search(text_), _DOWN_RE.search(text_)
+        if rev is None or down is None:
+            raise SchemaError(f"migration script {path.name} has no revision header")
+        graph[rev.group(1)] = down.group(1)
+    return graph
+
+
 def head_revision() -> str:
-    return ScriptDirectory.from_config(alembic_config("sqlite://")).get_current_head()
+    graph = _revision_graph()
+    heads = set(graph) - {d for d in graph.values() if d}
+    if len(heads) != 1:
+        raise SchemaError(f"migration scripts have {len(heads)} heads; expected one")
+    return heads.pop()
 
 
 def known_revisions() -> set[str]:
-    script = ScriptDirectory.from_config(alembic_config("sqlite://"))
-    return {rev.revision for rev in script.walk_revisions()}
+    return set(_revision_graph())
 
 
 def current_revision(conn) -> str | None:
-    return MigrationContext.configure(conn).get_current_revision()
+    rows = conn.execute(text("SELECT version_num FROM alembic_version")).fetchall()
+    if len(rows) > 1:
+        raise SchemaError("ledger has more than one schema version recorded")
+    return rows[0][0] if rows else None
 
 
 def _check_is_ledger(url: str) -> str | None:
@@ -84,6 +112,8 @@ def _check_is_ledger(url: str) -> str | None:
 
 
 def _upgrade(url: str, target: str = "head") -> None:
+    from alembic import command
+
     engine = make_engine(url, foreign_keys=False)
     try:
         with engine.begin() as conn:
