@@ -295,10 +295,8 @@ def export_spec(ledger, path: str | os.PathLike) -> Path:
     """Write the ledger's content as a spec file (atomically: temp file, then rename)."""
     import tomli_w
 
-    p = Path(path)
+    from .fileio import write_atomic
+
     text = "# loopledger spec file (format 1); see docs/spec-files.md\n" + tomli_w.dumps(
         dump_spec(ledger), multiline_strings=True)
-    tmp = p.with_name(p.name + ".tmp")
-    tmp.write_text(text, encoding="utf-8")
-    os.replace(tmp, p)
-    return p
+    return write_atomic(path, lambda tmp: tmp.write_text(text, encoding="utf-8"))

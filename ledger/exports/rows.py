@@ -18,6 +18,7 @@ from dataclasses import dataclass, fields
 from pathlib import Path
 from typing import Callable
 
+from ..fileio import write_atomic  # noqa: F401 - re-exported for the exporters
 from ..errors import ComputeError, LedgerError
 
 __all__ = ["require", "SCHEMA_VERSION", "COLUMNS", "VERDICT_ORDER", "ExportRow", "matrix_rows",
@@ -179,29 +180,3 @@ def parse_number(text: str) -> float | None:
     return float(text)
 
 
-def write_atomic(path, writer: Callable[[Path], None]) -> Path:
-    """Write a file atomically: ``writer(tmp_path)`` fills a temporary file in the target's
-    folder, which then replaces ``path`` in one rename.  On failure ``path`` is untouched.
-
-    Returns
-    -------
-    Path
-        The absolute path written.
-    """
-    path = Path(path).expanduser().resolve()
-    if not path.parent.is_dir():
-        raise LedgerError(f"folder {path.parent} does not exist; create it first")
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent)
-    os.close(fd)
-    tmp_path = Path(tmp)
-    try:
-        writer(tmp_path)
-        os.replace(tmp_path, path)
-    except OSError as e:
-        tmp_path.unlink(missing_ok=True)
-        raise LedgerError(f"cannot write {path}: {e.strerror or e}; check the path and "
-                          "permissions") from e
-    except BaseException:
-        tmp_path.unlink(missing_ok=True)
-        raise
-    return path
