@@ -147,7 +147,7 @@ def test_peak_effort_is_the_initial_jump():
 
 def test_sensitivity_peaks_second_order():
     # Source: closed form, T = wn^2/(s^2+2 zeta wn s+wn^2): Mt = 1/(2 zeta sqrt(1-zeta^2))
-    # for zeta < 1/sqrt(2) (Ogata, sec. 8-? resonant peak, from memory); Ms cross-checked
+    # for zeta < 1/sqrt(2) (Ogata, Modern Control Engineering, resonant peak -- from memory); Ms cross-checked
     # against a dense grid of |S| (reference: direct evaluation with python-control).
     zeta, wn = 0.3, 1.0
     G = control.tf([wn ** 2], [1, 2 * zeta * wn, 0])

@@ -220,8 +220,7 @@ def make_block(sys, role: str) -> Block:
         ss = sys
         if not all(np.all(np.isfinite(M)) for M in (ss.A, ss.B, ss.C, ss.D)):
             raise ModelError(f"{role} has non-finite matrix entries; fix the model")
-        tf = control.tf(ss)
-        num, den = _trim(tf.num[0][0]), _trim(tf.den[0][0])
+        num = den = None
     A = np.asarray(ss.A, dtype=float).reshape(ss.nstates, ss.nstates)
     B = np.asarray(ss.B, dtype=float).reshape(ss.nstates)
     C = np.asarray(ss.C, dtype=float).reshape(ss.nstates)
@@ -233,13 +232,52 @@ def make_block(sys, role: str) -> Block:
         dt = None
     else:
         dt = sys.dt
-    if not np.any(num):
+    if num is None:
+        zeros, poles, gain = _zpk_from_ss(A, B, C, D)
+    elif not np.any(num):
         zeros, poles, gain = np.zeros(0, complex), np.zeros(0, complex), 0.0
     else:
         zeros = np.roots(num).astype(complex)
         poles = np.roots(den).astype(complex)
         gain = float(num[0] / den[0])
     return Block(A, B, C, D, zeros, poles, gain, dt)
+
+
+def _zpk_from_ss(A, B, C, D, *, rel_tol: float = 1e-10):
+    """Zeros, poles and gain of a SISO state-space model without forming polynomials.
+
+    Poles are the eigenvalues of ``A``; zeros the finite generalised eigenvalues of the
+    system pencil ``([[A, B], [C, D]], [[I, 0], [0, 0]])`` (Emami-Naeini and Van Dooren,
+    Automatica 1982); the gain is the first non-zero Markov parameter ``C A^(r-1) B``
+    (``D`` when ``r = 0``) with ``r`` the relative degree.  Converting to a transfer
+    function instead leaves round-off in the leading numerator coefficients, which turns
+    into spurious zeros far away.
+    """
+    n = A.shape[0]
+    poles = np.linalg.eigvals(A).astype(complex) if n else np.zeros(0, complex)
+    if n == 0:
+        return np.zeros(0, complex), poles, float(D)
+    M = np.zeros((n + 1, n + 1))
+    M[:n, :n], M[:n, n], M[n, :n], M[n, n] = A, B, C, D
+    N = np.zeros((n + 1, n + 1))
+    N[:n, :n] = np.eye(n)
+    alpha, beta = scipy.linalg.eigvals(M, N, homogeneous_eigvals=True)
+    scale = max(1.0, float(np.max(np.abs(M))))
+    finite = np.abs(beta) > rel_tol * np.abs(alpha) / scale
+    zeros = (alpha[finite] / beta[finite]).astype(complex)
+    if zeros.size > n:  # the whole pencil is singular: zero transfer function
+        return np.zeros(0, complex), np.zeros(0, complex), 0.0
+    r = n - zeros.size
+    if r == 0:
+        gain = float(D)
+    else:
+        v = B.copy()
+        for _ in range(r - 1):
+            v = A @ v
+        gain = float(C @ v)
+    if gain == 0.0:
+        return np.zeros(0, complex), np.zeros(0, complex), 0.0
+    return zeros, poles, gain
 
 
 def _block_from_matrices(A, B2, C, D2, dt) -> Block:

@@ -136,25 +136,25 @@ class Measurement(Mapping):
     """
 
     result: FamilyResult
-    keys: Mapping
+    request_keys: Mapping
 
     def _res(self, name: str) -> MetricResult:
         try:
-            return self.result.results[self.keys[name]]
+            return self.result.results[self.request_keys[name]]
         except KeyError as e:
-            raise KeyError(f"{name!r} was not measured; measured: {', '.join(self.keys)}") from e
+            raise KeyError(f"{name!r} was not measured; measured: {', '.join(self.request_keys)}") from e
 
     def __getitem__(self, name: str) -> float:
         return self._res(name).worst
 
     def __iter__(self):
-        return (n for n in self.keys if not self._res(n).variant_errors)
+        return (n for n in self.request_keys if not self._res(n).variant_errors)
 
     def __len__(self) -> int:
         return sum(1 for _ in self)
 
     def __contains__(self, name) -> bool:
-        return name in self.keys and not self._res(name).variant_errors
+        return name in self.request_keys and not self._res(name).variant_errors
 
     def __repr__(self) -> str:
         parts = [f"{n}={self[n]:.6g}" for n in self]
@@ -169,7 +169,7 @@ class Measurement(Mapping):
     @property
     def errors(self) -> dict:
         """Metric name -> reason, for metrics without a family-wide value."""
-        return {n: self._res(n).error for n in self.keys if self._res(n).variant_errors}
+        return {n: self._res(n).error for n in self.request_keys if self._res(n).variant_errors}
 
     def per_variant(self, name: str) -> np.ndarray:
         """Values per variant (V,); failed variants hold the worst-direction infinity."""
@@ -615,4 +615,4 @@ def measure(plant, controller, names: Iterable[str] | None = None, **settings) -
                 for n in names]
     result = measure_family(family, controller, loop, requests)
     keys = {n: request_key(n, resolve_settings(n, s)) for n, s in requests}
-    return Measurement(result=result, keys=MappingProxyType(keys))
+    return Measurement(result=result, request_keys=MappingProxyType(keys))
