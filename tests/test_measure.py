@@ -389,3 +389,14 @@ def test_package_exports_and_cheap_catalogue_import():
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
                          check=True)
     assert out.stdout.strip() == str(len(METRICS))
+
+
+def test_measurement_behaves_as_a_mapping():
+    # Product contract (no numeric source): dict(), keys(), items() and len() cover exactly
+    # the metrics that exist; failures are listed in .errors instead.
+    m = measure(control.tf([0.5], [1, -1]), 1.0, ["stable", "overshoot", "system_type"])
+    assert dict(m) == {"stable": 0.0, "system_type": 0.0}
+    assert list(m.keys()) == ["stable", "system_type"] and len(m) == 2
+    assert set(m.errors) == {"overshoot"}
+    assert m.variants == ("nominal",)
+    assert m.unit("overshoot") == "%"
