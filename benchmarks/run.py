@@ -1,0 +1,380 @@
+"""loopledger speed and scale benchmark.
+
+Usage::
+
+    python benchmarks/run.py                 # the full run (several minutes)
+    python benchmarks/run.py --quick         # a smoke run of every workload, under a minute
+    python benchmarks/run.py --write-docs    # full run, then rewrite docs/performance.md
+
+Every workload is built from seeded data and the invented pipette scenario
+(``benchmarks/scenario.py``); figures and ratios are measured side by side in one run and
+printed.  It is a benchmark, not a test: it never asserts on time.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import platform
+import subprocess
+import sys
+import tempfile
+import time
+from datetime import datetime, timezone
+from pathlib import Path
+
+if __package__ in (None, ""):          # run as a script: make ``benchmarks`` importable
+    sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
+    __package__ = "benchmarks"
+
+from benchmarks import scenario as S  # noqa: E402
+
+__all__ = ["main", "machine", "Row"]
+
+FULL = dict(variants=1000, baseline=200, small_revisions=200, small_samples=10,
+            parallel_revisions=40, slow_repeats=1, ui_timeout=90.0,
+            scale_revisions=10_000, scale_requirements=100)
+QUICK = dict(variants=100, baseline=30, small_revisions=12, small_samples=4,
+             parallel_revisions=12, slow_repeats=3, ui_timeout=30.0,
+             scale_revisions=300, scale_requirements=100)
+
+
+class Row:
+    """One printed figure: workload, what, value text, goal text, verdict (met/missed/'')."""
+
+    def __init__(self, workload, what, value, goal="", met=None):
+        self.workload, self.what, self.value, self.goal = workload, what, value, goal
+        self.met = "" if met is None else ("met" if met else "MISSED")
+
+
+def _ms(x: float) -> str:
+    return f"{x * 1e3:.1f} ms"
+
+
+def _s(x: float) -> str:
+    return f"{x:.3f} s"
+
+
+def machine() -> dict:
+    """Cores, CPU model, Python and library versions, BLAS thread settings."""
+    import control
+    import numpy
+    import scipy
+
+    cpu = "unknown"
+    try:
+        for line in Path("/proc/cpuinfo").read_text().splitlines():
+            if line.startswith("model name"):
+                cpu = line.split(":", 1)[1].strip()
+                break
+    except OSError:
+        pass
+    env = {k: v for k, v in os.environ.items()
+           if k.startswith(("OPENBLAS", "OMP_", "MKL_", "GOTO"))}
+    try:
+        from threadpoolctl import threadpool_info
+        pools = "; ".join(f"{p.get('internal_api')} {p.get('version')} threads={p.get('num_threads')}"
+                          for p in threadpool_info())
+    except ImportError:
+        pools = "threadpoolctl not installed"
+    try:
+        load = " ".join(f"{x:.2f}" for x in os.getloadavg())
+    except OSError:
+        load = "unknown"
+    return {
+        "cores": os.cpu_count(), "cpu": cpu, "python": platform.python_version(),
+        "platform": platform.platform(), "numpy": numpy.__version__, "scipy": scipy.__version__,
+        "control": control.__version__, "blas env": env or "none set", "blas pools": pools,
+        "load average at start": load,
+    }
+
+
+# -- workloads --------------------------------------------------------------------------------
+
+def run_memory(cfg, rows, notes):
+    """Fresh subprocess running the family sweep; peak RSS from RUSAGE_CHILDREN (run first,
+    before any other child process of this one exists)."""
+    import resource
+
+    cmd = [sys.executable, str(Path(__file__).resolve()), "--child-sweep", str(cfg["variants"])]
+    out = subprocess.run(cmd, check=True, capture_output=True, text=True,
+                         cwd=str(S.ROOT)).stdout.split()
+    rss_mb = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024
+    rows.append(Row("memory", f"peak RSS, family sweep of {cfg['variants']} variants "
+                    "(fresh process)", f"{rss_mb:.0f} MB", "< 500 MB", rss_mb < 500))
+    notes["memory"] = {"children_maxrss_mb": rss_mb, "child_self_mb": int(out[1]) / 1024,
+                       "child_sweep_s": float(out[0])}
+
+
+def run_sweep(cfg, rows, notes):
+    from benchmarks import sweep as W
+
+    t0 = time.perf_counter()
+    fam = S.family(cfg["variants"])
+    t_fam = time.perf_counter() - t0
+    eng = W.engine_sweep(fam, repeats=2)
+    base = W.baseline_sweep(fam, limit=cfg["baseline"])
+    per_base = base.seconds / base.variants * eng.variants
+    ratio = per_base / eng.seconds
+    ratio_cpu = (base.cpu_seconds / base.variants * eng.variants) / eng.cpu_seconds
+    rows.append(Row("family sweep", f"build family of {len(fam)} variants", _s(t_fam)))
+    rows.append(Row("family sweep", f"engine measure_family, {len(S.SUITE)} metrics x "
+                    f"{eng.variants} variants (best of 2), wall / CPU",
+                    f"{_s(eng.seconds)} / {_s(eng.cpu_seconds)}", "< 0.5 s", eng.seconds < 0.5))
+    rows.append(Row("family sweep", f"per-variant python-control loop, first {base.variants} "
+                    f"of the {eng.variants} variants, wall / CPU",
+                    f"{_s(base.seconds)} / {_s(base.cpu_seconds)}"))
+    rows.append(Row("family sweep", f"speed-up engine vs per-variant loop (loop time per "
+                    f"variant x {eng.variants}), wall / CPU", f"{ratio:.1f}x / {ratio_cpu:.1f}x",
+                    ">= 50x", ratio >= 50))
+    dis = W.disagreement(eng, base)
+    for name, d in dis.items():
+        extra = f", {d['finite_mismatch']} variant(s) finite in one only" if d["finite_mismatch"] else ""
+        rows.append(Row("family sweep", f"max rel. disagreement vs python-control: {name}",
+                        f"{d['rel']:.2e} (variant {d['variant']}){extra}"))
+    cf = W.closed_form_checks(fam, eng)
+    for name, e in cf.items():
+        rows.append(Row("family sweep", f"max rel. error vs closed form: {name}", f"{e:.2e}",
+                        "<= 1e-6", e <= 1e-6))
+    notes["sweep"] = {"engine_errors": eng.errors, "disagreement": dis, "closed_form": cf}
+    return fam
+
+
+def run_split(cfg, rows, notes, tmp):
+    """Profile one ledger revision (plan, compute over the family, judge, write)."""
+    from benchmarks import sweep as W
+    from ledger.api import open_ledger
+    from ledger import verify as V
+
+    path = tmp / "split.db"
+    with open_ledger(path, create=True, author="bench") as lg:
+        lg.auto_verify = False
+        lg.add_plant("pipette", S.PLANT_TEXT, params=S.PARAMS,
+                     fidelity={"full-order": S.FULL_TEXT}, samples=cfg["variants"] - 6, seed=1)
+        lg.add_loop("pipette-z", "pipette")
+        for key, metric, limit in S.REQUIREMENTS:
+            lg.add_requirement(key, title=metric, statement=f"{metric} {limit}", metric=metric,
+                               limit=limit, loops=["pipette-z"])
+        V._FAMILIES.clear()          # the family build is part of a first revision's cost
+        prof = W.profile_split(lambda: lg.add_revision("pipette-z", S.CONTROLLER,
+                                                       rationale="profiled revision"))
+    share = prof["outside_share"]
+    rows.append(Row("split", "one revision through the ledger (profiled wall time)",
+                    _s(prof["wall"])))
+    rows.append(Row("split", "time outside numeric kernels", f"{share * 100:.1f} %", "< 30 %",
+                    share < 0.30))
+    notes["split"] = prof
+
+
+def run_incremental(cfg, rows, notes, tmp):
+    from benchmarks import ledgers as Lg
+    from ledger.api import open_ledger
+
+    path = tmp / "incremental.db"
+    b = Lg.build_small_ledger(path, revisions=cfg["small_revisions"], samples=cfg["small_samples"])
+    rows.append(Row("incremental", f"build: {b['revisions']} revisions x {len(S.REQUIREMENTS)} "
+                    f"requirements, {b['variants']} variants (records / one verify)",
+                    f"{_s(b['records_s'])} / {_s(b['verify_s'])}"))
+    inc = Lg.incremental(path)
+    rows.append(Row("incremental", "change one limit: kernel evaluations",
+                    str(inc["rethreshold_requests"]), "0", inc["rethreshold_requests"] == 0))
+    rows.append(Row("incremental", "change one limit: time (tip re-judged)",
+                    _ms(inc["rethreshold_s"]), "< 50 ms", inc["rethreshold_s"] < 0.05))
+    with open_ledger(path, author="bench") as lg:
+        t0 = time.perf_counter()
+        rep = lg.verify(keys=["PZ-08"])
+        t_all = time.perf_counter() - t0
+        n_all = lg.kernel_requests
+    rows.append(Row("incremental", f"re-judge that limit on all {len(rep)} other revisions: "
+                    "kernel evaluations / time", f"{n_all} / {_ms(t_all)}", "0 evaluations",
+                    n_all == 0))
+    rows.append(Row("incremental", "add one revision: kernel evaluations (its own) / time",
+                    f"{inc['add_requests']} / {_ms(inc['add_s'])}",
+                    f"{len(S.REQUIREMENTS)} (one per requirement)",
+                    inc["add_requests"] == len(S.REQUIREMENTS)))
+    notes["incremental"] = {**b, **inc, "rejudge_all_s": t_all, "rejudge_all_requests": n_all}
+    return path
+
+
+def run_parallel(cfg, rows, notes, tmp, small_path):
+    from benchmarks import ledgers as Lg
+
+    if cfg["parallel_revisions"] != cfg["small_revisions"]:
+        small_path = tmp / "parallel-src.db"
+        Lg.build_small_ledger(small_path, revisions=cfg["parallel_revisions"],
+                              samples=cfg["small_samples"])
+    p = Lg.parallel(small_path, tmp)
+    rows.append(Row("parallel", f"re-verify {p[1]['revisions']} revisions after a plant change, "
+                    "workers=1 / workers=2", f"{_s(p[1]['seconds'])} / {_s(p[2]['seconds'])}"))
+    rows.append(Row("parallel", "speed-up workers=2 vs workers=1", f"{p['speedup']:.2f}x",
+                    ">= 1.7x", p["speedup"] >= 1.7))
+    notes["parallel"] = p
+
+
+def run_scale(cfg, rows, notes, tmp):
+    from benchmarks import ledgers as Lg
+
+    path = tmp / "scale.db"
+    b = Lg.build_scale_ledger(path, revisions=cfg["scale_revisions"],
+                              requirements=cfg["scale_requirements"])
+    rows.append(Row("ledger scale", f"bulk build: {b['revisions']} revisions x "
+                    f"{b['requirements']} requirements = {b['results']} results",
+                    f"{_s(b['bulk_s'])} (+ {_s(b['api_s'])} records through the API)"))
+    rows.append(Row("ledger scale", "file size", f"{b['size_mb']:.0f} MB"))
+    r = Lg.scale_reads(path, failing_key=b["failing_key"], slow_repeats=cfg["slow_repeats"])
+    rows.append(Row("ledger scale", "open", _ms(r["open"][0])))
+    rows.append(Row("ledger scale", f"matrix of the latest 20 revisions ({r['matrix_entries']} "
+                    "cells), first / best of 3", f"{_ms(r['matrix20'][0])} / {_ms(r['matrix20'][1])}",
+                    "< 200 ms", r["matrix20"][1] < 0.2))
+    rows.append(Row("ledger scale", "diff tip vs parent, first / best of 3",
+                    f"{_ms(r['diff'][0])} / {_ms(r['diff'][1])}", "< 50 ms", r["diff"][1] < 0.05))
+    rows.append(Row("ledger scale", f"first failing revision (run of {r['failing_run_length']}, "
+                    f"began at {r['first_failing_label']}), first / best of {cfg['slow_repeats']}",
+                    f"{_ms(r['first_failing'][0])} / {_ms(r['first_failing'][1])}", "< 100 ms",
+                    r["first_failing"][1] < 0.1))
+    rows.append(Row("ledger scale", "Ledger.lineage() of the whole loop", r["lineage"]))
+    for what, n in r["queries"].items():
+        rows.append(Row("ledger scale", f"SQL statements issued: {what}", str(n)))
+    u = Lg.ui_start(path, timeout=cfg["ui_timeout"])
+    rows.append(Row("ledger scale", "UI: first screen mounted (headless, imports included)",
+                    _s(u["mounted"]), "< 1 s", u["mounted"] < 1.0))
+    if u["error"]:
+        shown = f"failed: {u['error'][:80]}"
+    elif u["data"] is None:
+        shown = f"not within {cfg['ui_timeout']:.0f} s"
+    else:
+        shown = _s(u["data"])
+    rows.append(Row("ledger scale", "UI: lineage view filled with the ledger's data", shown,
+                    "< 1 s", u["data"] is not None and u["data"] < 1.0))
+    notes["scale"] = {**b, **{k: v for k, v in r.items()}, "ui": u}
+
+
+# -- output -----------------------------------------------------------------------------------
+
+def table(rows) -> str:
+    w1 = max(len(r.workload) for r in rows)
+    w2 = max(len(r.what) for r in rows)
+    w3 = max(len(r.value) for r in rows)
+    lines = []
+    for r in rows:
+        lines.append(f"{r.workload:<{w1}}  {r.what:<{w2}}  {r.value:>{w3}}  {r.goal:<10} {r.met}")
+    return "\n".join(lines)
+
+
+def markdown(info, rows, notes, quick: bool, elapsed: float) -> str:
+    out = ["# Performance", "",
+           "Generated by `python benchmarks/run.py --write-docs` "
+           f"on {datetime.now(timezone.utc):%Y-%m-%d %H:%M} UTC"
+           f"{' (quick run: reduced sizes)' if quick else ''}; the whole run took "
+           f"{elapsed:.0f} s.  Figures are wall-clock times of one run on a shared machine; "
+           "ratios are measured side by side in the same run.  Do not edit by hand.", "",
+           "## Machine", ""]
+    for k, v in info.items():
+        out.append(f"- {k}: {v}")
+    out += ["", "## Figures", "", "| workload | figure | value | goal | |", "|---|---|---|---|---|"]
+    for r in rows:
+        out.append(f"| {r.workload} | {r.what} | {r.value} | {r.goal} | {r.met} |")
+    if "split" in notes:
+        sp = notes["split"]
+        out += ["", "## Where the time of one revision goes (cProfile)", "",
+                f"Profiled total {sp['profiled_total']:.3f} s, in numeric kernels "
+                f"{sp['kernel']:.3f} s (outside: {sp['outside_share'] * 100:.1f} %).  Kernel = "
+                "functions of `ledger/engine/{loop,stability,freqresp,margins,timeresp,timegrid,"
+                "discretize}.py` with everything they call.", "",
+                "| kernel entry (cumulative, from outside the kernels) | s |", "|---|---|"]
+        out += [f"| `{k}` | {v:.3f} |" for k, v in sp["kernel_entries"]]
+        out += ["", "| outside the kernels: own time (tottime) | s |", "|---|---|"]
+        out += [f"| `{k}` | {v:.3f} |" for k, v in sp["outside_tottime_top"]]
+    if "sweep" in notes and notes["sweep"]["engine_errors"]:
+        out += ["", "Engine errors during the sweep:", ""]
+        out += [f"- {k}: {v}" for k, v in notes["sweep"]["engine_errors"].items()]
+    out += ["", "## How the workloads are built", "",
+            "- Scenario: invented pipette axis K/(s (tau_m s + 1)), K = 180 +-10 %, "
+            "tau_m = 30 ms +-20 %, full-order model with tau_e = 0.4 ms; controller "
+            f"`{S.CONTROLLER}`; family = nominal, 4 corners, seeded samples, full-order model.",
+            "- Per-variant baseline: control.feedback, control.step_info, "
+            "control.stability_margins, control.bandwidth, control.step_response for the "
+            "effort, and gridded maxima of |S|, |T|, |S - T| on 2,000 log-spaced points "
+            "(0.1 to 1e5 rad/s).  Disagreements are relative, largest over the variants.",
+            "- Closed forms: proportional control on the reduced model (crossover and phase "
+            "margin in closed form), and brentq on the analytic |L(jw)| and arg L(jw) of the "
+            "PID loop for 40 variants including the full-order model.",
+            "- Incremental: revisions added with `add_revision(verify=False)`, then one "
+            "`verify()`; kernel evaluations counted with `Ledger.kernel_requests`.",
+            "- Parallel: two copies of the incremental ledger, the same new plant version "
+            "(new sample seed) in each, `verify(workers=1)` vs `verify(workers=2)`.",
+            "- Ledger scale: schema by `open_ledger(create=True)`, records through the API, "
+            "then revisions (one lineage chain) and results by `executemany` in one "
+            "transaction; one requirement fails on the last 50 revisions.",
+            "- Memory: the sweep in a fresh subprocess, `ru_maxrss` of RUSAGE_CHILDREN.", ""]
+    return "\n".join(out)
+
+
+def main(argv=None) -> int:
+    ap = argparse.ArgumentParser(description="loopledger speed and scale benchmark")
+    ap.add_argument("--quick", action="store_true", help="reduced sizes, under a minute")
+    ap.add_argument("--write-docs", action="store_true", help="rewrite docs/performance.md")
+    ap.add_argument("--only", default="", help="comma-separated workloads: memory,sweep,split,"
+                    "incremental,parallel,scale")
+    ap.add_argument("--child-sweep", type=int, default=0, help=argparse.SUPPRESS)
+    args = ap.parse_args(argv)
+    if args.child_sweep:
+        from benchmarks import sweep as W
+        W.child_sweep(args.child_sweep)
+        return 0
+    cfg = QUICK if args.quick else FULL
+    only = set(filter(None, args.only.split(",")))
+
+    def want(name):
+        return not only or name in only
+
+    t_start = time.perf_counter()
+    info = machine()
+    if S.demo_spec_path():
+        info["demo spec"] = f"{S.demo_spec_path()} present (workloads use benchmarks/scenario.py)"
+    rows: list[Row] = []
+    notes: dict = {}
+    with tempfile.TemporaryDirectory(prefix="loopledger-bench-") as d:
+        tmp = Path(d)
+        steps = [("memory", lambda: run_memory(cfg, rows, notes)),
+                 ("sweep", lambda: run_sweep(cfg, rows, notes)),
+                 ("split", lambda: run_split(cfg, rows, notes, tmp)),
+                 ("incremental", lambda: notes.__setitem__(
+                     "_small", run_incremental(cfg, rows, notes, tmp))),
+                 ("parallel", lambda: run_parallel(cfg, rows, notes, tmp, notes.get("_small")
+                                                   or _fresh_small(cfg, tmp))),
+                 ("scale", lambda: run_scale(cfg, rows, notes, tmp))]
+        for name, step in steps:
+            if want(name):
+                t0 = time.perf_counter()
+                n_before = len(rows)
+                try:
+                    step()
+                except Exception as e:  # noqa: BLE001 - a failed workload is itself a figure
+                    rows.append(Row(name, "workload failed", f"{type(e).__name__}: {e}"[:120]))
+                print(f"[{name} done in {time.perf_counter() - t0:.1f} s]", file=sys.stderr,
+                      flush=True)
+                print(table(rows[n_before:]) if rows[n_before:] else "", file=sys.stderr,
+                      flush=True)
+    notes.pop("_small", None)
+    elapsed = time.perf_counter() - t_start
+    print(table(rows))
+    print(f"\n(total {elapsed:.0f} s; {info['cores']} cores, {info['cpu']}; "
+          f"load average at start {info['load average at start']})")
+    if args.write_docs:
+        doc = S.ROOT / "docs" / "performance.md"
+        doc.write_text(markdown(info, rows, notes, args.quick, elapsed))
+        print(f"wrote {doc}")
+    return 0
+
+
+def _fresh_small(cfg, tmp):
+    from benchmarks import ledgers as Lg
+
+    path = tmp / "parallel-src.db"
+    Lg.build_small_ledger(path, revisions=cfg["parallel_revisions"], samples=cfg["small_samples"])
+    return path
+
+
+if __name__ == "__main__":
+    sys.exit(main())
