@@ -205,25 +205,20 @@ class Ledger:
 
     # -- lookups --------------------------------------------------------------------------
     @staticmethod
-    def _plant_row(s: Session, name: str) -> Plant:
-        row = s.scalar(select(Plant).where(Plant.name == name))
+    def _one(s: Session, model, column, value, missing: str):
+        row = s.scalar(select(model).where(column == value))
         if row is None:
-            raise NotFoundError(f"no plant named {name!r}")
+            raise NotFoundError(missing)
         return row
 
-    @staticmethod
-    def _loop_row(s: Session, name: str) -> Loop:
-        row = s.scalar(select(Loop).where(Loop.name == name))
-        if row is None:
-            raise NotFoundError(f"no loop named {name!r}")
-        return row
+    def _plant_row(self, s: Session, name: str) -> Plant:
+        return self._one(s, Plant, Plant.name, name, f"no plant named {name!r}")
 
-    @staticmethod
-    def _req_row(s: Session, key: str) -> Requirement:
-        row = s.scalar(select(Requirement).where(Requirement.key == key))
-        if row is None:
-            raise NotFoundError(f"no requirement with ID {key!r}")
-        return row
+    def _loop_row(self, s: Session, name: str) -> Loop:
+        return self._one(s, Loop, Loop.name, name, f"no loop named {name!r}")
+
+    def _req_row(self, s: Session, key: str) -> Requirement:
+        return self._one(s, Requirement, Requirement.key, key, f"no requirement with ID {key!r}")
 
     @staticmethod
     def _latest_plant_version(s: Session, plant_id: int) -> PlantVersion:
