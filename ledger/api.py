@@ -912,6 +912,20 @@ class Ledger:
             report.sort(key=lambda r: order[(r["loop"], r["revision"])])
         return report
 
+    def numeric_setup(self, loop: str, label: str | None = None):
+        """The numeric objects a revision is verified with: ``(family, controller, loop_spec)``
+        (a ``PlantFamily`` of the plant's latest version, the controller and the ``LoopSpec``)
+        for plots, evidence and notebook work with ``ledger.engine``."""
+        from . import verify as V
+
+        with self.reading() as s:
+            lp = self._loop_row(s, loop)
+            rev = self._tip_row(s, lp) if label is None else self._revision_row(s, lp, label)
+            if rev is None:
+                raise NotFoundError(f"loop {loop!r} has no revisions yet")
+            plan = V.plan_revision(s, lp, revision=rev, missing_only=False)
+        return V.family_for(plan), V.controller_for(plan), V.loop_spec_for(plan)
+
     def _after_requirement_change(self, info: RequirementInfo) -> None:
         if self.auto_verify and info.metric and info.status != "retired" and info.loops:
             for lname in info.loops:

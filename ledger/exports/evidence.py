@@ -172,24 +172,12 @@ def column_curves(lg, loop: str, label: str, worst: set[str] | None = None) -> C
     LedgerError
         The revision cannot be rebuilt (a model that no longer parses, an algebraic loop...).
     """
-    from sqlalchemy import select
-
     from ..engine.loop import assemble
     from ..engine.types import PlantFamily
-    from ..store.models import Loop, Revision
-    from ..verify import controller_for, family_for, loop_spec_for, plan_revision
 
-    with lg.reading() as s:
-        lp = s.scalar(select(Loop).where(Loop.name == loop))
-        if lp is None:
-            raise NotFoundError(f"no loop named {loop!r}")
-        rev = s.scalar(select(Revision).where(Revision.loop_id == lp.id, Revision.label == label))
-        if rev is None:
-            raise NotFoundError(f"loop {loop!r} has no revision {label!r}")
-        plan = plan_revision(s, lp, revision=rev, missing_only=False)
-    fam = family_for(plan)
+    fam, controller, loop_spec = lg.numeric_setup(loop, label)
     picked = [fam.variants[0]] + [v for v in fam.variants[1:] if worst and v.name in worst]
-    asm = assemble(PlantFamily(tuple(picked)), controller_for(plan), loop_spec_for(plan))
+    asm = assemble(PlantFamily(tuple(picked)), controller, loop_spec)
     try:
         plant = lg.plant(lg.loop(loop).plant)
         units = (plant.output_unit or "", plant.input_unit or "")

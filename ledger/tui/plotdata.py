@@ -71,7 +71,6 @@ def load_plot_data(lg, loop: str, label: str | None = None, *, variant: str | No
                    ) -> PlotData:
     """Rebuild the loop of ``loop/label`` on ``variant`` (default: nominal) and compute its
     step response and loop-gain frequency response."""
-    from .. import verify as V
     from ..engine.freqresp import frequency_grid
     from ..engine.loop import assemble
     from ..engine.margins import margins
@@ -80,16 +79,12 @@ def load_plot_data(lg, loop: str, label: str | None = None, *, variant: str | No
     from ..errors import NotFoundError
 
     rev = lg.revision(loop, label)
-    with lg.reading() as s:
-        lp = lg._loop_row(s, loop)
-        row = lg._revision_row(s, lp, rev.label)
-        plan = V.plan_revision(s, lp, revision=row, missing_only=False)
-    fam = V.family_for(plan)
+    fam, controller, loop_spec = lg.numeric_setup(loop, rev.label)
     name = variant or "nominal"
     if name not in fam.names:
         raise NotFoundError(f"plant family of loop {loop!r} has no variant {name!r}")
     v = fam.variants[fam.names.index(name)]
-    asm = assemble(PlantFamily((v,)), V.controller_for(plan), V.loop_spec_for(plan))
+    asm = assemble(PlantFamily((v,)), controller, loop_spec)
     grp = asm.groups[0]
     sr = step_response(grp.paths["r->y"])
     t, y = _thin(sr.t, sr.y[0])
@@ -102,7 +97,8 @@ def load_plot_data(lg, loop: str, label: str | None = None, *, variant: str | No
     idx = np.unique(np.geomspace(1, w.size, min(w.size, 400)).round().astype(int) - 1)
     m = margins(fb)
     bounds = []
-    for c in plan.checks:
+    checks = [r for r in lg.requirements(loop=loop) if r.metric and r.status != "retired"]
+    for c in checks:
         kind = {"overshoot": "overshoot", "settling_time": "settling", "rise_time": "rise"}.get(c.metric)
         if kind is None:
             continue
