@@ -496,8 +496,18 @@ def rev_add(loop: str = typer.Argument(..., help="Loop name."),
             parent: Optional[str] = typer.Option(None, "--parent", help="Parent revision label (default: the loop's tip)."),
             root: bool = typer.Option(False, "--root", help="Start a new root (no parent)."),
             label: Optional[str] = typer.Option(None, "--label", help="Label (default r<N>)."),
-            no_verify: bool = typer.Option(False, "--no-verify", help="Record only; verify later with 'loopledger verify'.")):
+            no_verify: bool = typer.Option(False, "--no-verify", help="Record only; verify later with 'loopledger verify'."),
+            exit_on: Optional[str] = typer.Option(None, "--exit-on", help="Exit with status 3 (the revision is still recorded) when a requirement broke against the parent ('broke'), an approved one broke ('approved-broke'), or anything broke or eroded ('any')."),
+):
     """Record a controller revision and verify every applicable requirement on it at once."""
+    from .cli_history import ExitOn
+
+    try:
+        exit_choice = ExitOn(exit_on) if exit_on else None
+    except ValueError:
+        _fail(f"--exit-on must be one of {', '.join(e.value for e in ExitOn)}")
+    status = {"code": 0}
+
     def body():
         with _open() as lg:
             r = lg.add_revision(loop, controller, rationale=why,
@@ -505,12 +515,15 @@ def rev_add(loop: str = typer.Argument(..., help="Loop name."),
                                 verify=not no_verify)
             typer.echo(f"revision {r.loop}/{r.label} recorded (parent {r.parent or 'none'})")
             if not no_verify:
-                from .cli_history import print_regressions
+                from .cli_history import _exit_status, print_regressions
 
-                print_regressions(lg, r.loop, r.label, _Tools)
+                d = print_regressions(lg, r.loop, r.label, _Tools)
                 _print_results(lg.results(r.loop, r.label), f"verdicts for {r.loop}/{r.label}")
                 typer.echo(CAUTION)
+                status["code"] = _exit_status(d, exit_choice) if d.old is not None else 0
     run(body)
+    if status["code"]:
+        raise typer.Exit(status["code"])
 
 
 def _tree_lines(nodes, prefix: str = "") -> list[str]:

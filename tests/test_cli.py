@@ -162,3 +162,17 @@ def test_every_command_has_help_and_is_documented():
         for p in cmd.params:
             if p.param_type_name == "option" and p.name != "help":
                 assert p.help, f"{name} option {p.opts} has no help"
+
+
+def test_revision_add_exit_on_broke(cli):
+    # L = k/(s(s+1)): pm(1) = 51.8 deg, pm(2) = 38.7 deg (closed form, see test_verify.py)
+    cli("plant", "add", "p", "1/(s*(s+1))")
+    cli("loop", "add", "p", "--plant", "p")
+    cli("requirement", "add", "P-1", "--title", "pm", "--statement", "pm >= 45 deg",
+        "--metric", "phase_margin", "--limit", ">= 45 deg", "--loop", "p", "--status", "approved")
+    cli("revision", "add", "p", "gain(1)", "--why", "first", "--exit-on", "approved-broke")
+    res = cli("revision", "add", "p", "gain(2)", "--why", "more gain", "--exit-on",
+              "approved-broke", ok=False)
+    assert res.exit_code == 3 and "BROKE" in res.output and "p/r2 recorded" in res.output
+    res = cli("revision", "add", "p", "gain(0.9)", "--why", "less", "--exit-on", "broke")
+    assert res.exit_code == 0
