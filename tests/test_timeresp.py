@@ -218,15 +218,47 @@ def test_delay_analytic_solution():
     assert_allclose(m.settling_time, ts, rtol=1e-5)
 
 
-def test_delay_second_order_convergence():
+def test_delay_fourth_order_convergence():
     errs = []
-    for m in (20, 40, 80):
+    for m in (5, 10, 20):
         r = step_response(dde(), delay_rtol=1.0, min_delay_steps=m)
         sel = r.t <= 12
         errs.append(np.max(np.abs(r.y[0, sel] - dde_exact(r.t[sel]))))
-    # Source: first-order hold of the delayed input is O(h^2): halving h divides the error by 4.
+    # Source: the cubic Hermite hold of the delayed signal interpolates with error
+    # h^4 max|w(4)| / 384 (polynomial interpolation error formula, from memory) and the linear
+    # part is integrated exactly, so halving h divides the error by 2^4 = 16.
     ratios = np.array(errs[:-1]) / np.array(errs[1:])
-    assert_allclose(ratios, 4.0, rtol=0.1)
+    assert_allclose(ratios, 16.0, rtol=0.05)
+    # the default grid (delay_rtol = 1e-6) meets 1e-6 of the largest |y|
+    r = step_response(dde())
+    sel = r.t <= 12
+    assert np.max(np.abs(r.y[0, sel] - dde_exact(r.t[sel]))) < 1e-6 * np.max(np.abs(r.y))
+
+
+@pytest.mark.parametrize("a,tau", [(2.0, 0.3), (0.5, 2.0)])
+def test_delay_analytic_other_rates(a, tau):
+    r = step_response(dde(a, tau))
+    sel = (r.t > 0) & (r.t <= 8 * tau)
+    # Source: dde_exact (method of steps, closed form series above), rtol 1e-6.
+    assert_allclose(r.y[0, sel], dde_exact(r.t[sel], a, tau), rtol=1e-6)
+    # Source: final-value theorem a / (0 + a) = 1.
+    assert_allclose(r.final, 1.0, rtol=1e-12)
+
+
+def test_neutral_delay_jumps():
+    # w(t) = z(t - tau), z = 1 - w/2, y = w (no state): y = 0 on [0, tau), then 1, 1/2, 3/4, ...
+    tau = 0.1
+    sys = SSBatch(A=np.zeros((1, 0, 0)), B=np.zeros((1, 0)), C=np.zeros((1, 0)), D=np.zeros(1),
+                  tau=tau, Bw=np.zeros((1, 0)), Cz=np.zeros((1, 0)), Dz=np.ones(1),
+                  Dw=np.ones(1), Dzw=np.array([-0.5]))
+    r = step_response(sys)
+    # Source: method of steps (closed form): y = sum_{j<k} (-1/2)^j on [k tau, (k+1) tau),
+    # final value 1 / (1 + 1/2) = 2/3.
+    mid = (np.floor(r.t / tau + 1e-9) + 0.5) * tau
+    sel = (np.abs(r.t - mid) < 0.3 * tau) & (r.t < 3.0)
+    k = np.floor(r.t[sel] / tau + 1e-9)
+    assert_allclose(r.y[0, sel], (1 - (-0.5) ** k) / 1.5, rtol=1e-12, atol=1e-15)
+    assert_allclose(r.final, 2 / 3, rtol=1e-12)
 
 
 def test_delay_proportional_loop_final_value():

@@ -19,8 +19,10 @@ Discrete time: modes are ``log(z) / dt`` (``z = 0`` is a dead-beat mode that end
 samples), the step is ``dt`` and the horizon follows the same ``settle_factor`` rule.
 
 Continuous time with an internal delay ``tau``: the step is ``h = tau / m`` with ``m`` an
-integer (method of steps), small enough that ``h |lam| <= sqrt(6 delay_rtol)`` for the modes of
-``A`` and of the delay-free loop ``A + Bw Cz / (1 - Dzw)``, and ``h <= tau / min_delay_steps``;
+integer (method of steps), small enough that ``h |lam| <= (96 delay_rtol)^(1/4)`` for the modes of
+``A`` and of the delay-free loop ``A + Bw Cz / (1 - Dzw)`` and for ``1 / tau`` (the cubic Hermite
+hold errs by ``(h |lam|)^4 / 384`` of a mode, so this leaves a factor 4 for modes of the delayed
+loop faster than those), and ``h <= tau / min_delay_steps``;
 the horizon is the same ``settle_factor`` rule over those modes, at least ``settle_factor`` delays
 long.  Delayed loops have modes that are not eigenvalues of either matrix, so :func:`simulate`
 extends the horizon until the tail has settled.
@@ -28,8 +30,8 @@ extends the horizon until the tail has settled.
 Exact sampled propagation
 -------------------------
 :func:`simulate` runs the exact propagation on that grid (zero-order-hold-exact matrix
-exponential steps; the difference equation for discrete batches; the first-order-hold method of
-steps for an internal delay, see ``timeresp``) and returns, for every step ``[t_k, t_{k+1}]``,
+exponential steps; the difference equation for discrete batches; the cubic-Hermite-hold method
+of steps for an internal delay, see ``timeresp``) and returns, for every step ``[t_k, t_{k+1}]``,
 the augmented state, end values and slopes and a cubic-Hermite estimate of any interior
 extremum.  The refinement and the metrics live in ``timeresp``.
 """
@@ -162,7 +164,7 @@ def _delay_free_A(sys: SSBatch) -> np.ndarray | None:
 
 def horizon(sys: SSBatch, *, settle_factor: float = 15.0, points_per_period: float = 24.0,
             min_samples: int = 100, max_samples: int = 200_000, delay_rtol: float = 1e-6,
-            min_delay_steps: int = 20) -> TimeGrid:
+            min_delay_steps: int = 8) -> TimeGrid:
     """Choose the simulation horizon and sample grid from every closed-loop mode.
 
     Parameters
@@ -179,9 +181,9 @@ def horizon(sys: SSBatch, *, settle_factor: float = 15.0, points_per_period: flo
     max_samples : int, default 200000
         Most samples; a wider spread of time scales raises :class:`ComputeError`.
     delay_rtol : float, default 1e-6
-        Target relative accuracy of the first-order-hold method of steps (delay only):
-        ``h |lam| <= sqrt(6 delay_rtol)``.
-    min_delay_steps : int, default 20
+        Target relative accuracy of the cubic-Hermite-hold method of steps (delay only):
+        ``h |lam| <= (96 delay_rtol)^(1/4)`` (about 0.1 at the default).
+    min_delay_steps : int, default 8
         Fewest steps per delay ``tau`` (delay only).
 
     Returns
@@ -217,7 +219,7 @@ def horizon(sys: SSBatch, *, settle_factor: float = 15.0, points_per_period: flo
             lam = np.concatenate([lam, _eigs(A0).ravel()])
         lam = lam[lam.real < 0]
         rates = np.concatenate([np.abs(lam), [1.0 / tau]])
-        h = min(tau / min_delay_steps, math.sqrt(6.0 * delay_rtol) / float(np.max(rates)))
+        h = min(tau / min_delay_steps, (96.0 * delay_rtol) ** 0.25 / float(np.max(rates)))
         m = int(math.ceil(tau / h - 1e-9))
         h = tau / m
         t_end = settle_factor * tau
@@ -496,7 +498,37 @@ def _sim_nodelay(sys: SSBatch, u: float, grid: TimeGrid):
     return M, Cy, Z[:, :-1], y[:, :-1], y[:, 1:], dy[:, :-1], dy[:, 1:], Z[:, -1, :n]
 
 
-def _sim_delay(sys: SSBatch, u: float, grid: TimeGrid):
+def _hermite_matrix(L: int, h: float) -> np.ndarray:
+    """Map from ``[wR, wL, w'R, w'L]`` at ``L + 1`` points to ``p0..p3`` of the ``L`` steps.
+
+    Returns ndarray ``(4 L, 4 (L + 1))``; ``p`` of step ``i`` are the value and first three
+    derivatives at its start of the cubic with end values ``wR_i, wL_{i+1}`` and end slopes
+    ``w'R_i, w'L_{i+1}`` (cubic Hermite interpolation).
+    """
+    H = np.zeros((L, 4, L + 1, 4))
+    i = np.arange(L)
+    H[i, 0, i, 0] = 1.0                                  # p0 = w0
+    H[i, 1, i, 2] = 1.0                                  # p1 = d0
+    # p2 = 2 (3 (w1 - w0) / h^2 - (2 d0 + d1) / h)
+    H[i, 2, i + 1, 1] = 6.0 / h ** 2
+    H[i, 2, i, 0] = -6.0 / h ** 2
+    H[i, 2, i, 2] = -4.0 / h
+    H[i, 2, i + 1, 3] = -2.0 / h
+    # p3 = 6 ((d0 + d1) / h^2 - 2 (w1 - w0) / h^3)
+    H[i, 3, i, 2] = 6.0 / h ** 2
+    H[i, 3, i + 1, 3] = 6.0 / h ** 2
+    H[i, 3, i + 1, 1] = -12.0 / h ** 3
+    H[i, 3, i, 0] = 12.0 / h ** 3
+    return H.reshape(4 * L, 4 * (L + 1))
+
+
+def _sim_delay(sys: SSBatch, u: float, grid: TimeGrid, *, block: int = 16):
+    """Method of steps with a cubic Hermite hold of the delayed signal (see ``timeresp``).
+
+    Propagates blocks of at most ``min(lag, block)`` steps, each by one precomputed linear
+    map from (state at the block start, delayed-signal values and slopes) to (states, values
+    and slopes of ``z`` at the block's steps).
+    """
     A, B, C, D = mats(sys)
     Bw, Cz, Dz, Dw, Dzw = _channel(sys)
     V, n = A.shape[0], A.shape[1]
@@ -506,49 +538,83 @@ def _sim_delay(sys: SSBatch, u: float, grid: TimeGrid):
     lag = int(round(tau / h))
     if lag < 1 or abs(lag * h - tau) > 1e-9 * tau:
         raise ComputeError(f"delay step h={h:g} s does not divide tau={tau:g} s; use horizon()")
-    m = n + 3
+    # Z = [x; u; p0; p1; p2; p3]: w(t_k + s) = p0 + p1 s + p2 s^2 / 2 + p3 s^3 / 6 is made by
+    # the chain of integrators p0' = p1, p1' = p2, p2' = p3, p3' = 0.
+    m = n + 5
     M = np.zeros((V, m, m))
     M[:, :n, :n] = A
     M[:, :n, n] = B
     M[:, :n, n + 1] = Bw
     M[:, n + 1, n + 2] = 1.0
-    Cy = np.concatenate([C, D[:, None], Dw[:, None], np.zeros((V, 1))], axis=1)
+    M[:, n + 2, n + 3] = 1.0
+    M[:, n + 3, n + 4] = 1.0
+    Cy = np.concatenate([C, D[:, None], Dw[:, None], np.zeros((V, 3))], axis=1)
     E = expm_batch(M * h)[:, :n, :]                         # (V, n, m)
-    Ex, Eu, Ew, Es = E[:, :, :n], E[:, :, n] * u, E[:, :, n + 1], E[:, :, n + 2]
+    Ex, Eu, Ep = E[:, :, :n], E[:, :, n] * u, E[:, :, n + 1:]
+    CzA = np.einsum("vi,vij->vj", Cz, A)
+    CzBu = np.einsum("vi,vi->v", Cz, B) * u
+    CzBw = np.einsum("vi,vi->v", Cz, Bw)
+    L = min(lag, block)
     N = count + 1
+    # q[:, lag + k] = (zR, zL, z'R, z'L) at t_k, so q[:, k] = (wR, wL, w'R, w'L) at t_k
+    # (zero history before t = 0).
+    q = np.zeros((V, N + lag, 4))
+    q[:, lag, 0] = Dz * u
+    q[:, lag, 2] = CzBu
     x = np.zeros((V, N, n))
-    zR = np.zeros((V, N))
-    zL = np.zeros((V, N))
-    wR = np.zeros((V, N))
-    wL = np.zeros((V, N))
-    zR[:, 0] = Dz * u
-    # Blocks of ``lag`` steps: every delayed value a block needs was made by earlier blocks.
-    for k0 in range(0, N - 1, lag):
-        k1 = min(k0 + lag, N - 1)
-        j = np.arange(k0 + 1, k1 + 1)
-        src = j - lag
-        ok = src >= 0
-        wL[:, j[ok]] = zL[:, src[ok]]
-        wR[:, j[ok]] = zR[:, src[ok]]
-        slope = (wL[:, k0 + 1:k1 + 1] - wR[:, k0:k1]) / h               # (V, steps)
-        g = (Eu[:, None, :] + Ew[:, None, :] * wR[:, k0:k1, None]
-             + Es[:, None, :] * slope[:, :, None])                       # (V, steps, n)
-        if n:
-            for i, k in enumerate(range(k0, k1)):
-                x[:, k + 1] = (Ex @ x[:, k, :, None])[..., 0] + g[:, i]
-        cx = np.einsum("vi,vji->vj", Cz, x[:, k0 + 1:k1 + 1]) + (Dz * u)[:, None]
-        zR[:, k0 + 1:k1 + 1] = cx + Dzw[:, None] * wR[:, k0 + 1:k1 + 1]
-        zL[:, k0 + 1:k1 + 1] = cx + Dzw[:, None] * wL[:, k0 + 1:k1 + 1]
-    slope = (wL[:, 1:] - wR[:, :-1]) / h                   # (V, N-1)
+    # One block of L steps from t_k0:
+    #   x_{k0+i} = Ex^i x_k0 + sum_{l<i} Ex^(i-1-l) (Eu + Ep p_l),  p = H w,  i = 1..L,
+    #   (zR, zL, z'R, z'L)_{k0+i} = Kx x_{k0+i} + Kw w_{k0+i} + kc.
+    pw = np.empty((V, L + 1, n, n))                          # Ex^0 .. Ex^L
+    pw[:, 0] = np.eye(n)
+    for i in range(1, L + 1):
+        pw[:, i] = pw[:, i - 1] @ Ex
+    ii, ll = np.meshgrid(np.arange(L), np.arange(L), indexing="ij")
+    toe = np.where((ll <= ii)[None, :, :, None, None], pw[:, np.clip(ii - ll, 0, L)], 0.0)
+    Gx = pw[:, 1:].reshape(V, L * n, n)
+    Gp = (toe @ Ep[:, None, None]).transpose(0, 1, 3, 2, 4).reshape(V, L * n, L * 4)
+    Gc = (toe @ Eu[:, None, None, :, None]).sum(axis=2).reshape(V, L * n)
+    Gw = Gp @ _hermite_matrix(L, h)                          # (V, L n, 4 (L + 1))
+    Kx1 = np.zeros((V, 4, n))
+    Kx1[:, 0] = Kx1[:, 1] = Cz
+    Kx1[:, 2] = Kx1[:, 3] = CzA
+    Kw1 = np.zeros((V, 4, 4))
+    Kw1[:, 0, 0] = Kw1[:, 1, 1] = Dzw
+    Kw1[:, 2, 0] = Kw1[:, 3, 1] = CzBw
+    Kw1[:, 2, 2] = Kw1[:, 3, 3] = Dzw
+    kc1 = np.stack([Dz * u, Dz * u, CzBu, CzBu], axis=1)     # (V, 4)
+    Kx = np.zeros((V, L * 4, L * n))
+    Kw = np.zeros((V, L * 4, 4 * (L + 1)))
+    for i in range(L):
+        Kx[:, 4 * i:4 * i + 4, n * i:n * i + n] = Kx1
+        Kw[:, 4 * i:4 * i + 4, 4 * (i + 1):4 * (i + 2)] = Kw1
+    # rows: x (L n) then z values (4 L); columns: x_k0 (n) then w at k0..k0+L (4 (L + 1))
+    G = np.concatenate([np.concatenate([Gx, Gw], axis=2),
+                        np.concatenate([Kx @ Gx, Kx @ Gw + Kw], axis=2)], axis=1)
+    c = np.concatenate([Gc, (Kx @ Gc[:, :, None])[..., 0] + np.tile(kc1, (1, L))], axis=1)
+    for k0 in range(0, N - 1, L):
+        Lb = min(L, N - 1 - k0)
+        if Lb == L:
+            Gb, cb = G, c
+        else:
+            rows = np.concatenate([np.arange(Lb * n), L * n + np.arange(4 * Lb)])
+            Gb, cb = G[:, rows, :n + 4 * (Lb + 1)], c[:, rows]
+        rhs = np.concatenate([x[:, k0], q[:, k0:k0 + Lb + 1].reshape(V, 4 * (Lb + 1))], axis=1)
+        out = (Gb @ rhs[:, :, None])[..., 0] + cb
+        x[:, k0 + 1:k0 + Lb + 1] = out[:, :Lb * n].reshape(V, Lb, n)
+        q[:, lag + k0 + 1:lag + k0 + Lb + 1] = out[:, Lb * n:].reshape(V, Lb, 4)
+    w = q[:, :N]                                             # (V, N, 4): wR, wL, w'R, w'L
+    P = np.concatenate([w[:, :-1], w[:, 1:]], axis=2) @ _hermite_matrix(1, h).T   # (V, N-1, 4)
     uu = np.full((V, N - 1, 1), u)
-    Z0 = np.concatenate([x[:, :-1], uu, wR[:, :-1, None], slope[:, :, None]], axis=2)
-    Z1 = np.concatenate([x[:, 1:], uu, wL[:, 1:, None], slope[:, :, None]], axis=2)
+    Z0 = np.concatenate([x[:, :-1], uu, P], axis=2)
+    P1 = np.stack([w[:, 1:, 1], w[:, 1:, 3], P[:, :, 2] + h * P[:, :, 3], P[:, :, 3]], axis=2)
+    Z1 = np.concatenate([x[:, 1:], uu, P1], axis=2)
     CyM = np.einsum("vm,vmk->vk", Cy, M)
-    ya = np.einsum("vnm,vm->vn", Z0, Cy)
-    yb = np.einsum("vnm,vm->vn", Z1, Cy)
-    da = np.einsum("vnm,vm->vn", Z0, CyM)
-    db = np.einsum("vnm,vm->vn", Z1, CyM)
-    return M, Cy, Z0, ya, yb, da, db, (x, zR)
+    ya = (Z0 @ Cy[:, :, None])[..., 0]
+    yb = (Z1 @ Cy[:, :, None])[..., 0]
+    da = (Z0 @ CyM[:, :, None])[..., 0]
+    db = (Z1 @ CyM[:, :, None])[..., 0]
+    return M, Cy, Z0, ya, yb, da, db, (x, q[:, lag:, 0])
 
 
 def _settled(yb, yf, yscale, tail_rtol, window, t):

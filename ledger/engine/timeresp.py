@@ -11,12 +11,13 @@ How the response is made exact
   exact at every sample (no approximation beyond rounding).
 * Discrete: the difference equation at the sample instants; metrics are read at the samples.
 * Continuous with an internal delay ``tau``: method of steps on a grid ``h = tau / m``; on each
-  step the delayed input ``w`` is the straight line between its (known, past) end values and the
-  linear part is integrated exactly for that ramp with ``Z = [x; u; w; w']``,
-  ``M = [[A, B, Bw, 0], [0, 0, 0, 0], [0, 0, 0, 1], [0, 0, 0, 0]]``.  The only error is the
-  first-order hold of ``w``: second order, ``O(h^2)`` (halving ``h`` divides the error by about
-  four).  Jumps of ``w`` and ``y`` at multiples of ``tau`` fall on grid points and are kept as
-  left and right limits.
+  step the delayed input ``w`` is the cubic Hermite interpolant of its (known, past) end values
+  and end slopes (``z' = Cz (A x + B u + Bw w) + Dzw w'`` is known from the state history) and
+  the linear part is integrated exactly for that cubic with ``Z = [x; u; p0; p1; p2; p3]``,
+  ``w = p0``, ``p0' = p1``, ``p1' = p2``, ``p2' = p3``, ``p3' = 0``.  The only error is the
+  interpolation of ``w``: fourth order, ``O(h^4)`` (halving ``h`` divides the error by about
+  16).  Jumps of ``w``, ``y`` and of their slopes at multiples of ``tau`` fall on grid points and
+  are kept as left and right limits.
 * ``io_delay`` shifts the whole response (zero before it).
 
 Between samples the response on each step is ``y(t_k + s) = Cy expm(M s) Z_k`` with
