@@ -668,34 +668,80 @@ class Ledger:
         return self.edit_requirement(key, status="retired", note=note)
 
     def _req_info(self, s: Session, req: Requirement, v: RequirementVersion) -> RequirementInfo:
-        latest = s.scalar(select(func.max(RequirementVersion.number))
-                          .where(RequirementVersion.requirement_id == req.id))
-        unit = ""
-        if v.metric:
-            from .catalogue import metric_unit
+        return self._req_infos(s, [(req, v)])[0]
 
-            try:
-                unit = metric_unit(v.metric)
-            except LedgerError:
-                unit = "?"
-        return RequirementInfo(
-            key=req.key, version=v.number, title=v.title, statement=v.statement,
-            rationale=v.rationale, method=v.method, status=v.status, metric=v.metric,
-            settings=json.loads(v.settings_json), comparator=v.comparator,
-            limit_value=v.limit_value, limit_text=v.limit_text, unit=unit,
-            parents=tuple(sorted(s.get(Requirement, p.parent_id).key for p in v.parents)),
-            loops=tuple(sorted(s.get(Loop, l.loop_id).name for l in v.loops)),
-            author=v.author, note=v.note, content_hash=v.content_hash,
-            created_at=_utc(v.created_at), latest_version=latest,
-        )
+    @staticmethod
+    def _latest_req_versions(s: Session) -> list[tuple[Requirement, RequirementVersion]]:
+        """(requirement, latest version) for every requirement, by ID, in one query."""
+        latest = (select(RequirementVersion.requirement_id,
+                         func.max(RequirementVersion.number).label("n"))
+                  .group_by(RequirementVersion.requirement_id).subquery())
+        rows = s.execute(
+            select(Requirement, RequirementVersion)
+            .join(RequirementVersion, RequirementVersion.requirement_id == Requirement.id)
+            .join(latest, (latest.c.requirement_id == RequirementVersion.requirement_id)
+                  & (latest.c.n == RequirementVersion.number))
+            .order_by(Requirement.key)
+        ).all()
+        return [(r, v) for r, v in rows]
+
+    def _req_infos(self, s: Session, pairs: list[tuple[Requirement, RequirementVersion]]
+                   ) -> list[RequirementInfo]:
+        """Views of many requirement versions with a fixed number of queries."""
+        from .catalogue import metric_unit
+
+        if not pairs:
+            return []
+        vids = [v.id for _, v in pairs]
+        rids = list({r.id for r, _ in pairs})
+        parents: dict[int, list[str]] = {}
+        loops: dict[int, list[str]] = {}
+        latest: dict[int, int] = {}
+        for i in range(0, len(vids), 500):
+            chunk = vids[i:i + 500]
+            for vid, key in s.execute(select(RequirementParent.version_id, Requirement.key)
+                                      .join(Requirement, Requirement.id == RequirementParent.parent_id)
+                                      .where(RequirementParent.version_id.in_(chunk))):
+                parents.setdefault(vid, []).append(key)
+            for vid, name in s.execute(select(RequirementLoop.version_id, Loop.name)
+                                       .join(Loop, Loop.id == RequirementLoop.loop_id)
+                                       .where(RequirementLoop.version_id.in_(chunk))):
+                loops.setdefault(vid, []).append(name)
+        for i in range(0, len(rids), 500):
+            for rid, n in s.execute(select(RequirementVersion.requirement_id,
+                                           func.max(RequirementVersion.number))
+                                    .where(RequirementVersion.requirement_id.in_(rids[i:i + 500]))
+                                    .group_by(RequirementVersion.requirement_id)):
+                latest[rid] = n
+        units: dict[str, str] = {}
+        out = []
+        for req, v in pairs:
+            unit = ""
+            if v.metric:
+                if v.metric not in units:
+                    try:
+                        units[v.metric] = metric_unit(v.metric)
+                    except LedgerError:
+                        units[v.metric] = "?"
+                unit = units[v.metric]
+            out.append(RequirementInfo(
+                key=req.key, version=v.number, title=v.title, statement=v.statement,
+                rationale=v.rationale, method=v.method, status=v.status, metric=v.metric,
+                settings=json.loads(v.settings_json), comparator=v.comparator,
+                limit_value=v.limit_value, limit_text=v.limit_text, unit=unit,
+                parents=tuple(sorted(parents.get(v.id, ()))),
+                loops=tuple(sorted(loops.get(v.id, ()))),
+                author=v.author, note=v.note, content_hash=v.content_hash,
+                created_at=_utc(v.created_at), latest_version=latest[req.id],
+            ))
+        return out
 
     def requirements(self, *, status: str | None = None, loop: str | None = None,
                      include_retired: bool = True) -> list[RequirementInfo]:
         """Latest version of every requirement, by ID; optionally filtered."""
         with self.reading() as s:
             out = []
-            for req in s.scalars(select(Requirement).order_by(Requirement.key)):
-                info = self._req_info(s, req, self._latest_req_version(s, req.id))
+            for info in self._req_infos(s, self._latest_req_versions(s)):
                 if status and info.status != status:
                     continue
                 if not include_retired and info.status == "retired":
@@ -724,7 +770,7 @@ class Ledger:
             rows = s.scalars(select(RequirementVersion)
                              .where(RequirementVersion.requirement_id == req.id)
                              .order_by(RequirementVersion.number)).all()
-            return [self._req_info(s, req, v) for v in rows]
+            return self._req_infos(s, [(req, v) for v in rows])
 
     # -- revisions ------------------------------------------------------------------------
     def _add_revision(self, s: Session, loop: str, controller: str, *, rationale: str,
@@ -938,68 +984,116 @@ class Ledger:
         For each requirement the result judged against the latest requirement and plant
         versions is given; when there is none, the newest older one is given marked stale.
         """
-        from .catalogue import metric_unit
-        from .verify import uncap
-
         with self.reading() as s:
             lp = self._loop_row(s, loop)
             rev = self._tip_row(s, lp) if label is None else self._revision_row(s, lp, label)
             if rev is None:
                 raise NotFoundError(f"loop {loop!r} has no revisions yet")
-            pv = self._latest_plant_version(s, lp.plant_id)
-            rows = s.execute(
-                select(Result, RequirementVersion, Requirement, PlantVersion)
+            return self._results_for(s, lp, [rev], include_stale)[rev.label]
+
+    def results_many(self, loop: str, labels: Sequence[str], *,
+                     include_stale: bool = True) -> dict[str, list[ResultInfo]]:
+        """:meth:`results` for several revisions of one loop at once (a fixed number of
+        queries, whatever the number of revisions)."""
+        with self.reading() as s:
+            lp = self._loop_row(s, loop)
+            wanted = list(dict.fromkeys(labels))
+            revs = []
+            for i in range(0, len(wanted), 500):
+                revs.extend(s.scalars(select(Revision).where(Revision.loop_id == lp.id,
+                                                             Revision.label.in_(wanted[i:i + 500]))))
+            found = {r.label for r in revs}
+            missing = [l for l in wanted if l not in found]
+            if missing:
+                raise NotFoundError(f"loop {loop!r} has no revision {missing[0]!r}")
+            return self._results_for(s, lp, revs, include_stale)
+
+    def _results_for(self, s: Session, lp: Loop, revs: list[Revision],
+                     include_stale: bool) -> dict[str, list[ResultInfo]]:
+        from .catalogue import metric_unit
+        from .verify import uncap
+
+        pv = self._latest_plant_version(s, lp.plant_id)
+        by_id = {r.id: r for r in revs}
+        rows = []
+        ids = list(by_id)
+        for i in range(0, len(ids), 500):
+            rows.extend(s.execute(
+                select(Result, RequirementVersion, Requirement.key, Requirement.id,
+                       PlantVersion.id, PlantVersion.number)
                 .join(RequirementVersion, Result.requirement_version_id == RequirementVersion.id)
                 .join(Requirement, RequirementVersion.requirement_id == Requirement.id)
                 .join(PlantVersion, Result.plant_version_id == PlantVersion.id)
-                .where(Result.revision_id == rev.id)
-            ).all()
-            latest_req = {}
-            best: dict[str, tuple] = {}
-            for res, rv, req, rpv in rows:
-                if req.key not in latest_req:
-                    latest_req[req.key] = self._latest_req_version(s, req.id)
-                lv = latest_req[req.key]
-                if lv.status == "retired":
-                    continue
-                stale = rv.id != lv.id or rpv.id != pv.id
-                rank = (not stale, rv.number, rpv.number, res.id)
-                if req.key not in best or rank > best[req.key][0]:
-                    best[req.key] = (rank, res, rv, rpv, stale)
-            out = []
-            for key in sorted(best):
-                _, res, rv, rpv, stale = best[key]
-                if stale and not include_stale:
-                    continue
-                out.append(ResultInfo(
-                    loop=lp.name, revision=rev.label, requirement=key,
-                    requirement_version=rv.number, plant_version=rpv.number,
-                    verdict="stale" if stale else res.verdict, value=uncap(res.value),
-                    unit=metric_unit(rv.metric) if rv.metric else "", limit_text=rv.limit_text,
-                    headroom=uncap(res.headroom), headroom_fraction=uncap(res.headroom_fraction),
-                    worst_variant=res.worst_variant, pass_fraction=res.pass_fraction,
-                    variants=res.variants, reason=res.reason, engine_version=res.engine_version,
-                    created_at=_utc(res.created_at), stale=stale,
-                ))
-            return out
+                .where(Result.revision_id.in_(ids[i:i + 500]))
+            ).all())
+        req_ids = list({row[3] for row in rows})
+        latest: dict[int, tuple[int, str]] = {}  # requirement id -> (latest version id, status)
+        if req_ids:
+            sub = (select(RequirementVersion.requirement_id,
+                          func.max(RequirementVersion.number).label("n"))
+                   .where(RequirementVersion.requirement_id.in_(req_ids))
+                   .group_by(RequirementVersion.requirement_id).subquery())
+            for rid, vid, status in s.execute(
+                    select(RequirementVersion.requirement_id, RequirementVersion.id,
+                           RequirementVersion.status)
+                    .join(sub, (sub.c.requirement_id == RequirementVersion.requirement_id)
+                          & (sub.c.n == RequirementVersion.number))):
+                latest[rid] = (vid, status)
+        best: dict[tuple[int, str], tuple] = {}
+        for res, rv, key, rid, rpv_id, rpv_number in rows:
+            lv_id, lv_status = latest[rid]
+            if lv_status == "retired":
+                continue
+            stale = rv.id != lv_id or rpv_id != pv.id
+            rank = (not stale, rv.number, rpv_number, res.id)
+            k = (res.revision_id, key)
+            if k not in best or rank > best[k][0]:
+                best[k] = (rank, res, rv, rpv_number, stale)
+        out: dict[str, list[ResultInfo]] = {r.label: [] for r in revs}
+        for (rev_id, key) in sorted(best, key=lambda k: (k[0], k[1])):
+            _, res, rv, rpv_number, stale = best[(rev_id, key)]
+            if stale and not include_stale:
+                continue
+            out[by_id[rev_id].label].append(ResultInfo(
+                loop=lp.name, revision=by_id[rev_id].label, requirement=key,
+                requirement_version=rv.number, plant_version=rpv_number,
+                verdict="stale" if stale else res.verdict, value=uncap(res.value),
+                unit=metric_unit(rv.metric) if rv.metric else "", limit_text=rv.limit_text,
+                headroom=uncap(res.headroom), headroom_fraction=uncap(res.headroom_fraction),
+                worst_variant=res.worst_variant, pass_fraction=res.pass_fraction,
+                variants=res.variants, reason=res.reason, engine_version=res.engine_version,
+                created_at=_utc(res.created_at), stale=stale,
+            ))
+        return out
 
     def _rev_info(self, s: Session, row: Revision) -> RevisionInfo:
         parent = s.get(Revision, row.parent_id).label if row.parent_id else None
         kids = s.scalars(select(Revision.label).where(Revision.parent_id == row.id)
                          .order_by(Revision.seq)).all()
+        return self._make_rev_info(row, row.loop.name, parent, tuple(kids))
+
+    @staticmethod
+    def _make_rev_info(row: Revision, loop: str, parent: str | None,
+                       children: tuple[str, ...]) -> RevisionInfo:
         return RevisionInfo(
-            loop=row.loop.name, label=row.label, seq=row.seq, parent=parent, author=row.author,
+            loop=loop, label=row.label, seq=row.seq, parent=parent, author=row.author,
             rationale=row.rationale, controller=row.controller_text,
-            content_hash=row.content_hash, created_at=_utc(row.created_at), children=tuple(kids),
+            content_hash=row.content_hash, created_at=_utc(row.created_at), children=children,
         )
 
     def revisions(self, loop: str) -> list[RevisionInfo]:
-        """Every revision of ``loop`` in the order recorded."""
+        """Every revision of ``loop`` in the order recorded (two queries, any length)."""
         with self.reading() as s:
             lp = self._loop_row(s, loop)
             rows = s.scalars(select(Revision).where(Revision.loop_id == lp.id)
                              .order_by(Revision.seq)).all()
-            return [self._rev_info(s, r) for r in rows]
+            label = {r.id: r.label for r in rows}
+            kids: dict[int, list[str]] = {}
+            for r in rows:
+                if r.parent_id is not None:
+                    kids.setdefault(r.parent_id, []).append(r.label)
+            return [self._make_rev_info(r, lp.name, label.get(r.parent_id) if r.parent_id else None,
+                                        tuple(kids.get(r.id, ()))) for r in rows]
 
     def revision(self, loop: str, label: str | None = None) -> RevisionInfo:
         """One revision; ``label=None`` gives the loop's tip (latest recorded)."""
@@ -1016,14 +1110,12 @@ class Ledger:
     def lineage(self, loop: str) -> list[LineageNode]:
         """The revision tree of ``loop``: a list of roots, children in recorded order."""
         revs = self.revisions(loop)
-        by_parent: dict[str | None, list[RevisionInfo]] = {}
-        for r in revs:
-            by_parent.setdefault(r.parent, []).append(r)
-
-        def build(r: RevisionInfo) -> LineageNode:
-            return LineageNode(r, tuple(build(c) for c in by_parent.get(r.label, [])))
-
-        return [build(r) for r in by_parent.get(None, [])]
+        # children are always recorded after their parent: build bottom-up without recursion
+        # (a loop may carry thousands of revisions in one chain)
+        built: dict[str, LineageNode] = {}
+        for r in reversed(revs):
+            built[r.label] = LineageNode(r, tuple(built[c] for c in r.children))
+        return [built[r.label] for r in revs if r.parent is None]
 
     def ancestry(self, loop: str, label: str) -> list[RevisionInfo]:
         """``label`` and its ancestors, newest first."""

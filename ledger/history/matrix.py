@@ -108,9 +108,14 @@ def build_matrix(lg, selection: str | Sequence[tuple[str, str]] = "tips", *,
         for lname, label in selection:
             columns.append(lg.revision(lname, label))
     reqs = tuple(r for r in lg.requirements() if r.status != "retired")
+    by_loop: dict[str, list[str]] = {}
+    for col in columns:
+        by_loop.setdefault(col.loop, []).append(col.label)
+    fetched = {(lname, label): res for lname, labels in by_loop.items()
+               for label, res in lg.results_many(lname, labels).items()}
     entries = []
     for col in columns:
-        results = {r.requirement: r for r in lg.results(col.loop, col.label)}
+        results = {r.requirement: r for r in fetched[(col.loop, col.label)]}
         for r in reqs:
             if r.metric and col.loop in r.loops:
                 entries.append(MatrixEntry(r, col.loop, col, results.get(r.key)))

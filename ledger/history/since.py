@@ -144,8 +144,16 @@ def first_failing(lg, loop: str, requirement: str, label: str | None = None) -> 
                           since_root=False, boundary=None, boundary_verdict=None, **base)
     run = [(start, current)]
     boundary, boundary_verdict = None, None
-    for rev in chain[1:]:
-        res = _result_for(lg, loop, rev.label, requirement)
+    fetched: dict[str, ResultInfo | None] = {}
+    block = 16  # results are read a block of ancestors at a time (long runs cost few queries)
+    for i, rev in enumerate(chain[1:]):
+        if rev.label not in fetched:
+            labels = [r.label for r in chain[1 + i:1 + i + block]]
+            block *= 2
+            many = lg.results_many(loop, labels)
+            for lbl in labels:
+                fetched[lbl] = next((r for r in many[lbl] if r.requirement == requirement), None)
+        res = fetched[rev.label]
         rv = _verdict(res)
         if rv in _NOT_PASSING:
             run.append((rev, res))

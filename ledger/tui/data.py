@@ -42,16 +42,16 @@ class LineageData:
 def load_lineage(lg) -> LineageData:
     loops = {}
     for lp in lg.loops():
+        revs = lg.revisions(lp.name)
+        results = lg.results_many(lp.name, [r.label for r in revs])
+        by_label = {r.label: r for r in revs}
         rows: list[RevisionRow] = []
-
-        def walk(node, depth):
-            r = node.revision
-            rows.append(RevisionRow(r, verdict_counts(lg.results(lp.name, r.label)), depth))
-            for c in node.children:
-                walk(c, depth + 1)
-
-        for root in lg.lineage(lp.name):
-            walk(root, 0)
+        # depth-first, children in recorded order, without recursion (chains can be long)
+        stack = [(r, 0) for r in reversed([r for r in revs if r.parent is None])]
+        while stack:
+            r, depth = stack.pop()
+            rows.append(RevisionRow(r, verdict_counts(results[r.label]), depth))
+            stack.extend((by_label[c], depth + 1) for c in reversed(r.children))
         loops[lp.name] = tuple(rows)
     return LineageData(loops)
 
