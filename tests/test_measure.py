@@ -400,3 +400,18 @@ def test_measurement_behaves_as_a_mapping():
     assert set(m.errors) == {"overshoot"}
     assert m.variants == ("nominal",)
     assert m.unit("overshoot") == "%"
+
+
+# --------------------------------------------------------------------------- regressions
+@pytest.mark.parametrize("delay", [0.005, 0.002])
+def test_peak_effort_pi_first_order_with_input_delay(delay):
+    # Regression: "refinement of a crossing ... did not converge" on this family (the Newton
+    # refinement stalled on a flat derivative).  Corners of Km = 52 +-10 %, tau = 0.05 +-20 %.
+    from ledger.systems.family import build_family
+    fam = build_family("Km/(tau*s+1)", {"Km": {"nominal": 52, "tol": "10 %"},
+                                         "tau": {"nominal": 0.05, "tol": "20 %"}})
+    m = measure(fam, "pi(0.05, 1.0)", ["peak_effort"], delay=delay, amplitude=150)
+    # Source: method of steps (closed form): on [0, delay] the plant output is still 0, so the
+    # controller output is u = A (kp + ki t), largest at t = delay; after it the plant output
+    # rises at Km u / tau_p, far faster than ki A, so u falls: peak A (kp + ki delay).
+    assert_allclose(m["peak_effort"], 150 * (0.05 + 1.0 * delay), rtol=1e-9)

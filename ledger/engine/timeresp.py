@@ -146,11 +146,14 @@ class _Problems:
 
 
 def _solve(P: _Problems, lo, hi, f_lo, f_hi, level, *, order: int, xtol: float = 1e-13,
-           maxiter: int = 100):
+           maxiter: int = 200):
     """Bracketed Newton for ``y^(order)(t_k + s) = level`` with ``s`` in ``[lo, hi]``.
 
     ``f_lo`` and ``f_hi`` are the function values minus ``level`` at the bracket ends and have
-    opposite signs (or one is zero).  Returns ``(s, y(t_k + s))``.
+    opposite signs (or one is zero).  Newton steps are kept while they halve the bracket at
+    least every two iterations, bisection otherwise, so the bracket shrinks to ``xtol`` of its
+    width within ``2 * 45`` iterations whatever the rounding of ``f``.  Returns
+    ``(s, y(t_k + s))``.
     """
     lo = np.array(lo, dtype=float)
     hi = np.array(hi, dtype=float)
@@ -165,7 +168,8 @@ def _solve(P: _Problems, lo, hi, f_lo, f_hi, level, *, order: int, xtol: float =
     sign_lo = np.sign(f_lo)
     active = np.nonzero((f_lo != 0) & (f_hi != 0))[0]
     tol = xtol * np.maximum(width, 1e-300)
-    for _ in range(maxiter):
+    ref = width.copy()                   # bracket width two iterations ago
+    for it in range(maxiter):
         if active.size == 0:
             break
         y, d1, d2 = P.eval(active, s[active])
@@ -177,6 +181,12 @@ def _solve(P: _Problems, lo, hi, f_lo, f_hi, level, *, order: int, xtol: float =
         with np.errstate(divide="ignore", invalid="ignore"):
             newton = s[active] - f / g
         inside = np.isfinite(newton) & (newton > lo[active]) & (newton < hi[active])
+        if it % 2 == 1:
+            # Newton steps that do not halve the bracket every two iterations (f at rounding
+            # level, flat f) give way to a bisection, so the bracket always shrinks.
+            wnow = hi[active] - lo[active]
+            inside &= wnow <= 0.5 * ref[active]
+            ref[active] = wnow
         new = np.where(inside, newton, 0.5 * (lo[active] + hi[active]))
         done = (np.abs(new - s[active]) <= tol[active]) | (f == 0) | \
                (hi[active] - lo[active] <= tol[active])
