@@ -454,3 +454,28 @@ def test_metrics_against_dense_reference(zeta, wn, p, c):
     if m.settling_time[0] > 0:
         y_ts = evaluate_at(b, m.settling_time)[0, 0]
         assert_allclose(abs(y_ts - 1.0), 0.02, rtol=1e-7)
+
+
+def test_gantry_equilibrium_not_singular():
+    # Regression: "equilibrium is singular" (reciprocal condition 1.58e-16) on the gantry nominal
+    # plant with lead(90, 15, 150)*lowpass(2000)*notch(2*pi*60, 0.05, 0.5).  The companion
+    # realisation of the closed loop has entries 1e19 apart; balancing makes it well posed.
+    from ledger.systems.model import parse_model
+    params = {"Kf": 12.0, "mh": 0.9, "mp": 0.25, "b": 6.0, "kb": 163000.0, "cb": 35.0}
+    G = parse_model("Kf/(s*((mh+mp)*s+b)) * (cb*s+kb)/((mh+mp)*s^2+cb*s+kb)", params).system
+    C = parse_model("lead(90, 15, 150)*lowpass(2000)*notch(2*pi*60,0.05,0.5)").system
+    T = control.feedback(C * G, 1)
+    S = control.ss(T)
+    sys = SSBatch(A=S.A[None], B=S.B.T, C=S.C, D=S.D.ravel())
+    # Source: python-control dcgain of the closed loop (reference library) and its poles
+    # (all in the open left half plane).
+    assert np.max(control.poles(T).real) < 0
+    assert_allclose(final_value(sys), control.dcgain(T), rtol=1e-9)
+    m = step_metrics(sys)
+    assert_allclose(m.final_value, 1.0, rtol=1e-9)
+    # Source: python-control step_response on a dense grid (reference library), settling time
+    # of the 2 % band read from it to within one 2e-5 s sample.
+    t = np.linspace(0, 1.0, 50_001)
+    y = control.step_response(T, T=t).outputs
+    out = np.nonzero(np.abs(y - 1.0) > 0.02)[0]
+    assert_allclose(m.settling_time, t[out[-1]], atol=2.5e-5)

@@ -56,7 +56,9 @@ def final_value(sys: SSBatch, amplitude: float = 1.0, *, singular_rcond: float =
     """Steady-state output for a step, by the final-value theorem from the matrices.
 
     Solves the equilibrium ``0 = A x + B u + Bw w`` (discrete: ``x = A x + B u``) with
-    ``w = z = Cz x + Dz u + Dzw w`` and returns ``C x + D u + Dw w``.
+    ``w = z = Cz x + Dz u + Dzw w`` and returns ``C x + D u + Dw w``, in balanced state
+    coordinates (:func:`~ledger.engine.timegrid.balance`), so that a realisation with entries
+    far apart is not mistaken for a singular one.
 
     Parameters
     ----------
@@ -79,7 +81,7 @@ def final_value(sys: SSBatch, amplitude: float = 1.0, *, singular_rcond: float =
         A continuous (no delay) or discrete batch has an eigenvalue that is not strictly stable
         (the theorem does not apply).  Delayed loops are checked by :func:`step_response`.
     """
-    _, _, y = equilibrium(sys, amplitude, singular_rcond)
+    _, _, y = equilibrium(balance(sys), amplitude, singular_rcond)
     if not has_delay(sys):
         check_stable(sys)
     return y
