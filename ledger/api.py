@@ -1119,13 +1119,25 @@ class Ledger:
 
     def ancestry(self, loop: str, label: str) -> list[RevisionInfo]:
         """``label`` and its ancestors, newest first."""
+        labels = self.ancestry_labels(loop, label)
         revs = {r.label: r for r in self.revisions(loop)}
-        if label not in revs:
+        return [revs[l] for l in labels]
+
+    def ancestry_labels(self, loop: str, label: str) -> list[str]:
+        """Labels of ``label`` and its ancestors, newest first (one light query)."""
+        with self.reading() as s:
+            lp = self._loop_row(s, loop)
+            rows = s.execute(select(Revision.id, Revision.label, Revision.parent_id)
+                             .where(Revision.loop_id == lp.id)).all()
+        by_label = {lbl: (rid, pid) for rid, lbl, pid in rows}
+        by_id = {rid: lbl for rid, lbl, _ in rows}
+        if label not in by_label:
             raise NotFoundError(f"loop {loop!r} has no revision {label!r}")
-        out, cur = [], revs[label]
+        out, cur = [], label
         while cur is not None:
             out.append(cur)
-            cur = revs.get(cur.parent) if cur.parent else None
+            pid = by_label[cur][1]
+            cur = by_id[pid] if pid is not None else None
         return out
 
     # -- starter sets ---------------------------------------------------------------------

@@ -132,7 +132,7 @@ def first_failing(lg, loop: str, requirement: str, label: str | None = None) -> 
     """
     lg.requirement(requirement)  # raises NotFoundError for an unknown ID
     start = lg.revision(loop, label)
-    chain = lg.ancestry(loop, start.label)  # newest first
+    chain = lg.ancestry_labels(loop, start.label)  # newest first
     current = _result_for(lg, loop, start.label, requirement)
     v = _verdict(current)
     base = dict(loop=loop, requirement=requirement, label=start.label, current=current)
@@ -142,25 +142,26 @@ def first_failing(lg, loop: str, requirement: str, label: str | None = None) -> 
     if v not in _NOT_PASSING:
         return FailingRun(state="unknown", first=None, first_result=None, run=(),
                           since_root=False, boundary=None, boundary_verdict=None, **base)
-    run = [(start, current)]
+    run = [(start.label, current)]
     boundary, boundary_verdict = None, None
     fetched: dict[str, ResultInfo | None] = {}
     block = 16  # results are read a block of ancestors at a time (long runs cost few queries)
-    for i, rev in enumerate(chain[1:]):
-        if rev.label not in fetched:
-            labels = [r.label for r in chain[1 + i:1 + i + block]]
+    for i, rev_label in enumerate(chain[1:]):
+        if rev_label not in fetched:
+            labels = chain[1 + i:1 + i + block]
             block *= 2
             many = lg.results_many(loop, labels)
             for lbl in labels:
                 fetched[lbl] = next((r for r in many[lbl] if r.requirement == requirement), None)
-        res = fetched[rev.label]
+        res = fetched[rev_label]
         rv = _verdict(res)
         if rv in _NOT_PASSING:
-            run.append((rev, res))
+            run.append((rev_label, res))
             continue
-        boundary, boundary_verdict = rev, rv
+        boundary, boundary_verdict = lg.revision(loop, rev_label), rv
         break
-    first, first_result = run[-1]
+    first_label, first_result = run[-1]
+    first = start if first_label == start.label else lg.revision(loop, first_label)
     return FailingRun(state="failing", first=first, first_result=first_result,
-                      run=tuple(r.label for r, _ in reversed(run)), since_root=boundary is None,
+                      run=tuple(lbl for lbl, _ in reversed(run)), since_root=boundary is None,
                       boundary=boundary, boundary_verdict=boundary_verdict, **base)

@@ -51,7 +51,10 @@ def load_lineage(lg) -> LineageData:
         while stack:
             r, depth = stack.pop()
             rows.append(RevisionRow(r, verdict_counts(results[r.label]), depth))
-            stack.extend((by_label[c], depth + 1) for c in reversed(r.children))
+            # a straight run of revisions stays at one depth; only a branch indents, so a
+            # long history reads as a column and never nests thousands deep
+            step = 1 if len(r.children) > 1 else 0
+            stack.extend((by_label[c], depth + step) for c in reversed(r.children))
         loops[lp.name] = tuple(rows)
     return LineageData(loops)
 
