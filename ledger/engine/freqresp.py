@@ -169,16 +169,18 @@ def _estimate_delay(evaluate, dt, poles, zeros, *, w_start=None, w_stop=None) ->
         ph = (np.angle(L)
               + np.sum(np.where(Pm[:, None, :], np.angle(x[None, :, None] - P[:, None, :]), 0), axis=2)
               - np.sum(np.where(Zm[:, None, :], np.angle(x[None, :, None] - Z[:, None, :]), 0), axis=2))
-    for v in range(nvar):
-        if not np.all(np.isfinite(ph[v])):
-            continue
-        theta = ph[v, 0]
-        est = 0.0
-        for i in range(1, k):
-            pred = theta - (w[i] - w[i - 1]) * est
-            theta = pred + math.remainder(ph[v, i] - pred, 2 * math.pi)
-            est = -(theta - ph[v, 0]) / (w[i] - w[0])
-        tau[v] = max(est, 0.0)
+    # unwrap the delay-free phase residual along the doubling grid, all variants at once
+    good = np.all(np.isfinite(ph), axis=1)
+    ph = np.where(good[:, None], ph, 0.0)
+    theta = ph[:, 0].copy()
+    est = np.zeros(nvar)
+    two_pi = 2 * math.pi
+    for i in range(1, k):
+        pred = theta - (w[i] - w[i - 1]) * est
+        d = ph[:, i] - pred
+        theta = pred + (d - two_pi * np.round(d / two_pi))
+        est = -(theta - ph[:, 0]) / (w[i] - w[0])
+    tau = np.where(good, np.maximum(est, 0.0), 0.0)
     return tau
 
 
@@ -217,7 +219,10 @@ class _Sampler:
         self.Z, self.Zm = _pad(zeros)
         self.tau = _estimate_delay(evaluate, dt, poles, zeros) if tau is None else np.asarray(tau)
         V = self.nvar
-        self.logc = np.zeros(V, complex)
+        mm = max(self.P.shape[1], self.Z.shape[1])
+        self.Pp, self.Pq, self.Zp, self.Zq = (np.pad(a, ((0, 0), (0, mm - a.shape[1])))
+                                              for a in (self.P, self.Pm, self.Z, self.Zm))
+        self.c = np.zeros(V, complex)
         self.ok = np.zeros(V, bool)
         w = np.asarray(w, float)
         if w.size > check_points:
@@ -230,32 +235,37 @@ class _Sampler:
         for v0 in range(0, V, chunk):
             v1 = min(V, v0 + chunk)
             rows = np.arange(v0, v1)
-            E = self._expo(np.repeat(rows, n), np.tile(w, rows.size)).reshape(rows.size, n)
+            R = self._shape(np.repeat(rows, n), np.tile(w, rows.size)).reshape(rows.size, n)
             Hc = H[v0:v1]
             with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
                 mag = np.abs(Hc)
-                valid = np.isfinite(Hc) & np.isfinite(E) & (mag >= 1e-6) & (mag <= 1e6)
+                valid = (np.isfinite(Hc) & np.isfinite(R) & (R != 0) & (mag >= 1e-6)
+                         & (mag <= 1e6))
                 dist = np.where(valid, np.abs(np.log(np.where(valid, mag, 1.0))), np.inf)
                 j = np.argmin(dist, axis=1)
                 r = np.arange(rows.size)
-                logc = np.log(Hc[r, j]) - E[r, j]
-                model = np.exp(logc[:, None] + E)
+                c = Hc[r, j] / R[r, j]
+                model = c[:, None] * R
                 err = np.where(valid, np.abs(model - Hc) / np.where(valid, mag, 1.0), 0.0)
             has = valid.any(axis=1)
-            self.logc[v0:v1] = np.where(has, logc, 0.0)
+            self.c[v0:v1] = np.where(has, c, 0.0)
             self.ok[v0:v1] = has & (np.max(err, axis=1) <= model_rtol)
 
-    def _expo(self, vi, w):
-        """log of the model without ``c``: sum log(x - z) - sum log(x - p) - jw tau."""
+    def _shape(self, vi, w):
+        """The model without ``c``: ``exp(-jw tau) prod(x - z) / prod(x - p)``.
+
+        Zeros and poles are taken in pairs, ``(x - z_k) / (x - p_k)``, so that the running
+        product stays of moderate size (no overflow for high orders).
+        """
         w = np.asarray(w, float)
-        x = 1j * w if self.dt is None else np.exp(1j * w * self.dt)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            e = -1j * w * (self.tau[vi] if self.dt is None else 0.0)
-            if self.Z.shape[1]:
-                e = e + np.sum(np.where(self.Zm[vi], np.log(x[:, None] - self.Z[vi]), 0), axis=1)
-            if self.P.shape[1]:
-                e = e - np.sum(np.where(self.Pm[vi], np.log(x[:, None] - self.P[vi]), 0), axis=1)
-        return e
+        x = (1j * w if self.dt is None else np.exp(1j * w * self.dt))[:, None]
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            num = np.where(self.Zq[vi], x - self.Zp[vi], 1.0)
+            den = np.where(self.Pq[vi], x - self.Pp[vi], 1.0)
+            r = np.prod(num / den, axis=1)
+            if self.dt is None:
+                r = r * np.exp(-1j * w * self.tau[vi])
+        return r
 
     def at(self, vi, w) -> np.ndarray:
         """Complex values H_{vi[k]}(w[k])."""
@@ -265,7 +275,7 @@ class _Sampler:
         m = self.ok[vi]
         if m.any():
             with np.errstate(over="ignore", invalid="ignore"):
-                out[m] = np.exp(self.logc[vi[m]] + self._expo(vi[m], w[m]))
+                out[m] = self.c[vi[m]] * self._shape(vi[m], w[m])
         if (~m).any():
             uw, inv = np.unique(w[~m], return_inverse=True)
             vals = _call(self.evaluate, uw, self.nvar)
