@@ -991,8 +991,8 @@ class Ledger:
                 raise NotFoundError(f"loop {loop!r} has no revisions yet")
             return self._results_for(s, lp, [rev], include_stale)[rev.label]
 
-    def results_many(self, loop: str, labels: Sequence[str], *,
-                     include_stale: bool = True) -> dict[str, list[ResultInfo]]:
+    def results_many(self, loop: str, labels: Sequence[str], *, include_stale: bool = True,
+                     keys: Sequence[str] | None = None) -> dict[str, list[ResultInfo]]:
         """:meth:`results` for several revisions of one loop at once (a fixed number of
         queries, whatever the number of revisions)."""
         with self.reading() as s:
@@ -1006,10 +1006,10 @@ class Ledger:
             missing = [l for l in wanted if l not in found]
             if missing:
                 raise NotFoundError(f"loop {loop!r} has no revision {missing[0]!r}")
-            return self._results_for(s, lp, revs, include_stale)
+            return self._results_for(s, lp, revs, include_stale, keys)
 
-    def _results_for(self, s: Session, lp: Loop, revs: list[Revision],
-                     include_stale: bool) -> dict[str, list[ResultInfo]]:
+    def _results_for(self, s: Session, lp: Loop, revs: list[Revision], include_stale: bool,
+                     keys: Sequence[str] | None = None) -> dict[str, list[ResultInfo]]:
         from .catalogue import metric_unit
         from .verify import uncap
 
@@ -1024,7 +1024,8 @@ class Ledger:
                 .join(RequirementVersion, Result.requirement_version_id == RequirementVersion.id)
                 .join(Requirement, RequirementVersion.requirement_id == Requirement.id)
                 .join(PlantVersion, Result.plant_version_id == PlantVersion.id)
-                .where(Result.revision_id.in_(ids[i:i + 500]))
+                .where(Result.revision_id.in_(ids[i:i + 500]),
+                       *([Requirement.key.in_(list(keys))] if keys is not None else []))
             ).all())
         req_ids = list({row[3] for row in rows})
         latest: dict[int, tuple[int, str]] = {}  # requirement id -> (latest version id, status)
@@ -1065,6 +1066,43 @@ class Ledger:
                 created_at=_utc(res.created_at), stale=stale,
             ))
         return out
+
+    def verdict_counts(self, loop: str) -> dict[str, dict[str, int]]:
+        """Per revision label of ``loop``: how many current requirements pass, fail, are in
+        error or are stale — counted in the database (cheap for thousands of revisions)."""
+        with self.reading() as s:
+            lp = self._loop_row(s, loop)
+            pv = self._latest_plant_version(s, lp.plant_id)
+            latest = (select(RequirementVersion.requirement_id,
+                             func.max(RequirementVersion.number).label("n"))
+                      .group_by(RequirementVersion.requirement_id).subquery())
+            current = (select(RequirementVersion.id, RequirementVersion.requirement_id)
+                       .join(latest, (latest.c.requirement_id == RequirementVersion.requirement_id)
+                             & (latest.c.n == RequirementVersion.number))
+                       .where(RequirementVersion.status != "retired").subquery())
+            labels = dict(s.execute(select(Revision.id, Revision.label)
+                                    .where(Revision.loop_id == lp.id)).all())
+            out = {lbl: {"pass": 0, "fail": 0, "error": 0, "stale": 0} for lbl in labels.values()}
+            fresh_total: dict[int, int] = {}
+            for rid, verdict, n in s.execute(
+                    select(Result.revision_id, Result.verdict, func.count())
+                    .join(current, current.c.id == Result.requirement_version_id)
+                    .join(Revision, Revision.id == Result.revision_id)
+                    .where(Revision.loop_id == lp.id, Result.plant_version_id == pv.id)
+                    .group_by(Result.revision_id, Result.verdict)):
+                out[labels[rid]][verdict] = out[labels[rid]].get(verdict, 0) + n
+                fresh_total[rid] = fresh_total.get(rid, 0) + n
+            judged = (select(RequirementVersion.requirement_id)
+                      .where(RequirementVersion.id == Result.requirement_version_id)
+                      .scalar_subquery())
+            for rid, n in s.execute(
+                    select(Result.revision_id, func.count(func.distinct(judged)))
+                    .join(Revision, Revision.id == Result.revision_id)
+                    .where(Revision.loop_id == lp.id,
+                           judged.in_(select(current.c.requirement_id)))
+                    .group_by(Result.revision_id)):
+                out[labels[rid]]["stale"] = n - fresh_total.get(rid, 0)
+            return out
 
     def _rev_info(self, s: Session, row: Revision) -> RevisionInfo:
         parent = s.get(Revision, row.parent_id).label if row.parent_id else None

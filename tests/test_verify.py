@@ -154,3 +154,20 @@ def test_matrix_over_all_revisions(pm_ledger):
     assert m.cell("R-PM", "p", "r1").verdict == "pass"
     assert m.cell("R-PM", "p", "r2").verdict == "fail"
     assert m.counts() == {"pass": 3, "fail": 1}
+
+
+def test_verdict_counts_in_sql_agree_with_results(pm_ledger):
+    """Two methods: counts computed in the database vs counting the per-result views."""
+    from collections import Counter
+
+    lg = pm_ledger
+    lg.add_revision("p", "gain(1)", rationale="a")
+    lg.add_revision("p", "gain(1.2)", rationale="b")
+    lg.edit_requirement("R-GM", limit=">= 7 dB")            # r2 (tip) re-judged, r1 stale
+    lg.add_revision("p", "gain(0.9)", rationale="c", verify=False)  # unverified
+    counts = lg.verdict_counts("p")
+    for label in ("r1", "r2", "r3"):
+        want = Counter(r.verdict for r in lg.results("p", label))
+        got = {k: v for k, v in counts[label].items() if v}
+        assert got == dict(want), label
+    assert counts["r1"]["stale"] == 1 and counts["r3"] == {"pass": 0, "fail": 0, "error": 0, "stale": 0}

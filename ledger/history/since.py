@@ -150,7 +150,7 @@ def first_failing(lg, loop: str, requirement: str, label: str | None = None) -> 
         if rev_label not in fetched:
             labels = chain[1 + i:1 + i + block]
             block *= 2
-            many = lg.results_many(loop, labels)
+            many = lg.results_many(loop, labels, keys=[requirement])
             for lbl in labels:
                 fetched[lbl] = next((r for r in many[lbl] if r.requirement == requirement), None)
         res = fetched[rev_label]

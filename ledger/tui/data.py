@@ -43,14 +43,14 @@ def load_lineage(lg) -> LineageData:
     loops = {}
     for lp in lg.loops():
         revs = lg.revisions(lp.name)
-        results = lg.results_many(lp.name, [r.label for r in revs])
+        counts = lg.verdict_counts(lp.name)
         by_label = {r.label: r for r in revs}
         rows: list[RevisionRow] = []
         # depth-first, children in recorded order, without recursion (chains can be long)
         stack = [(r, 0) for r in reversed([r for r in revs if r.parent is None])]
         while stack:
             r, depth = stack.pop()
-            rows.append(RevisionRow(r, verdict_counts(results[r.label]), depth))
+            rows.append(RevisionRow(r, counts[r.label], depth))
             # a straight run of revisions stays at one depth; only a branch indents, so a
             # long history reads as a column and never nests thousands deep
             step = 1 if len(r.children) > 1 else 0
