@@ -124,8 +124,8 @@ async def test_lineage_view_tree_counts_and_navigation(ledger):
         tree = app.screen.query_one(Tree)
         loop_node = tree.root.children[0]
         assert loop_node.data == ("pos", None)
-        # a straight run of revisions is one column (only branches indent)
-        r1, r2 = loop_node.children[0], loop_node.children[1]
+        r1 = loop_node.children[0]
+        r2 = r1.children[0]
         assert (r1.data, r2.data) == (("pos", "r1"), ("pos", "r2"))
         # verdict counts from lg.results: r1 passes PM, GM, OS and fails WC (closed forms above)
         assert "✓3 ✗1 !0 ~0" in str(r1.label)

@@ -39,6 +39,10 @@ class LineageData:
     loops: dict = field(default_factory=dict)
 
 
+#: deepest indentation of the lineage tree
+MAX_DEPTH = 16
+
+
 def load_lineage(lg) -> LineageData:
     loops = {}
     for lp in lg.loops():
@@ -51,10 +55,10 @@ def load_lineage(lg) -> LineageData:
         while stack:
             r, depth = stack.pop()
             rows.append(RevisionRow(r, counts[r.label], depth))
-            # a straight run of revisions stays at one depth; only a branch indents, so a
-            # long history reads as a column and never nests thousands deep
-            step = 1 if len(r.children) > 1 else 0
-            stack.extend((by_label[c], depth + step) for c in reversed(r.children))
+            # true nesting for the first MAX_DEPTH levels; deeper revisions stay in one column
+            # (the detail pane names each one's parent) so long histories never nest
+            # thousands deep
+            stack.extend((by_label[c], min(depth + 1, MAX_DEPTH)) for c in reversed(r.children))
         loops[lp.name] = tuple(rows)
     return LineageData(loops)
 
