@@ -81,28 +81,33 @@ def incremental(path: Path) -> dict:
             "add_s": t_add, "add_requests": n_add}
 
 
-def parallel(path: Path, tmp: Path) -> dict:
-    """Re-verify every revision after a plant version change, 1 worker vs 2 (same work: two
-    copies of one ledger, the same new plant version in each)."""
+def parallel(path: Path, tmp: Path, *, repeats: int = 1) -> dict:
+    """Re-verify every revision after a plant version change, 1 worker vs 2 (same work: copies
+    of one ledger, the same new plant version in each).  With ``repeats`` > 1 the two are run
+    alternately and the best time of each is kept (the machine is shared)."""
     from ledger.api import open_ledger
 
-    out = {}
-    for workers in (1, 2):
-        copy = tmp / f"parallel-{workers}.db"
-        shutil.copyfile(path, copy)
-        for suffix in ("-wal", "-shm"):
-            if Path(str(path) + suffix).exists():
-                shutil.copyfile(str(path) + suffix, str(copy) + suffix)
-        with open_ledger(copy, author="bench") as lg:
-            lg.auto_verify = False
-            info = lg.plant("pipette")
-            lg.add_plant("pipette", S.PLANT_TEXT, params=S.PARAMS,
-                         fidelity={"full-order": S.FULL_TEXT}, samples=info.samples, seed=2,
-                         note="new sample seed")
-            t0 = time.perf_counter()
-            rep = lg.verify(workers=workers)
-            out[workers] = {"seconds": time.perf_counter() - t0,
-                            "revisions": len(rep), "requests": sum(r["computed"] for r in rep)}
+    out = {1: None, 2: None}
+    for rep in range(repeats):
+        for workers in (1, 2):
+            copy = tmp / f"parallel-{workers}-{rep}.db"
+            shutil.copyfile(path, copy)
+            for suffix in ("-wal", "-shm"):
+                if Path(str(path) + suffix).exists():
+                    shutil.copyfile(str(path) + suffix, str(copy) + suffix)
+            with open_ledger(copy, author="bench") as lg:
+                lg.auto_verify = False
+                info = lg.plant("pipette")
+                lg.add_plant("pipette", S.PLANT_TEXT, params=S.PARAMS,
+                             fidelity={"full-order": S.FULL_TEXT}, samples=info.samples,
+                             seed=2, note="new sample seed")
+                t0 = time.perf_counter()
+                rep_list = lg.verify(workers=workers)
+                dt = time.perf_counter() - t0
+            if out[workers] is None or dt < out[workers]["seconds"]:
+                out[workers] = {"seconds": dt, "revisions": len(rep_list),
+                                "requests": sum(r["computed"] for r in rep_list)}
+            copy.unlink()
     out["speedup"] = out[1]["seconds"] / out[2]["seconds"]
     return out
 
@@ -300,6 +305,7 @@ def ui_start(path: Path, *, timeout: float = 300.0) -> dict:
                 if tree.root.children and tree.root.children[0].children:
                     out["data"] = time.perf_counter() - t0
                     break
+            await pilot.pause(0.5)   # let the filled tree render once
 
     import contextlib
     import io
@@ -311,5 +317,15 @@ def ui_start(path: Path, *, timeout: float = 300.0) -> dict:
             asyncio.run(go())
     except WorkerFailed as e:
         cause = e.error
-        out["error"] = f"{type(cause).__name__}: {cause}"
+        out["error"] = f"{type(cause).__name__}: {cause} at {_innermost(cause)}"
+    except RecursionError as e:      # raised on the UI side (rendering, message handling)
+        out["error"] = f"RecursionError at {_innermost(e)}"
     return out
+
+
+def _innermost(exc: BaseException, n: int = 3) -> str:
+    """The innermost ``n`` frames of an exception as ``file:function`` (for the report)."""
+    import traceback
+
+    frames = traceback.extract_tb(exc.__traceback__)[-n:]
+    return " < ".join(f"{f.filename.rsplit('/', 1)[-1]}:{f.name}" for f in reversed(frames))
