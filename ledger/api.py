@@ -946,14 +946,23 @@ class Ledger:
             import multiprocessing as mp
             from concurrent.futures import ProcessPoolExecutor, as_completed
 
+            from .engine import measure as _engine_loaded  # noqa: F401 - forked workers inherit it
+
+            for plan, _ in plans[:1]:
+                V.family_for(plan)  # and the family cache, for the common one-plant case
             ctx = mp.get_context("fork" if "fork" in mp.get_all_start_methods() else "spawn")
-            with ProcessPoolExecutor(max_workers=min(workers, total), mp_context=ctx) as pool:
-                futures = {pool.submit(V.compute_plan, plan, cached): (plan, cached)
-                           for plan, cached in plans}
-                for i, fut in enumerate(as_completed(futures)):
-                    plan, cached = futures[fut]
-                    payloads, n = fut.result()
-                    record(i, plan, cached, payloads, n)
+            n_workers = min(workers, total)
+            # a few plans per task: fewer round trips than one task per revision, while every
+            # worker still gets several tasks to balance uneven revisions
+            chunk = max(1, total // (4 * n_workers))
+            batches = [plans[k:k + chunk] for k in range(0, total, chunk)]
+            with ProcessPoolExecutor(max_workers=n_workers, mp_context=ctx) as pool:
+                futures = {pool.submit(V.compute_plans, batch): batch for batch in batches}
+                done = 0
+                for fut in as_completed(futures):
+                    for (plan, cached), (payloads, n) in zip(futures[fut], fut.result()):
+                        record(done, plan, cached, payloads, n)
+                        done += 1
             order = {(p.loop, p.label): k for k, (p, _) in enumerate(plans)}
             report.sort(key=lambda r: order[(r["loop"], r["revision"])])
         return report

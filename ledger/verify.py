@@ -262,6 +262,11 @@ def compute_plan(plan: RevisionPlan, cached: dict[str, dict]) -> tuple[dict[str,
     return payloads, len(todo)
 
 
+def compute_plans(batch: list[tuple[RevisionPlan, dict]]) -> list[tuple[dict, int]]:
+    """:func:`compute_plan` for several plans (one task of a worker process)."""
+    return [compute_plan(plan, cached) for plan, cached in batch]
+
+
 @dataclass(frozen=True)
 class Judged:
     verdict: str
