@@ -134,7 +134,7 @@ class _Problems:
     v: np.ndarray
     k: np.ndarray
 
-    def eval(self, idx: np.ndarray, s: np.ndarray):
+    def values(self, idx: np.ndarray, s: np.ndarray):
         """y, y', y'' at ``t_k + s`` for the problems ``idx``."""
         v, k = self.v[idx], self.k[idx]
         Mv = self.M[v]
@@ -174,7 +174,7 @@ def _solve(P: _Problems, lo, hi, f_lo, f_hi, level, *, order: int, xtol: float =
     for it in range(maxiter):
         if active.size == 0:
             break
-        y, d1, d2 = P.eval(active, s[active])
+        y, d1, d2 = P.values(active, s[active])
         f = (y, d1)[order] - level[active]
         g = (d1, d2)[order]
         same = np.sign(f) == sign_lo[active]
@@ -197,7 +197,7 @@ def _solve(P: _Problems, lo, hi, f_lo, f_hi, level, *, order: int, xtol: float =
     if active.size:
         raise ComputeError("refinement of a crossing or extremum did not converge in"
                            f" {maxiter} steps; report this system")
-    val = P.eval(np.arange(s.size), s)[0] if s.size else s
+    val = P.values(np.arange(s.size), s)[0] if s.size else s
     return s, val
 
 
