@@ -34,7 +34,7 @@ class MatrixScreen(ViewScreen):
         yield Input(placeholder="filter: requirement ID, title or statement text (/ to edit)",
                     id="matrix-filter")
         yield Static("", id="matrix-status")
-        yield DataTable(id="matrix-table", zebra_stripes=True, cursor_type="cell")
+        yield DataTable(id="matrix-table", zebra_stripes=True, cursor_type="cell", fixed_columns=1)
         yield Static("", id="matrix-legend")
         yield footer
 
