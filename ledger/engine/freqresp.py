@@ -94,8 +94,53 @@ def _axis_roots(roots_list, dt, *, axis_tol: float) -> list[_AxisRoot]:
     """Roots on the imaginary axis (continuous) or unit circle (discrete) at w >= 0, per variant.
 
     A conjugate pair counts once (at its positive frequency); a real root (s = 0, z = 1, z = -1)
-    counts once.
+    counts once.  Roots of one variant within ``1e-9`` (relative) of each other form one entry
+    whose ``order`` is their number.  Vectorised over all variants; when two distinct boundary
+    frequencies of one variant lie within that tolerance the order-dependent grouping of
+    :func:`_axis_roots_loop` is used instead.
     """
+    P, Pm = _pad(roots_list)
+    if P.size == 0:
+        return []
+    wnyq = math.pi / dt if dt is not None else math.inf
+    mag = np.abs(P)
+    if dt is None:
+        on = Pm & ~(np.abs(P.real) > axis_tol * np.maximum(1.0, mag))
+        real_like = np.abs(P.imag) <= axis_tol * np.maximum(1.0, mag)
+        with np.errstate(invalid="ignore"):
+            wk = np.where(real_like, 0.0, np.abs(P.imag))
+    else:
+        on = Pm & ~(np.abs(mag - 1.0) > axis_tol)
+        real_like = np.abs(P.imag) <= axis_tol
+        with np.errstate(invalid="ignore", divide="ignore"):
+            wk = np.where(real_like, np.where(P.real > 0, 0.0, wnyq), np.abs(np.angle(P)) / dt)
+    on &= real_like | ~(P.imag < 0)
+    pos = np.flatnonzero(on.ravel())
+    if pos.size == 0:
+        return []
+    var = pos // P.shape[1]
+    wv = wk.ravel()[pos]
+    order = np.lexsort((wv, var))
+    vs, ws = var[order], wv[order]
+    new_var = np.r_[True, vs[1:] != vs[:-1]]
+    new_w = np.r_[True, ws[1:] != ws[:-1]]
+    start = new_var | new_w
+    # distinct frequencies of one variant closer than the grouping tolerance: the sequential
+    # grouping depends on the order of the roots, use it as it is
+    close = (~new_var) & new_w & (np.r_[np.inf, np.diff(ws)] <= 1e-9 * np.maximum(1.0, ws))
+    if close.any():
+        return _axis_roots_loop(roots_list, dt, axis_tol=axis_tol)
+    gid = np.cumsum(start) - 1
+    counts = np.bincount(gid)
+    first = np.full(counts.size, pos.size, int)
+    np.minimum.at(first, gid, order)
+    gv, gw = vs[start], ws[start]
+    seq = np.argsort(first, kind="stable")
+    return [_AxisRoot(int(gv[g]), float(gw[g]), int(counts[g])) for g in seq]
+
+
+def _axis_roots_loop(roots_list, dt, *, axis_tol: float) -> list[_AxisRoot]:
+    """:func:`_axis_roots` root by root (the reference grouping)."""
     out: list[_AxisRoot] = []
     wnyq = math.pi / dt if dt is not None else math.inf
     for v, roots in enumerate(roots_list):
@@ -213,7 +258,7 @@ class _Sampler:
     """
 
     def __init__(self, evaluate, dt, poles, zeros, w, H, *, model_rtol: float = 1e-10, tau=None,
-                 check_points: int = 256):
+                 check_points: int = 64):
         self.evaluate, self.dt, self.nvar = evaluate, dt, len(poles)
         self.P, self.Pm = _pad(poles)
         self.Z, self.Zm = _pad(zeros)
@@ -235,7 +280,7 @@ class _Sampler:
         for v0 in range(0, V, chunk):
             v1 = min(V, v0 + chunk)
             rows = np.arange(v0, v1)
-            R = self._shape(np.repeat(rows, n), np.tile(w, rows.size)).reshape(rows.size, n)
+            R = self._shape_grid(v0, v1, w)
             Hc = H[v0:v1]
             with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
                 mag = np.abs(Hc)
@@ -265,6 +310,19 @@ class _Sampler:
             r = np.prod(num / den, axis=1)
             if self.dt is None:
                 r = r * np.exp(-1j * w * self.tau[vi])
+        return r
+
+    def _shape_grid(self, v0, v1, w):
+        """``_shape`` of variants ``v0 .. v1-1`` at every frequency of ``w``: (v1-v0, w.size),
+        by broadcasting (the same operations in the same order as ``_shape``)."""
+        w = np.asarray(w, float)
+        x = (1j * w if self.dt is None else np.exp(1j * w * self.dt))[None, :, None]
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            num = np.where(self.Zq[v0:v1, None, :], x - self.Zp[v0:v1, None, :], 1.0)
+            den = np.where(self.Pq[v0:v1, None, :], x - self.Pp[v0:v1, None, :], 1.0)
+            r = np.prod(num / den, axis=2)
+            if self.dt is None:
+                r = r * np.exp(-1j * w[None, :] * self.tau[v0:v1, None])
         return r
 
     def at(self, vi, w) -> np.ndarray:
@@ -443,9 +501,16 @@ def _thin(w: np.ndarray, rel: float = 1e-12) -> np.ndarray:
 def _extend_ends(evaluate, dt, poles, zeros, lo, hi, axis, nvar):
     """Push the grid ends out until any remaining unity crossing is inside (power-law asymptotes)."""
     h = np.abs(_call(evaluate, [lo, hi], nvar))
+    at_origin = np.zeros(nvar, int)
+    for ar in axis:
+        if ar.w == 0.0:
+            at_origin[ar.variant] += ar.order
+    for ar in _axis_roots(zeros, dt, axis_tol=1e-9):
+        if ar.w == 0.0:
+            at_origin[ar.variant] -= ar.order
+    rel_degree = [len(np.ravel(p)) - len(np.ravel(z)) for p, z in zip(poles, zeros)]
     for v in range(nvar):
-        m = sum(ar.order for ar in axis if ar.variant == v and ar.w == 0.0)
-        m -= sum(ar.order for ar in _axis_roots([zeros[v]], dt, axis_tol=1e-9) if ar.w == 0.0)
+        m = int(at_origin[v])
         a = h[v, 0]
         if np.isfinite(a) and a > 0 and m != 0:
             # |L| ~ c w^-m below every feature: the unity crossing is at lo * a^(1/m)
@@ -453,7 +518,7 @@ def _extend_ends(evaluate, dt, poles, zeros, lo, hi, axis, nvar):
             if (m > 0 and a < target) or (m < 0 and a > target):
                 lo = min(lo, lo * (a / target) ** (1.0 / m) / 2.0)
         if dt is None:
-            r = len(np.ravel(poles[v])) - len(np.ravel(zeros[v]))
+            r = rel_degree[v]
             b = h[v, 1]
             if r > 0 and np.isfinite(b) and b > 0.01:
                 hi = max(hi, hi * (b / 0.01) ** (1.0 / r) * 2.0)
