@@ -531,8 +531,10 @@ def _refine_adaptively(evaluate, w, nvar, axis_w, *, phase_step, passes, max_poi
 
     Returns the grid and the values on it when the last pass evaluated exactly that grid
     (else ``None``)."""
+    h = None
     for _ in range(passes):
-        h = _call(evaluate, w, nvar)
+        # values are pointwise: after the first pass only the new midpoints are evaluated
+        h = _call(evaluate, w, nvar) if h is None else h
         with np.errstate(divide="ignore", invalid="ignore"):
             dph = np.abs(np.angle(h[:, 1:] / h[:, :-1]))
             dmag = np.abs(np.diff(np.log(np.abs(h) + _TINY), axis=1))
@@ -548,7 +550,12 @@ def _refine_adaptively(evaluate, w, nvar, axis_w, *, phase_step, passes, max_poi
         if not bad.any() or w.size + bad.sum() > max_points:
             return w, h
         mids = 0.5 * (w[:-1][bad] + w[1:][bad])
-        w = np.unique(np.concatenate([w, mids]))
+        wn = np.unique(np.concatenate([w, mids]))
+        fresh = ~np.isin(wn, w, assume_unique=True)
+        hn = np.empty((nvar, wn.size), complex)
+        hn[:, ~fresh] = h
+        hn[:, fresh] = _call(evaluate, wn[fresh], nvar)
+        w, h = wn, hn
     return w, None
 
 

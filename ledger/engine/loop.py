@@ -629,8 +629,11 @@ def _build_group(idx, Gs, F, K, H, tau, d_in, d_plant, ts, algebraic_tol) -> Loo
         return num, dg * (dk * dh)[None, :], (nk, dk), (ng, dg)
 
     def _ratio(a, b):
-        with np.errstate(divide="ignore", invalid="ignore"):
-            return np.where(b == 0, complex(np.inf, 0.0), a / np.where(b == 0, 1, b))
+        zero = b == 0
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            if not zero.any():
+                return a / b
+            return np.where(zero, complex(np.inf, 0.0), a / np.where(zero, 1, b))
 
     def L_of(w):
         num, den, _, _ = parts(w)
