@@ -40,7 +40,7 @@ from .discretize import zoh_discretize_inputs
 from .types import FreqBatch, PlantFamily, SSBatch
 
 __all__ = ["LoopSpec", "Block", "ClosedLoopResponse", "LoopGroup", "Assembly", "PATHS",
-           "make_block", "assemble"]
+           "make_block", "make_blocks", "assemble"]
 
 #: Closed-loop signal paths: input -> output.
 PATHS = ("r->y", "r->e", "r->u", "d->y", "n->u")
@@ -255,6 +255,118 @@ def make_block(sys, role: str) -> Block:
     return Block(A, B, C, D, zeros, poles, gain, dt)
 
 
+def _batch_roots(P: np.ndarray) -> np.ndarray:
+    """Roots of the polynomials in the rows of ``P`` (V, k), as ``numpy.roots`` gives them.
+
+    Every row must have a nonzero leading coefficient and the same number of trailing zeros
+    (``numpy.roots`` returns those as roots at 0, last).  The companion matrices are the ones
+    ``numpy.roots`` builds and their eigenvalues are found in one stacked LAPACK call.
+    """
+    V, k = P.shape
+    nz = np.flatnonzero(P[0] != 0.0)
+    trailing = k - 1 - int(nz[-1])
+    p = P[:, :k - trailing]
+    N = p.shape[1]
+    if N > 1:
+        comp = np.zeros((V, N - 1, N - 1))
+        idx = np.arange(N - 2)
+        comp[:, idx + 1, idx] = 1.0
+        comp[:, 0, :] = -p[:, 1:] / p[:, :1]
+        roots = np.linalg.eigvals(comp).astype(complex)
+    else:
+        roots = np.zeros((V, 0), complex)
+    return np.concatenate([roots, np.zeros((V, trailing), complex)], axis=1)
+
+
+def _balance_batch(A, B, C):
+    """:func:`_balance` for a stack of realisations (V, n, n), (V, n), (V, n).
+
+    The balancing scale (powers of two) is computed once per pattern of binary exponents of
+    ``[[A, B], [C, 0]]`` and applied to every realisation with that pattern; powers of two
+    scale exactly, so each result is an exact similarity of its input.
+    """
+    V, n = B.shape
+    M = np.zeros((V, n + 1, n + 1))
+    M[:, :n, :n], M[:, :n, n], M[:, n, :n] = A, B, C
+    expo = np.frexp(M)[1].reshape(V, -1)
+    _, first, inv = np.unique(expo, axis=0, return_index=True, return_inverse=True)
+    T = np.empty((first.size, n))
+    for g, j in enumerate(first):
+        _, (scale, _) = scipy.linalg.matrix_balance(M[j], permute=False, separate=True)
+        T[g] = scale[:n] / scale[n]
+    t = T[np.ravel(inv)]
+    return A * t[:, None, :] / t[:, :, None], B / t, C * t
+
+
+def _tf_coefficients(sys):
+    """(num, den) trimmed, when ``sys`` is a SISO TransferFunction the batched realisation
+    handles exactly like :func:`make_block`; else ``None``."""
+    if not isinstance(sys, control.TransferFunction) or sys.ninputs != 1 or sys.noutputs != 1:
+        return None
+    num, den = _trim(sys.num[0][0]), _trim(sys.den[0][0])
+    if (den.size < 2 or num.size > den.size or not np.any(num)
+            or not (np.all(np.isfinite(num)) and np.all(np.isfinite(den)))
+            or not abs(num[0] / den[0]) > 1e-14):
+        return None
+    return num, den
+
+
+def make_blocks(systems, roles) -> list:
+    """:func:`make_block` for many systems at once (same results, same errors).
+
+    SISO transfer functions that share numerator and denominator lengths and trailing zeros
+    (the variants of one parametric family) are realised together: controllable canonical
+    form from the stacked coefficients, roots from stacked companion matrices, one balancing
+    per exponent pattern (see :func:`_balance_batch`).  Everything else goes through
+    :func:`make_block` one by one.
+
+    Parameters
+    ----------
+    systems : sequence of control.LTI or float
+    roles : sequence of str
+        Names of the blocks for error messages.
+
+    Returns
+    -------
+    list of Block
+    """
+    out: list = [None] * len(systems)
+    shapes: dict = {}
+    for i, sys in enumerate(systems):
+        nd = _tf_coefficients(sys)
+        if nd is None:
+            out[i] = make_block(sys, roles[i])
+            continue
+        num, den = nd
+        key = (num.size, den.size, num.size - 1 - int(np.flatnonzero(num)[-1]),
+               den.size - 1 - int(np.flatnonzero(den)[-1]))
+        shapes.setdefault(key, []).append((i, num, den))
+    for (m, k, _, _), items in shapes.items():
+        num = np.stack([it[1] for it in items])
+        den = np.stack([it[2] for it in items])
+        d0 = den[:, :1]
+        numn, denn = num / d0, den / d0
+        nump = np.zeros((len(items), k))
+        nump[:, k - m:] = numn
+        n = k - 1
+        A = np.zeros((len(items), n, n))
+        A[:, 0, :] = -denn[:, 1:]
+        j = np.arange(n - 1)
+        A[:, j + 1, j] = 1.0
+        B = np.zeros((len(items), n))
+        B[:, 0] = 1.0
+        C = nump[:, 1:] - nump[:, :1] * denn[:, 1:]
+        D = nump[:, 0]
+        A, B, C = _balance_batch(A, B, C)
+        zeros, poles = _batch_roots(num), _batch_roots(den)
+        gains = num[:, 0] / den[:, 0]
+        for r, (i, _, _) in enumerate(items):
+            dt = systems[i].dt
+            out[i] = Block(A[r], B[r], C[r], float(D[r]), zeros[r], poles[r], float(gains[r]),
+                           None if (dt is None or dt == 0) else dt)
+    return out
+
+
 def _zpk_from_ss(A, B, C, D, *, rel_tol: float = 1e-10):
     """Zeros, poles and gain of a SISO state-space model without forming polynomials.
 
@@ -418,9 +530,12 @@ def _aux_block(sys, role: str, ts) -> Block:
     return blk
 
 
-def _plant_block(variant, loop: LoopSpec) -> tuple[Block, float, float]:
-    """Return (plant Block, loop delay tau, r->y io delay) for one variant."""
-    blk = make_block(variant.system, f"plant variant {variant.name!r}")
+def _plant_block(variant, loop: LoopSpec, blk: Block | None = None
+                 ) -> tuple[Block, float, float]:
+    """Return (plant Block, loop delay tau, r->y io delay) for one variant (``blk``: its block
+    when already made)."""
+    if blk is None:
+        blk = make_block(variant.system, f"plant variant {variant.name!r}")
     pd = float(variant.delay)
     _check_time(pd, f"delay of plant variant {variant.name!r}")
     ts = loop.sample_time
@@ -551,7 +666,9 @@ def assemble(family: PlantFamily, controller, loop: LoopSpec | None = None, *,
     K = _prepare_controller(controller, loop)
     F = _aux_block(loop.prefilter, "prefilter", ts)
     H = _aux_block(loop.sensor, "sensor", ts)
-    plants = [_plant_block(v, loop) for v in family.variants]
+    blocks = make_blocks([v.system for v in family.variants],
+                         [f"plant variant {v.name!r}" for v in family.variants])
+    plants = [_plant_block(v, loop, b) for v, b in zip(family.variants, blocks)]
     keys: dict = {}
     for i, (G, tau, _) in enumerate(plants):
         keys.setdefault((G.order, tau, plants[i][2]), []).append(i)
