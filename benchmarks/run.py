@@ -32,7 +32,7 @@ from benchmarks import scenario as S  # noqa: E402
 __all__ = ["main", "machine", "Row"]
 
 FULL = dict(variants=1000, baseline=200, small_revisions=200, small_samples=10,
-            parallel_revisions=40, parallel_repeats=2, slow_repeats=1, ui_timeout=90.0,
+            parallel_revisions=40, parallel_repeats=3, slow_repeats=3, ui_timeout=90.0,
             scale_revisions=10_000, scale_requirements=100)
 QUICK = dict(variants=100, baseline=30, small_revisions=12, small_samples=4,
              parallel_revisions=12, parallel_repeats=1, slow_repeats=3, ui_timeout=15.0,
@@ -302,7 +302,9 @@ def markdown(info, rows, notes, quick: bool, elapsed: float) -> str:
                 "discretize}.py` with everything they call.", "",
                 "| kernel entry (cumulative, from outside the kernels) | s |", "|---|---|"]
         out += [f"| `{k}` | {v:.3f} |" for k, v in sp["kernel_entries"]]
-        out += ["", "| outside the kernels: own time (tottime) | s |", "|---|---|"]
+        out += ["", "| own time (tottime) of Python functions outside the kernels: ledger driver, "
+                "judging, hashing, SQLAlchemy, standard library (numpy, scipy, python-control "
+                "and built-ins left out: they are mostly called by kernels) | s |", "|---|---|"]
         out += [f"| `{k}` | {v:.3f} |" for k, v in sp["outside_tottime_top"]]
     if "sweep" in notes and notes["sweep"]["engine_errors"]:
         out += ["", "Engine errors during the sweep:", ""]

@@ -312,9 +312,11 @@ def profile_split(fn, *, top: int = 12) -> dict:
                 key = f"{func[0].rsplit('/', 1)[-1]}:{func[2]}"
                 entries[key] = entries.get(key, 0.0) + ct
     outside = {}
+    numeric = ("/numpy/", "/scipy/", "/control/")
     for func, (_cc, _nc, tt, _ct, _callers) in st.stats.items():
-        if not _is_kernel(func, adapter_lines):
-            where = func[0].replace("\\", "/")
+        where = func[0].replace("\\", "/")
+        if not _is_kernel(func, adapter_lines) and not any(x in where for x in numeric) \
+                and not where.startswith("~"):
             tag = where.split("/ledger/", 1)[-1] if "/ledger/" in where else where.rsplit("/", 1)[-1]
             key = f"{tag}:{func[2]}"
             outside[key] = outside.get(key, 0.0) + tt
