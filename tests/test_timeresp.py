@@ -479,3 +479,32 @@ def test_gantry_equilibrium_not_singular():
     y = control.step_response(T, T=t).outputs
     out = np.nonzero(np.abs(y - 1.0) > 0.02)[0]
     assert_allclose(m.settling_time, t[out[-1]], atol=2.5e-5)
+
+
+def test_refinement_converges_in_few_steps_on_a_family(monkeypatch):
+    """Extremum and crossing refinement of 60 second-order variants: closed-form peak times
+    and overshoots, reached in a handful of Newton steps per refinement (a root at rounding
+    level or next to a bracket end must not fall back to bisection for dozens of steps)."""
+    from ledger.engine import timeresp
+
+    zetas = np.linspace(0.15, 0.75, 30)
+    wns = (3.0, 40.0)
+    systems = [wn ** 2 / (s ** 2 + 2 * z * wn * s + wn ** 2) for wn in wns for z in zetas]
+    calls = []
+    orig = timeresp._Problems.values
+
+    def counting(self, idx, x, **kw):
+        calls.append(len(idx))
+        return orig(self, idx, x, **kw)
+
+    monkeypatch.setattr(timeresp._Problems, "values", counting)
+    m = step_metrics(batch(*systems))
+    zz = np.tile(zetas, 2)
+    wn = np.repeat(wns, zetas.size)
+    wd = wn * np.sqrt(1 - zz ** 2)
+    # Source: textbook closed forms Mp = exp(-zeta pi / sqrt(1 - zeta^2)), tp = pi / wd.
+    assert_allclose(m.overshoot, 100 * np.exp(-zz * np.pi / np.sqrt(1 - zz ** 2)), rtol=1e-9)
+    assert_allclose(m.peak_time, np.pi / wd, rtol=1e-9)
+    # four refinements (extrema, two rise levels, settling): common practice, no source, for
+    # the bound of 15 evaluations each (Newton converges quadratically from the Hermite guess)
+    assert len(calls) <= 4 * 15, calls

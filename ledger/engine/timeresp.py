@@ -134,8 +134,9 @@ class _Problems:
     v: np.ndarray
     k: np.ndarray
 
-    def values(self, idx: np.ndarray, s: np.ndarray):
-        """y, y', y'' at ``t_k + s`` for the problems ``idx``."""
+    def values(self, idx: np.ndarray, s: np.ndarray, *, with_scale: bool = False):
+        """y, y', y'' at ``t_k + s`` for the problems ``idx``; with ``with_scale`` also the
+        sums of the magnitudes of the terms of y and y' (their rounding scale)."""
         v, k = self.v[idx], self.k[idx]
         Mv = self.M[v]
         E = expm_batch(Mv * s[:, None, None])
@@ -143,24 +144,31 @@ class _Problems:
         MZ = np.einsum("pab,pb->pa", Mv, Z)
         MMZ = np.einsum("pab,pb->pa", Mv, MZ)
         Cy = self.Cy[v]
-        return (np.einsum("pa,pa->p", Cy, Z), np.einsum("pa,pa->p", Cy, MZ),
-                np.einsum("pa,pa->p", Cy, MMZ))
+        out = (np.einsum("pa,pa->p", Cy, Z), np.einsum("pa,pa->p", Cy, MZ),
+               np.einsum("pa,pa->p", Cy, MMZ))
+        if not with_scale:
+            return out
+        aC = np.abs(Cy)
+        return out + ((np.einsum("pa,pa->p", aC, np.abs(Z)),
+                       np.einsum("pa,pa->p", aC, np.abs(MZ))),)
 
 
 def _solve(P: _Problems, lo, hi, f_lo, f_hi, level, *, order: int, xtol: float = 1e-13,
-           maxiter: int = 200):
+           maxiter: int = 200, noise: float = 64 * np.finfo(float).eps):
     """Bracketed Newton for ``y^(order)(t_k + s) = level`` with ``s`` in ``[lo, hi]``.
 
     ``f_lo`` and ``f_hi`` are the function values minus ``level`` at the bracket ends and have
     opposite signs (or one is zero).  Newton steps are kept while they halve the bracket at
     least every two iterations, bisection otherwise, so the bracket shrinks to ``xtol`` of its
-    width within ``2 * 45`` iterations whatever the rounding of ``f``.  Returns
-    ``(s, y(t_k + s))``.
+    width within ``2 * 45`` iterations whatever the rounding of ``f``.  A point where ``|f|``
+    is below ``noise`` (relative, default 64 machine epsilons) times the sum of the magnitudes
+    of the terms of ``f`` (plus ``|level|``) is a root: ``f`` is zero to rounding there, and
+    further steps would only follow rounding noise.  Returns ``(s, y(t_k + s))``.
     """
     lo = np.array(lo, dtype=float)
     hi = np.array(hi, dtype=float)
-    f_lo = np.asarray(f_lo, dtype=float)
-    f_hi = np.asarray(f_hi, dtype=float)
+    f_lo = np.array(f_lo, dtype=float)
+    f_hi = np.array(f_hi, dtype=float)
     level = np.broadcast_to(np.asarray(level, dtype=float), lo.shape).copy()
     width = hi - lo
     den = f_lo - f_hi
@@ -174,22 +182,40 @@ def _solve(P: _Problems, lo, hi, f_lo, f_hi, level, *, order: int, xtol: float =
     for it in range(maxiter):
         if active.size == 0:
             break
-        y, d1, d2 = P.values(active, s[active])
+        y, d1, d2, scales = P.values(active, s[active], with_scale=True)
         f = (y, d1)[order] - level[active]
         g = (d1, d2)[order]
+        f = np.where(np.abs(f) <= noise * (scales[order] + np.abs(level[active])), 0.0, f)
         same = np.sign(f) == sign_lo[active]
         lo[active] = np.where(same, s[active], lo[active])
         hi[active] = np.where(same, hi[active], s[active])
+        f_lo[active] = np.where(same, f, f_lo[active])
+        f_hi[active] = np.where(same, f_hi[active], f)
+        a, b, fa, fb = lo[active], hi[active], f_lo[active], f_hi[active]
         with np.errstate(divide="ignore", invalid="ignore"):
             newton = s[active] - f / g
-        inside = np.isfinite(newton) & (newton > lo[active]) & (newton < hi[active])
+            secant = a - fa * (b - a) / (fb - fa)
+        # a step that leaves the bracket by no more than the tolerance (a root at a bracket
+        # end, met from inside) lands on that end
+        inside = (np.isfinite(newton) & (newton >= lo[active] - tol[active])
+                  & (newton <= hi[active] + tol[active]))
+        newton = np.clip(newton, lo[active], hi[active])
+        # a Newton step inside the bracket and below the tolerance has converged, whatever
+        # the bisection safeguard below would do with it
+        converged = inside & (np.abs(newton - s[active]) <= tol[active])
+        # a Newton step that leaves the bracket (overshoot past a root close to one end)
+        # gives way to the secant of the bracket ends
+        sec_ok = np.isfinite(secant) & (secant > a) & (secant < b)
         if it % 2 == 1:
-            # Newton steps that do not halve the bracket every two iterations (f at rounding
+            # steps that do not halve the bracket every two iterations (f at rounding
             # level, flat f) give way to a bisection, so the bracket always shrinks.
-            wnow = hi[active] - lo[active]
-            inside &= wnow <= 0.5 * ref[active]
+            wnow = b - a
+            halved = wnow <= 0.5 * ref[active]
+            inside &= halved
+            sec_ok &= halved
             ref[active] = wnow
-        new = np.where(inside, newton, 0.5 * (lo[active] + hi[active]))
+        new = np.where(inside | converged, newton,
+                       np.where(sec_ok, secant, 0.5 * (a + b)))
         done = (np.abs(new - s[active]) <= tol[active]) | (f == 0) | \
                (hi[active] - lo[active] <= tol[active])
         s[active] = np.where(f == 0, s[active], new)
