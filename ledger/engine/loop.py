@@ -37,6 +37,7 @@ import scipy.signal
 
 from ..errors import ModelError
 from .discretize import zoh_discretize_inputs
+from .timegrid import balance_scales
 from .types import FreqBatch, PlantFamily, SSBatch
 
 __all__ = ["LoopSpec", "Block", "ClosedLoopResponse", "LoopGroup", "Assembly", "PATHS",
@@ -281,20 +282,16 @@ def _batch_roots(P: np.ndarray) -> np.ndarray:
 def _balance_batch(A, B, C):
     """:func:`_balance` for a stack of realisations (V, n, n), (V, n), (V, n).
 
-    The balancing scale (powers of two) is computed once per pattern of binary exponents of
-    ``[[A, B], [C, 0]]`` and applied to every realisation with that pattern; powers of two
-    scale exactly, so each result is an exact similarity of its input.
+    The balancing scale (powers of two) is computed once per pattern of binary exponents and
+    zeros of ``[[A, B], [C, 0]]`` (:func:`~ledger.engine.timegrid.balance_scales`) and applied
+    to every realisation with that pattern; powers of two scale exactly, so each result is an
+    exact similarity of its input.
     """
     V, n = B.shape
     M = np.zeros((V, n + 1, n + 1))
     M[:, :n, :n], M[:, :n, n], M[:, n, :n] = A, B, C
-    expo = np.frexp(M)[1].reshape(V, -1)
-    _, first, inv = np.unique(expo, axis=0, return_index=True, return_inverse=True)
-    T = np.empty((first.size, n))
-    for g, j in enumerate(first):
-        _, (scale, _) = scipy.linalg.matrix_balance(M[j], permute=False, separate=True)
-        T[g] = scale[:n] / scale[n]
-    t = T[np.ravel(inv)]
+    scale = balance_scales(M)
+    t = scale[:, :n] / scale[:, n:]
     return A * t[:, None, :] / t[:, :, None], B / t, C * t
 
 

@@ -288,11 +288,19 @@ class _GroupContext:
         return self.cached(("batch", path), lambda: _sub_batch(self.g.paths[path], self.m))
 
     def fb(self):
+        """The group's loop gains restricted to the mask; one object per context, so that the
+        kernels' per-FreqBatch memo (grid, delay estimate, crossing set-up) is shared by the
+        margins, the disk margin and the stability count."""
         from .types import FreqBatch
-        fb = self.g.loop_gain
-        return FreqBatch(evaluate=_sub_eval(fb.evaluate, self.m), dt=fb.dt,
-                         poles=_sub_list(fb.poles, self.m), zeros=_sub_list(fb.zeros, self.m),
-                         dc=fb.dc[self.m])
+
+        def make():
+            fb = self.g.loop_gain
+            if self.m.all():
+                return fb
+            return FreqBatch(evaluate=_sub_eval(fb.evaluate, self.m), dt=fb.dt,
+                             poles=_sub_list(fb.poles, self.m),
+                             zeros=_sub_list(fb.zeros, self.m), dc=fb.dc[self.m])
+        return self.cached("fb", make)
 
     def grid(self):
         from . import freqresp

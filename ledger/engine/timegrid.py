@@ -47,7 +47,7 @@ from ledger.engine.types import SSBatch
 from ledger.errors import ComputeError, UnstableLoopError
 
 __all__ = ["TimeGrid", "Pieces", "modes", "check_stable", "horizon", "equilibrium", "simulate",
-           "has_delay", "mats", "expm_batch", "balance"]
+           "has_delay", "mats", "expm_batch", "balance", "balance_scales"]
 
 
 @dataclass(frozen=True)
@@ -345,6 +345,31 @@ def _channel(sys: SSBatch):
             get(sys.Dw, (V,)), get(sys.Dzw, (V,)))
 
 
+def balance_scales(M: np.ndarray) -> np.ndarray:
+    """Balancing scales (powers of 2) of a stack of square matrices ``M (V, m, m)``.
+
+    ``scipy.linalg.matrix_balance`` (no permutation) of one matrix per pattern of binary
+    exponents and zero entries, applied to every matrix with that pattern (the variants of a
+    family mostly share a few patterns).  Any power-of-2 diagonal similarity is exact, so the
+    choice only affects conditioning, never the transfer function.
+
+    Returns
+    -------
+    ndarray (V, m)
+        ``T`` with ``T^-1 M T`` balanced (``M * T[:, None, :] / T[:, :, None]``).
+    """
+    import scipy.linalg
+
+    M = np.asarray(M, dtype=float)
+    V, m = M.shape[0], M.shape[-1]
+    key = np.where(M == 0.0, -4096, np.frexp(M)[1]).reshape(V, -1)
+    _, first, inv = np.unique(key, axis=0, return_index=True, return_inverse=True)
+    T = np.empty((first.size, m))
+    for g, j in enumerate(first):
+        T[g] = scipy.linalg.matrix_balance(M[j], permute=False, separate=True)[1][0]
+    return T[np.ravel(inv)]
+
+
 def balance(sys: SSBatch) -> SSBatch:
     """The same batch in diagonally rescaled state coordinates (powers of 2, no rounding).
 
@@ -354,16 +379,13 @@ def balance(sys: SSBatch) -> SSBatch:
     matrix exponential of ``M h`` needs many squarings and loses accuracy.  Outputs and
     eigenvalues are unchanged.
     """
-    import scipy.linalg
     from dataclasses import replace
 
     A = np.asarray(sys.A, dtype=float)
     V, n = A.shape[0], A.shape[1]
     if n < 2:
         return sys
-    T = np.empty((V, n))
-    for v in range(V):
-        T[v] = scipy.linalg.matrix_balance(A[v], permute=False, separate=True)[1][0]
+    T = balance_scales(A)
     out = dict(A=A * T[:, None, :] / T[:, :, None],
                B=np.asarray(sys.B, dtype=float).reshape(V, n) / T,
                C=np.asarray(sys.C, dtype=float).reshape(V, n) * T)
