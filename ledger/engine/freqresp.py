@@ -796,19 +796,33 @@ def _phase_crossovers_from(fb, smp, w, mask, L, xrtol):
 # peaks and bandwidth
 # ----------------------------------------------------------------------------------------------
 
-def _base_grid(evaluate, dt, poles, zeros, grid) -> np.ndarray:
+def _base_grid(evaluate, dt, poles, zeros, grid) -> tuple[np.ndarray, np.ndarray | None]:
     """Grid for a closed-loop function: the pole/zero-aware grid of :func:`frequency_grid`, or
-    the given one; either way refined adaptively on this function."""
+    the given one; either way refined adaptively on this function.  Returns the grid and the
+    values on it (``None`` when the refinement stopped at its pass limit).
+
+    With a given (read-only) grid the result is memoised per evaluator and grid object, so
+    the peak and the bandwidth of one function refine its grid once."""
+    memo = None
+    if grid is not None and isinstance(grid, np.ndarray) and not grid.flags.writeable:
+        memo = _memo(evaluate)
+        hit = memo.get("base")
+        if hit is not None and hit[0] is grid:
+            return hit[1], hit[2]
     if grid is None:
-        return _grid(evaluate, dt, poles, zeros, points_per_decade=40, w_min=None, w_max=None,
+        w, h = _grid(evaluate, dt, poles, zeros, points_per_decade=40, w_min=None, w_max=None,
                      resonance_zeta=0.3, delay=None, axis_tol=1e-9, max_points=200_000,
-                     phase_step=0.35, refine_passes=6, extend_for_loop=False)[0]
+                     phase_step=0.35, refine_passes=6, extend_for_loop=False)
+        return w, h
     w = np.unique(np.concatenate([np.asarray(grid, float), [0.0]]))
     wnyq = math.pi / dt if dt is not None else math.inf
     axis_w = np.array(sorted({ar.w for ar in _axis_roots(poles, dt, axis_tol=1e-9)
                               if 0.0 < ar.w < wnyq}))
-    return _refine_adaptively(evaluate, w, len(poles), axis_w, phase_step=0.35, passes=6,
-                              max_points=200_000)[0]
+    w, h = _refine_adaptively(evaluate, w, len(poles), axis_w, phase_step=0.35, passes=6,
+                              max_points=200_000)
+    if memo is not None:
+        memo["base"] = (grid, w, h)
+    return w, h
 
 
 def peak_gain(evaluate, dt, poles, zeros, *, w_range: tuple[float, float] = (0.0, math.inf),
@@ -861,12 +875,15 @@ def peak_gain(evaluate, dt, poles, zeros, *, w_range: tuple[float, float] = (0.0
         hi = min(hi, math.pi / dt)
     if not (0.0 <= lo <= hi):
         raise ComputeError(f"frequency range {w_range} is empty; give 0 <= low <= high")
-    w = _base_grid(evaluate, dt, poles, zeros, grid)
+    wb, hb = _base_grid(evaluate, dt, poles, zeros, grid)
     if math.isfinite(hi):
-        w = np.unique(np.concatenate([w[(w >= lo) & (w <= hi)], [lo, hi]]))
+        w = np.unique(np.concatenate([wb[(wb >= lo) & (wb <= hi)], [lo, hi]]))
     else:
-        w = np.unique(np.concatenate([w[w >= lo], [lo]]))
-    Hc = _call(evaluate, w, nvar)
+        w = np.unique(np.concatenate([wb[wb >= lo], [lo]]))
+    if hb is not None and w.size == wb.size and np.array_equal(w, wb):
+        Hc = hb
+    else:
+        Hc = _call(evaluate, w, nvar)
     h = np.abs(Hc)
     peak = np.full(nvar, -math.inf)
     wpk = np.zeros(nvar)
@@ -959,10 +976,9 @@ def bandwidth(evaluate_T, dt, poles, zeros, *, drop_db: float = 3.0, grid: np.nd
         When ``|T(0)|`` is zero or not finite.
     """
     nvar = len(poles)
-    w = _base_grid(evaluate_T, dt, poles, zeros, grid)
-    if dt is not None:
-        w = w[w <= math.pi / dt]
-    Tc = _call(evaluate_T, w, nvar)
+    wb, hb = _base_grid(evaluate_T, dt, poles, zeros, grid)
+    w = wb[wb <= math.pi / dt] if dt is not None else wb
+    Tc = hb if (hb is not None and w.size == wb.size) else _call(evaluate_T, w, nvar)
     h = np.abs(Tc)
     out = np.full(nvar, math.inf)
     t0 = h[:, 0].copy()

@@ -307,9 +307,21 @@ class _GroupContext:
         return self.cached("grid", lambda: freqresp.frequency_grid(self.fb()))
 
     def closed(self, which: str):
-        c = self.g.closed[which]
-        return (_sub_eval(c.evaluate, self.m), c.dt, _sub_list(c.poles, self.m),
-                _sub_list(c.zeros, self.m))
+        """(evaluate, dt, poles, zeros) of a closed-loop function on the mask; one evaluator
+        object per context, so that its refined grid is shared (peak and bandwidth of T)."""
+        def make():
+            c = self.g.closed[which]
+            ev = c.evaluate if self.m.all() else _sub_eval(c.evaluate, self.m)
+            return (ev, c.dt, _sub_list(c.poles, self.m), _sub_list(c.zeros, self.m))
+        return self.cached(("closed", which), make)
+
+    def pairwise(self, which: str):
+        """Pairwise evaluator of S or T from the verified model of the loop gain (shared with
+        the margins), ``None`` for other functions."""
+        from . import freqresp
+        if which not in ("S", "T"):
+            return None
+        return self.cached(("pairwise", which), lambda: freqresp.loop_pairwise(self.fb(), which))
 
 
 def _timeresp():
@@ -342,7 +354,8 @@ def _disk(ctx):
 def _peak(ctx, which, w_range=(0.0, math.inf)):
     from . import freqresp
     ev, dt, poles, zeros = ctx.closed(which)
-    peak, _ = freqresp.peak_gain(ev, dt, poles, zeros, w_range=w_range, grid=ctx.grid())
+    peak, _ = freqresp.peak_gain(ev, dt, poles, zeros, w_range=w_range, grid=ctx.grid(),
+                                 pairwise=ctx.pairwise(which))
     return np.asarray(peak, dtype=float)
 
 
@@ -458,7 +471,8 @@ _COMPUTE = {
 def _bandwidth(ctx):
     from . import freqresp
     ev, dt, poles, zeros = ctx.closed("T")
-    return np.asarray(freqresp.bandwidth(ev, dt, poles, zeros, grid=ctx.grid()), dtype=float)
+    return np.asarray(freqresp.bandwidth(ev, dt, poles, zeros, grid=ctx.grid(),
+                                         pairwise=ctx.pairwise("T")), dtype=float)
 
 
 def _disk_gain(ctx):
