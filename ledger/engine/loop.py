@@ -561,68 +561,76 @@ def _plant_block(variant, loop: LoopSpec, blk: Block | None = None
     return _block_from_matrices(A, B2, C, D2, ts), 0.0, (0.0, 0.0)
 
 
-def _interconnect(F: Block, K: Block, G: Block, H: Block):
-    """Rows over the basis [x (N), r, d, n, w] of every loop signal, delay cut at ym.
+def _interconnect(F: Block, K: Block, Gs: list, H: Block):
+    """Rows over the basis [x (N), r, d, n, w] of every loop signal, delay cut at ym, for the
+    plants ``Gs`` (blocks of one order) at once.
 
-    Returns ``(N, xdot rows (N, N+4), signals dict of rows, offsets)``.
+    Returns ``(N, nf, xdot rows (V, N, N+4), signals dict of rows (V, N+4))``.
     """
-    nf, nc, ng, nh = F.order, K.order, G.order, H.order
+    nf, nc, nh = F.order, K.order, H.order
+    ng = Gs[0].order
+    V = len(Gs)
     N = nf + nc + ng + nh
     of, oc, og, oh = 0, nf, nf + nc, nf + nc + ng
     ir, idd, inn, iw = N, N + 1, N + 2, N + 3
+    GA = np.stack([G.A for G in Gs]).reshape(V, ng, ng)
+    GB = np.stack([G.B for G in Gs]).reshape(V, ng)
+    GBd = np.stack([G.B_d for G in Gs]).reshape(V, ng)
+    GC = np.stack([G.C for G in Gs]).reshape(V, ng)
+    GD = np.array([G.D for G in Gs], dtype=float)
+    GDd = np.array([G.D_d for G in Gs], dtype=float)
 
-    def row():
-        return np.zeros(N + 4)
-
-    ym = row()
+    ym = np.zeros(N + 4)
     ym[oh:oh + nh] = H.C
     ym[iw] = H.D
     ym[inn] = 1.0
-    e = row()
+    e = np.zeros(N + 4)
     e[of:of + nf] = F.C
     e[ir] = F.D
     e -= ym
     u = K.D * e
     u[oc:oc + nc] += K.C
-    y = G.D * u
-    y[idd] += G.D_d
-    y[og:og + ng] += G.C
-    X = np.zeros((N, N + 4))
-    X[of:of + nf, of:of + nf] = F.A
-    X[of:of + nf, ir] = F.B
-    X[oc:oc + nc, :] = np.outer(K.B, e)
-    X[oc:oc + nc, oc:oc + nc] += K.A
-    X[og:og + ng, :] = np.outer(G.B, u)
-    X[og:og + ng, idd] += G.B_d
-    X[og:og + ng, og:og + ng] += G.A
-    X[oh:oh + nh, iw] = H.B
-    X[oh:oh + nh, oh:oh + nh] += H.A
-    return N, nf, X, {"y": y, "e": e, "u": u}
+    y = GD[:, None] * u[None, :]
+    y[:, idd] += GDd
+    y[:, og:og + ng] += GC
+    X0 = np.zeros((N, N + 4))
+    X0[of:of + nf, of:of + nf] = F.A
+    X0[of:of + nf, ir] = F.B
+    X0[oc:oc + nc, :] = np.outer(K.B, e)
+    X0[oc:oc + nc, oc:oc + nc] += K.A
+    X0[oh:oh + nh, iw] = H.B
+    X0[oh:oh + nh, oh:oh + nh] += H.A
+    X = np.repeat(X0[None], V, axis=0)
+    X[:, og:og + ng, :] = GB[:, :, None] * u[None, None, :]
+    X[:, og:og + ng, idd] += GBd
+    X[:, og:og + ng, og:og + ng] += GA
+    return N, nf, X, {"y": y, "e": np.repeat(e[None], V, axis=0),
+                      "u": np.repeat(u[None], V, axis=0)}
 
 
 def _close(rows: np.ndarray, z: np.ndarray, N: int, *, algebraic_tol: float):
-    """Substitute w = z (no delay) into rows over [x, r, d, n, w]."""
-    denom = 1.0 - z[N + 3]
-    if abs(denom) < algebraic_tol:
+    """Substitute w = z (no delay) into rows (V, R, N+4) over [x, r, d, n, w]; z (V, N+4)."""
+    denom = 1.0 - z[:, N + 3]
+    if np.any(np.abs(denom) < algebraic_tol):
         raise ModelError("algebraic loop: 1 + D_C D_G D_H = 0 (the loop has no dynamics at "
                          "infinite frequency); add a pole or change a feedthrough")
     sub = z.copy()
-    sub[N + 3] = 0.0
-    sub /= denom
-    out = rows + np.outer(rows[..., N + 3], sub).reshape(rows.shape)
+    sub[:, N + 3] = 0.0
+    sub /= denom[:, None]
+    out = rows + rows[..., N + 3][..., None] * sub[:, None, :]
     out[..., N + 3] = 0.0
     return out
 
 
-def _variant_matrices(F, K, G, H, tau: float, *, algebraic_tol: float):
-    N, nf, X, sig = _interconnect(F, K, G, H)
+def _group_matrices(F, K, Gs, H, tau: float, *, algebraic_tol: float):
+    N, nf, X, sig = _interconnect(F, K, Gs, H)
     z = sig["y"]
     if tau == 0.0:
         Xc = _close(X, z, N, algebraic_tol=algebraic_tol)
-        sigc = {k: _close(v[None, :], z, N, algebraic_tol=algebraic_tol)[0]
+        sigc = {k: _close(v[:, None, :], z, N, algebraic_tol=algebraic_tol)[:, 0]
                 for k, v in sig.items()}
         return N, nf, Xc, sigc, z
-    if abs(z[N + 3]) >= 1.0:
+    if np.any(np.abs(z[:, N + 3]) >= 1.0):
         raise ModelError("the delayed loop has |D_C D_G D_H| >= 1 (a neutral delay system); "
                          "make the loop gain roll off at high frequency")
     return N, nf, X, sig, z
@@ -679,11 +687,7 @@ def assemble(family: PlantFamily, controller, loop: LoopSpec | None = None, *,
 
 
 def _build_group(idx, Gs, F, K, H, tau, d_in, d_plant, ts, algebraic_tol) -> LoopGroup:
-    mats = [_variant_matrices(F, K, G, H, tau, algebraic_tol=algebraic_tol) for G in Gs]
-    N, nf = mats[0][0], mats[0][1]
-    X = np.stack([m[2] for m in mats])
-    sig = {k: np.stack([m[3][k] for m in mats]) for k in ("y", "e", "u")}
-    zr = np.stack([m[4] for m in mats])
+    N, nf, X, sig, zr = _group_matrices(F, K, Gs, H, tau, algebraic_tol=algebraic_tol)
     col = {"r": N, "d": N + 1, "n": N + 2}
     io = {"r->y": d_in + d_plant, "d->y": d_plant}
     V = len(Gs)
@@ -708,7 +712,10 @@ def _build_group(idx, Gs, F, K, H, tau, d_in, d_plant, ts, algebraic_tol) -> Loo
     loop_poles = None
     if tau == 0:
         Aloop = X[:, nf:N, nf:N]
-        loop_poles = [np.linalg.eigvals(a) for a in Aloop]
+        ev = np.linalg.eigvals(Aloop) if Aloop.shape[1] else np.zeros((V, 0))
+        # as one eigvals call per matrix gives them: real when every imaginary part is zero
+        loop_poles = [e.real if not np.any(e.imag) else e for e in ev] \
+            if np.iscomplexobj(ev) else list(ev)
     ol_poles = [np.concatenate([K.poles, G.poles, H.poles]) for G in Gs]
     ol_zeros = [np.concatenate([K.zeros, G.zeros, H.zeros]) for G in Gs]
     point = (lambda w: np.exp(1j * np.asarray(w, float) * ts)) if ts else \
@@ -771,11 +778,14 @@ def _build_group(idx, Gs, F, K, H, tau, d_in, d_plant, ts, algebraic_tol) -> Loo
 
     origin = 1.0 if ts else 0.0
     dc = np.empty(V, dtype=complex)
+    L0 = None
     for i, p in enumerate(ol_poles):
         if p.size and np.min(np.abs(p - origin)) < 1e-9 * max(1.0, np.max(np.abs(p))):
             dc[i] = complex(np.inf, 0.0)
         else:
-            dc[i] = L_of(np.array([0.0]))[i, 0]
+            if L0 is None:
+                L0 = L_of(np.array([0.0]))
+            dc[i] = L0[i, 0]
     cl_poles = loop_poles if loop_poles is not None else \
         [np.concatenate([p, z]) for p, z in zip(ol_poles, ol_zeros)]
     closed = {
