@@ -231,6 +231,11 @@ def _estimate_delay(evaluate, dt, poles, zeros, *, w_start=None, w_stop=None) ->
 
 def _pad(roots_list) -> tuple[np.ndarray, np.ndarray]:
     """Roots per variant as a padded (V, m) complex array and its validity mask."""
+    sizes = {np.size(r) for r in roots_list}
+    if len(sizes) == 1 and roots_list:
+        out = np.array([np.ravel(r) for r in roots_list], dtype=complex)
+        out = out.reshape(len(roots_list), sizes.pop())
+        return out, np.ones(out.shape, bool)
     m = max((np.size(r) for r in roots_list), default=0)
     out = np.zeros((len(roots_list), m), complex)
     mask = np.zeros((len(roots_list), m), bool)
@@ -532,16 +537,22 @@ def _refine_adaptively(evaluate, w, nvar, axis_w, *, phase_step, passes, max_poi
     Returns the grid and the values on it when the last pass evaluated exactly that grid
     (else ``None``)."""
     h = None
+    raw = None
     for _ in range(passes):
-        # values are pointwise: after the first pass only the new midpoints are evaluated
-        h = _call(evaluate, w, nvar) if h is None else h
+        # values are pointwise: after the first pass only the new midpoints are evaluated,
+        # and only the intervals next to them are checked again (the others were fine)
+        if h is None:
+            h = _call(evaluate, w, nvar)
+            J = np.arange(w.size - 1)
+            raw = np.zeros(w.size - 1, bool)
         with np.errstate(divide="ignore", invalid="ignore"):
-            dph = np.abs(np.angle(h[:, 1:] / h[:, :-1]))
-            dmag = np.abs(np.diff(np.log(np.abs(h) + _TINY), axis=1))
-        bad = np.zeros(w.size - 1, bool)
+            ha, hb = h[:, J], h[:, J + 1]
+            dph = np.abs(np.angle(hb / ha))
+            dmag = np.abs(np.log(np.abs(hb) + _TINY) - np.log(np.abs(ha) + _TINY))
         for arr in (dph, dmag):
             arr = np.where(np.isfinite(arr), arr, 0.0)
-            bad |= np.any(arr > phase_step, axis=0)
+            raw[J] |= np.any(arr > phase_step, axis=0)
+        bad = raw.copy()
         if axis_w.size:
             for w0 in axis_w:
                 i = np.searchsorted(w, w0)
@@ -555,7 +566,15 @@ def _refine_adaptively(evaluate, w, nvar, axis_w, *, phase_step, passes, max_poi
         hn = np.empty((nvar, wn.size), complex)
         hn[:, ~fresh] = h
         hn[:, fresh] = _call(evaluate, wn[fresh], nvar)
-        w, h = wn, hn
+        # intervals between two old points keep their old verdict (a bad one whose midpoint
+        # coincided with an end is checked again)
+        old_left = np.searchsorted(w, wn[:-1])
+        both_old = ~fresh[:-1] & ~fresh[1:]
+        rawn = np.zeros(wn.size - 1, bool)
+        rawn[both_old] = raw[np.minimum(old_left[both_old], raw.size - 1)]
+        J = np.flatnonzero(~both_old | rawn)
+        rawn[J] = False
+        w, h, raw = wn, hn, rawn
     return w, None
 
 
@@ -910,27 +929,30 @@ def peak_gain(evaluate, dt, poles, zeros, *, w_range: tuple[float, float] = (0.0
     # w = 0, say) are left out
     hm = np.where(np.isfinite(h), h, -math.inf)
     top = np.max(hm, axis=1)
-    for v in range(nvar):
-        if not np.isfinite(top[v]) and not at_pole[v]:
-            raise ComputeError(f"variant {v}: the response is not finite at any grid frequency; "
-                               "check the evaluator")
-        if np.isfinite(top[v]) and not at_pole[v]:
-            k = int(np.argmax(hm[v]))
-            peak[v], wpk[v] = top[v], w[k]
+    nofin = ~np.isfinite(top) & ~at_pole
+    if nofin.any():
+        v = int(np.flatnonzero(nofin)[0])
+        raise ComputeError(f"variant {v}: the response is not finite at any grid frequency; "
+                           "check the evaluator")
+    sel = np.isfinite(top) & ~at_pole
+    kmax = np.argmax(hm, axis=1)
+    peak[sel], wpk[sel] = top[sel], w[kmax[sel]]
     left = np.concatenate([np.full((nvar, 1), -math.inf), hm[:, :-1]], axis=1)
     right = np.concatenate([hm[:, 1:], np.full((nvar, 1), -math.inf)], axis=1)
     with np.errstate(invalid="ignore"):
         flat = (np.abs(left - hm) <= 1e-12 * hm) & (np.abs(right - hm) <= 1e-12 * hm)
     cand = ((hm >= left) & (hm >= right) & (hm >= candidate_ratio * top[:, None]) & ~flat
             & np.isfinite(hm) & ~at_pole[:, None])
-    vs, ks = [], []
-    for v in np.flatnonzero(cand.any(axis=1)):
-        k = np.flatnonzero(cand[v])
-        k = k[np.argsort(-hm[v, k], kind="stable")][:max_candidates]
-        vs.append(np.full(k.size, v))
-        ks.append(k)
-    if vs:
-        vi, k = np.concatenate(vs), np.concatenate(ks)
+    # per variant, its candidates by decreasing grid value (ties by frequency), at most
+    # max_candidates of them
+    vs, ks = np.nonzero(cand)
+    order = np.lexsort((ks, -hm[vs, ks], vs))
+    vs, ks = vs[order], ks[order]
+    first = np.searchsorted(vs, vs, side="left")
+    keep = np.arange(vs.size) - first < max_candidates
+    vs, ks = vs[keep], ks[keep]
+    if vs.size:
+        vi, k = vs, ks
         a, b = w[np.maximum(k - 1, 0)], w[np.minimum(k + 1, w.size - 1)]
         at = pairwise if pairwise is not None else _Sampler(evaluate, dt, poles, zeros, w, Hc).at
 
@@ -939,16 +961,24 @@ def peak_gain(evaluate, dt, poles, zeros, *, w_range: tuple[float, float] = (0.0
             return np.where(np.isfinite(val), val, -math.inf)
 
         x, f = _vmaximize(fun, vi, a, b, xrtol=xrtol)
-        for j in range(vi.size):
-            if np.isfinite(f[j]) and f[j] > peak[vi[j]]:
-                peak[vi[j]], wpk[vi[j]] = f[j], x[j]
+        # the largest refined value of each variant (the first one on ties) where it beats
+        # the grid maximum
+        fv = np.where(np.isfinite(f), f, -math.inf)
+        best = np.full(nvar, -math.inf)
+        np.maximum.at(best, vi, fv)
+        j = np.flatnonzero(fv == best[vi])
+        uv, jf = np.unique(vi[j], return_index=True)
+        jbest = j[jf]
+        win = best[uv] > peak[uv]
+        peak[uv[win]], wpk[uv[win]] = best[uv[win]], x[jbest[win]]
     if dt is None and not math.isfinite(hi):
         # the supremum may be the limit at infinite frequency (biproper H): compare with a
         # value far beyond every feature and report w_peak = inf when it wins
         far = _call(evaluate, [far_factor * float(w[-1])], nvar)[:, 0]
-        for v in range(nvar):
-            if math.isfinite(peak[v]) and np.isfinite(far[v]) and abs(far[v]) > peak[v]:
-                peak[v], wpk[v] = abs(far[v]), math.inf
+        af = np.abs(far)
+        with np.errstate(invalid="ignore"):
+            win = np.isfinite(peak) & np.isfinite(far) & (af > peak)
+        peak[win], wpk[win] = af[win], math.inf
     return peak, wpk
 
 
