@@ -1101,14 +1101,13 @@ class Ledger:
                     .group_by(Result.revision_id, Result.verdict)):
                 out[labels[rid]][verdict] = out[labels[rid]].get(verdict, 0) + n
                 fresh_total[rid] = fresh_total.get(rid, 0) + n
-            judged = (select(RequirementVersion.requirement_id)
-                      .where(RequirementVersion.id == Result.requirement_version_id)
-                      .scalar_subquery())
+            judged = RequirementVersion.__table__.alias("judged")
             for rid, n in s.execute(
-                    select(Result.revision_id, func.count(func.distinct(judged)))
+                    select(Result.revision_id, func.count(func.distinct(judged.c.requirement_id)))
+                    .join(judged, judged.c.id == Result.requirement_version_id)
+                    .join(current, current.c.requirement_id == judged.c.requirement_id)
                     .join(Revision, Revision.id == Result.revision_id)
-                    .where(Revision.loop_id == lp.id,
-                           judged.in_(select(current.c.requirement_id)))
+                    .where(Revision.loop_id == lp.id)
                     .group_by(Result.revision_id)):
                 out[labels[rid]]["stale"] = n - fresh_total.get(rid, 0)
             return out

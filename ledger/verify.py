@@ -117,21 +117,26 @@ def applicable_checks(s: Session, loop_id: int, keys: Iterable[str] | None = Non
     from .catalogue import metric_unit
     from .engine.metrics import resolve_settings
 
-    wanted = set(keys) if keys is not None else None
+    from sqlalchemy import func
+
+    latest = (select(RequirementVersion.requirement_id,
+                     func.max(RequirementVersion.number).label("n"))
+              .group_by(RequirementVersion.requirement_id).subquery())
+    query = (select(Requirement.key, RequirementVersion)
+             .join(RequirementVersion, RequirementVersion.requirement_id == Requirement.id)
+             .join(latest, (latest.c.requirement_id == RequirementVersion.requirement_id)
+                   & (latest.c.n == RequirementVersion.number))
+             .join(RequirementLoop, (RequirementLoop.version_id == RequirementVersion.id)
+                   & (RequirementLoop.loop_id == loop_id))
+             .where(RequirementVersion.status != "retired",
+                    RequirementVersion.metric.is_not(None))
+             .order_by(Requirement.key))
+    if keys is not None:
+        query = query.where(Requirement.key.in_(list(keys)))
     out = []
-    for req in s.scalars(select(Requirement).order_by(Requirement.key)):
-        if wanted is not None and req.key not in wanted:
-            continue
-        v = s.scalar(select(RequirementVersion).where(RequirementVersion.requirement_id == req.id)
-                     .order_by(RequirementVersion.number.desc()).limit(1))
-        if v is None or v.status == "retired" or not v.metric:
-            continue
-        applies = s.scalar(select(RequirementLoop).where(RequirementLoop.version_id == v.id,
-                                                         RequirementLoop.loop_id == loop_id))
-        if applies is None:
-            continue
+    for key, v in s.execute(query):
         out.append(Check(
-            version_id=v.id, key=req.key, version=v.number, status=v.status, metric=v.metric,
+            version_id=v.id, key=key, version=v.number, status=v.status, metric=v.metric,
             settings=resolve_settings(v.metric, json.loads(v.settings_json)),
             comparator=v.comparator, limit_value=v.limit_value, limit_text=v.limit_text,
             unit=metric_unit(v.metric),
