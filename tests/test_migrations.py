@@ -50,6 +50,9 @@ def test_fixture_upgrades_to_head_with_records_intact(tmp_path, rev):
         after = lg.counts()
         for t, n in counts.items():
             assert after[t] == n, t
+        from ledger.audit import audit
+
+        assert audit(lg).ok  # the chain covers the upgraded records (backfilled by 0003)
         loop = lg.loops()[0].name
         tip = lg.revision(loop)
         new = lg.add_revision(loop, tip.controller, rationale="same controller after upgrade")

@@ -113,6 +113,7 @@ class Revision(Base):
     __table_args__ = (
         UniqueConstraint("loop_id", "label", name="uq_revision_label"),
         CheckConstraint("length(trim(rationale)) > 0", name="rationale_not_empty"),
+        Index("ix_revision_loop_seq", "loop_id", "seq"),
     )
 
     id: Mapped[int] = mapped_column(Integer, primary_key=True)
