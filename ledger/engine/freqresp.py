@@ -683,7 +683,19 @@ def _roots_on_grid(G: np.ndarray, fun, w: np.ndarray, mask: np.ndarray, *, xrtol
     v0, i0 = v0[keep], i0[keep] + lo
     allv = np.concatenate([v, v0])
     allr = np.concatenate([r, w[i0]])
-    return [np.unique(allr[allv == k]) for k in range(nvar)]
+    # per variant: sorted distinct roots (np.unique of each variant's roots, all at once)
+    order = np.lexsort((allr, allv))
+    allv, allr = allv[order], allr[order]
+    new = np.ones(allv.size, bool)
+    new[1:] = (allv[1:] != allv[:-1]) | (allr[1:] != allr[:-1])
+    allv, allr = allv[new], allr[new]
+    return _split_by_variant(allr, allv, nvar)
+
+
+def _split_by_variant(values: np.ndarray, vi: np.ndarray, nvar: int) -> list[np.ndarray]:
+    """``[values[vi == v] for v in range(nvar)]`` for a non-decreasing ``vi``."""
+    counts = np.bincount(np.asarray(vi, int), minlength=nvar)
+    return [a.copy() for a in np.split(values, np.cumsum(counts)[:-1])]
 
 
 def _crossing_setup(fb: FreqBatch, grid):
@@ -797,8 +809,9 @@ def _phase_crossovers_from(fb, smp, w, mask, L, xrtol):
     vals = smp.at(vi.astype(int), np.concatenate(allc + [np.empty(0)]))
     end = _call(fb.evaluate, [0.0] + ([math.pi / fb.dt] if fb.dt is not None else []), fb.nvar)
     out = []
+    per = _split_by_variant(vals, vi.astype(int), fb.nvar)
     for v, c in enumerate(allc):
-        lv = vals[vi == v]
+        lv = per[v]
         keep = list(c[(lv.real < 0) & (np.abs(lv) > _TINY)])
         l0 = end[v, 0]
         if np.isfinite(l0) and l0.real < 0:

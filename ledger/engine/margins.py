@@ -103,12 +103,26 @@ class DiskMargin:
     frequency: np.ndarray
 
 
-def _values_at(smp, per_variant: list[np.ndarray]) -> list[np.ndarray]:
-    """L at each variant's own frequencies, evaluated pairwise."""
+def _flat(per_variant: list) -> tuple[np.ndarray, np.ndarray]:
+    """(variant index, value) arrays of a list of per-variant arrays, variants in order."""
     vi = np.concatenate([np.full(np.size(c), v, int) for v, c in enumerate(per_variant)]
                         + [np.empty(0, int)])
-    vals = smp.at(vi, np.concatenate([np.asarray(c, float) for c in per_variant] + [np.empty(0)]))
-    return [vals[vi == v] for v in range(len(per_variant))]
+    x = np.concatenate([np.asarray(c, float).ravel() for c in per_variant] + [np.empty(0)])
+    return vi, x
+
+
+def _first_best(x: np.ndarray, vi: np.ndarray, sel: np.ndarray, nvar: int, *,
+                largest: bool) -> np.ndarray:
+    """Per variant with a selected entry: the index of its smallest (largest) selected ``x``,
+    the first one on ties (what ``argmin``/``argmax`` over the variant's entries give)."""
+    idx = np.flatnonzero(sel)
+    if idx.size == 0:
+        return idx
+    best = np.full(nvar, -math.inf if largest else math.inf)
+    (np.maximum if largest else np.minimum).at(best, vi[idx], x[idx])
+    hit = idx[x[idx] == best[vi[idx]]]
+    _, first = np.unique(vi[hit], return_index=True)
+    return hit[first]
 
 
 def margins(fb: FreqBatch, *, grid: np.ndarray | None = None, xrtol: float = 1e-14) -> Margins:
@@ -126,33 +140,34 @@ def margins(fb: FreqBatch, *, grid: np.ndarray | None = None, xrtol: float = 1e-
     w, mask, L, smp = _fr._crossing_setup(fb, grid)
     pcs = _fr._phase_crossovers_from(fb, smp, w, mask, L, xrtol)
     gcs = _fr._gain_crossings(smp, w, mask, L, xrtol)
-    lp = _values_at(smp, pcs)
-    lg = _values_at(smp, gcs)
     V = fb.nvar
     gm, gml = np.full(V, math.inf), np.full(V, -math.inf)
     wpc, wpcl = np.full(V, math.inf), np.full(V, math.inf)
     pm, wgc, dm = np.full(V, math.inf), np.full(V, math.inf), np.full(V, math.inf)
-    gms, pms = [], []
-    for v in range(V):
-        g = -20.0 * np.log10(np.abs(lp[v])) if pcs[v].size else np.empty(0)
-        gms.append(g)
-        pos, neg = g > 0, g < 0
-        if pos.any():
-            i = int(np.flatnonzero(pos)[np.argmin(g[pos])])
-            gm[v], wpc[v] = g[i], pcs[v][i]
-        if neg.any():
-            i = int(np.flatnonzero(neg)[np.argmax(g[neg])])
-            gml[v], wpcl[v] = g[i], pcs[v][i]
-        if gcs[v].size:
-            p = np.degrees(np.angle(-lg[v]))
-            p = np.where(p <= -180.0, p + 360.0, p)
-            pms.append(p)
-            i = int(np.argmin(p))
-            pm[v], wgc[v] = p[i], gcs[v][i]
-            ok = p > 0
-            dm[v] = float(np.min(np.radians(p[ok]) / gcs[v][ok])) if ok.any() else 0.0
-        else:
-            pms.append(np.empty(0))
+    # all variants at once: flat arrays of (variant, frequency, value), variants in order
+    pv, pw = _flat(pcs)
+    gv, gw = _flat(gcs)
+    lpf = smp.at(pv, pw)
+    lgf = smp.at(gv, gw)
+    g = -20.0 * np.log10(np.abs(lpf))
+    gms = _fr._split_by_variant(g, pv, V)
+    i = _first_best(g, pv, g > 0, V, largest=False)
+    gm[pv[i]], wpc[pv[i]] = g[i], pw[i]
+    i = _first_best(g, pv, g < 0, V, largest=True)
+    gml[pv[i]], wpcl[pv[i]] = g[i], pw[i]
+    p = np.degrees(np.angle(-lgf))
+    p = np.where(p <= -180.0, p + 360.0, p)
+    pms = _fr._split_by_variant(p, gv, V)
+    i = _first_best(p, gv, np.ones(p.size, bool), V, largest=False)
+    pm[gv[i]], wgc[gv[i]] = p[i], gw[i]
+    has = np.bincount(gv, minlength=V) > 0
+    ok = p > 0
+    with np.errstate(divide="ignore", invalid="ignore"):
+        r = np.where(ok, np.radians(p) / gw, math.inf)
+    dmin = np.full(V, math.inf)
+    np.minimum.at(dmin, gv, r)
+    anyok = np.bincount(gv, weights=ok.astype(float), minlength=V) > 0
+    dm[has] = np.where(anyok[has], dmin[has], 0.0)
     return Margins(gain_margin=gm, gain_margin_lower=gml, phase_crossover=wpc,
                    phase_crossover_lower=wpcl, phase_margin=pm, gain_crossover=wgc,
                    delay_margin=dm, phase_crossovers=tuple(pcs), gain_margins=tuple(gms),
