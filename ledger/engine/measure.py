@@ -275,8 +275,11 @@ def _sub_list(x, m):
 class _GroupContext:
     """Caches shared work for one group and one stable mask."""
 
-    def __init__(self, asm: Assembly, group: LoopGroup, mask: np.ndarray):
+    def __init__(self, asm: Assembly, group: LoopGroup, mask: np.ndarray,
+                 stable: np.ndarray | None = None):
         self.asm, self.g, self.m = asm, group, mask
+        #: every variant under the mask was found stable by the family's stability decision
+        self.all_stable = stable is not None and bool(np.all(np.asarray(stable)[mask]))
         self._cache: dict = {}
 
     def cached(self, key, fn):
@@ -348,7 +351,10 @@ def _margins(ctx):
 
 def _disk(ctx):
     from . import freqresp
-    return ctx.cached("disk", lambda: freqresp.disk_margin(ctx.fb(), grid=ctx.grid()))
+    # the stability of these variants is already decided (disk metrics need a stable loop):
+    # the disk margin does not count encirclements again
+    return ctx.cached("disk", lambda: freqresp.disk_margin(
+        ctx.fb(), grid=ctx.grid(), check_stability=not ctx.all_stable))
 
 
 def _peak(ctx, which, w_range=(0.0, math.inf)):
@@ -538,7 +544,10 @@ def measure_family(family: PlantFamily, controller, loop: LoopSpec | None,
                     unstable = True
                 if not np.any(ok):
                     continue
-                ctx = contexts.setdefault((gi, ok.tobytes()), _GroupContext(asm, g, ok))
+                ckey = (gi, ok.tobytes())
+                if ckey not in contexts:
+                    contexts[ckey] = _GroupContext(asm, g, ok, stab.stable[g.index])
+                ctx = contexts[ckey]
                 try:
                     vals = np.asarray(_COMPUTE[name](ctx, full), dtype=float).reshape(-1)
                 except LedgerError as e:
