@@ -425,16 +425,21 @@ def _grid(evaluate, dt, poles, zeros, *, points_per_decade: int, w_min, w_max,
     or None)."""
     nvar = len(poles)
     wnyq = math.pi / dt if dt is not None else math.inf
-    feats_w, feats_z = [], []
-    for p, z in zip(poles, zeros):
-        s = _s_equivalent(list(np.ravel(p)) + list(np.ravel(z)), dt)
-        mag = np.abs(s)
-        keep = mag > 0
-        if dt is not None:
-            keep &= np.abs(s.imag) <= wnyq * (1 + 1e-12)
-        feats_w.append(mag[keep])
-        feats_z.append(-s.real[keep] / mag[keep])
-    allw = np.concatenate(feats_w + [np.empty(0)])
+    # features (continuous-time equivalents of every pole and zero), all variants at once,
+    # flattened variant by variant: natural frequency and damping
+    R, keep = _pad([np.concatenate([np.ravel(p), np.ravel(z)]).astype(complex)
+                    for p, z in zip(poles, zeros)])
+    if dt is not None:
+        keep &= np.abs(R) > 1e-12
+        with np.errstate(divide="ignore", invalid="ignore"):
+            R = np.log(np.where(keep, R, 1.0)) / dt
+    mag = np.abs(R)
+    keep &= mag > 0
+    if dt is not None:
+        keep &= np.abs(R.imag) <= wnyq * (1 + 1e-12)
+    feat_w = mag[keep]
+    feat_z = -R.real[keep] / feat_w
+    allw = feat_w
     allw = allw[np.isfinite(allw) & (allw > 0)]
     if dt is not None:
         allw = allw[allw > 1e-9 * wnyq]
@@ -460,13 +465,14 @@ def _grid(evaluate, dt, poles, zeros, *, points_per_decade: int, w_min, w_max,
         parts.append(np.linspace(0.0, wnyq, 20 * (order + 2) + 1))
     # lightly damped poles and zeros: points across the resonance width
     t = np.linspace(-10.0, 10.0, 41)
-    for fw, fz in zip(feats_w, feats_z):
-        for wn, zeta in zip(fw, fz):
-            if 0 < abs(zeta) < resonance_zeta and np.isfinite(wn):
-                wd = wn * math.sqrt(max(1.0 - zeta * zeta, 0.0))
-                parts.append(wd + abs(zeta) * wn * t)
-                parts.append(wd * (1 + np.logspace(-6, -1, 11)))
-                parts.append(wd * (1 - np.logspace(-6, -1, 11)))
+    az = np.abs(feat_z)
+    res = (0 < az) & (az < resonance_zeta) & np.isfinite(feat_w)
+    if res.any():
+        wn, zeta = feat_w[res], feat_z[res]
+        wd = wn * np.sqrt(np.maximum(1.0 - zeta * zeta, 0.0))
+        parts.append(((az[res] * wn)[:, None] * t[None, :] + wd[:, None]).ravel())
+        parts.append((wd[:, None] * (1 + np.logspace(-6, -1, 11))[None, :]).ravel())
+        parts.append((wd[:, None] * (1 - np.logspace(-6, -1, 11))[None, :]).ravel())
     # boundary poles (integrators, undamped modes): approach them geometrically from both sides
     offsets = np.logspace(-7, -1, 13)
     for ar in axis:
