@@ -308,8 +308,15 @@ def _tf_coefficients(sys):
     return num, den
 
 
+def _shape_key(num, den):
+    """(coefficient counts, trailing zeros) of a trimmed numerator and denominator."""
+    return (num.size, den.size, num.size - 1 - int(np.flatnonzero(num)[-1]),
+            den.size - 1 - int(np.flatnonzero(den)[-1]))
+
+
 def make_blocks(systems, roles) -> list:
-    """:func:`make_block` for many systems at once (same results, same errors).
+    """:func:`make_block` for many systems at once (the same blocks; a system it refuses
+    raises its error, though with several bad systems not necessarily the first one's).
 
     SISO transfer functions that share numerator and denominator lengths and trailing zeros
     (the variants of one parametric family) are realised together: controllable canonical
@@ -328,36 +335,63 @@ def make_blocks(systems, roles) -> list:
     list of Block
     """
     out: list = [None] * len(systems)
-    shapes: dict = {}
+    # raw coefficient rows of the SISO transfer functions, by coefficient counts
+    raw: dict = {}
     for i, sys in enumerate(systems):
-        nd = _tf_coefficients(sys)
-        if nd is None:
+        if isinstance(sys, control.TransferFunction) and sys.ninputs == 1 \
+                and sys.noutputs == 1:
+            num, den = sys.num[0][0], sys.den[0][0]
+            raw.setdefault((np.size(num), np.size(den)), []).append((i, num, den))
+        else:
             out[i] = make_block(sys, roles[i])
+    shapes: dict = {}
+    for (m, k), items in raw.items():
+        idx = np.array([it[0] for it in items])
+        with np.errstate(all="ignore"):
+            num = np.array([np.ravel(it[1]) for it in items], dtype=float).reshape(len(items), m)
+            den = np.array([np.ravel(it[2]) for it in items], dtype=float).reshape(len(items), k)
+            # rows the batched path takes as they are: already trimmed (nonzero leading
+            # coefficients), finite, proper, dynamic, numerator not negligible
+            fast = (np.all(np.isfinite(num), axis=1) & np.all(np.isfinite(den), axis=1)
+                    & (num[:, 0] != 0) & (den[:, 0] != 0) & (k >= 2) & (m <= k)
+                    & (np.abs(num[:, 0] / den[:, 0]) > 1e-14))
+        for r in np.flatnonzero(~fast):
+            i = int(idx[r])
+            nd = _tf_coefficients(systems[i])
+            if nd is None:
+                out[i] = make_block(systems[i], roles[i])
+            else:
+                shapes.setdefault(_shape_key(*nd), []).append(([i], nd[0], nd[1]))
+        if not fast.any():
             continue
-        num, den = nd
-        key = (num.size, den.size, num.size - 1 - int(np.flatnonzero(num)[-1]),
-               den.size - 1 - int(np.flatnonzero(den)[-1]))
-        shapes.setdefault(key, []).append((i, num, den))
-    for (m, k, _, _), items in shapes.items():
-        num = np.stack([it[1] for it in items])
-        den = np.stack([it[2] for it in items])
+        nf, df, ids = num[fast], den[fast], idx[fast]
+        tz_n = np.argmax(nf[:, ::-1] != 0, axis=1)        # trailing zeros of each row
+        tz_d = np.argmax(df[:, ::-1] != 0, axis=1)
+        for a, b in sorted(set(zip(tz_n.tolist(), tz_d.tolist()))):
+            sel = np.flatnonzero((tz_n == a) & (tz_d == b))
+            shapes.setdefault((m, k, a, b), []).append((ids[sel], nf[sel], df[sel]))
+    for (m, k, _tn, _td), parts in shapes.items():
+        order = np.concatenate([np.atleast_1d(p[0]) for p in parts]).astype(int)
+        num = np.concatenate([np.reshape(p[1], (-1, m)) for p in parts])
+        den = np.concatenate([np.reshape(p[2], (-1, k)) for p in parts])
+        V = order.size
         d0 = den[:, :1]
         numn, denn = num / d0, den / d0
-        nump = np.zeros((len(items), k))
+        nump = np.zeros((V, k))
         nump[:, k - m:] = numn
         n = k - 1
-        A = np.zeros((len(items), n, n))
+        A = np.zeros((V, n, n))
         A[:, 0, :] = -denn[:, 1:]
         j = np.arange(n - 1)
         A[:, j + 1, j] = 1.0
-        B = np.zeros((len(items), n))
+        B = np.zeros((V, n))
         B[:, 0] = 1.0
         C = nump[:, 1:] - nump[:, :1] * denn[:, 1:]
         D = nump[:, 0]
         A, B, C = _balance_batch(A, B, C)
         zeros, poles = _batch_roots(num), _batch_roots(den)
         gains = num[:, 0] / den[:, 0]
-        for r, (i, _, _) in enumerate(items):
+        for r, i in enumerate(order.tolist()):
             dt = systems[i].dt
             out[i] = Block(A[r], B[r], C[r], float(D[r]), zeros[r], poles[r], float(gains[r]),
                            None if (dt is None or dt == 0) else dt)
