@@ -109,3 +109,21 @@ def test_damping_and_decay_rate_closed_form():
     s = np.array([-2.0 + 3.0j, -2.0 - 3.0j, -7.0])
     assert_allclose(min_damping(np.exp(s * ts), ts), 2.0 / np.sqrt(13.0), rtol=1e-12)
     assert_allclose(decay_rate(np.exp(s * ts), ts), 2.0, rtol=1e-12)
+
+
+def test_row_forms_of_pole_metrics_closed_form():
+    """Damping and decay rate of many pole sets at once.
+
+    Source: poles -zeta wn +- j wn sqrt(1 - zeta^2) of s^2 + 2 zeta wn s + wn^2 have damping
+    ratio zeta and decay rate zeta wn (textbook closed form); discrete poles z = exp(s Ts)."""
+    from ledger.engine.stability import decay_rate_rows, min_damping_rows
+
+    zeta = np.array([0.05, 0.3, 0.7, 0.95])
+    wn = np.array([2.0, 10.0, 50.0, 400.0])
+    wd = wn * np.sqrt(1 - zeta ** 2)
+    s = np.stack([-zeta * wn + 1j * wd, -zeta * wn - 1j * wd, -3 * wn + 0j], axis=1)
+    np.testing.assert_allclose(min_damping_rows(s), zeta, rtol=1e-12)
+    np.testing.assert_allclose(decay_rate_rows(s), zeta * wn, rtol=1e-12)
+    ts = 1e-3
+    np.testing.assert_allclose(min_damping_rows(np.exp(s * ts), ts), zeta, rtol=1e-9)
+    np.testing.assert_allclose(decay_rate_rows(np.exp(s * ts), ts), zeta * wn, rtol=1e-9)

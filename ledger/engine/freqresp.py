@@ -231,10 +231,9 @@ def _estimate_delay(evaluate, dt, poles, zeros, *, w_start=None, w_stop=None) ->
 
 def _pad(roots_list) -> tuple[np.ndarray, np.ndarray]:
     """Roots per variant as a padded (V, m) complex array and its validity mask."""
-    sizes = {np.size(r) for r in roots_list}
-    if len(sizes) == 1 and roots_list:
-        out = np.array([np.ravel(r) for r in roots_list], dtype=complex)
-        out = out.reshape(len(roots_list), sizes.pop())
+    if roots_list and all(isinstance(r, np.ndarray) and r.ndim == 1 for r in roots_list) \
+            and len({r.size for r in roots_list}) == 1:
+        out = np.stack(roots_list).astype(complex, copy=False)
         return out, np.ones(out.shape, bool)
     m = max((np.size(r) for r in roots_list), default=0)
     out = np.zeros((len(roots_list), m), complex)

@@ -22,7 +22,8 @@ import numpy as np
 from ..errors import ComputeError, LedgerError, ModelError, SpecError, UnstableLoopError
 from .loop import Assembly, LoopGroup, LoopSpec, assemble
 from .metrics import METRICS, SETTING_DOCS, STANDARD_SUITE, get_metric, resolve_settings
-from .stability import StabilityReport, decay_rate, min_damping, stability
+from .stability import (StabilityReport, decay_rate, decay_rate_rows, min_damping,
+                        min_damping_rows, stability)
 from .types import PlantFamily, SSBatch
 
 __all__ = ["ENGINE_VERSION", "MetricResult", "FamilyResult", "Measurement", "measure",
@@ -427,7 +428,11 @@ def _poles(ctx, fn) -> np.ndarray:
     if ctx.g.poles is None:
         raise ComputeError("a continuous loop with a delay has infinitely many closed-loop "
                            "poles; pole metrics need a delay-free or digital loop")
-    return np.array([fn(ctx.g.poles[j], ctx.asm.dt) for j in np.flatnonzero(ctx.m)])
+    rows = [ctx.g.poles[j] for j in np.flatnonzero(ctx.m)]
+    batch = _POLE_BATCH.get(fn)
+    if batch is not None and rows and len({np.size(r) for r in rows}) == 1 and np.size(rows[0]):
+        return batch(np.stack(rows), ctx.asm.dt)
+    return np.array([fn(r, ctx.asm.dt) for r in rows])
 
 
 def _disturbance(ctx, s, part: int):
@@ -437,6 +442,9 @@ def _disturbance(ctx, s, part: int):
                                               band=s.get("band", 0.02)))
     return np.asarray(res[part], dtype=float)
 
+
+#: row-wise forms of the pole metrics, for groups whose variants have equally many poles
+_POLE_BATCH = {min_damping: min_damping_rows, decay_rate: decay_rate_rows}
 
 _COMPUTE = {
     "rise_time": lambda c, s: _step(c, s).rise_time,
@@ -556,11 +564,10 @@ def measure_family(family: PlantFamily, controller, loop: LoopSpec | None,
                         unstable = unstable or isinstance(e, UnstableLoopError)
                     continue
                 idx = g.index[ok]
-                for i, v in zip(idx, vals):
-                    if math.isnan(v):
-                        errors[asm.variants[i]] = "the value could not be computed (NaN)"
-                    else:
-                        values[i] = v
+                nan = np.isnan(vals)
+                values[idx[~nan]] = vals[~nan]
+                for i in idx[nan]:
+                    errors[asm.variants[i]] = "the value could not be computed (NaN)"
         order = {n: k for k, n in enumerate(asm.variants)}
         errors = dict(sorted(errors.items(), key=lambda kv: order[kv[0]]))
         results[key] = MetricResult(name=name, settings=full, key=key, values=values,

@@ -24,7 +24,7 @@ from ..errors import ComputeError
 from .loop import Assembly, LoopGroup
 
 __all__ = ["StabilityReport", "stability", "nyquist_unstable_count", "min_damping",
-           "decay_rate"]
+           "decay_rate", "min_damping_rows", "decay_rate_rows"]
 
 
 @dataclass(frozen=True)
@@ -256,6 +256,21 @@ def min_damping(poles: np.ndarray, dt=None) -> float:
         zeta = np.where(np.isinf(s.real), 1.0, -s.real / np.abs(s))
     zeta = np.where(np.abs(s) == 0, 0.0, zeta)
     return float(np.min(zeta))
+
+
+def min_damping_rows(poles: np.ndarray, dt=None) -> np.ndarray:
+    """:func:`min_damping` of every row of ``poles`` (V, n), n >= 1; returns ndarray (V,)."""
+    s = _continuous_equivalent(np.asarray(poles), dt)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        zeta = np.where(np.isinf(s.real), 1.0, -s.real / np.abs(s))
+    zeta = np.where(np.abs(s) == 0, 0.0, zeta)
+    return np.min(zeta, axis=1).astype(float)
+
+
+def decay_rate_rows(poles: np.ndarray, dt=None) -> np.ndarray:
+    """:func:`decay_rate` of every row of ``poles`` (V, n), n >= 1; returns ndarray (V,)."""
+    s = _continuous_equivalent(np.asarray(poles), dt)
+    return np.min(-s.real, axis=1).astype(float)
 
 
 def decay_rate(poles: np.ndarray, dt=None) -> float:
