@@ -490,6 +490,10 @@ def _propagate(E: np.ndarray, out: np.ndarray) -> None:
         k += j
 
 
+#: the last delay-free propagation: ((dt, u, grid segments, A, B), states); read-only states
+_LAST_PROPAGATION: list = [None]
+
+
 def _sim_nodelay(sys: SSBatch, u: float, grid: TimeGrid):
     A, B, C, D = mats(sys)
     V, n = A.shape[0], A.shape[1]
@@ -497,20 +501,29 @@ def _sim_nodelay(sys: SSBatch, u: float, grid: TimeGrid):
     M[:, :n, :n] = A
     M[:, :n, n] = B
     Cy = np.concatenate([C, D[:, None]], axis=1)
-    Z = np.empty((V, grid.nsamples, n + 1))                 # augmented states at the samples
-    Z[:, 0, :n] = 0.0
-    Z[:, 0, n] = u
-    k = 0
-    for h, count in grid.segments:
-        if sys.dt is not None:
-            E = np.zeros_like(M)
-            E[:, :n, :n] = A
-            E[:, :n, n] = B
-            E[:, n, n] = 1.0
-        else:
-            E = expm_batch(M * h)
-        _propagate(E, Z[:, k:k + count + 1])
-        k += count
+    # the states depend on (A, B, u, grid) only: paths that share them (r->y and r->u of one
+    # loop) share one propagation
+    key = (sys.dt, u, tuple(grid.segments), A.shape, A.tobytes(), B.tobytes())
+    last = _LAST_PROPAGATION[0]
+    if last is not None and last[0] == key:
+        Z = last[1]
+    else:
+        Z = np.empty((V, grid.nsamples, n + 1))             # augmented states at the samples
+        Z[:, 0, :n] = 0.0
+        Z[:, 0, n] = u
+        k = 0
+        for h, count in grid.segments:
+            if sys.dt is not None:
+                E = np.zeros_like(M)
+                E[:, :n, :n] = A
+                E[:, :n, n] = B
+                E[:, n, n] = 1.0
+            else:
+                E = expm_batch(M * h)
+            _propagate(E, Z[:, k:k + count + 1])
+            k += count
+        Z.flags.writeable = False
+        _LAST_PROPAGATION[0] = (key, Z)
     if sys.dt is not None:
         y = (Z @ Cy[:, :, None])[..., 0]
         return M, Cy, Z[:, :-1], y[:, :-1], y[:, 1:], None, None, Z[:, -1, :n]
