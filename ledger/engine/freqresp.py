@@ -537,7 +537,8 @@ def _extend_ends(evaluate, dt, poles, zeros, lo, hi, axis, nvar):
 
 def _refine_adaptively(evaluate, w, nvar, axis_w, *, phase_step, passes, max_points):
     """Bisect intervals where any variant's phase turns more than ``phase_step`` rad or its
-    magnitude changes by more than a factor e^phase_step (boundary-pole intervals excluded).
+    magnitude changes by more than a factor e^phase_step (boundary-pole intervals, and the
+    phase and magnitude change next to a non-finite value or an exact zero, excluded).
 
     Returns the grid and the values on it when the last pass evaluated exactly that grid
     (else ``None``)."""
@@ -554,6 +555,11 @@ def _refine_adaptively(evaluate, w, nvar, axis_w, *, phase_step, passes, max_poi
             ha, hb = h[:, J], h[:, J + 1]
             dph = np.abs(np.angle(hb / ha))
             dmag = np.abs(np.log(np.abs(hb) + _TINY) - np.log(np.abs(ha) + _TINY))
+            # an exact zero at a grid point (S at w = 0 of a loop with an integrator) is like a
+            # pole there: no bisection resolves its phase or log magnitude
+            at_zero = (ha == 0) | (hb == 0)
+            dph = np.where(at_zero, 0.0, dph)
+            dmag = np.where(at_zero, 0.0, dmag)
         for arr in (dph, dmag):
             arr = np.where(np.isfinite(arr), arr, 0.0)
             raw[J] |= np.any(arr > phase_step, axis=0)
