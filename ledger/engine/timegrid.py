@@ -486,7 +486,9 @@ def _propagate(E: np.ndarray, out: np.ndarray) -> None:
     k = 0
     while k < nsteps:
         j = min(b, nsteps - k)
-        out[:, k + 1:k + 1 + j] = (P[:, :j] @ out[:, k, None, :, None])[..., 0]
+        # one (j m, m) @ (m, 1) product per variant (rows of all j powers stacked)
+        out[:, k + 1:k + 1 + j] = (P[:, :j].reshape(V, j * m, m)
+                                   @ out[:, k, :, None]).reshape(V, j, m)
         k += j
 
 
