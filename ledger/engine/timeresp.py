@@ -120,7 +120,8 @@ def _refine(p: Pieces, levels=(), near_extremes: bool = True, margin: float = 1e
         return
     h = np.diff(p.t)[ki]
     P = _Problems(p.M, p.Cy, p.Z0, vi, ki)
-    s, val = _solve(P, np.zeros(vi.size), h, p.da[vi, ki], p.db[vi, ki], 0.0, order=1)
+    s, val = _solve(P, np.zeros(vi.size), h, p.da[vi, ki], p.db[vi, ki], 0.0, order=1,
+                    s0=p.te[vi, ki] - p.t[ki])
     p.te[vi, ki] = p.t[ki] + s
     p.ye[vi, ki] = val
     p.exact[vi, ki] = True
@@ -154,7 +155,8 @@ class _Problems:
 
 
 def _solve(P: _Problems, lo, hi, f_lo, f_hi, level, *, order: int, xtol: float = 1e-13,
-           maxiter: int = 200, noise: float = 64 * np.finfo(float).eps):
+           maxiter: int = 200, noise: float = 64 * np.finfo(float).eps, s0=None,
+           want_value: bool = True):
     """Bracketed Newton for ``y^(order)(t_k + s) = level`` with ``s`` in ``[lo, hi]``.
 
     ``f_lo`` and ``f_hi`` are the function values minus ``level`` at the bracket ends and have
@@ -163,7 +165,10 @@ def _solve(P: _Problems, lo, hi, f_lo, f_hi, level, *, order: int, xtol: float =
     width within ``2 * 45`` iterations whatever the rounding of ``f``.  A point where ``|f|``
     is below ``noise`` (relative, default 64 machine epsilons) times the sum of the magnitudes
     of the terms of ``f`` (plus ``|level|``) is a root: ``f`` is zero to rounding there, and
-    further steps would only follow rounding noise.  Returns ``(s, y(t_k + s))``.
+    further steps would only follow rounding noise.  ``s0`` (optional) is a first estimate
+    inside the bracket (e.g. from the cubic Hermite interpolant); by default the secant of
+    the bracket ends.  Returns ``(s, y(t_k + s))`` (``y`` is ``None`` without
+    ``want_value``).
     """
     lo = np.array(lo, dtype=float)
     hi = np.array(hi, dtype=float)
@@ -174,6 +179,9 @@ def _solve(P: _Problems, lo, hi, f_lo, f_hi, level, *, order: int, xtol: float =
     den = f_lo - f_hi
     frac = np.where(den != 0, f_lo / np.where(den != 0, den, 1.0), 0.5)
     s = lo + np.clip(frac, 0.0, 1.0) * width
+    if s0 is not None:
+        s0 = np.asarray(s0, dtype=float)
+        s = np.where(np.isfinite(s0) & (s0 > lo) & (s0 < hi), s0, s)
     s = np.where(f_lo == 0, lo, np.where(f_hi == 0, hi, s))
     sign_lo = np.sign(f_lo)
     active = np.nonzero((f_lo != 0) & (f_hi != 0))[0]
@@ -223,6 +231,8 @@ def _solve(P: _Problems, lo, hi, f_lo, f_hi, level, *, order: int, xtol: float =
     if active.size:
         raise ComputeError("refinement of a crossing or extremum did not converge in"
                            f" {maxiter} steps; report this system")
+    if not want_value:
+        return s, None
     val = P.values(np.arange(s.size), s)[0] if s.size else s
     return s, val
 
@@ -417,7 +427,7 @@ def _first_reach(p: Pieces, sgn: np.ndarray, L: np.ndarray) -> np.ndarray:
     if sel.size:
         P = _Problems(p.M, p.Cy, p.Z0, sel, k[sel])
         s, _ = _solve(P, lo[sel], hi[sel], sgn[sel] * flo[sel], sgn[sel] * fhi[sel],
-                      sgn[sel] * L[sel], order=0)
+                      sgn[sel] * L[sel], order=0, want_value=False)
         res[sel] = tk[sel] + s
     return res
 
@@ -461,7 +471,7 @@ def _last_exceed(p: Pieces, c: np.ndarray, band: np.ndarray) -> np.ndarray:
     if sel.size:
         P = _Problems(p.M, p.Cy, p.Z0, sel, k[sel])
         s, _ = _solve(P, lo[sel], hi[sel], flo[sel], fhi[sel], c[sel] + sig[sel] * band[sel],
-                      order=0)
+                      order=0, want_value=False)
         res[sel] = tk[sel] + s
     return res
 
