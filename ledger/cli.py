@@ -139,12 +139,23 @@ def _settings_arg(items: list[str]) -> dict:
 
 def run(fn):
     """Run a command body, turning domain errors into one line and exit status 1."""
+    import os
+
     try:
         return fn()
     except LedgerError as e:
         _fail(str(e))
     except KeyboardInterrupt:
         _fail("interrupted; nothing was written by the unfinished command")
+    except (typer.Exit, typer.Abort, SystemExit):
+        raise
+    except Exception as e:  # noqa: BLE001 - last resort: one line, not a traceback
+        if os.environ.get("LOOPLEDGER_DEBUG"):
+            raise
+        typer.echo(f"error: internal error ({type(e).__name__}: {e}); nothing of the failed "
+                   "step was written; rerun with LOOPLEDGER_DEBUG=1 for details and report it",
+                   err=True)
+        raise typer.Exit(2) from e
 
 
 # ---------------------------------------------------------------------------------------
