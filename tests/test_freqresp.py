@@ -714,3 +714,22 @@ def test_loop_grid_and_pairwise_paths_match_default_paths():
                            pairwise=fr.loop_pairwise(fb, "T"))
         assert_allclose(bw1, [ct.bandwidth(Td)], rtol=1e-6)
         assert_allclose(bw2, bw1, rtol=1e-12)
+
+
+def test_known_delay_integrator_margins_closed_form():
+    """L = K e^{-s tau} / s with the delay recorded as known: crossover K, phase margin
+    90 deg - K tau (rad -> deg), delay margin pi/(2K) - tau, phase crossover pi/(2 tau).
+
+    Source: closed form of the integrator with delay (|L| = K/w; arg L = -90 deg - w tau)."""
+    K = np.array([2.0, 5.0, 20.0])
+    tau = 0.01
+    fb = make_fb([ct.tf([k], [1, 0]) for k in K], delays=[tau] * 3)
+    fr.set_known_delay(fb, tau)
+    assert_allclose(fr.estimate_delay(fb), tau, rtol=0)
+    m = fr.margins(fb)
+    assert_allclose(m.gain_crossover, K, rtol=1e-12)
+    assert_allclose(m.phase_margin, 90.0 - np.degrees(K * tau), rtol=1e-12)
+    assert_allclose(m.delay_margin, np.pi / (2 * K) - tau, rtol=1e-10)
+    assert_allclose(m.phase_crossover, np.pi / (2 * tau), rtol=1e-12)
+    with pytest.raises(ComputeError):
+        fr.set_known_delay(fb, -1.0)

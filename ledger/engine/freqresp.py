@@ -31,6 +31,7 @@ __all__ = [
     "peak_gain",
     "bandwidth",
     "estimate_delay",
+    "set_known_delay",
     "loop_pairwise",
     "Margins",
     "DiskMargin",
@@ -193,6 +194,18 @@ def estimate_delay(fb: FreqBatch, *, w_start: float | None = None, w_stop: float
             memo["tau"] = _estimate_delay(fb.evaluate, fb.dt, fb.poles, fb.zeros)
         return memo["tau"].copy()
     return _estimate_delay(fb.evaluate, fb.dt, fb.poles, fb.zeros, w_start=w_start, w_stop=w_stop)
+
+
+def set_known_delay(fb: FreqBatch, tau) -> None:
+    """Record the pure delay of every loop gain of ``fb`` (s, scalar or (V,)) when it is known
+    exactly (e.g. from the loop assembly); :func:`estimate_delay` with default arguments then
+    returns it instead of estimating it from the response.  Ignored for discrete loops."""
+    if fb.dt is not None:
+        return
+    tau = np.broadcast_to(np.asarray(tau, dtype=float), (fb.nvar,)).copy()
+    if not np.all(np.isfinite(tau) & (tau >= 0)):
+        raise ComputeError(f"a known loop delay must be finite and >= 0 s; got {tau}")
+    _memo(fb)["tau"] = tau
 
 
 def _estimate_delay(evaluate, dt, poles, zeros, *, w_start=None, w_stop=None) -> np.ndarray:

@@ -298,12 +298,15 @@ class _GroupContext:
         from .types import FreqBatch
 
         def make():
+            from . import freqresp
             fb = self.g.loop_gain
-            if self.m.all():
-                return fb
-            return FreqBatch(evaluate=_sub_eval(fb.evaluate, self.m), dt=fb.dt,
-                             poles=_sub_list(fb.poles, self.m),
-                             zeros=_sub_list(fb.zeros, self.m), dc=fb.dc[self.m])
+            if not self.m.all():
+                fb = FreqBatch(evaluate=_sub_eval(fb.evaluate, self.m), dt=fb.dt,
+                               poles=_sub_list(fb.poles, self.m),
+                               zeros=_sub_list(fb.zeros, self.m), dc=fb.dc[self.m])
+            # the loop delay is known from the assembly: no need to estimate it
+            freqresp.set_known_delay(fb, self.g.tau)
+            return fb
         return self.cached("fb", make)
 
     def grid(self):
