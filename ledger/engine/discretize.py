@@ -132,6 +132,17 @@ def _series(first, second):
     return A, B, C, D
 
 
+def _siso_arrays(A, B, C, D):
+    """State-space matrices of a SISO block as (n,n), (n,), (n,) arrays and a float D."""
+    A = np.atleast_2d(np.asarray(A, dtype=float))
+    if A.size == 0:
+        A = np.zeros((0, 0))
+    B = np.asarray(B, dtype=float).reshape(-1)
+    C = np.asarray(C, dtype=float).reshape(-1)
+    D = float(np.asarray(D, dtype=float).reshape(-1)[0]) if np.size(D) else 0.0
+    return A, B, C, D
+
+
 def zoh_discretize(A, B, C, D, sample_time: float, delay: float = 0.0):
     """Exact ZOH discretisation of a continuous SISO plant with an input delay.
 
@@ -153,12 +164,7 @@ def zoh_discretize(A, B, C, D, sample_time: float, delay: float = 0.0):
         raise ModelError(f"sample time {sample_time!r} s is not positive and finite; give Ts > 0")
     if not (math.isfinite(delay) and delay >= 0):
         raise ModelError(f"delay {delay!r} s is negative or not finite; give a delay >= 0")
-    A = np.atleast_2d(np.asarray(A, dtype=float))
-    if A.size == 0:
-        A = np.zeros((0, 0))
-    B = np.asarray(B, dtype=float).reshape(-1)
-    C = np.asarray(C, dtype=float).reshape(-1)
-    D = float(np.asarray(D, dtype=float).reshape(-1)[0]) if np.size(D) else 0.0
+    A, B, C, D = _siso_arrays(A, B, C, D)
     n = A.shape[0]
     m, frac = split_delay(delay, sample_time)
     Phi, G0, G1 = zoh_matrices(A, B, sample_time, frac)
@@ -243,12 +249,7 @@ def zoh_discretize_inputs(A, B, C, D, sample_time: float, delays, *, discrete: b
     """
     if not (math.isfinite(sample_time) and sample_time > 0):
         raise ModelError(f"sample time {sample_time!r} s is not positive and finite; give Ts > 0")
-    A = np.atleast_2d(np.asarray(A, dtype=float))
-    if A.size == 0:
-        A = np.zeros((0, 0))
-    B = np.asarray(B, dtype=float).reshape(-1)
-    C = np.asarray(C, dtype=float).reshape(-1)
-    D = float(np.asarray(D, dtype=float).reshape(-1)[0]) if np.size(D) else 0.0
+    A, B, C, D = _siso_arrays(A, B, C, D)
     n = A.shape[0]
     parts = []
     Phi = A if discrete else None
