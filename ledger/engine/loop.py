@@ -750,12 +750,24 @@ def _build_group(idx, Gs, F, K, H, tau, d_in, d_plant, ts, algebraic_tol) -> Loo
         # as one eigvals call per matrix gives them: real when every imaginary part is zero
         loop_poles = [e.real if not np.any(e.imag) else e for e in ev] \
             if np.iscomplexobj(ev) else list(ev)
-    ol_poles = [np.concatenate([K.poles, G.poles, H.poles]) for G in Gs]
-    ol_zeros = [np.concatenate([K.zeros, G.zeros, H.zeros]) for G in Gs]
+    same_shape = len({(G.zeros.size, G.poles.size) for G in Gs}) == 1
+
+    def joined(first, plant, last):
+        """Per variant: first block's roots, the plant's (``"poles"``/``"zeros"``), last's."""
+        if same_shape:
+            R = np.stack([getattr(G, plant) for G in Gs]).astype(complex)
+            V_ = R.shape[0]
+            full = np.concatenate([np.broadcast_to(first.astype(complex), (V_, first.size)), R,
+                                   np.broadcast_to(last.astype(complex), (V_, last.size))],
+                                  axis=1)
+            return list(full)
+        return [np.concatenate([first, getattr(G, plant), last]) for G in Gs]
+
+    ol_poles = joined(K.poles, "poles", H.poles)
+    ol_zeros = joined(K.zeros, "zeros", H.zeros)
     point = (lambda w: np.exp(1j * np.asarray(w, float) * ts)) if ts else \
         (lambda w: 1j * np.asarray(w, dtype=float))
 
-    same_shape = len({(G.zeros.size, G.poles.size) for G in Gs}) == 1
     if same_shape:
         Zs = np.stack([G.zeros for G in Gs])      # (V, nz)
         Ps = np.stack([G.poles for G in Gs])      # (V, np)
@@ -812,23 +824,26 @@ def _build_group(idx, Gs, F, K, H, tau, d_in, d_plant, ts, algebraic_tol) -> Loo
 
     origin = 1.0 if ts else 0.0
     dc = np.empty(V, dtype=complex)
-    L0 = None
-    for i, p in enumerate(ol_poles):
-        if p.size and np.min(np.abs(p - origin)) < 1e-9 * max(1.0, np.max(np.abs(p))):
-            dc[i] = complex(np.inf, 0.0)
-        else:
-            if L0 is None:
-                L0 = L_of(np.array([0.0]))
-            dc[i] = L0[i, 0]
+    if same_shape and ol_poles[0].size:
+        P = np.stack(ol_poles)
+        at_origin = (np.min(np.abs(P - origin), axis=1)
+                     < 1e-9 * np.maximum(1.0, np.max(np.abs(P), axis=1)))
+    else:
+        at_origin = np.array([bool(p.size) and bool(
+            np.min(np.abs(p - origin)) < 1e-9 * max(1.0, np.max(np.abs(p)))) for p in ol_poles],
+            dtype=bool).reshape(V)
+    dc[at_origin] = complex(np.inf, 0.0)
+    if not at_origin.all():
+        dc[~at_origin] = L_of(np.array([0.0]))[~at_origin, 0]
     cl_poles = loop_poles if loop_poles is not None else \
         [np.concatenate([p, z]) for p, z in zip(ol_poles, ol_zeros)]
     closed = {
         "S": ClosedLoopResponse(S_of, ts, cl_poles, ol_poles),
         "T": ClosedLoopResponse(T_of, ts, cl_poles, ol_zeros),
         "CS": ClosedLoopResponse(CS_of, ts, cl_poles,
-                                 [np.concatenate([K.zeros, G.poles, H.poles]) for G in Gs]),
+                                 joined(K.zeros, "poles", H.poles)),
         "PS": ClosedLoopResponse(PS_of, ts, cl_poles,
-                                 [np.concatenate([K.poles, G.zeros, H.poles]) for G in Gs]),
+                                 joined(K.poles, "zeros", H.poles)),
     }
     fb = FreqBatch(evaluate=L_of, dt=ts, poles=ol_poles, zeros=ol_zeros, dc=dc)
     return LoopGroup(index=idx, tau=float(tau), paths=paths, loop_gain=fb, closed=closed,
