@@ -562,20 +562,27 @@ def _refine_adaptively(evaluate, w, nvar, axis_w, *, phase_step, passes, max_poi
         # and only the intervals next to them are checked again (the others were fine)
         if h is None:
             h = _call(evaluate, w, nvar)
-            J = np.arange(w.size - 1)
+            with np.errstate(divide="ignore", invalid="ignore"):
+                lm = np.log(np.abs(h) + _TINY)          # log magnitude at every point
+            J = None                                     # every interval
             raw = np.zeros(w.size - 1, bool)
         with np.errstate(divide="ignore", invalid="ignore"):
-            ha, hb = h[:, J], h[:, J + 1]
+            if J is None:
+                ha, hb, la, lb = h[:, :-1], h[:, 1:], lm[:, :-1], lm[:, 1:]
+            else:
+                ha, hb, la, lb = h[:, J], h[:, J + 1], lm[:, J], lm[:, J + 1]
             dph = np.abs(np.angle(hb / ha))
-            dmag = np.abs(np.log(np.abs(hb) + _TINY) - np.log(np.abs(ha) + _TINY))
+            dmag = np.abs(lb - la)
             # an exact zero at a grid point (S at w = 0 of a loop with an integrator) is like a
-            # pole there: no bisection resolves its phase or log magnitude
-            at_zero = (ha == 0) | (hb == 0)
-            dph = np.where(at_zero, 0.0, dph)
-            dmag = np.where(at_zero, 0.0, dmag)
-        for arr in (dph, dmag):
-            arr = np.where(np.isfinite(arr), arr, 0.0)
-            raw[J] |= np.any(arr > phase_step, axis=0)
+            # pole there: no bisection resolves its phase or log magnitude; non-finite steps
+            # (at a pole) are left alone too
+            ok = ~((ha == 0) | (hb == 0))
+            step_bad = np.any(ok & (((dph > phase_step) & np.isfinite(dph))
+                                    | ((dmag > phase_step) & np.isfinite(dmag))), axis=0)
+        if J is None:
+            raw |= step_bad
+        else:
+            raw[J] |= step_bad
         bad = raw.copy()
         if axis_w.size:
             for w0 in axis_w:
@@ -590,6 +597,10 @@ def _refine_adaptively(evaluate, w, nvar, axis_w, *, phase_step, passes, max_poi
         hn = np.empty((nvar, wn.size), complex)
         hn[:, ~fresh] = h
         hn[:, fresh] = _call(evaluate, wn[fresh], nvar)
+        lmn = np.empty((nvar, wn.size))
+        lmn[:, ~fresh] = lm
+        with np.errstate(divide="ignore", invalid="ignore"):
+            lmn[:, fresh] = np.log(np.abs(hn[:, fresh]) + _TINY)
         # intervals between two old points keep their old verdict (a bad one whose midpoint
         # coincided with an end is checked again)
         old_left = np.searchsorted(w, wn[:-1])
@@ -598,7 +609,7 @@ def _refine_adaptively(evaluate, w, nvar, axis_w, *, phase_step, passes, max_poi
         rawn[both_old] = raw[np.minimum(old_left[both_old], raw.size - 1)]
         J = np.flatnonzero(~both_old | rawn)
         rawn[J] = False
-        w, h, raw = wn, hn, rawn
+        w, h, lm, raw = wn, hn, lmn, rawn
     return w, None
 
 
