@@ -13,7 +13,7 @@ from dataclasses import dataclass
 
 from .units import Limit
 
-__all__ = ["Judgement", "judge", "VERDICTS", "worse"]
+__all__ = ["Judgement", "judge", "VERDICTS", "worse", "headroom_array", "passes_array"]
 
 VERDICTS = ("pass", "fail", "error", "n/a", "stale")
 
@@ -61,3 +61,29 @@ def judge(limit: Limit, value: float) -> Judgement:
 def worse(cmp_: str, a: float, b: float) -> bool:
     """True if ``a`` is closer to failing ``cmp_`` than ``b`` (i.e. ``a`` has less headroom)."""
     return headroom(cmp_, a, 0.0) < headroom(cmp_, b, 0.0)
+
+
+def headroom_array(cmp_: str, values, limit: float):
+    """:func:`headroom` of many values at once (numpy array in, array out)."""
+    import numpy as np
+
+    v = np.asarray(values, dtype=float)
+    if cmp_ in ("<=", "<"):
+        return limit - v
+    if cmp_ in (">=", ">"):
+        return v - limit
+    if cmp_ == "==":
+        return -np.abs(v - limit)
+    raise ValueError(f"unknown comparator {cmp_!r}")
+
+
+def passes_array(cmp_: str, values, limit: float):
+    """Boolean array: which values pass ``cmp_ limit``."""
+    import numpy as np
+
+    v = np.asarray(values, dtype=float)
+    ops = {"<=": np.less_equal, "<": np.less, ">=": np.greater_equal, ">": np.greater,
+           "==": np.equal}
+    if cmp_ not in ops:
+        raise ValueError(f"unknown comparator {cmp_!r}")
+    return ops[cmp_](v, limit)

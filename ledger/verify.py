@@ -29,7 +29,7 @@ from sqlalchemy.orm import Session
 
 from .errors import ComputeError, LedgerError, ModelError
 from .hashing import sha256_of
-from .judge import headroom as _headroom
+from .judge import headroom_array, passes_array
 from .judge import judge
 from .store.models import (
     Loop,
@@ -300,10 +300,10 @@ def judge_payload(check: Check, payload: dict) -> Judged:
                       f"cannot compute{where}: {reason}{more}")
     vals = _decode(payload["values"])
     lim = Limit(check.comparator, check.limit_value, check.unit, check.limit_text)
-    h = np.array([_headroom(check.comparator, v, check.limit_value) for v in vals])
+    h = headroom_array(check.comparator, vals, check.limit_value)
     i = int(np.argmin(h))
     j = judge(lim, float(vals[i]))
-    passing = np.array([judge(lim, float(v)).verdict == "pass" for v in vals])
+    passing = passes_array(check.comparator, vals, check.limit_value)
     return Judged(j.verdict, float(vals[i]), j.headroom, j.headroom_fraction, variants[i],
                   float(passing.mean()), n, "")
 

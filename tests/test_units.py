@@ -78,3 +78,18 @@ def test_judge_headroom_signs():
     assert judge(lim, 0.1).headroom == pytest.approx(0.05)
     assert judge(parse_limit(">= 6 dB", "dB"), math.inf).headroom == math.inf
     assert judge(lim, float("nan")).verdict == "error"
+
+
+def test_vectorised_judging_agrees_with_scalar():
+    # Two methods: the per-value judge and the array form used over plant families.
+    import numpy as np
+
+    from ledger.judge import headroom, headroom_array, passes_array
+
+    vals = np.array([-np.inf, -3.0, 0.0, 44.999, 45.0, 45.001, 1e9, np.inf])
+    for cmp_ in ("<=", "<", ">=", ">", "=="):
+        lim = parse_limit(f"{cmp_} 45 deg", "deg")
+        want_h = [headroom(cmp_, float(v), 45.0) for v in vals]
+        np.testing.assert_array_equal(headroom_array(cmp_, vals, 45.0), want_h)
+        want_p = [judge(lim, float(v)).verdict == "pass" for v in vals]
+        np.testing.assert_array_equal(passes_array(cmp_, vals, 45.0), want_p)
