@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 from rich.text import Text
+
+from ...history.matrix import CAUTION
 from textual.containers import VerticalScroll
 from textual.screen import ModalScreen
 from textual.widgets import Static
@@ -25,6 +27,7 @@ def help_text() -> Text:
     for keys, what in bindings.WIDGET_KEYS:
         t.append(f"  {keys:<28} {what}\n")
     t.append("\nVerdicts: ✓ pass  ✗ fail  ! error  ~ stale  ? unverified  · n/a\n")
+    t.append(f"\nCaution: {CAUTION}\n", style="italic")
     return t
 
 

@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 from rich.text import Text
+
+from ...history.matrix import CAUTION
 from textual.widgets import DataTable, Input, Static
 
 from .. import bindings
@@ -43,7 +45,7 @@ class MatrixScreen(ViewScreen):
         self.query_one("#matrix-legend", Static).update(Text(
             "✓ pass  ✗ fail  ! error  ~ stale (older requirement/plant version)  ? unverified  "
             "· n/a   headroom +++ ≥50% ++ ≥20% + ≥0 - short <20% -- short more   BROKE = failed "
-            "where the parent revision passed", style="dim"))
+            "where the parent revision passed\n", style="dim").append("Caution: " + CAUTION, style="italic"))
 
     def fetch(self):
         return load_matrix(self.app.lg, self.loop_filter, tips_only=self.tips_only)

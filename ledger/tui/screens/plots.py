@@ -69,6 +69,8 @@ class PlotsScreen(ViewScreen):
         t.append(f"GM {fmt_value(d.gain_margin_db, 'dB')} at {fmt_value(d.phase_crossover, 'rad/s')}"
                  f"   PM {fmt_value(d.phase_margin_deg, 'deg')} at "
                  f"{fmt_value(d.gain_crossover, 'rad/s')}")
+        t.append("\nModel-based: not a substitute for hardware tests, safety standards and "
+                 "qualified review.", style="italic dim")
         cap.update(t)
         self._step(d)
         self._bode(d)
