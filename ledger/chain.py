@@ -154,7 +154,9 @@ def chain_head(s: Session) -> str:
     return head or GENESIS
 
 
-def _lock(s: Session) -> None:
+def lock(s: Session) -> None:
+    """Serialise with every chain writer, sign-offs and result writes (PostgreSQL advisory
+    lock held to the end of the transaction; SQLite writers are serialised already)."""
     if s.get_bind().dialect.name == "postgresql":
         s.execute(text("SELECT pg_advisory_xact_lock(:k)"), {"k": ADVISORY_LOCK_KEY})
     # SQLite: the ledger's write transactions begin IMMEDIATE, which already serialises them.
@@ -180,7 +182,7 @@ def append_link(s: Session, kind: str, row: Any) -> ChainLink:
     if getattr(row, "id", None) is None:
         raise IntegrityViolation(f"{kind} record must be flushed before it is chained")
     s.flush()
-    _lock(s)
+    lock(s)
     head = s.execute(select(ChainLink.seq, ChainLink.chain_hash)
                      .order_by(ChainLink.seq.desc()).limit(1)).first()
     seq, prev = (head.seq + 1, head.chain_hash) if head else (1, GENESIS)

@@ -27,7 +27,7 @@ from sqlalchemy import delete, func, select
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
-from .chain import append_link, chain_head
+from .chain import lock, append_link, chain_head
 from .errors import DuplicateError, IntegrityViolation, NotFoundError
 from .hashing import canonical_json, sha256_of
 from .store.models import (
@@ -384,6 +384,7 @@ def sign_baseline(lg, name: str, *, signer: str, role: str, statement: str,
             raise IntegrityViolation(f"sign-off of {name!r}: a {what} is required")
     try:
         with lg.transaction() as s:
+            lock(s)  # PostgreSQL: no result write can commit while we compare and sign
             b = _row(s, name)  # takes the write lock: nothing changes while we compare
             successor = s.scalar(select(Baseline.name).where(Baseline.supersedes_id == b.id))
             if successor is not None:

@@ -327,6 +327,9 @@ def write_results(s: Session, plan: RevisionPlan, revision_id: int,
                   payloads: dict[str, dict], fresh: set[str]) -> list[tuple[Check, Judged]]:
     """Write cache rows for ``fresh`` keys and one result per check, in the caller's
     transaction."""
+    from .chain import lock
+
+    lock(s)  # results and sign-offs serialise (a sign-off compares against live results)
     now = datetime.now(timezone.utc)
     ev = engine_version()
     _insert_ignore(s, MetricValue, [
