@@ -1076,9 +1076,10 @@ class Ledger:
             ))
         return out
 
-    def verdict_counts(self, loop: str) -> dict[str, dict[str, int]]:
-        """Per revision label of ``loop``: how many current requirements pass, fail, are in
-        error or are stale — counted in the database (cheap for thousands of revisions)."""
+    def verdict_counts(self, loop: str, labels: Sequence[str] | None = None
+                       ) -> dict[str, dict[str, int]]:
+        """Per revision label of ``loop`` (all, or ``labels``): how many current requirements
+        pass, fail, are in error or are stale — counted in the database."""
         with self.reading() as s:
             lp = self._loop_row(s, loop)
             pv = self._latest_plant_version(s, lp.plant_id)
@@ -1089,15 +1090,19 @@ class Ledger:
                        .join(latest, (latest.c.requirement_id == RequirementVersion.requirement_id)
                              & (latest.c.n == RequirementVersion.number))
                        .where(RequirementVersion.status != "retired").subquery())
-            labels = dict(s.execute(select(Revision.id, Revision.label)
-                                    .where(Revision.loop_id == lp.id)).all())
+            q = select(Revision.id, Revision.label).where(Revision.loop_id == lp.id)
+            if labels is not None:
+                q = q.where(Revision.label.in_(list(labels)))
+            wanted = labels
+            labels = dict(s.execute(q).all())
+            only = [Revision.id.in_(list(labels))] if wanted is not None else []
             out = {lbl: {"pass": 0, "fail": 0, "error": 0, "stale": 0} for lbl in labels.values()}
             fresh_total: dict[int, int] = {}
             for rid, verdict, n in s.execute(
                     select(Result.revision_id, Result.verdict, func.count())
                     .join(current, current.c.id == Result.requirement_version_id)
                     .join(Revision, Revision.id == Result.revision_id)
-                    .where(Revision.loop_id == lp.id, Result.plant_version_id == pv.id)
+                    .where(Revision.loop_id == lp.id, Result.plant_version_id == pv.id, *only)
                     .group_by(Result.revision_id, Result.verdict)):
                 out[labels[rid]][verdict] = out[labels[rid]].get(verdict, 0) + n
                 fresh_total[rid] = fresh_total.get(rid, 0) + n
@@ -1107,7 +1112,7 @@ class Ledger:
                     .join(judged, judged.c.id == Result.requirement_version_id)
                     .join(current, current.c.requirement_id == judged.c.requirement_id)
                     .join(Revision, Revision.id == Result.revision_id)
-                    .where(Revision.loop_id == lp.id)
+                    .where(Revision.loop_id == lp.id, *only)
                     .group_by(Result.revision_id)):
                 out[labels[rid]]["stale"] = n - fresh_total.get(rid, 0)
             return out

@@ -360,3 +360,14 @@ async def test_snapshots(ledger):
             shots[name] = app.export_screenshot(title="loopledger")
     for name, svg in shots.items():
         _check_snapshot(svg, name)
+
+
+def test_lineage_data_shows_the_latest_revisions_only(ledger, monkeypatch):
+    """Huge histories: the view keeps the newest revisions and says how many it left out."""
+    from ledger.tui import data
+
+    monkeypatch.setattr(data, "MAX_SHOWN", 1)
+    d = data.load_lineage(ledger)
+    assert [r.revision.label for r in d.loops["pos"]] == ["r2"]
+    assert d.hidden["pos"] == 1
+    assert d.loops["pos"][0].counts == ledger.verdict_counts("pos")["r2"]

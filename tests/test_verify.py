@@ -171,3 +171,12 @@ def test_verdict_counts_in_sql_agree_with_results(pm_ledger):
         got = {k: v for k, v in counts[label].items() if v}
         assert got == dict(want), label
     assert counts["r1"]["stale"] == 1 and counts["r3"] == {"pass": 0, "fail": 0, "error": 0, "stale": 0}
+
+
+def test_verdict_counts_for_chosen_revisions(pm_ledger):
+    lg = pm_ledger
+    for k in ("1", "1.2", "0.9"):
+        lg.add_revision("p", f"gain({k})", rationale=k)
+    full = lg.verdict_counts("p")
+    part = lg.verdict_counts("p", ["r1", "r3"])
+    assert set(part) == {"r1", "r3"} and all(part[l] == full[l] for l in part)

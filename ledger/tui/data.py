@@ -34,33 +34,43 @@ class RevisionRow:
 
 @dataclass(frozen=True)
 class LineageData:
-    """Per loop name, the revisions in tree order (depth-first, children in recorded order)."""
+    """Per loop name, the revisions in tree order (depth-first, children in recorded order);
+    ``hidden`` counts a loop's older revisions left out of the view."""
 
     loops: dict = field(default_factory=dict)
+    hidden: dict = field(default_factory=dict)
 
 
 #: deepest indentation of the lineage tree
 MAX_DEPTH = 16
+#: most revisions per loop shown in the lineage view (the latest; the CLI lists them all)
+MAX_SHOWN = 400
 
 
 def load_lineage(lg) -> LineageData:
-    loops = {}
+    loops, hidden = {}, {}
     for lp in lg.loops():
         revs = lg.revisions(lp.name)
-        counts = lg.verdict_counts(lp.name)
+        hidden[lp.name] = max(0, len(revs) - MAX_SHOWN)
+        revs = revs[-MAX_SHOWN:]
+        shown = {r.label for r in revs}
+        counts = lg.verdict_counts(lp.name, [r.label for r in revs] if hidden[lp.name] else None)
         by_label = {r.label: r for r in revs}
         rows: list[RevisionRow] = []
-        # depth-first, children in recorded order, without recursion (chains can be long)
-        stack = [(r, 0) for r in reversed([r for r in revs if r.parent is None])]
+        # depth-first, children in recorded order, without recursion (chains can be long);
+        # a revision whose parent is not shown starts a tree of its own
+        roots = [r for r in revs if r.parent is None or r.parent not in shown]
+        stack = [(r, 0) for r in reversed(roots)]
         while stack:
             r, depth = stack.pop()
             rows.append(RevisionRow(r, counts[r.label], depth))
             # true nesting for the first MAX_DEPTH levels; deeper revisions stay in one column
             # (the detail pane names each one's parent) so long histories never nest
             # thousands deep
-            stack.extend((by_label[c], min(depth + 1, MAX_DEPTH)) for c in reversed(r.children))
+            stack.extend((by_label[c], min(depth + 1, MAX_DEPTH)) for c in reversed(r.children)
+                         if c in by_label)
         loops[lp.name] = tuple(rows)
-    return LineageData(loops)
+    return LineageData(loops, hidden)
 
 
 @dataclass(frozen=True)

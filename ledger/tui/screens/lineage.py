@@ -45,8 +45,11 @@ class LineageScreen(ViewScreen):
         want = (self.app.current_loop, self.app.current_label)
         target = None
         for lname, rows in data.loops.items():
-            node = tree.root.add(Text(f"loop {lname}", style="bold"), data=(lname, None),
-                                 expand=True)
+            title = Text(f"loop {lname}", style="bold")
+            if data.hidden.get(lname):
+                title.append(f"  (latest {len(rows)} revisions; {data.hidden[lname]} older ones "
+                             f"in 'loopledger revision list {lname}')", style="dim")
+            node = tree.root.add(title, data=(lname, None), expand=True)
             stack = [node]
             for row in rows:
                 r = row.revision
