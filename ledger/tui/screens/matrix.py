@@ -77,10 +77,8 @@ class MatrixScreen(ViewScreen):
         table = self.query_one(DataTable)
         old = table.cursor_coordinate
         table.clear(columns=True)
-        table.add_column("requirement", key="req")
-        for c in d.columns:
-            table.add_column(f"{c.loop}/{c.label}", key=f"{c.loop}/{c.label}")
         rows = self.visible_rows()
+        grid = []
         for r in rows:
             parent = f" ({r.parents[0]})" if r.parents else ""
             cells = [Text(f"{r.key}{parent} {r.limit_text}")]
@@ -89,6 +87,14 @@ class MatrixScreen(ViewScreen):
                 res = d.cells.get((r.key, c.loop, c.label))
                 cells.append(cell_text(res, applies=applies,
                                        broke=(r.key, c.loop, c.label) in d.broke))
+            grid.append(cells)
+        # explicit widths from the content: the table lays out once, the same way every time
+        headers = ["requirement"] + [f"{c.loop}/{c.label}" for c in d.columns]
+        keys = ["req"] + [f"{c.loop}/{c.label}" for c in d.columns]
+        for j, (head, key) in enumerate(zip(headers, keys)):
+            width = max([len(head)] + [row[j].cell_len for row in grid])
+            table.add_column(head, key=key, width=width)
+        for r, cells in zip(rows, grid):
             table.add_row(*cells, key=r.key)
         status = Text()
         status.append(f"columns: {'tips' if self.tips_only else 'all revisions'}   "
