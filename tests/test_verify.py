@@ -180,3 +180,20 @@ def test_verdict_counts_for_chosen_revisions(pm_ledger):
     full = lg.verdict_counts("p")
     part = lg.verdict_counts("p", ["r1", "r3"])
     assert set(part) == {"r1", "r3"} and all(part[l] == full[l] for l in part)
+
+
+def test_matrix_rows_follow_the_selected_loops(pm_ledger):
+    from ledger.history.matrix import build_matrix
+
+    lg = pm_ledger
+    lg.add_plant("q", "1/(s+1)")
+    lg.add_loop("q", "q")
+    lg.add_requirement("Q-1", title="q", statement="q", metric="phase_margin", limit=">= 45 deg",
+                       loops=["q"])
+    lg.add_requirement("N-1", title="need", statement="a need without a metric")
+    lg.add_revision("p", "gain(1)", rationale="a")
+    lg.add_revision("q", "gain(1)", rationale="a")
+    keys = {r.key for r in build_matrix(lg, "tips", loop="p").requirements}
+    assert keys == {"R-PM", "R-GM", "N-1"}
+    keys = {r.key for r in build_matrix(lg, "tips").requirements}
+    assert keys == {"R-PM", "R-GM", "Q-1", "N-1"}

@@ -107,7 +107,13 @@ def build_matrix(lg, selection: str | Sequence[tuple[str, str]] = "tips", *,
     else:
         for lname, label in selection:
             columns.append(lg.revision(lname, label))
-    reqs = tuple(r for r in lg.requirements() if r.status != "retired")
+    shown_loops = {c.loop for c in columns}
+    # needs without a metric stay (their roll-up is shown elsewhere); a requirement with a
+    # metric is a row when it applies to a loop among the columns (or, unfiltered, to no loop
+    # at all: a coverage gap the reader should see)
+    reqs = tuple(r for r in lg.requirements() if r.status != "retired"
+                 and (not r.metric or shown_loops.intersection(r.loops)
+                      or (loop is None and not r.loops)))
     by_loop: dict[str, list[str]] = {}
     for col in columns:
         by_loop.setdefault(col.loop, []).append(col.label)
