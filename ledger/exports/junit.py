@@ -21,7 +21,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from .rows import require, matrix_rows, number_text, write_atomic
+from .rows import require, matrix_rows, number_text, write_xml
 
 __all__ = ["export_junit", "junit_tree"]
 
@@ -97,5 +97,4 @@ def export_junit(matrix, path) -> Path:
     Path
     """
     tree = junit_tree(matrix)
-    return write_atomic(path, lambda tmp: tree.write(str(tmp), xml_declaration=True,
-                                                     encoding="UTF-8", pretty_print=True))
+    return write_xml(tree, path)

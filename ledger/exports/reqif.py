@@ -21,7 +21,7 @@ import hashlib
 import re
 from pathlib import Path
 
-from .rows import require, matrix_rows, write_atomic
+from .rows import require, matrix_rows, write_xml
 
 __all__ = ["REQIF_NS", "export_reqif", "reqif_tree", "reqif_identifier", "REQIF_ATTRIBUTES"]
 
@@ -166,5 +166,4 @@ def export_reqif(matrix, path) -> Path:
     Path
     """
     tree = reqif_tree(matrix)
-    return write_atomic(path, lambda tmp: tree.write(str(tmp), xml_declaration=True,
-                                                     encoding="UTF-8", pretty_print=True))
+    return write_xml(tree, path)

@@ -22,7 +22,7 @@ from ..fileio import write_atomic  # noqa: F401 - re-exported for the exporters
 from ..errors import ComputeError, LedgerError
 
 __all__ = ["require", "SCHEMA_VERSION", "COLUMNS", "VERDICT_ORDER", "ExportRow", "matrix_rows",
-           "number_text", "parse_number", "write_atomic", "verdict_counts"]
+           "number_text", "parse_number", "write_atomic", "write_xml", "verdict_counts"]
 
 #: Version of the CSV/JSON record layout (docs/exports.md); bump on any incompatible change.
 SCHEMA_VERSION = "loopledger-matrix/1"
@@ -180,3 +180,9 @@ def parse_number(text: str) -> float | None:
     return float(text)
 
 
+
+
+def write_xml(tree, path) -> Path:
+    """Write an lxml element tree as indented UTF-8 XML, atomically."""
+    return write_atomic(path, lambda tmp: tree.write(str(tmp), xml_declaration=True,
+                                                     encoding="UTF-8", pretty_print=True))
