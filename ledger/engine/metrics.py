@@ -113,7 +113,8 @@ _DEFS = [
     _m("phase_margin", "deg", "higher", False, "L", (),
        "min over gain crossovers of 180 + arg L, wrapped to (-180, 180] (inf if none)"),
     _m("delay_margin", "s", "higher", False, "L", (),
-       "min over gain crossovers with positive margin of PM[rad] / w (inf if none)"),
+       "min over every gain crossover w > 0 of ((180 + arg L) mod 360)[rad] / w: the extra "
+       "loop delay that first destabilises the loop (inf if no crossover, 0 if unstable)"),
     _m("gain_crossover", "rad/s", "higher", False, "L", (),
        "frequency of the crossover that sets the phase margin (inf if none)"),
     _m("phase_crossover", "rad/s", "higher", False, "L", (),
