@@ -127,3 +127,35 @@ def test_row_forms_of_pole_metrics_closed_form():
     ts = 1e-3
     np.testing.assert_allclose(min_damping_rows(np.exp(s * ts), ts), zeta, rtol=1e-9)
     np.testing.assert_allclose(decay_rate_rows(np.exp(s * ts), ts), zeta * wn, rtol=1e-9)
+
+
+def test_deadbeat_loop_pole_metrics_leak_no_warning():
+    # Issue 10, item 7.  Closed form: 1 + 1/(z - 1) = 0 gives the single closed-loop pole z = 0
+    # (deadbeat); it decays infinitely fast (s = ln z / Ts -> -inf), real, so damping 1.
+    # numpy's complex log(0)/Ts gave -inf + nan j and a RuntimeWarning; warnings are errors here.
+    import warnings
+
+    from ledger.engine import measure
+    from ledger.engine.stability import decay_rate_rows, min_damping_rows
+
+    dt = 0.1
+    G = control.tf([1.0], [1.0, -1.0], dt)
+    fam = PlantFamily((Variant("nominal", "nominal", G),
+                       Variant("slow", "corner", control.tf([0.5], [1.0, -1.0], dt))))
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        assert_allclose(assemble(PlantFamily.single(G), 1.0, LoopSpec(sample_time=dt))
+                        .groups[0].poles[0], [0.0], atol=1e-15)
+        m = measure(G, 1.0, ["stable", "min_damping", "decay_rate"], sample_time=dt)
+        assert m["stable"] == 1.0 and m["min_damping"] == 1.0 and m["decay_rate"] == np.inf
+        # a family: the pole at 0.5 (closed form 1 + 0.5/(z - 1) = 0) sets the worst values,
+        # decay -ln(0.5)/Ts
+        mf = measure(fam, 1.0, ["min_damping", "decay_rate"], sample_time=dt)
+        assert_allclose(mf["decay_rate"], -np.log(0.5) / dt, rtol=1e-12)
+        assert mf["min_damping"] == 1.0
+        # the scalar and row forms directly, with z = 0 next to ordinary poles
+        assert min_damping(np.array([0.0, 0.5]), dt) == 1.0
+        assert decay_rate(np.array([0.0, 0.0]), dt) == np.inf
+        assert_allclose(decay_rate_rows(np.array([[0.0, 0.5j]]), dt), [-np.log(0.5) / dt],
+                        rtol=1e-12)
+        assert min_damping_rows(np.array([[0.0, 0.0]]), dt)[0] == 1.0

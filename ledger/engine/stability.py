@@ -224,10 +224,19 @@ def _axis_segment(lo: float, hi: float, points: int, scale: float):
 
 
 def _continuous_equivalent(poles: np.ndarray, dt) -> np.ndarray:
+    """s-plane equivalents ``ln(z) / Ts`` of discrete poles (continuous poles as given).
+
+    A pole at ``z = 0`` (deadbeat) decays infinitely fast: it maps to ``s = -inf`` (real), set
+    directly; ``ln(0) / Ts`` in complex arithmetic would give ``-inf + nan j`` and a
+    RuntimeWarning.
+    """
     if dt is None:
         return poles
-    with np.errstate(divide="ignore"):
-        return np.log(poles.astype(complex)) / dt
+    z = np.asarray(poles).astype(complex)
+    zero = z == 0
+    out = np.full(z.shape, complex(-math.inf, 0.0))
+    out[~zero] = np.log(z[~zero]) / dt
+    return out
 
 
 def min_damping(poles: np.ndarray, dt=None) -> float:
