@@ -87,7 +87,9 @@ _DEFS = [
        "100 (y_max - y_final) / |y_final|, 0 if y never exceeds y_final"),
     _m("undershoot", "%", "lower", True, "r->y", _STEP,
        "initial wrong-way excursion, 100 max(-y sign(y_final)) / |y_final|"),
-    _m("peak_time", "s", "lower", True, "r->y", _STEP, "time of the largest y"),
+    _m("peak_time", "s", "lower", True, "r->y", _STEP,
+       "time of the largest y when y exceeds y_final; inf without overshoot (the final "
+       "value is only approached as t -> inf)"),
     _m("steady_state_error", "", "lower", True, "r->e", (("amplitude", 1.0),),
        "|final actuating error| for a step of r: amplitude F(0) / (1 + Kp)"),
     _m("ramp_error", "", "lower", True, "r->e", (("amplitude", 1.0),),
