@@ -375,8 +375,11 @@ def test_diff_after_requirement_edit_is_incomparable(tmp_path):
                            limit=">= 45 deg", loops=["ax"], status="approved")
         lg.add_revision("ax", "gain(0.5)", rationale="first", label="a")
         lg.add_revision("ax", "gain(1)", rationale="second", label="b")
-        # a new requirement version is verified on the tip only: the parent's result is stale
+        # a new requirement version verified on the tip only (automatic verification off, then
+        # the tip verified by hand): the parent's result is stale
+        lg.auto_verify = False
         lg.edit_requirement("PM", limit=">= 50 deg", note="tighter")
+        lg.verify("ax", tips_only=True)
         (c,) = diff(lg, "ax").changes
         assert c.kind == "incomparable" and "older" in c.note and "newer" not in c.note
         assert (c.old_verdict, c.new_verdict) == ("stale", "pass")   # closed form pm(1) = 51.8
@@ -387,6 +390,13 @@ def test_diff_after_requirement_edit_is_incomparable(tmp_path):
         pm_a, pm_b = _pm_closed_form(0.5)[0], _pm_closed_form(1.0)[0]
         assert_allclose(c.headroom_delta, pm_b - pm_a, rtol=1e-6)
         assert (pm_b - pm_a) < -0.25 * (pm_a - 50)
+        # with automatic verification a limit edit re-judges both revisions from the cache, so
+        # they stay comparable (issue 10, item 7)
+        lg.auto_verify = True
+        lg.edit_requirement("PM", limit=">= 49 deg")
+        (c,) = diff(lg, "ax").changes
+        assert c.kind == "eroded" and c.new_requirement_version == 3 == c.old_requirement_version
+        assert (pm_b - pm_a) < -0.25 * (pm_a - 49)
 
 
 # -- issue 10, item 7: large moves among failures; booleans without threshold notes ---------
