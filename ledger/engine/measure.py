@@ -431,13 +431,25 @@ def _error(ctx, order: int, s) -> np.ndarray:
 
 def _poles(ctx, fn) -> np.ndarray:
     if ctx.g.poles is None:
+        if fn is decay_rate:
+            return ctx.cached("decay_delayed", lambda: _decay_delayed(ctx))
         raise ComputeError("a continuous loop with a delay has infinitely many closed-loop "
-                           "poles; pole metrics need a delay-free or digital loop")
+                           "poles; min_damping needs a delay-free or digital loop")
     rows = [ctx.g.poles[j] for j in np.flatnonzero(ctx.m)]
     batch = _POLE_BATCH.get(fn)
     if batch is not None and rows and len({np.size(r) for r in rows}) == 1 and np.size(rows[0]):
         return batch(np.stack(rows), ctx.asm.dt)
     return np.array([fn(r, ctx.asm.dt) for r in rows])
+
+
+def _decay_delayed(ctx) -> np.ndarray:
+    """Decay rate of a delayed continuous group on the mask: the rightmost characteristic root
+    of the delay equation (:func:`~ledger.engine.stability.rightmost_delayed_root`)."""
+    from .stability import rightmost_delayed_root
+
+    b = ctx.batch("d->y")
+    return np.array([-rightmost_delayed_root(b.A[j], b.Bw[j], b.Cz[j], float(b.Dzw[j]),
+                                             b.tau).real for j in range(b.nvar)])
 
 
 def _disturbance(ctx, s, part: int):

@@ -140,7 +140,8 @@ _DEFS = [
     _m("min_damping", "", "higher", False, "poles", (),
        "min over closed-loop poles of -Re(s)/|s| (1 for real poles)"),
     _m("decay_rate", "1/s", "higher", False, "poles", (),
-       "min over closed-loop poles of -Re(s) (discrete: s = ln z / Ts)"),
+       "min over closed-loop poles of -Re(s) (discrete: s = ln z / Ts; with a delay: the "
+       "rightmost root of the delay equation's characteristic equation)"),
 ]
 
 #: name -> MetricDef, in catalogue order.
