@@ -982,9 +982,16 @@ class Ledger:
         return V.family_for(plan), V.controller_for(plan), V.loop_spec_for(plan)
 
     def _after_requirement_change(self, info: RequirementInfo) -> None:
+        """Judge a new requirement version: on the tip of each loop it applies to (computing
+        what is missing), then on every other revision whose metric values are cached (a limit
+        edit costs no kernel evaluation there), so older revisions do not turn stale."""
+        from . import verify as V
+
         if self.auto_verify and info.metric and info.status != "retired" and info.loops:
             for lname in info.loops:
                 self.verify(lname, tips_only=True, keys=[info.key])
+                self._write(lambda s, n=lname: V.rejudge_cached(s, self._loop_row(s, n),
+                                                                [info.key]))
 
     def results(self, loop: str, label: str | None = None, *,
                 include_stale: bool = True) -> list[ResultInfo]:

@@ -38,7 +38,7 @@ def _delta(c) -> str:
     if c.headroom_delta > 0 and not text.startswith("+"):
         text = "+" + text
     both_pass = c.old_verdict == "pass" and c.new_verdict == "pass"
-    if both_pass and c.headroom_change is not None and math.isfinite(c.headroom_change):
+    if (both_pass or c.kind == "moved") and c.headroom_change is not None and math.isfinite(c.headroom_change):
         text += f" ({c.headroom_change:+.0%})"
     return text
 
@@ -175,14 +175,15 @@ def register(app, tools) -> None:
         new: Optional[str] = typer.Argument(None, help="Newer revision label (default: the tip)."),
         old: Optional[str] = typer.Argument(None, help="Older revision label (default: the parent of NEW)."),
         threshold: float = typer.Option(0.25, "--threshold", min=0.0,
-                                        help="Fraction of the older headroom a passing requirement must lose (gain) by more than to count as eroded (improved)."),
+                                        help="Fraction of the older headroom a passing requirement must lose (gain) by more than to count as eroded (improved); a failing one that moves by more than it is 'moved'."),
         as_json: bool = typer.Option(False, "--json", help="Print JSON."),
         show_all: bool = typer.Option(False, "--all", help="List unchanged requirements too."),
         exit_on: Optional[ExitOn] = typer.Option(None, "--exit-on", case_sensitive=False,
                                                  help="Exit with status 3 when a requirement broke ('broke'), an approved one broke ('approved-broke'), or anything broke or eroded ('any')."),
     ):
         """Regressions between two revisions of a loop, requirement by requirement: broke,
-        eroded, fixed, improved, new, dropped, incomparable, unchanged."""
+        eroded, fixed, improved, moved (still failing, large move), new, dropped,
+        incomparable, unchanged."""
         status = {"code": 0}
 
         def body():

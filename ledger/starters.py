@@ -41,10 +41,10 @@ _COMMON = (
             "The peak of |S| shall not exceed 2 (6 dB) on any plant variant.",
             "Common practice: Ms <= 2 bounds the amplification of disturbances and guarantees "
             "gain margin >= 2 and phase margin >= 29 deg together."),
-    Starter("S05", "Disk margin", "disk_margin", ">= 0.4",
-            "The balanced disk margin shall be at least 0.4 on every plant variant.",
-            "Common practice: covers simultaneous gain and phase variation (about +-3.5 dB "
-            "and +-23 deg together)."),
+    Starter("S05", "Disk margin", "disk_margin", ">= 0.5",
+            "The balanced disk margin shall be at least 0.5 on every plant variant.",
+            "Common practice: the customary minimum; covers simultaneous gain and phase "
+            "variation (about +-4.4 dB and +-28 deg together)."),
 )
 
 STARTERS: dict[str, tuple[Starter, ...]] = {

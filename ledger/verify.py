@@ -150,7 +150,21 @@ def plan_revision(s: Session, loop: Loop, *, revision: Revision | None = None,
     """What must be computed to bring ``revision`` (or a not-yet-recorded controller) up to
     date against the latest requirement and plant versions."""
     pv = latest_plant_version(s, loop.plant_id)
-    plan = RevisionPlan(
+    plan = _plan_head(loop, pv, revision, controller_text, controller_canonical)
+    checks = applicable_checks(s, loop.id, keys)
+    if revision is not None and missing_only:
+        done = set(s.scalars(select(Result.requirement_version_id).where(
+            Result.revision_id == revision.id, Result.plant_version_id == pv.id)))
+        checks = [c for c in checks if c.version_id not in done]
+    plan.checks = checks
+    return plan
+
+
+def _plan_head(loop: Loop, pv: PlantVersion, revision: Revision | None,
+               controller_text: str | None = None,
+               controller_canonical: str | None = None) -> RevisionPlan:
+    """A plan without checks for ``revision`` (or a controller) against plant version ``pv``."""
+    return RevisionPlan(
         loop=loop.name, loop_id=loop.id, label=revision.label if revision else None,
         revision_id=revision.id if revision else None,
         controller_text=revision.controller_text if revision else controller_text,
@@ -161,13 +175,51 @@ def plan_revision(s: Session, loop: Loop, *, revision: Revision | None = None,
                     "fidelity": json.loads(pv.fidelity_json), "samples": pv.samples,
                     "seed": pv.seed, "sample_time": pv.sample_time},
     )
+
+
+def rejudge_cached(s: Session, loop: Loop, keys: Iterable[str] | None = None) -> int:
+    """Judge every revision of ``loop`` that lacks a result for the latest version of the
+    requirements ``keys`` (all applicable ones by default) against the latest plant version,
+    wherever the metric-value cache already holds the value: no kernel evaluation, all in the
+    caller's transaction.  Checks without a cached value are left for ``verify``.
+
+    Returns
+    -------
+    int
+        Revisions that got at least one result.
+    """
+    pv = latest_plant_version(s, loop.plant_id)
+    if pv is None:
+        return 0
     checks = applicable_checks(s, loop.id, keys)
-    if revision is not None and missing_only:
-        done = set(s.scalars(select(Result.requirement_version_id).where(
-            Result.revision_id == revision.id, Result.plant_version_id == pv.id)))
-        checks = [c for c in checks if c.version_id not in done]
-    plan.checks = checks
-    return plan
+    if not checks:
+        return 0
+    revs = list(s.scalars(select(Revision).where(Revision.loop_id == loop.id)
+                          .order_by(Revision.seq)))
+    done = set(s.execute(select(Result.revision_id, Result.requirement_version_id).where(
+        Result.plant_version_id == pv.id,
+        Result.requirement_version_id.in_([c.version_id for c in checks]))).all())
+    plans = []
+    for rev in revs:
+        plan = _plan_head(loop, pv, rev)
+        todo = [(c, plan.metric_key(c.metric, c.settings)) for c in checks
+                if (rev.id, c.version_id) not in done]
+        if todo:
+            plans.append((plan, todo))
+    cached = load_cached(s, {k for _, todo in plans for _, k in todo})
+    from .chain import lock
+
+    lock(s)  # as write_results: results and sign-offs serialise
+    n, rows = 0, []
+    for plan, todo in plans:
+        plan.checks = [c for c, k in todo if k in cached]
+        if plan.checks:
+            rows += write_results(s, plan, plan.revision_id,
+                                  {k: cached[k] for _, k in todo if k in cached}, set(),
+                                  rows_only=True)
+            n += 1
+    _insert_ignore(s, Result, rows, many=True)
+    return n
 
 
 # -- numerics (no database) ------------------------------------------------------------------
@@ -308,9 +360,10 @@ def judge_payload(check: Check, payload: dict) -> Judged:
                   float(passing.mean()), n, "")
 
 
-def _insert_ignore(s: Session, model, rows: list[dict]) -> None:
+def _insert_ignore(s: Session, model, rows: list[dict], *, many: bool = False) -> None:
     """Insert rows, skipping any whose unique key already exists (another writer got there
-    first with the same content)."""
+    first with the same content).  ``many``: as one executemany on the table (faster for
+    hundreds of rows than one multi-row VALUES statement)."""
     if not rows:
         return
     dialect = s.get_bind().dialect.name
@@ -320,21 +373,27 @@ def _insert_ignore(s: Session, model, rows: list[dict]) -> None:
         from sqlalchemy.dialects.postgresql import insert
     else:  # pragma: no cover
         raise LedgerError(f"database dialect {dialect!r} is not supported")
-    s.execute(insert(model).values(rows).on_conflict_do_nothing())
+    if many:
+        s.execute(insert(model.__table__).on_conflict_do_nothing(), rows)
+    else:
+        s.execute(insert(model).values(rows).on_conflict_do_nothing())
 
 
 def write_results(s: Session, plan: RevisionPlan, revision_id: int,
-                  payloads: dict[str, dict], fresh: set[str]) -> list[tuple[Check, Judged]]:
+                  payloads: dict[str, dict], fresh: set[str], *,
+                  rows_only: bool = False) -> list[tuple[Check, Judged]] | list[dict]:
     """Write cache rows for ``fresh`` keys and one result per check, in the caller's
-    transaction."""
+    transaction.  ``rows_only``: write nothing, return the result rows (for one insert of
+    many revisions' rows, see :func:`rejudge_cached`)."""
     from .chain import lock
 
-    lock(s)  # results and sign-offs serialise (a sign-off compares against live results)
     now = datetime.now(timezone.utc)
     ev = engine_version()
-    _insert_ignore(s, MetricValue, [
-        {"key": k, "metric": payloads[k]["metric"], "values_json": json.dumps(payloads[k]),
-         "engine_version": ev, "created_at": now} for k in sorted(fresh)])
+    if not rows_only:
+        lock(s)  # results and sign-offs serialise (a sign-off compares against live results)
+        _insert_ignore(s, MetricValue, [
+            {"key": k, "metric": payloads[k]["metric"], "values_json": json.dumps(payloads[k]),
+             "engine_version": ev, "created_at": now} for k in sorted(fresh)])
     rows, out = [], []
     for c in plan.checks:
         k = plan.metric_key(c.metric, c.settings)
@@ -350,6 +409,8 @@ def write_results(s: Session, plan: RevisionPlan, revision_id: int,
             "variants": jd.variants, "reason": jd.reason, "metric_key": k,
             "engine_version": ev, "created_at": now,
         })
+    if rows_only:
+        return rows
     _insert_ignore(s, Result, rows)
     return out
 

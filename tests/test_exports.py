@@ -60,8 +60,12 @@ def book(tmp_path_factory):
     lg.add_revision("pz", "pid(kp=0.4, ki=4, kd=0.006, tf=0.0008)", rationale="first tuning")
     lg.add_revision("pz", "pid(kp=0.6, ki=4, kd=0.004, tf=0.0008)", rationale="more gain")
     lg.add_revision("sh", "pi(0.5, 5)", rationale="speed PI", verify=False)
-    # a tighter PZ-3 re-verifies the tip r2 only, so r1's PZ-3 result turns stale
+    # a tighter PZ-3 verified on the tip r2 only (automatic verification off: a limit edit
+    # would re-judge r1 from the cache too), so r1's PZ-3 result turns stale
+    lg.auto_verify = False
     lg.edit_requirement("PZ-3", limit="<= 20 %", note="tighter")
+    lg.verify("pz", tips_only=True)
+    lg.auto_verify = True
     yield lg
     lg.close()
 

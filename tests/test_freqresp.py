@@ -126,7 +126,12 @@ def test_third_order_lag(k):
         assert_allclose(m.gain_margin_lower, [gm], rtol=1e-10)
         assert_allclose(m.phase_crossover_lower, [math.sqrt(3)], rtol=1e-10)
         assert m.phase_margin[0] < 0
-        assert m.delay_margin[0] == 0.0
+        # every crossover counts (issue 10): |L| = 1 at w = sqrt(k^(2/3) - 1), where the delay
+        # that turns L onto -1 is ((pi - 3 atan w) mod 2 pi) / w (closed form; not a margin
+        # here, the loop is unstable, which measure() reports as 0)
+        wc = math.sqrt(k ** (2.0 / 3.0) - 1.0)
+        assert_allclose(m.delay_margin, [math.fmod(math.pi - 3 * math.atan(wc) + 2 * math.pi,
+                                                   2 * math.pi) / wc], rtol=1e-10)
     Z = fr.closed_loop_unstable_count(fb)
     assert Z[0] == rhp_roots([k], [1, 3, 3, 1])
 
@@ -633,7 +638,9 @@ def test_batch_with_different_delays():
     m = fr.margins(fb)
     assert_allclose(m.phase_margin, 90 - np.degrees(taus), rtol=1e-10)
     assert_allclose(m.delay_margin[:3], math.pi / 2 - np.array(taus[:3]), rtol=1e-10)
-    assert m.delay_margin[3] == 0.0
+    # tau = 1.8 s > pi/2: negative phase margin; the crossover still gives the delay that turns
+    # L(j1) onto -1, (pi/2 - tau) mod 2 pi (closed form; the loop is unstable already)
+    assert_allclose(m.delay_margin[3], math.pi / 2 - taus[3] + 2 * math.pi, rtol=1e-10)
     Z = fr.closed_loop_unstable_count(fb)
     assert list(Z == 0) == [t < math.pi / 2 for t in taus]
 

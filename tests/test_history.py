@@ -375,8 +375,11 @@ def test_diff_after_requirement_edit_is_incomparable(tmp_path):
                            limit=">= 45 deg", loops=["ax"], status="approved")
         lg.add_revision("ax", "gain(0.5)", rationale="first", label="a")
         lg.add_revision("ax", "gain(1)", rationale="second", label="b")
-        # a new requirement version is verified on the tip only: the parent's result is stale
+        # a new requirement version verified on the tip only (automatic verification off, then
+        # the tip verified by hand): the parent's result is stale
+        lg.auto_verify = False
         lg.edit_requirement("PM", limit=">= 50 deg", note="tighter")
+        lg.verify("ax", tips_only=True)
         (c,) = diff(lg, "ax").changes
         assert c.kind == "incomparable" and "older" in c.note and "newer" not in c.note
         assert (c.old_verdict, c.new_verdict) == ("stale", "pass")   # closed form pm(1) = 51.8
@@ -387,3 +390,61 @@ def test_diff_after_requirement_edit_is_incomparable(tmp_path):
         pm_a, pm_b = _pm_closed_form(0.5)[0], _pm_closed_form(1.0)[0]
         assert_allclose(c.headroom_delta, pm_b - pm_a, rtol=1e-6)
         assert (pm_b - pm_a) < -0.25 * (pm_a - 50)
+        # with automatic verification a limit edit re-judges both revisions from the cache, so
+        # they stay comparable (issue 10, item 7)
+        lg.auto_verify = True
+        lg.edit_requirement("PM", limit=">= 49 deg")
+        (c,) = diff(lg, "ax").changes
+        assert c.kind == "eroded" and c.new_requirement_version == 3 == c.old_requirement_version
+        assert (pm_b - pm_a) < -0.25 * (pm_a - 49)
+
+
+# -- issue 10, item 7: large moves among failures; booleans without threshold notes ---------
+# Expected classes are arithmetic on the inputs against our own definitions (docs/history.md):
+# fail -> fail is 'moved' when |new headroom - old headroom| > threshold x |old headroom|.
+
+def test_failure_that_moves_a_lot_is_shown_as_moved():
+    # phase margin -157 deg -> 36 deg against ">= 45 deg": headroom -202 -> -9 deg, a move of
+    # 193 deg, beyond 0.25 x 202 = 50.5 deg
+    c = classify_pair(_res(verdict="fail", value=-157.0), _res(verdict="fail", value=36.0))
+    assert c.kind == "moved" and "closer" in c.note
+    assert_allclose([c.headroom_delta, c.value_delta], [193.0, 193.0], rtol=1e-12)
+    # and the other way round: further from the limit
+    back = classify_pair(_res(verdict="fail", value=36.0), _res(verdict="fail", value=-157.0))
+    assert back.kind == "moved" and "further" in back.note
+    assert not c.is_regression and not back.is_regression
+    # a small move stays unchanged: headroom -9 -> -8 deg, 1 deg < 0.25 x 9 = 2.25 deg
+    small = classify_pair(_res(verdict="fail", value=36.0), _res(verdict="fail", value=37.0))
+    assert small.kind == "unchanged" and small.note == "still not passing"
+    # exactly at the threshold stays unchanged: headroom -4 -> -3 deg, 1 = 0.25 x 4
+    edge = classify_pair(_res(verdict="fail", value=41.0), _res(verdict="fail", value=42.0))
+    assert edge.kind == "unchanged"
+    # the class is listed among the others, after improved and before new
+    assert CLASSES.index("improved") < CLASSES.index("moved") < CLASSES.index("new")
+
+
+def test_boolean_metric_never_gets_a_threshold_note():
+    # 'stable' judged '== 1': pass gives headroom -0.0 on both sides (ledger.judge); there is no
+    # threshold to be at, so no note
+    old = _res("S01", value=1.0, limit=1.0, headroom=-0.0, unit="bool")
+    new = _res("S01", value=1.0, limit=1.0, headroom=-0.0, unit="bool")
+    c = classify_pair(old, new)
+    assert c.kind == "unchanged" and c.note == ""
+    # failing on both sides is never 'moved' for a boolean
+    f = classify_pair(_res("S01", verdict="fail", value=0.0, limit=1.0, headroom=-1.0, unit="bool"),
+                      _res("S01", verdict="fail", value=0.0, limit=1.0, headroom=-1.0, unit="bool"))
+    assert f.kind == "unchanged" and f.note == "still not passing"
+    # a passing real-valued requirement that did not move gets no note either (0 -> 0 headroom)
+    z = classify_pair(_res(value=45.0), _res(value=45.0))
+    assert z.kind == "unchanged" and z.note == ""
+
+
+def test_cli_rows_show_moved_with_its_change():
+    # the CLI table row of a moved failure names the class and the headroom change
+    # (193 / 202 = +96 %, arithmetic)
+    from ledger.cli_history import diff_rows
+
+    c = classify_pair(_res(verdict="fail", value=-157.0), _res(verdict="fail", value=36.0))
+    row = diff_rows([c])[0]
+    assert row[1] == "moved" and row[2] == "fail -> fail"
+    assert "+96%" in row[6] and "closer" in row[-1]

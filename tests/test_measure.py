@@ -415,3 +415,23 @@ def test_peak_effort_pi_first_order_with_input_delay(delay):
     # controller output is u = A (kp + ki t), largest at t = delay; after it the plant output
     # rises at Km u / tau_p, far faster than ki A, so u falls: peak A (kp + ki delay).
     assert_allclose(m["peak_effort"], 150 * (0.05 + 1.0 * delay), rtol=1e-9)
+
+
+def test_peak_time_without_overshoot_is_infinite_as_documented():
+    # Closed form: L = 1/(s+1) gives T = 1/(s+2), y(t) = (1 - e^{-2t})/2, rising monotonically
+    # to y_final = 1/2 without reaching it, so no finite time has the largest value.
+    from pathlib import Path
+
+    m = measure(control.tf([1.0], [1.0, 1.0]), 1.0, ["peak_time", "overshoot"])
+    assert m["overshoot"] == 0.0
+    assert m["peak_time"] == math.inf
+    # the documented behaviour (docs/metrics.md and the catalogue) says exactly that
+    text = (Path(__file__).resolve().parents[1] / "docs" / "metrics.md").read_text()
+    row = next(line for line in text.splitlines() if line.startswith("| `peak_time`"))
+    assert "`inf` when there is no overshoot" in row
+    assert "inf without overshoot" in METRICS["peak_time"].doc
+    # with overshoot it is finite: second order, zeta 0.5, wn 1 -> tp = pi/wd, wd = sqrt(3)/2
+    # (Ogata, Modern Control Engineering, sec. 5-3)
+    G = control.tf([1.0], [1.0, 1.0, 0.0])
+    assert_allclose(measure(G, 1.0, ["peak_time"])["peak_time"], math.pi / (math.sqrt(3) / 2),
+                    rtol=1e-6)

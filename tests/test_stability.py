@@ -10,6 +10,7 @@ from numpy.testing import assert_allclose
 from ledger.engine.loop import LoopSpec, assemble
 from ledger.engine.stability import decay_rate, min_damping, nyquist_unstable_count, stability
 from ledger.engine.types import PlantFamily, Variant
+from ledger.errors import ComputeError
 
 
 def test_unstable_cancellation_is_not_internally_stable():
@@ -127,3 +128,117 @@ def test_row_forms_of_pole_metrics_closed_form():
     ts = 1e-3
     np.testing.assert_allclose(min_damping_rows(np.exp(s * ts), ts), zeta, rtol=1e-9)
     np.testing.assert_allclose(decay_rate_rows(np.exp(s * ts), ts), zeta * wn, rtol=1e-9)
+
+
+def test_deadbeat_loop_pole_metrics_leak_no_warning():
+    # Issue 10, item 7.  Closed form: 1 + 1/(z - 1) = 0 gives the single closed-loop pole z = 0
+    # (deadbeat); it decays infinitely fast (s = ln z / Ts -> -inf), real, so damping 1.
+    # numpy's complex log(0)/Ts gave -inf + nan j and a RuntimeWarning; warnings are errors here.
+    import warnings
+
+    from ledger.engine import measure
+    from ledger.engine.stability import decay_rate_rows, min_damping_rows
+
+    dt = 0.1
+    G = control.tf([1.0], [1.0, -1.0], dt)
+    fam = PlantFamily((Variant("nominal", "nominal", G),
+                       Variant("slow", "corner", control.tf([0.5], [1.0, -1.0], dt))))
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        assert_allclose(assemble(PlantFamily.single(G), 1.0, LoopSpec(sample_time=dt))
+                        .groups[0].poles[0], [0.0], atol=1e-15)
+        m = measure(G, 1.0, ["stable", "min_damping", "decay_rate"], sample_time=dt)
+        assert m["stable"] == 1.0 and m["min_damping"] == 1.0 and m["decay_rate"] == np.inf
+        # a family: the pole at 0.5 (closed form 1 + 0.5/(z - 1) = 0) sets the worst values,
+        # decay -ln(0.5)/Ts
+        mf = measure(fam, 1.0, ["min_damping", "decay_rate"], sample_time=dt)
+        assert_allclose(mf["decay_rate"], -np.log(0.5) / dt, rtol=1e-12)
+        assert mf["min_damping"] == 1.0
+        # the scalar and row forms directly, with z = 0 next to ordinary poles
+        assert min_damping(np.array([0.0, 0.5]), dt) == 1.0
+        assert decay_rate(np.array([0.0, 0.0]), dt) == np.inf
+        assert_allclose(decay_rate_rows(np.array([[0.0, 0.5j]]), dt), [-np.log(0.5) / dt],
+                        rtol=1e-12)
+        assert min_damping_rows(np.array([[0.0, 0.0]]), dt)[0] == 1.0
+
+
+# -- decay rate of continuous loops with a delay (issue 10, item 7) --------------------------
+
+@pytest.mark.parametrize("K, T, tau", [(2.0, 1.0, 0.2), (0.5, 1.0, 1.0), (1.0, 2.0, 0.05),
+                                       (5.0, 0.5, 0.3), (20.0, 1.0, 0.5)])
+def test_decay_rate_with_delay_first_order_lambert_w(K, T, tau):
+    # Closed form: K/(T s + 1) with the loop delay tau under unity feedback has the
+    # characteristic equation T s + 1 + K e^{-s tau} = 0.  With u = s + 1/T:
+    # (u tau) e^{u tau} = -(K tau / T) e^{tau/T}, so s = W(-(K tau/T) e^{tau/T}) / tau - 1/T,
+    # and the principal branch W0 gives the rightmost root (Shinozaki and Mori, "Robust
+    # stability analysis of linear time-delay systems by Lambert W function", Automatica 42,
+    # 2006).  Reference values: scipy.special.lambertw.  The last two cases are unstable
+    # (negative decay rate), the first two have a complex W0.
+    from scipy.special import lambertw
+
+    from ledger.engine import measure
+
+    s_ref = complex(lambertw(-(K * tau / T) * np.exp(tau / T), 0)) / tau - 1.0 / T
+    m = measure(control.tf([K], [T, 1.0]), 1.0, ["decay_rate", "stable"], delay=tau)
+    # a simple root polished by Newton on the exact equation: 1e-10 relative is far above the
+    # rounding of either side
+    assert_allclose(m["decay_rate"], -s_ref.real, rtol=1e-10)
+    assert (m["stable"] == 1.0) == (s_ref.real < 0)
+
+
+def _pade_rightmost(L, tau, order=20):
+    """Rightmost closed-loop pole of L e^{-s tau} under unity feedback, the delay by
+    python-control's Pade approximation of the given order (state space, numpy eigvals)."""
+    num, den = control.pade(tau, order)
+    cl = control.feedback(control.ss(L) * control.ss(control.tf(num, den)), 1)
+    p = np.linalg.eigvals(cl.A)
+    return p[np.argmax(p.real)]
+
+
+_s = control.tf("s")
+
+
+@pytest.mark.parametrize("G, C, tau", [
+    (1 / _s / (_s / 5 + 1) * 100 / (_s ** 2 + 0.4 * _s + 100), 1.0, 0.3),   # resonant mode
+    (1 / (_s * (_s + 1)), control.tf([2.0, 1.0], [0.1, 1.0]), 0.2),          # lead
+    (4 * (_s + 1) ** 2 / (_s ** 3 * (_s / 20 + 1)), 1.0, 0.05),              # conditionally stable
+    (1 / (_s - 1), 3.0, 0.2),                                                # open-loop unstable
+])
+def test_decay_rate_with_delay_against_pade(G, C, tau):
+    # Reference: 20th-order Pade of the delay (python-control), closed-loop poles.  The [n/n]
+    # Pade error of e^{-x} is about (n!)^2 / ((2n)! (2n+1)!) |x|^(2n+1) (from memory), below
+    # 1e-30 for n = 20 and |x| <= 4, so at the rightmost roots here (|s| tau < 4) the
+    # reference is exact to rounding
+    from ledger.engine import measure
+
+    ref = _pade_rightmost(G * C, tau)
+    assert abs(ref) * tau < 4.0
+    m = measure(G, C, ["decay_rate", "stable"], delay=tau)
+    assert_allclose(m["decay_rate"], -ref.real, rtol=1e-8)
+    assert m["stable"] == 1.0 and m["decay_rate"] > 0
+
+
+def test_decay_rate_with_delay_keeps_a_hidden_unstable_mode():
+    # C = (s-1)/(s+1) cancels the plant pole of 1/(s-1): s = 1 stays a root of the
+    # interconnection for every delay (closed form: it is not controllable from the loop), so
+    # the decay rate is -1 and the loop is not internally stable
+    from ledger.engine import measure
+
+    m = measure(control.tf([1.0], [1.0, -1.0]), control.tf([1.0, -1.0], [1.0, 1.0]),
+                ["decay_rate", "stable"], delay=0.1)
+    assert m["stable"] == 0.0
+    assert_allclose(m["decay_rate"], -1.0, rtol=1e-10)
+
+
+def test_delay_pole_metrics_restrictions_are_named():
+    # a biproper loop with a delay is a neutral delay system (docs/metrics.md): decay_rate is
+    # refused with the reason; min_damping is defined for delay-free or digital loops only
+    from ledger.engine import measure
+
+    m = measure(control.tf([1.0, 2.0], [1.0, 3.0]), 0.5, ["decay_rate", "min_damping"],
+                delay=0.1)
+    with pytest.raises(ComputeError, match="neutral delay system"):
+        m["decay_rate"]
+    m = measure(control.tf([1.0], [1.0, 1.0]), 1.0, ["min_damping"], delay=0.1)
+    with pytest.raises(ComputeError, match="min_damping needs a delay-free or digital loop"):
+        m["min_damping"]

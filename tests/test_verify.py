@@ -163,7 +163,9 @@ def test_verdict_counts_in_sql_agree_with_results(pm_ledger):
     lg = pm_ledger
     lg.add_revision("p", "gain(1)", rationale="a")
     lg.add_revision("p", "gain(1.2)", rationale="b")
-    lg.edit_requirement("R-GM", limit=">= 7 dB")            # r2 (tip) re-judged, r1 stale
+    # a new metric: computed on r2 (the tip); r1 has no cached value for it, so it stays stale
+    # (a limit edit alone would re-judge r1 from the cache)
+    lg.edit_requirement("R-GM", metric="disk_gain_margin", limit=">= 3 dB")
     lg.add_revision("p", "gain(0.9)", rationale="c", verify=False)  # unverified
     counts = lg.verdict_counts("p")
     for label in ("r1", "r2", "r3"):
@@ -197,3 +199,28 @@ def test_matrix_rows_follow_the_selected_loops(pm_ledger):
     assert keys == {"R-PM", "R-GM", "N-1"}
     keys = {r.key for r in build_matrix(lg, "tips").requirements}
     assert keys == {"R-PM", "R-GM", "Q-1", "N-1"}
+
+
+def test_limit_edit_rejudges_every_cached_revision_without_computing(pm_ledger):
+    # Issue 10, item 7: a requirement edit judged only the loop's tip, so older revisions (and
+    # a branch made from one) showed stale notes.  Every revision whose metric values are in the
+    # cache is judged again from it: no kernel evaluation.  Expected verdicts from the closed
+    # form of the phase margin (pm_closed_form) on the worst corner K+ = 1.2 k.
+    lg = pm_ledger
+    lg.add_revision("p", "gain(1)", rationale="unity gain")                  # r1: 48.2 deg
+    lg.add_revision("p", "gain(0.6)", rationale="less gain")                 # r2
+    lg.add_revision("p", "gain(2)", rationale="unverified", verify=False)    # r3, nothing cached
+    lg.add_revision("p", "gain(0.5)", rationale="branch from r1", parent="r1")  # r4 = tip
+    before = lg.kernel_requests
+    lg.edit_requirement("R-PM", limit=">= 50 deg")
+    assert lg.kernel_requests == before  # every judged value came from the cache
+    for label, k in (("r1", 1.0), ("r2", 0.6), ("r4", 0.5)):
+        pm = {r.requirement: r for r in lg.results("p", label)}["R-PM"]
+        assert pm.requirement_version == 2 and not pm.stale, label
+        assert pm.verdict == ("pass" if pm_closed_form(1.2 * k) >= 50 else "fail"), label
+        assert_allclose(pm.value, pm_closed_form(1.2 * k), rtol=1e-6)
+    assert pm_closed_form(1.2) < 50 < pm_closed_form(0.72)  # r1 fails now, r2 passes
+    # the unverified revision is not computed by a requirement edit (verify does that)
+    assert not [r for r in lg.results("p", "r3") if r.requirement == "R-PM" and not r.stale]
+    rep = lg.verify("p")
+    assert [r["revision"] for r in rep] == ["r3"] and lg.kernel_requests > before

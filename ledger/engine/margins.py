@@ -6,7 +6,10 @@ Definitions follow the metric definitions of the design notes:
   margin is the smallest positive one, the lower margin the largest negative one;
 * phase margin ``180 deg + arg L`` at every gain crossover (|L| = 1), wrapped to (-180, 180];
   the worst (smallest) one is reported;
-* delay margin: the smallest ``PM[rad] / w`` over gain crossovers with positive phase margin;
+* delay margin: the smallest ``((180 deg + arg L) mod 360 deg)[rad] / w`` over every gain
+  crossover ``w > 0``: the extra loop delay that first puts a closed-loop pole on the
+  stability boundary (a delay ``tau`` turns ``L(jw)`` by ``-w tau`` and leaves ``|L|``
+  alone, so the Nyquist curve first passes through -1 at a gain crossover);
 * balanced disk margin (skew 0): ``alpha = 1 / sup_w |S - 1/2|`` (Seiler, Packard and Gahinet,
   "An introduction to disk margins", IEEE Control Systems Magazine, 2020).
 
@@ -35,6 +38,10 @@ __all__ = [
     "disk_margin",
 ]
 
+#: a gain crossover whose phase is within this of -180 deg (rad) sits on the stability boundary:
+#: its delay margin is 0 (crossovers are refined to ~1e-14 relative, far below this)
+_ON_BOUNDARY = 1e-9
+
 
 @dataclass(frozen=True, eq=False)
 class Margins:
@@ -56,10 +63,18 @@ class Margins:
     gain_crossover : ndarray
         Frequency of the worst phase margin, rad/s (``inf`` if there is no gain crossover).
     delay_margin : ndarray
-        Extra loop delay, s, that brings the loop to the stability boundary: smallest
-        ``PM[rad]/w`` over gain crossovers with positive margin; ``inf`` without gain crossover;
-        ``0`` when no crossover has a positive margin.  For discrete loops this is the same
-        formula in seconds (a delay of ``delay_margin/dt`` samples, not necessarily an integer).
+        Extra loop delay, s, that brings the loop to the stability boundary: the minimum over
+        *every* gain crossover ``w_c > 0`` of ``((180 deg + arg L(j w_c)) mod 360 deg)`` in
+        radians divided by ``w_c``, whatever the sign of that crossover's phase margin (a
+        crossover with a negative phase margin needs almost a full turn, but at a high
+        frequency that can still be the smallest delay).  A crossover with ``arg L`` exactly
+        -180 deg gives 0.  ``inf`` without gain crossover.  A crossover at ``w = 0`` (``|L(0)|
+        = 1``) is not counted: a delay leaves ``L(0)`` unchanged.  The phase of ``L`` already
+        holds the loop's own delay, so this is the delay *added* to it.  For discrete loops the
+        same formula in seconds on ``z = exp(jw dt)``, ``0 < w < pi/dt`` (a delay of
+        ``delay_margin/dt`` samples, not necessarily an integer).  A property of ``L`` only:
+        when the closed loop is already unstable it is not a margin
+        (:func:`ledger.engine.measure.measure` reports 0 then).
     phase_crossovers, gain_margins : tuple of ndarray
         Per variant, every phase crossover (rad/s) and its gain margin (dB).
     gain_crossovers, phase_margins : tuple of ndarray
@@ -161,13 +176,17 @@ def margins(fb: FreqBatch, *, grid: np.ndarray | None = None, xrtol: float = 1e-
     i = _first_best(p, gv, np.ones(p.size, bool), V, largest=False)
     pm[gv[i]], wgc[gv[i]] = p[i], gw[i]
     has = np.bincount(gv, minlength=V) > 0
-    ok = p > 0
+    # the delay that turns L(j w_c) onto -1: the phase margin taken in [0, 2 pi), over every
+    # crossover (gain crossings are found for w > 0 only, see _gain_crossings)
+    turn = np.mod(np.angle(-lgf), 2.0 * math.pi)
+    # L(j w_c) on -1 to within rounding (phase margin +-0 either side, which rounding may put
+    # at 2 pi - 1e-16): the loop is on the boundary already, margin 0
+    turn = np.where((turn < _ON_BOUNDARY) | (turn > 2.0 * math.pi - _ON_BOUNDARY), 0.0, turn)
     with np.errstate(divide="ignore", invalid="ignore"):
-        r = np.where(ok, np.radians(p) / gw, math.inf)
+        r = turn / gw
     dmin = np.full(V, math.inf)
     np.minimum.at(dmin, gv, r)
-    anyok = np.bincount(gv, weights=ok.astype(float), minlength=V) > 0
-    dm[has] = np.where(anyok[has], dmin[has], 0.0)
+    dm[has] = dmin[has]
     return Margins(gain_margin=gm, gain_margin_lower=gml, phase_crossover=wpc,
                    phase_crossover_lower=wpcl, phase_margin=pm, gain_crossover=wgc,
                    delay_margin=dm, phase_crossovers=tuple(pcs), gain_margins=tuple(gms),

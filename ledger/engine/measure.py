@@ -31,7 +31,7 @@ __all__ = ["ENGINE_VERSION", "MetricResult", "FamilyResult", "Measurement", "mea
            "METRIC_SETTINGS"]
 
 #: Bumped whenever a number the engine returns may change; part of every fingerprint.
-ENGINE_VERSION = "engine-3"
+ENGINE_VERSION = "engine-4"
 
 #: ``measure`` keyword -> LoopSpec field.
 LOOP_SETTINGS = MappingProxyType({
@@ -281,6 +281,8 @@ class _GroupContext:
         self.asm, self.g, self.m = asm, group, mask
         #: every variant under the mask was found stable by the family's stability decision
         self.all_stable = stable is not None and bool(np.all(np.asarray(stable)[mask]))
+        #: per variant under the mask: found stable (``None`` when not decided)
+        self.stable = None if stable is None else np.asarray(stable, bool)[mask]
         self._cache: dict = {}
 
     def cached(self, key, fn):
@@ -429,13 +431,25 @@ def _error(ctx, order: int, s) -> np.ndarray:
 
 def _poles(ctx, fn) -> np.ndarray:
     if ctx.g.poles is None:
+        if fn is decay_rate:
+            return ctx.cached("decay_delayed", lambda: _decay_delayed(ctx))
         raise ComputeError("a continuous loop with a delay has infinitely many closed-loop "
-                           "poles; pole metrics need a delay-free or digital loop")
+                           "poles; min_damping needs a delay-free or digital loop")
     rows = [ctx.g.poles[j] for j in np.flatnonzero(ctx.m)]
     batch = _POLE_BATCH.get(fn)
     if batch is not None and rows and len({np.size(r) for r in rows}) == 1 and np.size(rows[0]):
         return batch(np.stack(rows), ctx.asm.dt)
     return np.array([fn(r, ctx.asm.dt) for r in rows])
+
+
+def _decay_delayed(ctx) -> np.ndarray:
+    """Decay rate of a delayed continuous group on the mask: the rightmost characteristic root
+    of the delay equation (:func:`~ledger.engine.stability.rightmost_delayed_root`)."""
+    from .stability import rightmost_delayed_root
+
+    b = ctx.batch("d->y")
+    return np.array([-rightmost_delayed_root(b.A[j], b.Bw[j], b.Cz[j], float(b.Dzw[j]),
+                                             b.tau).real for j in range(b.nvar)])
 
 
 def _disturbance(ctx, s, part: int):
@@ -468,7 +482,7 @@ _COMPUTE = {
     "gain_margin": lambda c, s: _margins(c).gain_margin,
     "gain_margin_lower": lambda c, s: _margins(c).gain_margin_lower,
     "phase_margin": lambda c, s: _margins(c).phase_margin,
-    "delay_margin": lambda c, s: _margins(c).delay_margin,
+    "delay_margin": lambda c, s: _delay_margin(c),
     "gain_crossover": lambda c, s: _margins(c).gain_crossover,
     "phase_crossover": lambda c, s: _margins(c).phase_crossover,
     "bandwidth": lambda c, s: _bandwidth(c),
@@ -483,6 +497,16 @@ _COMPUTE = {
     "min_damping": lambda c, s: _poles(c, min_damping),
     "decay_rate": lambda c, s: _poles(c, decay_rate),
 }
+
+
+def _delay_margin(ctx):
+    """Delay margin per variant, s; 0 where the closed loop is already unstable (no added
+    delay is needed to lose stability, and the crossover formula of
+    :class:`~ledger.engine.margins.Margins` is no margin there)."""
+    dm = np.asarray(_margins(ctx).delay_margin, dtype=float)
+    if ctx.stable is None:
+        return dm
+    return np.where(ctx.stable, dm, 0.0)
 
 
 def _bandwidth(ctx):

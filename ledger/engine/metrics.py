@@ -87,7 +87,9 @@ _DEFS = [
        "100 (y_max - y_final) / |y_final|, 0 if y never exceeds y_final"),
     _m("undershoot", "%", "lower", True, "r->y", _STEP,
        "initial wrong-way excursion, 100 max(-y sign(y_final)) / |y_final|"),
-    _m("peak_time", "s", "lower", True, "r->y", _STEP, "time of the largest y"),
+    _m("peak_time", "s", "lower", True, "r->y", _STEP,
+       "time of the largest y when y exceeds y_final; inf without overshoot (the final "
+       "value is only approached as t -> inf)"),
     _m("steady_state_error", "", "lower", True, "r->e", (("amplitude", 1.0),),
        "|final actuating error| for a step of r: amplitude F(0) / (1 + Kp)"),
     _m("ramp_error", "", "lower", True, "r->e", (("amplitude", 1.0),),
@@ -113,7 +115,8 @@ _DEFS = [
     _m("phase_margin", "deg", "higher", False, "L", (),
        "min over gain crossovers of 180 + arg L, wrapped to (-180, 180] (inf if none)"),
     _m("delay_margin", "s", "higher", False, "L", (),
-       "min over gain crossovers with positive margin of PM[rad] / w (inf if none)"),
+       "min over every gain crossover w > 0 of ((180 + arg L) mod 360)[rad] / w: the extra "
+       "loop delay that first destabilises the loop (inf if no crossover, 0 if unstable)"),
     _m("gain_crossover", "rad/s", "higher", False, "L", (),
        "frequency of the crossover that sets the phase margin (inf if none)"),
     _m("phase_crossover", "rad/s", "higher", False, "L", (),
@@ -137,7 +140,8 @@ _DEFS = [
     _m("min_damping", "", "higher", False, "poles", (),
        "min over closed-loop poles of -Re(s)/|s| (1 for real poles)"),
     _m("decay_rate", "1/s", "higher", False, "poles", (),
-       "min over closed-loop poles of -Re(s) (discrete: s = ln z / Ts)"),
+       "min over closed-loop poles of -Re(s) (discrete: s = ln z / Ts; with a delay: the "
+       "rightmost root of the delay equation's characteristic equation)"),
 ]
 
 #: name -> MetricDef, in catalogue order.

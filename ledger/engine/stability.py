@@ -11,6 +11,10 @@
   half circles to their right (textbook Nyquist criterion, e.g. Franklin, Powell and
   Emami-Naeini, *Feedback Control of Dynamic Systems*, section 6.3).
 * The prefilter sits outside the loop but on the r paths, so its poles must be stable too.
+
+The decay rate of a continuous loop with a delay comes from the rightmost root of its
+characteristic equation (:func:`rightmost_delayed_root`: a pseudospectral discretisation for
+candidates, Newton's method on the exact equation, an argument-principle check).
 """
 
 from __future__ import annotations
@@ -24,7 +28,7 @@ from ..errors import ComputeError
 from .loop import Assembly, LoopGroup
 
 __all__ = ["StabilityReport", "stability", "nyquist_unstable_count", "min_damping",
-           "decay_rate", "min_damping_rows", "decay_rate_rows"]
+           "decay_rate", "min_damping_rows", "decay_rate_rows", "rightmost_delayed_root"]
 
 
 @dataclass(frozen=True)
@@ -224,10 +228,19 @@ def _axis_segment(lo: float, hi: float, points: int, scale: float):
 
 
 def _continuous_equivalent(poles: np.ndarray, dt) -> np.ndarray:
+    """s-plane equivalents ``ln(z) / Ts`` of discrete poles (continuous poles as given).
+
+    A pole at ``z = 0`` (deadbeat) decays infinitely fast: it maps to ``s = -inf`` (real), set
+    directly; ``ln(0) / Ts`` in complex arithmetic would give ``-inf + nan j`` and a
+    RuntimeWarning.
+    """
     if dt is None:
         return poles
-    with np.errstate(divide="ignore"):
-        return np.log(poles.astype(complex)) / dt
+    z = np.asarray(poles).astype(complex)
+    zero = z == 0
+    out = np.full(z.shape, complex(-math.inf, 0.0))
+    out[~zero] = np.log(z[~zero]) / dt
+    return out
 
 
 def min_damping(poles: np.ndarray, dt=None) -> float:
@@ -283,3 +296,168 @@ def decay_rate(poles: np.ndarray, dt=None) -> float:
     if s.size == 0:
         return math.inf
     return float(np.min(-s.real))
+
+
+# ----------------------------------------------------------------------------------------------
+# rightmost characteristic root of a continuous loop with a delay
+# ----------------------------------------------------------------------------------------------
+
+def _cheb(N: int) -> tuple[np.ndarray, np.ndarray]:
+    """Chebyshev extremal points ``x_j = cos(j pi / N)`` on [-1, 1] and the differentiation
+    matrix on them (Trefethen, *Spectral Methods in MATLAB*, SIAM 2000, program ``cheb``)."""
+    x = np.cos(np.pi * np.arange(N + 1) / N)
+    c = np.ones(N + 1)
+    c[0] = c[-1] = 2.0
+    c *= (-1.0) ** np.arange(N + 1)
+    X = x[:, None] - x[None, :]
+    D = np.outer(c, 1.0 / c) / (X + np.eye(N + 1))
+    D -= np.diag(D.sum(axis=1))
+    return x, D
+
+
+def _generator_eigs(A0: np.ndarray, A1: np.ndarray, tau: float, N: int) -> np.ndarray:
+    """Eigenvalues of the pseudospectral (Chebyshev collocation) discretisation of the
+    infinitesimal generator of ``x'(t) = A0 x(t) + A1 x(t - tau)`` on ``N + 1`` nodes of
+    ``[-tau, 0]`` (Breda, Maset and Vermiglio, "Pseudospectral differencing methods for
+    characteristic roots of delay differential equations", SIAM J. Sci. Comput. 27, 2005)."""
+    n = A0.shape[0]
+    _, D = _cheb(N)
+    D = D * (2.0 / tau)                       # theta = tau (x - 1) / 2 in [-tau, 0]
+    M = np.kron(D, np.eye(n))
+    M[:n, :] = 0.0
+    M[:n, :n] = A0                            # node 0 is theta = 0: the DDE itself
+    M[:n, N * n:] = A1                        # node N is theta = -tau: the delayed state
+    return np.linalg.eigvals(M)
+
+
+def _newton_root(A0, A1, tau, s, *, tol=1e-13, maxiter=60):
+    """Newton's method on ``det(s I - A0 - A1 e^{-s tau}) = 0`` from ``s``: the step is
+    ``-1 / trace(M(s)^-1 M'(s))`` with ``M' = I + tau A1 e^{-s tau}``.  Returns the root or
+    ``None`` when it does not converge."""
+    n = A0.shape[0]
+    eye = np.eye(n)
+    for _ in range(maxiter):
+        e = np.exp(-s * tau)
+        M = s * eye - A0 - A1 * e
+        try:
+            t = np.trace(np.linalg.solve(M, eye + tau * A1 * e))
+        except np.linalg.LinAlgError:
+            return s                           # M singular: s is a root
+        if not np.isfinite(t) or t == 0:
+            return None
+        step = 1.0 / t
+        s = s - step
+        if abs(step) <= tol * max(1.0, abs(s)):
+            return s
+    return None
+
+
+def _count_right_of(A0, Bw, Cz, tau, gamma, *, points=400, max_refine=30, max_step=0.3):
+    """Characteristic roots of ``x' = A0 x + Bw Cz x(t - tau)`` with ``Re s > gamma``.
+
+    Argument principle on ``phi(s) = det(sI - A0 - Bw Cz e^{-s tau}) / det(sI - A0)
+    = 1 - e^{-s tau} Cz (sI - A0)^-1 Bw`` along ``s = gamma + j w``: ``Z = P - (change of arg
+    phi, w: 0 -> inf) / pi`` with ``P`` the eigenvalues of ``A0`` right of the line (the
+    Nyquist criterion on a shifted line; phi -> 1 at infinity, the loop being strictly
+    proper).  Returns the count, or ``None`` when the winding is not a whole number.
+    """
+    n = A0.shape[0]
+    ev = np.linalg.eigvals(A0) if n else np.zeros(0)
+    P = int(np.sum(ev.real > gamma))
+    scale = max([1.0, abs(gamma)] + [abs(x) for x in ev])
+    eye = np.eye(n)
+
+    def phi(w):
+        s = gamma + 1j * np.asarray(w, float)
+        M = s[:, None, None] * eye[None] - A0[None]
+        g = np.linalg.solve(M, np.broadcast_to(Bw.astype(complex), (s.size, n))[..., None])[..., 0]
+        return 1.0 - np.exp(-s * tau) * (g @ Cz)
+
+    w_top = 1e3 * scale
+    for _ in range(12):
+        if np.all(np.abs(phi(np.array([w_top, 2 * w_top, 4 * w_top])) - 1.0) < 0.5):
+            break
+        w_top *= 10.0
+    else:
+        return None
+    logw = np.linspace(np.log10(1e-6 * scale), np.log10(w_top), points)
+    t = np.concatenate([[0.0], 10.0 ** logw])
+    vals = phi(t)
+    for _ in range(max_refine):
+        d = np.abs(np.angle(vals[1:] / vals[:-1]))
+        bad = ~(d < max_step)
+        if not np.any(bad):
+            break
+        t = np.sort(np.concatenate([t, 0.5 * (t[:-1][bad] + t[1:][bad])]))
+        vals = phi(t)
+    if not np.all(np.isfinite(vals)) or np.min(np.abs(vals)) == 0:
+        return None
+    ang = np.unwrap(np.angle(vals))
+    total = (ang[-1] - np.angle(vals[-1])) - ang[0]
+    Z = P - total / np.pi
+    if abs(Z - round(Z)) > 0.05 or round(Z) < 0:
+        return None
+    return int(round(Z))
+
+
+def rightmost_delayed_root(A: np.ndarray, Bw: np.ndarray, Cz: np.ndarray, Dzw: float,
+                           tau: float, *, nodes: int = 32, max_size: int = 2400) -> complex:
+    """Rightmost characteristic root of a continuous loop with an internal delay.
+
+    The loop ``x' = A x + Bw w``, ``z = Cz x + Dzw w``, ``w(t) = z(t - tau)`` with ``Dzw = 0``
+    is the retarded delay equation ``x'(t) = A x(t) + Bw Cz x(t - tau)``; its characteristic
+    roots solve ``det(s I - A - Bw Cz e^{-s tau}) = 0``.  Method:
+
+    1. candidates: eigenvalues of the pseudospectral (Chebyshev) discretisation of the
+       infinitesimal generator on ``nodes + 1`` points (Breda, Maset and Vermiglio 2005);
+    2. the rightmost candidates are polished by Newton's method on the exact equation (so the
+       result does not carry the discretisation error);
+    3. check: the argument principle on the line ``Re s = Re s* + delta`` must count no root
+       to its right; otherwise the discretisation is refined (doubling ``nodes``) until it
+       does, and a :class:`ComputeError` is raised when it never does within ``max_size``
+       (matrix order).
+
+    Parameters
+    ----------
+    A, Bw, Cz : ndarray
+        Loop states (n, n), delay input (n,), delay output (n,).
+    Dzw : float
+        Feedthrough round the loop; must be 0 (a non-zero one makes a neutral delay system,
+        with infinitely many roots near ``Re s = ln|Dzw| / tau``).
+    tau : float
+        Loop delay, s (> 0).
+
+    Returns
+    -------
+    complex
+        The root, 1/s (the one with the larger imaginary part of a conjugate pair); ``-inf``
+        when the loop has no states.
+    """
+    if Dzw != 0:
+        raise ComputeError("the loop has direct feedthrough round the delay (a neutral delay "
+                           "system, with infinitely many roots near Re s = ln|D|/tau); "
+                           "decay_rate is computed for strictly proper loops only: add roll-off")
+    n = A.shape[0]
+    if n == 0:
+        return complex(-math.inf, 0.0)
+    A1 = np.outer(Bw, Cz)
+    N = nodes
+    while n * (N + 1) <= max_size:
+        cand = _generator_eigs(A, A1, tau, N)
+        cand = cand[np.argsort(-cand.real)]
+        roots = []
+        for c0 in cand[:min(cand.size, 12)]:
+            r = _newton_root(A, A1, tau, complex(c0))
+            if r is not None and np.isfinite(r):
+                roots.append(r)
+        if roots:
+            best = max(roots, key=lambda r: (r.real, abs(r.imag)))
+            sig = best.real
+            delta = 1e-6 * max(1.0, abs(best))
+            if _count_right_of(A, Bw, Cz, tau, sig + delta) == 0:
+                return complex(sig, abs(best.imag))
+        N *= 2
+    raise ComputeError("could not locate the rightmost characteristic root of the delayed "
+                       f"loop (discretisation up to order {n * (N // 2 + 1)} did not agree with "
+                       "the argument-principle count); the loop is too stiff for decay_rate")
+

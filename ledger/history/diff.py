@@ -12,9 +12,13 @@ Each requirement judged on both revisions falls in one class:
     revision's headroom magnitude.
 ``improved``
     passes on both, and the headroom grew by more than the same amount.
+``moved``
+    fails on both (a value on each side), and the value moved by more than ``threshold`` times
+    the older headroom magnitude (its distance from the limit), closer to the limit or further
+    from it; the note says which.  Not a regression: it was failing already.
 ``unchanged``
-    anything else where both sides were judged: a change exactly at the threshold, both not
-    passing (``fail``/``error`` on both sides), both ``n/a``.
+    anything else where both sides were judged: a change within (or exactly at) the threshold,
+    still failing with a small move, an ``error`` on a side, both ``n/a``.
 
 and, when the two sides cannot be compared:
 
@@ -29,6 +33,8 @@ The threshold edge belongs to ``unchanged``: with ``threshold=0.25`` and an olde
 Infinite headroom (e.g. a gain margin of inf: no phase crossover) becomes finite = ``eroded``,
 finite becomes infinite = ``improved``, infinite on both sides = ``unchanged`` with no delta.
 An older headroom of exactly 0 (passing right at the limit) makes any growth ``improved``.
+Boolean metrics (unit ``bool``, e.g. ``stable``) have no headroom to speak of: they are judged by
+verdict only, never get a threshold note, and are never ``moved``.
 
 :func:`classify` is a pure function over :class:`~ledger.records.ResultInfo` lists;
 :func:`diff` reads two revisions of a ledger and classifies their results.
@@ -54,7 +60,8 @@ __all__ = [
 ]
 
 #: every class, in the order they are listed (regressions first)
-CLASSES = ("broke", "eroded", "fixed", "improved", "new", "dropped", "incomparable", "unchanged")
+CLASSES = ("broke", "eroded", "fixed", "improved", "moved", "new", "dropped", "incomparable",
+           "unchanged")
 #: the classes that count as a regression
 REGRESSIONS = ("broke", "eroded")
 
@@ -141,7 +148,8 @@ class Diff:
         The revision compared against (``None`` when ``new`` is a root and no older revision
         was named: every judged requirement is then ``new``).
     threshold : float
-        Fraction of the older headroom beyond which a change counts as eroded or improved.
+        Fraction of the older headroom beyond which a change counts as eroded or improved
+        (or, among failures, moved).
     changes : tuple of Change
         Ordered by :data:`CLASSES`, then requirement ID.
     """
@@ -200,6 +208,8 @@ def _passing_class(h0: float | None, h1: float | None, threshold: float,
             return "eroded", "headroom was infinite, is now finite"
         return "improved", "headroom was finite, is now infinite"
     delta = h1 - h0
+    if delta == 0:
+        return "unchanged", ""
     edge = threshold * abs(h0)
     if math.isclose(abs(delta), edge, rel_tol=edge_rtol, abs_tol=0.0):
         return "unchanged", "change exactly at the threshold"
@@ -208,6 +218,26 @@ def _passing_class(h0: float | None, h1: float | None, threshold: float,
     if delta > edge:
         return "improved", ""
     return "unchanged", ""
+
+
+def _failing_class(h0: float | None, h1: float | None, threshold: float,
+                   edge_rtol: float) -> tuple[str, str]:
+    """Class of a fail -> fail pair (values on both sides) from the two headrooms (both < 0)."""
+    if h0 is None or h1 is None:
+        return "unchanged", "still not passing"
+    if math.isinf(h0) or math.isinf(h1):
+        if math.isinf(h0) and math.isinf(h1):
+            return "unchanged", "still not passing"
+        closer = math.isinf(h0)
+    else:
+        delta = h1 - h0
+        edge = threshold * abs(h0)
+        if delta == 0 or abs(delta) <= edge or math.isclose(abs(delta), edge, rel_tol=edge_rtol,
+                                                            abs_tol=0.0):
+            return "unchanged", "still not passing"
+        closer = delta > 0
+    return "moved", ("still not passing, much closer to the limit" if closer
+                     else "still not passing, much further from the limit")
 
 
 def classify_pair(old: ResultInfo | None, new: ResultInfo | None, threshold: float = 0.25, *,
@@ -222,7 +252,8 @@ def classify_pair(old: ResultInfo | None, new: ResultInfo | None, threshold: flo
     threshold : float
         Fraction of the older headroom magnitude (default 0.25 = 25 %) that a passing
         requirement's headroom must lose (gain) by *more than* to be ``eroded``
-        (``improved``).  Must be finite and >= 0.
+        (``improved``), and that a failing one's value must move by more than to be
+        ``moved``.  Must be finite and >= 0.
     edge_rtol : float
         Relative tolerance (default 1e-9) within which a change equal to the threshold is taken
         as exactly at the edge (``unchanged``), so that decimal inputs such as 0.4 -> 0.3 with
@@ -270,7 +301,11 @@ def classify_pair(old: ResultInfo | None, new: ResultInfo | None, threshold: flo
     elif old.verdict in _NOT_PASSING and new.verdict == "pass":
         kind = "fixed"
     elif old.verdict == "pass" and new.verdict == "pass":
-        kind, note = _passing_class(h0, h1, threshold, edge_rtol)
+        # a boolean (stable) has no headroom to compare: verdicts only, no threshold notes
+        kind, note = (("unchanged", "") if ref.unit == "bool"
+                      else _passing_class(h0, h1, threshold, edge_rtol))
+    elif old.verdict == "fail" and new.verdict == "fail" and ref.unit != "bool":
+        kind, note = _failing_class(h0, h1, threshold, edge_rtol)
     else:
         kind = "unchanged"
         note = "still not passing" + (f": {new.reason}" if new.verdict == "error" and new.reason else "")

@@ -15,11 +15,13 @@ __all__ = ["DiffScreen"]
 
 _HEAD = {"broke": "BROKE (pass -> fail)", "fixed": "FIXED (fail -> pass)",
          "eroded": "ERODED (still pass, less headroom)", "improved": "IMPROVED (more headroom)",
+         "moved": "moved (still fail, value moved beyond the threshold)",
          "new": "new (judged on the newer one only)", "dropped": "dropped (older one only)",
          "incomparable": "incomparable (error or stale on a side)", "unchanged": "unchanged"}
 _STYLE = {"broke": "bold red", "fixed": "bold green", "eroded": "yellow", "improved": "green",
-          "new": "cyan", "dropped": "cyan", "incomparable": "magenta", "unchanged": "dim"}
-_ORDER = ("broke", "fixed", "eroded", "improved", "incomparable", "new", "dropped", "unchanged")
+          "moved": "yellow", "new": "cyan", "dropped": "cyan", "incomparable": "magenta", "unchanged": "dim"}
+_ORDER = ("broke", "fixed", "eroded", "improved", "moved", "incomparable", "new", "dropped",
+          "unchanged")
 
 
 class DiffScreen(ViewScreen):
@@ -91,7 +93,7 @@ class DiffScreen(ViewScreen):
                  style="bold")
         for kind in _ORDER:
             items = cmp_.of(kind)
-            if not items and kind in ("new", "dropped", "incomparable"):
+            if not items and kind in ("moved", "new", "dropped", "incomparable"):
                 continue
             t.append(f"{_HEAD[kind]}: {len(items)}\n", style=_STYLE[kind])
             for c in items:
