@@ -327,14 +327,13 @@ def write_results(s: Session, plan: RevisionPlan, revision_id: int,
                   payloads: dict[str, dict], fresh: set[str]) -> list[tuple[Check, Judged]]:
     """Write cache rows for ``fresh`` keys and one result per check, in the caller's
     transaction."""
-    from .chain import lock
+    from .chain import append_results
 
-    lock(s)  # results and sign-offs serialise (a sign-off compares against live results)
     now = datetime.now(timezone.utc)
     ev = engine_version()
-    _insert_ignore(s, MetricValue, [
+    metric_rows = [
         {"key": k, "metric": payloads[k]["metric"], "values_json": json.dumps(payloads[k]),
-         "engine_version": ev, "created_at": now} for k in sorted(fresh)])
+         "engine_version": ev, "created_at": now} for k in sorted(fresh)]
     rows, out = [], []
     for c in plan.checks:
         k = plan.metric_key(c.metric, c.settings)
@@ -350,7 +349,9 @@ def write_results(s: Session, plan: RevisionPlan, revision_id: int,
             "variants": jd.variants, "reason": jd.reason, "metric_key": k,
             "engine_version": ev, "created_at": now,
         })
-    _insert_ignore(s, Result, rows)
+    # one chained batch: row hashes, cache rows, skip of subjects another writer recorded
+    # first; serialised with sign-offs (a sign-off compares against live results)
+    append_results(s, revision_id, rows, metric_rows)
     return out
 
 

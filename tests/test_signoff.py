@@ -183,19 +183,24 @@ def test_upgrade_from_0002_keeps_records_and_backfills_chain(tmp_path):
         assert lg.schema_action == "upgraded from 0002"
         with sqlite3.connect(path) as db:
             after = {t: db.execute(f"SELECT * FROM {t} ORDER BY 1").fetchall() for t in before}
-            links = db.execute("SELECT seq, kind, record_id, record_hash, prev_hash, chain_hash "
-                               "FROM chain_link ORDER BY seq").fetchall()
+            links = db.execute("SELECT seq, kind, record_id, record_hash, prev_hash, chain_hash, "
+                               "created_at FROM chain_link ORDER BY seq").fetchall()
         db.close()
-        assert after == before
+        # every old column keeps its value (0005 appends batch_id/row_hash columns)
+        assert {k: [r[:len(before[k][0])] for r in v] for k, v in after.items()} == before
         # every existing revision (2) and requirement version (3) got one link, oldest first
+        # (0003); then the plant, its version, the loop, both requirements and the two result
+        # batches 0005 made (one per revision), in order of creation
         assert [(k, r) for _, k, r, *_ in links] == [
             ("requirement_version", 1), ("requirement_version", 2), ("revision", 1),
-            ("revision", 2), ("requirement_version", 3)]
+            ("revision", 2), ("requirement_version", 3), ("plant", 1), ("plant_version", 1),
+            ("loop", 1), ("requirement", 1), ("requirement", 2), ("result_batch", 1),
+            ("result_batch", 2)]
         prev = GENESIS
-        for seq, kind, rid, rh, ph, ch in links:
+        for seq, kind, rid, rh, ph, ch, at in links:
             # Source: chain rule of docs/signoff.md, SHA-256 from Python's hashlib
             assert ph == prev
-            assert ch == hashlib.sha256(f"{ph}:{kind}:{rid}:{rh}".encode()).hexdigest()
+            assert ch == hashlib.sha256(f"{ph}:{kind}:{rid}:{rh}:{at}".encode()).hexdigest()
             prev = ch
         rep = audit(lg)  # the live record hashes agree with the migration's backfill
         assert rep.ok, rep.findings
@@ -208,7 +213,8 @@ def test_upgrade_from_0002_keeps_records_and_backfills_chain(tmp_path):
         sign_baseline(lg, "B1", signer="A", role="lead", statement="fail accepted for now")
         lg.add_revision("shaker-speed", "pi(kp=0.1, ki=1.1)", rationale="back off", verify=False)
         rep = audit(lg)
-        assert rep.ok and rep.links == 8
+        assert rep.ok and rep.links == 12 + 3  # a baseline, its sign-off, revision r3
+
     finally:
         lg.close()
 
