@@ -7,7 +7,8 @@ Findings, one per problem, each naming the record (kind, id, label):
   (time stamp included), or its ``prev_hash`` is not the previous link's ``chain_hash`` (a link
   edited, removed or inserted), or its sequence number skips, or it names an unknown kind;
 * ``record altered`` - a chained row's content no longer gives the record hash of its newest
-  link; a result's or metric value's content no longer gives its stored row hash; a result
+  link; a revision's, requirement version's or plant version's ``content_hash`` column (the
+  hash baselines freeze) is not the hash of its content; a result's or metric value's content no longer gives its stored row hash; a result
   points at another revision than the batch it was written in; a batch's results or metric
   values carry row hashes that do not give the batch's digest (rewritten with recomputed
   hashes);
@@ -153,6 +154,9 @@ class Checker:
         self.links: list = []
         self.newest: dict[tuple[str, int], object] = {}
         self._labels: dict[str, dict] | None = None
+        self.altered: set[tuple[str, object]] = set()
+        #: metric keys of the results checked for chosen revisions
+        self.metric_keys: set[str] = set()
 
     # -- naming --------------------------------------------------------------------------
     def labels(self) -> dict[str, dict]:
@@ -191,7 +195,13 @@ class Checker:
     def add(self, problem: str, kind: str, rid, detail: str, label: str | None = None) -> None:
         if label is None:
             label = self.label(kind, rid) if rid is not None else ""
+        if problem == "record altered":
+            self.altered.add((kind, rid))
         self.findings.append(Finding(problem, kind, rid, detail, label))
+
+    def _altered(self, kind: str, rid) -> bool:
+        """Already named altered (a content-hash finding on top would say nothing new)."""
+        return (kind, rid) in self.altered
 
     # -- the chain -----------------------------------------------------------------------
     def chain(self) -> None:
@@ -305,6 +315,8 @@ class Checker:
             group: list = []
             for row in s.execute(q, execution_options=_STREAM):
                 n += 1
+                if revision_ids is not None:
+                    self.metric_keys.add(row.metric_key)
                 if group and row.batch_id != group[0].batch_id:
                     self._batch(group, batches, seen_batches)
                     group = []
@@ -372,17 +384,23 @@ class Checker:
                          "were judged from do not give its digest (rewritten with recomputed "
                          "hashes)")
 
-    def metric_values(self) -> int:
-        """Recompute every cached metric value's row hash; name cache rows no result was
-        judged from and metric values results were judged from that are gone."""
+    def metric_values(self, keys: Iterable[str] | None = None) -> int:
+        """Recompute every cached metric value's row hash (or those of ``keys``); for the
+        whole cache, also name rows no result was judged from and metric values results were
+        judged from that are gone."""
         s = self.s
         mv, r = MetricValue.__table__, Result.__table__
         n = 0
-        for row in s.execute(select(mv).order_by(mv.c.key), execution_options=_STREAM).mappings():
-            n += 1
-            if metric_row_hash(row) != row["row_hash"]:
-                self.add("record altered", "metric_value", row["key"],
-                         "content differs from its row hash", row["metric"])
+        queries = ([select(mv).order_by(mv.c.key)] if keys is None else
+                   [select(mv).where(mv.c.key.in_(ch)) for ch in _chunks(keys)])
+        for q in queries:
+            for row in s.execute(q, execution_options=_STREAM).mappings():
+                n += 1
+                if metric_row_hash(row) != row["row_hash"]:
+                    self.add("record altered", "metric_value", row["key"],
+                             "content differs from its row hash", row["metric"])
+        if keys is not None:
+            return n
         for (key,) in s.execute(select(mv.c.key).except_(select(r.c.metric_key))):
             self.add("record inserted", "metric_value", key,
                      "no result was judged from this cached metric value (inserted outside "
@@ -422,45 +440,86 @@ class Checker:
         return len(rows)
 
     # -- content hashes the frozen matrix carries (sign-off) ------------------------------
-    def content_hashes(self, revision_ids, rv_ids, pv_ids) -> None:
+    def content_hashes(self, revision_ids=None, rv_ids=None, pv_ids=None, *,
+                       parse: bool = False) -> None:
         """Recompute the ``content_hash`` column of revisions, requirement versions and plant
-        versions from their rows (the hashes a baseline's matrix freezes)."""
-        from .api import Ledger
+        versions from their rows (the hashes a baseline's matrix freezes); all of them, or the
+        ids given.  ``parse`` also checks that the stored canonical forms are those of the
+        model and controller texts (the model parser; used by sign-off on what it freezes)."""
+        from .api import Ledger, _model_canonical
 
         s = self.s
-        for ch in _chunks(pv_ids):
-            for pv in s.scalars(select(PlantVersion).where(PlantVersion.id.in_(ch))):
-                h = sha256_of({k: getattr(pv, k) for k in (
-                    "canonical", "parameters_json", "fidelity_json", "samples", "seed",
-                    "sample_time", "input_unit", "output_unit")})
-                if h != pv.content_hash:
-                    self.add("record altered", "plant_version", pv.id,
-                             "content hash does not match its model and parameters")
         lab = self.labels()
-        for ch in _chunks(rv_ids):
-            kids = self._children("requirement_version", ch)
-            for v in s.scalars(select(RequirementVersion).where(RequirementVersion.id.in_(ch))):
-                k = kids.get(v.id, {"parents": [], "loops": []})
-                fields = {f: getattr(v, f) for f in (
-                    "title", "statement", "rationale", "method", "status", "metric",
-                    "settings_json", "comparator", "limit_value", "limit_text")}
-                fields["parents"] = sorted(lab["requirement"].get(p, "?") for p in k["parents"])
-                fields["loops"] = sorted(lab["loop"].get(x, "?") for x in k["loops"])
-                if Ledger._hash_req(fields) != v.content_hash:
-                    self.add("record altered", "requirement_version", v.id,
-                             "content hash does not match its statement, limit and trace")
-        for ch in _chunks(revision_ids):
-            for rv in s.scalars(select(Revision).where(Revision.id.in_(ch))):
-                parent = s.get(Revision, rv.parent_id) if rv.parent_id else None
-                h = sha256_of({
-                    "loop": lab["loop"].get(rv.loop_id, "?"), "label": rv.label,
-                    "controller": rv.controller_canonical,
-                    "parent": parent.content_hash if parent else None,
-                    "rationale": rv.rationale, "author": rv.author,
-                    "created_at": _aware_iso(rv.created_at)})
-                if h != rv.content_hash:
-                    self.add("record altered", "revision", rv.id,
-                             "content hash does not match its controller, parent and rationale")
+
+        def rows(model, ids):
+            if ids is None:
+                yield from s.execute(select(model).order_by(model.id),
+                                     execution_options=_STREAM).scalars()
+                return
+            for ch in _chunks(ids):
+                yield from s.scalars(select(model).where(model.id.in_(ch)))
+
+        for pv in rows(PlantVersion, pv_ids):
+            h = sha256_of({k: getattr(pv, k) for k in (
+                "canonical", "parameters_json", "fidelity_json", "samples", "seed",
+                "sample_time", "input_unit", "output_unit")})
+            if self._altered("plant_version", pv.id):
+                continue
+            if h != pv.content_hash:
+                self.add("record altered", "plant_version", pv.id,
+                         "content hash does not match its model and parameters")
+            elif parse and self._canonical_differs(_model_canonical, pv.model_text,
+                                                   pv.sample_time, pv.canonical):
+                self.add("record altered", "plant_version", pv.id,
+                         "canonical form does not match its model text")
+        kids = self._children("requirement_version", None if rv_ids is None else list(rv_ids))
+        for v in rows(RequirementVersion, rv_ids):
+            k = kids.get(v.id, {"parents": [], "loops": []})
+            fields = {f: getattr(v, f) for f in (
+                "title", "statement", "rationale", "method", "status", "metric",
+                "settings_json", "comparator", "limit_value", "limit_text")}
+            fields["parents"] = sorted(lab["requirement"].get(p, "?") for p in k["parents"])
+            fields["loops"] = sorted(lab["loop"].get(x, "?") for x in k["loops"])
+            if self._altered("requirement_version", v.id):
+                continue
+            if Ledger._hash_req(fields) != v.content_hash:
+                self.add("record altered", "requirement_version", v.id,
+                         "content hash does not match its statement, limit and trace")
+        revs = list(rows(Revision, revision_ids))
+        parent_ids = {r.parent_id for r in revs if r.parent_id is not None}
+        parents = {r.id: r.content_hash for r in revs}
+        for ch in _chunks(parent_ids - set(parents)):
+            parents.update(s.execute(select(Revision.id, Revision.content_hash)
+                                     .where(Revision.id.in_(ch))).all())
+        loop_dt = {}
+        if parse:
+            loop_dt = dict(s.execute(select(Loop.id, Loop.sample_time)).all())
+        for rv in revs:
+            h = sha256_of({
+                "loop": lab["loop"].get(rv.loop_id, "?"), "label": rv.label,
+                "controller": rv.controller_canonical,
+                "parent": parents.get(rv.parent_id) if rv.parent_id else None,
+                "rationale": rv.rationale, "author": rv.author,
+                "created_at": _aware_iso(rv.created_at)})
+            if self._altered("revision", rv.id):
+                continue
+            if h != rv.content_hash:
+                self.add("record altered", "revision", rv.id,
+                         "content hash does not match its controller, parent and rationale")
+            elif parse and self._canonical_differs(_model_canonical, rv.controller_text,
+                                                   loop_dt.get(rv.loop_id),
+                                                   rv.controller_canonical):
+                self.add("record altered", "revision", rv.id,
+                         "canonical form does not match its controller text")
+
+    @staticmethod
+    def _canonical_differs(canonical_of, text_: str, sample_time, stored: str) -> bool:
+        from .errors import LedgerError
+
+        try:
+            return canonical_of(text_, what="audit", sample_time=sample_time) != stored
+        except LedgerError:
+            return True
 
     def frozen(self, baseline_id: int) -> None:
         """Everything a baseline freezes: the chain, the baseline record, its revisions (and
@@ -494,7 +553,8 @@ class Checker:
             select(ResultBatch.id).where(ResultBatch.revision_id.in_(ch)))}
         self.records("result_batch", batch_ids)
         self.results(rev_ids)
-        self.content_hashes(rev_ids, rv_ids, pv_ids)
+        self.metric_values(self.metric_keys)
+        self.content_hashes(rev_ids, rv_ids, pv_ids, parse=True)
 
 
 def audit(lg) -> AuditReport:
@@ -518,6 +578,7 @@ def audit(lg) -> AuditReport:
             counts[kind] = c.records(kind)
         counts["result"] = c.results()
         counts["metric_value"] = c.metric_values()
+        c.content_hashes()
         c.baselines()
         signoffs = c.signoffs()
         return AuditReport(findings=tuple(c.findings), links=len(c.links), records=counts,
