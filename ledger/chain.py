@@ -32,6 +32,7 @@ from __future__ import annotations
 import hashlib
 import json
 import math
+from json.encoder import encode_basestring as _encode_str
 from datetime import datetime, timezone
 from typing import Any, Iterable, Mapping
 
@@ -270,26 +271,47 @@ def append_link(s: Session, kind: str, row: Any) -> ChainLink:
 RESULT_FIELDS = ("revision_id", "requirement_version_id", "plant_version_id", "verdict", "value",
                  "headroom", "headroom_fraction", "worst_variant", "pass_fraction", "variants",
                  "reason", "metric_key", "engine_version", "created_at")
-_RESULT_FLOATS = frozenset({"value", "headroom", "headroom_fraction", "pass_fraction"})
 #: Columns of a cached metric value that enter its row hash.
 METRIC_FIELDS = ("key", "metric", "values_json", "engine_version", "created_at")
 
 
-def _num(value: Any) -> float | None:
-    if value is None:
-        return None
-    v = float(value)
-    return None if math.isnan(v) else v  # SQLite stores NaN as NULL
+_LAST_STAMP: tuple = (None, None)  # (time, its stamp): a batch's rows share one time
 
 
 def result_row_hash(row: Mapping) -> str:
-    """SHA-256 (hex) of one result row's content (:data:`RESULT_FIELDS`, in that order, as a
-    compact JSON list; floats as shortest round-trip decimals, NaN as null, time as
-    :func:`stamp`)."""
-    vals = [_num(row[f]) if f in _RESULT_FLOATS else
-            (stamp(row[f]) if f == "created_at" else row[f]) for f in RESULT_FIELDS]
-    data = json.dumps(vals, separators=(",", ":"), ensure_ascii=False, allow_nan=False)
+    """SHA-256 (hex) of one result row's content: the compact JSON list (``json.dumps`` with
+    ``separators=(",", ":")``, ``ensure_ascii=False``) of :data:`RESULT_FIELDS` in that order;
+    floats as shortest round-trip decimals, NaN as null, the time as :func:`stamp`."""
+    global _LAST_STAMP
+    when, last = row["created_at"], _LAST_STAMP  # one tuple read: safe across threads
+    if last[0] is None or last[0] != when:
+        last = _LAST_STAMP = (when, stamp(when))
+    data = (f"[{_int(row['revision_id'])},{_int(row['requirement_version_id'])},"
+            f"{_int(row['plant_version_id'])},{_str(row['verdict'])},{_flt(row['value'])},"
+            f"{_flt(row['headroom'])},{_flt(row['headroom_fraction'])},"
+            f"{_str(row['worst_variant'])},{_flt(row['pass_fraction'])},"
+            f"{_int(row['variants'])},{_str(row['reason'])},{_str(row['metric_key'])},"
+            f"{_str(row['engine_version'])},{_str(last[1])}]")
     return hashlib.sha256(data.encode("utf-8")).hexdigest()
+
+
+def _int(v: Any) -> str:
+    return "null" if v is None else int.__repr__(int(v))
+
+
+def _str(v: Any) -> str:
+    return "null" if v is None else _encode_str(v)
+
+
+def _flt(v: Any) -> str:
+    if v is None:
+        return "null"
+    v = float(v)
+    if v - v == 0.0:  # finite
+        return float.__repr__(v)
+    if v != v:
+        return "null"  # NaN: SQLite stores it as NULL
+    raise ValueError("an infinite value cannot be hashed; results store the cap")
 
 
 def metric_row_hash(row: Mapping) -> str:

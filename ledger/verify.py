@@ -308,21 +308,6 @@ def judge_payload(check: Check, payload: dict) -> Judged:
                   float(passing.mean()), n, "")
 
 
-def _insert_ignore(s: Session, model, rows: list[dict]) -> None:
-    """Insert rows, skipping any whose unique key already exists (another writer got there
-    first with the same content)."""
-    if not rows:
-        return
-    dialect = s.get_bind().dialect.name
-    if dialect == "sqlite":
-        from sqlalchemy.dialects.sqlite import insert
-    elif dialect == "postgresql":
-        from sqlalchemy.dialects.postgresql import insert
-    else:  # pragma: no cover
-        raise LedgerError(f"database dialect {dialect!r} is not supported")
-    s.execute(insert(model).values(rows).on_conflict_do_nothing())
-
-
 def write_results(s: Session, plan: RevisionPlan, revision_id: int,
                   payloads: dict[str, dict], fresh: set[str]) -> list[tuple[Check, Judged]]:
     """Write cache rows for ``fresh`` keys and one result per check, in the caller's

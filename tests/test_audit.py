@@ -504,3 +504,28 @@ def test_concurrent_writers_keep_one_chain(db_url):
     finally:
         a.close()
         b.close()
+
+
+@pytest.mark.parametrize("value, text_", [
+    (-0.0, "corner:K-,tau_m+"), (1e308, "é \"quoted\" \\ back"), (5, "\x0c form feed"),
+    (0.1 + 0.2, "\u2028 line sep"), (None, ""),
+])
+def test_result_row_hash_is_the_compact_json_of_its_fields(value, text_):
+    # Source: Python's json module (compact separators, ensure_ascii=False) and hashlib
+    from ledger.chain import RESULT_FIELDS
+
+    row = dict(revision_id=3, requirement_version_id=4, plant_version_id=5, verdict="pass",
+               value=value, headroom=value, headroom_fraction=None, worst_variant=text_,
+               pass_fraction=1, variants=10, reason=text_, metric_key="k" * 64,
+               engine_version="e-1", created_at=datetime(2026, 1, 2, 3, 4, 5, 6, timezone.utc))
+    vals = [row[f] for f in RESULT_FIELDS]
+    vals[4] = vals[5] = None if value is None else float(value)
+    vals[8] = 1.0  # a float column: an int stored there reads back as 1.0
+    vals[-1] = "2026-01-02 03:04:05.000006"
+    expect = hashlib.sha256(json.dumps(vals, separators=(",", ":"),
+                                       ensure_ascii=False).encode()).hexdigest()
+    assert result_row_hash(row) == expect
+    assert result_row_hash({**row, "value": float("nan")}) == result_row_hash(
+        {**row, "value": None})  # SQLite stores NaN as NULL
+    with pytest.raises(ValueError, match="infinite"):
+        result_row_hash({**row, "value": float("inf")})
