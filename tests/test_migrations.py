@@ -149,3 +149,30 @@ def test_upgrade_keeps_a_record_altered_before_it_named(tmp_path):
             ("record altered", "revision", 1)]
     finally:
         lg.close()
+
+
+def test_upgrade_drops_cache_rows_no_result_was_judged_from(tmp_path):
+    """Before 0005 two writers racing on one revision could leave a cached metric value no
+    result names; 0005 drops such rows (a cache: recomputed when needed) so the upgraded
+    ledger audits clean, and keeps every row a result was judged from."""
+    import sqlite3
+
+    from ledger.audit import audit
+
+    path = tmp_path / "old-0004.db"
+    shutil.copy(FIXTURES / "ledger-0004.db", path)
+    with sqlite3.connect(path) as db:
+        db.execute("INSERT INTO metric_value (key, metric, values_json, engine_version, "
+                   "created_at) VALUES ('orphan', 'phase_margin', '{}', 'engine-1', "
+                   "'2026-11-02 09:15:00.000000')")
+    db.close()
+    lg = open_ledger(path)
+    try:
+        rep = audit(lg)
+        assert rep.ok, rep.findings
+        assert rep.records["metric_value"] == 1
+    finally:
+        lg.close()
+    with sqlite3.connect(path) as db:
+        assert db.execute("SELECT key FROM metric_value").fetchall() == [("k1",)]
+    db.close()

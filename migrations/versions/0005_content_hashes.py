@@ -7,7 +7,8 @@ Create Date: 2026-12-02 10:30:00
 
 Back-fill, computed exactly as ``ledger.chain`` computes it:
 
-* every cached metric value gets its ``row_hash``;
+* every cached metric value gets its ``row_hash`` (a cache row no result was judged from is
+  dropped; it is recomputed when needed);
 * existing results are grouped into one ``result_batch`` per revision (time = the earliest of
   its results), and each gets its ``row_hash`` and ``batch_id``;
 * the chain is re-linked with the new link rule (the link's time stamp enters its hash); the
@@ -158,6 +159,11 @@ def _digest(row_hashes, metric_hashes) -> str:
 
 
 def _backfill_results(conn) -> None:
+    # a cache row no result was judged from (left by two writers racing on one revision
+    # before this schema) is dropped: it is recomputed when needed, and the audit names such
+    # rows from now on
+    conn.execute(_METRIC.delete().where(
+        _METRIC.c.key.not_in(sa.select(_RESULT.c.metric_key))))
     mv_hash = {}
     updates = []
     for row in conn.execute(sa.select(_METRIC)).mappings():
