@@ -123,9 +123,11 @@ def build_scale_ledger(path: Path, *, revisions: int, requirements: int,
     """Schema through ``open_ledger(create=True)``, plant/loop/requirements through the API,
     then revisions and results by ``executemany`` in one transaction.  Revisions form one
     lineage chain; requirement index 7 fails on the last ``failing_run`` revisions, every other
-    result passes.  Chain links are not written for the bulk revisions (the audit is not
-    part of this workload)."""
+    result passes.  Results carry their row hashes and one result batch per revision, as the
+    ledger writes them; chain links are not written for the bulk revisions and batches (the
+    audit is not part of this workload)."""
     from ledger.api import open_ledger
+    from ledger.chain import RESULT_FIELDS, batch_digest, result_row_hash, subjects_text
 
     for suffix in ("", "-wal", "-shm"):
         p = Path(str(path) + suffix)
@@ -168,22 +170,31 @@ def build_scale_ledger(path: Path, *, revisions: int, requirements: int,
             "controller_text, controller_canonical, content_hash, created_at) "
             "VALUES (?,?,?,?,?,?,?,?,?,?,?)", rev_rows)
         fail_from = revisions - failing_run + 1
-
-        def results():
-            for i in range(1, revisions + 1):
-                ts = stamp(i)
-                for k, (rv_id, lim) in enumerate(rvs):
-                    fails = k == 7 and i >= fail_from
-                    lim = lim or 1.0
-                    h = (-0.1 if fails else 0.05 + 0.5 * rng.random()) * abs(lim)
-                    yield (i, rv_id, pv_id, "fail" if fails else "pass", lim + h, h,
-                           h / abs(lim), "corner:K-,tau_m+", 0.0 if fails else 1.0, 1000, "",
-                           f"{rng.getrandbits(256):064x}", "engine-1", ts)
-        con.executemany(
-            "INSERT INTO result (revision_id, requirement_version_id, plant_version_id, verdict, "
-            "value, headroom, headroom_fraction, worst_variant, pass_fraction, variants, reason, "
-            "metric_key, engine_version, created_at) VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?,?)",
-            results())
+        # each revision's results are one batch, with row hashes as the ledger writes them
+        # (the synthetic metric keys name no cached metric value)
+        for i in range(1, revisions + 1):
+            ts = stamp(i)
+            rows, hashes, keys = [], [], {}
+            for k, (rv_id, lim) in enumerate(rvs):
+                fails = k == 7 and i >= fail_from
+                lim = lim or 1.0
+                h = (-0.1 if fails else 0.05 + 0.5 * rng.random()) * abs(lim)
+                row = (i, rv_id, pv_id, "fail" if fails else "pass", float(lim + h), h,
+                       h / abs(lim), "corner:K-,tau_m+", 0.0 if fails else 1.0, 1000, "",
+                       f"{rng.getrandbits(256):064x}", "engine-1", ts)
+                rh = result_row_hash(dict(zip(RESULT_FIELDS, row)))
+                hashes.append(rh)
+                keys[row[11]] = None
+                rows.append(row + (i, rh))
+            con.execute("INSERT INTO result_batch (id, revision_id, results, subjects, digest, "
+                        "created_at) VALUES (?,?,?,?,?,?)",
+                        (i, i, len(rows), subjects_text((rv, pv_id) for rv, _ in rvs),
+                         batch_digest(hashes, keys), ts))
+            con.executemany(
+                "INSERT INTO result (revision_id, requirement_version_id, plant_version_id, "
+                "verdict, value, headroom, headroom_fraction, worst_variant, pass_fraction, "
+                "variants, reason, metric_key, engine_version, created_at, batch_id, row_hash) "
+                "VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?)", rows)
         con.execute("COMMIT")
         t_bulk = time.perf_counter() - t1
         con.execute("PRAGMA wal_checkpoint(TRUNCATE)")

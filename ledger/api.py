@@ -28,6 +28,7 @@ from .errors import (
     NotFoundError,
     SpecError,
 )
+from .chain import append_link
 from .hashing import sha256_of
 from .records import LineageNode, LoopInfo, PlantInfo, RequirementInfo, ResultInfo, RevisionInfo
 from .store.db import is_sqlite, make_engine, resolve_url, session_scope
@@ -303,6 +304,7 @@ class Ledger:
             row = Plant(name=name, description=description or "", created_at=_now())
             s.add(row)
             s.flush()
+            append_link(s, "plant", row)
             number = 1
         else:
             latest = self._latest_plant_version(s, row.id)
@@ -313,6 +315,7 @@ class Ledger:
                           author=author or self.author, created_at=_now(), **fields)
         s.add(pv)
         s.flush()
+        append_link(s, "plant_version", pv)
         created = True
         return self._plant_info(s, row, pv), created
 
@@ -431,6 +434,7 @@ class Ledger:
                    **fields)
         s.add(row)
         s.flush()
+        append_link(s, "loop", row)
         return self._loop_info(s, row), True
 
     def add_loop(self, name: str, plant: str, *, kind: str = "position", sensor: str = "",
@@ -574,7 +578,6 @@ class Ledger:
             v.loops.append(RequirementLoop(loop_id=self._loop_row(s, ln).id))
         s.add(v)
         s.flush()
-        from .chain import append_link
         append_link(s, "requirement_version", v)
         return v
 
@@ -594,6 +597,7 @@ class Ledger:
             req = Requirement(key=key, created_at=_now())
             s.add(req)
             s.flush()
+            append_link(s, "requirement", req)
             v = self._write_req_version(s, req, 1, fields, author or self.author, note)
             return self._req_info(s, req, v), True
         if must_exist is False:
@@ -818,7 +822,6 @@ class Ledger:
                        created_at=created)
         s.add(row)
         s.flush()
-        from .chain import append_link
         append_link(s, "revision", row)
         return self._rev_info(s, row), True
 

@@ -136,8 +136,9 @@ def register(app, tools) -> None:
 
     @app.command("audit")
     def audit_cmd(as_json: bool = typer.Option(False, "--json", help="Print JSON.")):
-        """Recompute every record hash, the hash chain and every sign-off's matrix; exit 1 when
-        anything is wrong."""
+        """Recompute every record hash, the hash chain (time stamps included), every result's
+        and cached metric value's row hash and every sign-off's matrix; print what was covered
+        and name each finding; exit 1 when anything is wrong."""
         def body():
             from .audit import audit
 
@@ -148,8 +149,7 @@ def register(app, tools) -> None:
                                  "signoffs": rep.signoffs, "head": rep.head,
                                  "checked_at": rep.checked_at, "findings": list(rep.findings)})
             else:
-                recs = ", ".join(f"{v} {k}" for k, v in rep.records.items())
-                typer.echo(f"audit: {rep.links} chain link(s); {recs}")
+                typer.echo(f"audit covers: {rep.coverage()}")
                 typer.echo(f"  chain head {rep.head}")
                 for f in rep.findings:
                     typer.echo(f"  {f}")

@@ -9,8 +9,9 @@ sorted by (loop, revision) and cells by (loop, revision, requirement); its SHA-2
 baseline's ``matrix_hash``.
 
 A **sign-off** is a named approval (name, role, statement, time) bound to that hash and to the
-hash-chain head at the moment of signing.  Signing recomputes the matrix from the ledger as it
-is now and refuses unless it equals the frozen one, and refuses stale or unverified cells.  A
+hash-chain head at the moment of signing.  Signing recomputes the content hash of everything
+the baseline freezes (``ledger.audit.Checker.frozen``) and the matrix from the ledger as it is
+now, and refuses unless both agree with what was frozen; it refuses stale or unverified cells.  A
 signed baseline never changes; a newer baseline may supersede it (recorded, at most once).
 """
 
@@ -376,7 +377,10 @@ def sign_baseline(lg, name: str, *, signer: str, role: str, statement: str,
     ------
     IntegrityViolation
         A field is empty; the baseline is superseded; its stored entries do not match its
-        hash (run the audit); it holds stale or unverified cells; or the matrix recomputed from
+        hash; a record it freezes (revision, requirement version, plant version, their loops,
+        requirements and plants, the results of its revisions with their metric values), the
+        baseline itself or the hash chain no longer give their recomputed hashes (run the
+        audit); it holds stale or unverified cells; or the matrix recomputed from
         the ledger now differs from the frozen one.  Nothing is recorded.
     """
     for what, value in (("name", signer), ("role", role), ("statement", statement)):
@@ -394,6 +398,15 @@ def sign_baseline(lg, name: str, *, signer: str, role: str, statement: str,
             if matrix_hash(cols, cells) != b.matrix_hash:
                 raise IntegrityViolation(f"baseline {name!r}: stored entries do not match its "
                                          "matrix hash; run 'loopledger audit'")
+            from .audit import Checker
+
+            chk = Checker(s)  # recompute what the baseline freezes, not the stored hashes
+            chk.frozen(b.id)
+            if chk.findings:
+                more = f" and {len(chk.findings) - 1} more" if len(chk.findings) > 1 else ""
+                raise IntegrityViolation(
+                    f"baseline {name!r}: {chk.findings[0]}{more}; nothing signed, run "
+                    "'loopledger audit'")
             bad = [c for c in cells if c["verdict"] in UNSIGNABLE]
             if bad:
                 c = bad[0]

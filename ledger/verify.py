@@ -207,18 +207,18 @@ def rejudge_cached(s: Session, loop: Loop, keys: Iterable[str] | None = None) ->
         if todo:
             plans.append((plan, todo))
     cached = load_cached(s, {k for _, todo in plans for _, k in todo})
-    from .chain import lock
+    from .chain import append_results
 
-    lock(s)  # as write_results: results and sign-offs serialise
-    n, rows = 0, []
+    n = 0
     for plan, todo in plans:
         plan.checks = [c for c, k in todo if k in cached]
         if plan.checks:
-            rows += write_results(s, plan, plan.revision_id,
-                                  {k: cached[k] for _, k in todo if k in cached}, set(),
-                                  rows_only=True)
-            n += 1
-    _insert_ignore(s, Result, rows, many=True)
+            rows = write_results(s, plan, plan.revision_id,
+                                 {k: cached[k] for _, k in todo if k in cached}, set(),
+                                 rows_only=True)
+            # one chained batch per revision (the cache rows exist already)
+            if append_results(s, plan.revision_id, rows, []) is not None:
+                n += 1
     return n
 
 
@@ -360,40 +360,19 @@ def judge_payload(check: Check, payload: dict) -> Judged:
                   float(passing.mean()), n, "")
 
 
-def _insert_ignore(s: Session, model, rows: list[dict], *, many: bool = False) -> None:
-    """Insert rows, skipping any whose unique key already exists (another writer got there
-    first with the same content).  ``many``: as one executemany on the table (faster for
-    hundreds of rows than one multi-row VALUES statement)."""
-    if not rows:
-        return
-    dialect = s.get_bind().dialect.name
-    if dialect == "sqlite":
-        from sqlalchemy.dialects.sqlite import insert
-    elif dialect == "postgresql":
-        from sqlalchemy.dialects.postgresql import insert
-    else:  # pragma: no cover
-        raise LedgerError(f"database dialect {dialect!r} is not supported")
-    if many:
-        s.execute(insert(model.__table__).on_conflict_do_nothing(), rows)
-    else:
-        s.execute(insert(model).values(rows).on_conflict_do_nothing())
-
-
 def write_results(s: Session, plan: RevisionPlan, revision_id: int,
                   payloads: dict[str, dict], fresh: set[str], *,
                   rows_only: bool = False) -> list[tuple[Check, Judged]] | list[dict]:
     """Write cache rows for ``fresh`` keys and one result per check, in the caller's
-    transaction.  ``rows_only``: write nothing, return the result rows (for one insert of
-    many revisions' rows, see :func:`rejudge_cached`)."""
-    from .chain import lock
+    transaction.  ``rows_only``: write nothing, return the result rows (the caller writes them
+    through :func:`ledger.chain.append_results`, see :func:`rejudge_cached`)."""
+    from .chain import append_results
 
     now = datetime.now(timezone.utc)
     ev = engine_version()
-    if not rows_only:
-        lock(s)  # results and sign-offs serialise (a sign-off compares against live results)
-        _insert_ignore(s, MetricValue, [
-            {"key": k, "metric": payloads[k]["metric"], "values_json": json.dumps(payloads[k]),
-             "engine_version": ev, "created_at": now} for k in sorted(fresh)])
+    metric_rows = [
+        {"key": k, "metric": payloads[k]["metric"], "values_json": json.dumps(payloads[k]),
+         "engine_version": ev, "created_at": now} for k in sorted(fresh)]
     rows, out = [], []
     for c in plan.checks:
         k = plan.metric_key(c.metric, c.settings)
@@ -411,7 +390,9 @@ def write_results(s: Session, plan: RevisionPlan, revision_id: int,
         })
     if rows_only:
         return rows
-    _insert_ignore(s, Result, rows)
+    # one chained batch: row hashes, cache rows, skip of subjects another writer recorded
+    # first; serialised with sign-offs (a sign-off compares against live results)
+    append_results(s, revision_id, rows, metric_rows)
     return out
 
 

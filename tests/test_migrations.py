@@ -92,3 +92,87 @@ def test_light_head_check_agrees_with_alembic():
     script = ScriptDirectory.from_config(alembic_config("sqlite://"))
     assert head_revision() == script.get_current_head()
     assert known_revisions() == {r.revision for r in script.walk_revisions()}
+
+
+def test_upgrade_from_0004_relinks_the_chain_a_signoff_points_into(tmp_path):
+    """The 0004 fixture holds a baseline and a sign-off made by the loopledger of schema 0004;
+    0005 puts link time stamps inside the link hash, so it re-links the chain and moves the
+    sign-off's recorded head to the re-linked hash of the same link."""
+    import sqlite3
+
+    from ledger.audit import audit
+    from ledger.signoff import create_baseline, sign_baseline
+
+    path = tmp_path / "old-0004.db"
+    shutil.copy(FIXTURES / "ledger-0004.db", path)
+    with sqlite3.connect(path) as db:
+        (old_head,) = db.execute("SELECT chain_head FROM signoff").fetchone()
+        (head_seq,) = db.execute("SELECT seq FROM chain_link WHERE chain_hash = ?",
+                                 (old_head,)).fetchone()
+    lg = open_ledger(path, author="tester")
+    try:
+        assert lg.schema_action == "upgraded from 0004"
+        rep = audit(lg)
+        assert rep.ok, rep.findings
+        assert rep.records["result"] == 3 and rep.records["result_batch"] == 2
+        assert rep.records["signoff"] == 1 and rep.records["metric_value"] == 1
+        with sqlite3.connect(path) as db:
+            (new_head,) = db.execute("SELECT chain_head FROM signoff").fetchone()
+            (seq,) = db.execute("SELECT seq FROM chain_link WHERE chain_hash = ?",
+                                (new_head,)).fetchone()
+        assert new_head != old_head and seq == head_seq
+        # the content hashes the old baseline froze recompute; a new sign-off goes through
+        sign_baseline(lg, "B-0004", signer="B", role="reviewer", statement="still agreed")
+        create_baseline(lg, "B-0005", supersedes="B-0004")
+        sign_baseline(lg, "B-0005", signer="B", role="reviewer", statement="agreed")
+        assert audit(lg).ok
+    finally:
+        lg.close()
+
+
+def test_upgrade_keeps_a_record_altered_before_it_named(tmp_path):
+    """Record hashes already in links are kept by 0005: tampering done before the upgrade is
+    still named after it (the upgrade does not launder it)."""
+    import sqlite3
+
+    from ledger.audit import audit
+
+    path = tmp_path / "old-0004.db"
+    shutil.copy(FIXTURES / "ledger-0004.db", path)
+    with sqlite3.connect(path) as db:
+        db.execute("UPDATE revision SET rationale = 'tidied before the upgrade' WHERE id = 1")
+    db.close()
+    lg = open_ledger(path)
+    try:
+        rep = audit(lg)
+        assert [(f.problem, f.kind, f.record_id) for f in rep.findings] == [
+            ("record altered", "revision", 1)]
+    finally:
+        lg.close()
+
+
+def test_upgrade_drops_cache_rows_no_result_was_judged_from(tmp_path):
+    """Before 0005 two writers racing on one revision could leave a cached metric value no
+    result names; 0005 drops such rows (a cache: recomputed when needed) so the upgraded
+    ledger audits clean, and keeps every row a result was judged from."""
+    import sqlite3
+
+    from ledger.audit import audit
+
+    path = tmp_path / "old-0004.db"
+    shutil.copy(FIXTURES / "ledger-0004.db", path)
+    with sqlite3.connect(path) as db:
+        db.execute("INSERT INTO metric_value (key, metric, values_json, engine_version, "
+                   "created_at) VALUES ('orphan', 'phase_margin', '{}', 'engine-1', "
+                   "'2026-11-02 09:15:00.000000')")
+    db.close()
+    lg = open_ledger(path)
+    try:
+        rep = audit(lg)
+        assert rep.ok, rep.findings
+        assert rep.records["metric_value"] == 1
+    finally:
+        lg.close()
+    with sqlite3.connect(path) as db:
+        assert db.execute("SELECT key FROM metric_value").fetchall() == [("k1",)]
+    db.close()

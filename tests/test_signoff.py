@@ -183,19 +183,24 @@ def test_upgrade_from_0002_keeps_records_and_backfills_chain(tmp_path):
         assert lg.schema_action == "upgraded from 0002"
         with sqlite3.connect(path) as db:
             after = {t: db.execute(f"SELECT * FROM {t} ORDER BY 1").fetchall() for t in before}
-            links = db.execute("SELECT seq, kind, record_id, record_hash, prev_hash, chain_hash "
-                               "FROM chain_link ORDER BY seq").fetchall()
+            links = db.execute("SELECT seq, kind, record_id, record_hash, prev_hash, chain_hash, "
+                               "created_at FROM chain_link ORDER BY seq").fetchall()
         db.close()
-        assert after == before
+        # every old column keeps its value (0005 appends batch_id/row_hash columns)
+        assert {k: [r[:len(before[k][0])] for r in v] for k, v in after.items()} == before
         # every existing revision (2) and requirement version (3) got one link, oldest first
+        # (0003); then the plant, its version, the loop, both requirements and the two result
+        # batches 0005 made (one per revision), in order of creation
         assert [(k, r) for _, k, r, *_ in links] == [
             ("requirement_version", 1), ("requirement_version", 2), ("revision", 1),
-            ("revision", 2), ("requirement_version", 3)]
+            ("revision", 2), ("requirement_version", 3), ("plant", 1), ("plant_version", 1),
+            ("loop", 1), ("requirement", 1), ("requirement", 2), ("result_batch", 1),
+            ("result_batch", 2)]
         prev = GENESIS
-        for seq, kind, rid, rh, ph, ch in links:
+        for seq, kind, rid, rh, ph, ch, at in links:
             # Source: chain rule of docs/signoff.md, SHA-256 from Python's hashlib
             assert ph == prev
-            assert ch == hashlib.sha256(f"{ph}:{kind}:{rid}:{rh}".encode()).hexdigest()
+            assert ch == hashlib.sha256(f"{ph}:{kind}:{rid}:{rh}:{at}".encode()).hexdigest()
             prev = ch
         rep = audit(lg)  # the live record hashes agree with the migration's backfill
         assert rep.ok, rep.findings
@@ -208,7 +213,8 @@ def test_upgrade_from_0002_keeps_records_and_backfills_chain(tmp_path):
         sign_baseline(lg, "B1", signer="A", role="lead", statement="fail accepted for now")
         lg.add_revision("shaker-speed", "pi(kp=0.1, ki=1.1)", rationale="back off", verify=False)
         rep = audit(lg)
-        assert rep.ok and rep.links == 8
+        assert rep.ok and rep.links == 12 + 3  # a baseline, its sign-off, revision r3
+
     finally:
         lg.close()
 
@@ -226,3 +232,113 @@ def test_infinite_gain_margin_is_frozen_and_hashed(lg):
     assert b.matrix_hash == independent_matrix_hash(b)
     sign_baseline(lg, "B1", signer="A", role="lead", statement="ok")
     assert audit(lg).ok
+
+
+# -- sign-off recomputes what a baseline freezes (plain SQL edits behind the ledger's back) ----
+def _sql(lg, *statements: str) -> None:
+    engine = make_engine(lg.url)
+    with engine.begin() as conn:
+        for st in statements:
+            conn.execute(text(st))
+    engine.dispose()
+
+
+def _relink(lg, kind: str, table: str) -> None:
+    """What someone holding the code could do after an edit: recompute the edited record's
+    link and every link after it, so that the chain itself verifies again."""
+    from sqlalchemy.orm import Session
+
+    from ledger.chain import link_hash, record_hash
+    from ledger.store.models import ChainLink
+
+    engine = make_engine(lg.url)
+    with Session(engine) as s, s.begin():
+        rid = s.execute(text(f"SELECT min(id) FROM {table}")).scalar_one()
+        links = s.query(ChainLink).order_by(ChainLink.seq).all()
+        prev = GENESIS
+        for ln in links:
+            if ln.kind == kind and ln.record_id == rid:
+                ln.record_hash = record_hash(s, kind, rid)
+            ln.prev_hash = prev
+            ln.chain_hash = link_hash(prev, ln.kind, ln.record_id, ln.record_hash, ln.created_at)
+            prev = ln.chain_hash
+    engine.dispose()
+
+
+def _signoffs(lg) -> int:
+    engine = make_engine(lg.url)
+    with engine.connect() as conn:
+        n = conn.execute(text("SELECT count(*) FROM signoff")).scalar_one()
+    engine.dispose()
+    return n
+
+
+SIGN_TAMPER = {
+    "plant model text": ("UPDATE plant_version SET model_text = '2/(s*(s+1))'",
+                         r"plant_version 1 \(p v1\): content differs from chain link"),
+    "plant parameters": ("UPDATE plant_version SET parameters_json = '{\"K\": 2}'",
+                         r"plant_version 1 \(p v1\): content differs"),
+    "plant": ("UPDATE plant SET name = 'q'", r"record altered: plant 1 \(q\)"),
+    "loop": ("UPDATE loop SET output_delay = 0.2", r"record altered: loop 1 \(x\)"),
+    "controller": ("UPDATE revision SET controller_text = '40'",
+                   r"record altered: revision 1 \(x/r1\)"),
+    "requirement limit": ("UPDATE requirement_version SET limit_value = 1.0",
+                          r"record altered: requirement_version 1 \(X-1 v1\)"),
+    "metric value": ("UPDATE metric_value SET values_json = replace(values_json, '.', '0.')",
+                     r"record altered: metric_value \w+ \(phase_margin\)"),
+    "result": ("UPDATE result SET worst_variant = 'elsewhere'",
+               r"record altered: result 1 \(x/r1 X-1 v1 on p v1\)"),
+    "chain link time": ("UPDATE chain_link SET created_at = '2021-01-01 00:00:00' WHERE seq = 2",
+                        r"link altered: chain_link 2"),
+}
+
+
+@pytest.mark.parametrize("case", sorted(SIGN_TAMPER))
+def test_sign_refused_when_a_frozen_record_was_edited_by_sql(lg, case):
+    build_small(lg)
+    create_baseline(lg, "B1")
+    statement, message = SIGN_TAMPER[case]
+    _sql(lg, statement)
+    with pytest.raises(IntegrityViolation, match=rf"^baseline 'B1': .*{message}"):
+        sign_baseline(lg, "B1", signer="A", role="lead", statement="ok")
+    assert _signoffs(lg) == 0  # nothing signed
+
+
+def test_sign_refused_when_results_were_edited_to_pass_before_freezing(lg):
+    build_small(lg, k=40.0)  # PM of 40/(s(s+1)) is about 9 deg: fails >= 20 deg
+    assert [r.verdict for r in lg.results("x")] == ["fail"]
+    _sql(lg, "UPDATE result SET verdict = 'pass', value = 25.0, headroom = 5.0")
+    b = create_baseline(lg, "B1")  # the frozen copy carries the edited verdict...
+    assert b.counts() == {"pass": 1}
+    with pytest.raises(IntegrityViolation, match=r"record altered: result 1 \(x/r1 X-1 v1"):
+        sign_baseline(lg, "B1", signer="A", role="lead", statement="ok")  # ...sign-off refuses
+    assert _signoffs(lg) == 0
+    assert not audit(lg).ok
+
+
+def test_sign_recomputes_content_hashes_even_when_the_chain_was_rewritten(lg):
+    # parameters edited and the chain recomputed by someone holding the code, but the plant
+    # version's content hash (which the frozen matrix carries) left as frozen
+    build_small(lg)
+    create_baseline(lg, "B1")
+    _sql(lg, "UPDATE plant_version SET parameters_json = '{\"K\": 2}'")
+    _relink(lg, "plant_version", "plant_version")
+    with pytest.raises(IntegrityViolation,
+                       match=r"plant_version 1 \(p v1\): content hash does not match its model"):
+        sign_baseline(lg, "B1", signer="A", role="lead", statement="ok")
+    assert [f.detail for f in audit(lg).findings] == [
+        "content hash does not match its model and parameters"]
+
+
+def test_sign_reparses_frozen_model_text(lg):
+    # only the model text changed (canonical form and hashes kept), chain recomputed: the
+    # stored canonical form is no longer the text's
+    build_small(lg)
+    create_baseline(lg, "B1")
+    _sql(lg, "UPDATE plant_version SET model_text = '3/(s*(s+1))'")
+    _relink(lg, "plant_version", "plant_version")
+    assert audit(lg).ok  # the audit does not parse models (see docs/signoff.md)
+    with pytest.raises(IntegrityViolation,
+                       match=r"plant_version 1 \(p v1\): canonical form does not match its model"):
+        sign_baseline(lg, "B1", signer="A", role="lead", statement="ok")
+    assert _signoffs(lg) == 0

@@ -116,19 +116,18 @@ def test_improper_controller_is_refused_and_nothing_written(pm_ledger):
 def test_interrupted_write_leaves_no_half_result_set(pm_ledger, monkeypatch):
     lg = pm_ledger
     lg.add_revision("p", "gain(1)", rationale="unity gain", verify=False)
-    orig = V._insert_ignore
-    calls = {"n": 0}
+    import ledger.chain as C
 
-    def dying(s, model, rows):
-        orig(s, model, rows)
-        calls["n"] += 1
-        if model.__tablename__ == "result":
-            raise KeyboardInterrupt("killed after writing results into the transaction")
+    orig = C.append_results
 
-    monkeypatch.setattr(V, "_insert_ignore", dying)
+    def dying(s, revision_id, rows, metric_rows):
+        orig(s, revision_id, rows, metric_rows)
+        raise KeyboardInterrupt("killed after writing results into the transaction")
+
+    monkeypatch.setattr(C, "append_results", dying)
     with pytest.raises(KeyboardInterrupt):
         lg.verify()
-    monkeypatch.setattr(V, "_insert_ignore", orig)
+    monkeypatch.setattr(C, "append_results", orig)
     assert lg.results("p", "r1") == [] and lg.counts()["result"] == 0
     assert lg.counts()["metric_value"] == 0
     rep = lg.verify()

@@ -239,6 +239,12 @@ class Result(Base):
     metric_key: Mapped[str] = mapped_column(String(64), default="")
     engine_version: Mapped[str] = mapped_column(String(20))
     created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True))
+    #: the chained write batch this result was recorded in (migration 0005)
+    batch_id: Mapped[int] = mapped_column(
+        ForeignKey("result_batch.id", ondelete="RESTRICT"), index=True
+    )
+    #: SHA-256 of the row's content (``ledger.chain.result_row_hash``), recomputed by the audit
+    row_hash: Mapped[str] = mapped_column(String(64))
 
 
 class MetricValue(Base):
@@ -253,6 +259,8 @@ class MetricValue(Base):
     values_json: Mapped[str] = mapped_column(Text)
     engine_version: Mapped[str] = mapped_column(String(20))
     created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True))
+    #: SHA-256 of the row's content (``ledger.chain.metric_row_hash``; migration 0005)
+    row_hash: Mapped[str] = mapped_column(String(64))
 
 
 # -- baselines, sign-offs and the hash chain (migration 0003) ------------------------------
@@ -332,4 +340,26 @@ class ChainLink(Base):
     record_hash: Mapped[str] = mapped_column(String(64))
     prev_hash: Mapped[str] = mapped_column(String(64))
     chain_hash: Mapped[str] = mapped_column(String(64), unique=True)
+    created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True))
+
+
+# -- result batches (migration 0005) -------------------------------------------------------
+__all__ += ["ResultBatch"]
+
+
+class ResultBatch(Base):
+    """One write of results (a revision's verdicts written in one transaction), carried by the
+    hash chain.  ``subjects`` lists the ``requirement_version_id:plant_version_id`` of each
+    result written, sorted; ``digest`` is the SHA-256 over the results' row hashes and the
+    row hashes of the metric values they were judged from (``ledger.chain.batch_digest``)."""
+
+    __tablename__ = "result_batch"
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    revision_id: Mapped[int] = mapped_column(
+        ForeignKey("revision.id", ondelete="RESTRICT"), index=True
+    )
+    results: Mapped[int] = mapped_column(Integer)
+    subjects: Mapped[str] = mapped_column(Text)
+    digest: Mapped[str] = mapped_column(String(64))
     created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True))
