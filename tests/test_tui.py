@@ -402,3 +402,129 @@ def test_lineage_data_shows_the_latest_revisions_only(ledger, monkeypatch):
     assert [r.revision.label for r in d.loops["pos"]] == ["r2"]
     assert d.hidden["pos"] == 1
     assert d.loops["pos"][0].counts == ledger.verdict_counts("pos")["r2"]
+
+
+# -- the selection follows the cursor across loops (issue 10, item 3) --------------------------
+@pytest.fixture
+def two_loops(tmp_path):
+    """Loops ``pos`` (r1 K=1, r2 K=4) and ``vel`` (r1 K=1, r2 K=2, r3 K=4) on the plant of the
+    module docstring; PM-1 and OS-1 apply to both, so every value has a closed form."""
+    lg = open_ledger(tmp_path / "two.db", create=True, author="tester")
+    lg.add_plant("servo", "1/(s*(s+1))")
+    lg.add_loop("pos", "servo")
+    lg.add_loop("vel", "servo")
+    lg.add_requirement("PM-1", title="Phase margin", statement="PM at least 45 deg.",
+                       metric="phase_margin", limit=">= 45 deg", loops=["pos", "vel"])
+    lg.add_requirement("OS-1", title="Overshoot", statement="Step overshoot at most 25 %.",
+                       metric="overshoot", limit="<= 25 %", loops=["pos", "vel"])
+    for loop, gains in (("pos", (1, 4)), ("vel", (1, 2, 4))):
+        for i, k in enumerate(gains, 1):
+            lg.add_revision(loop, str(k), rationale=f"gain {k}", label=f"r{i}")
+    yield lg
+    lg.close()
+
+
+def _tree_rows(tree):
+    """The tree's node data in display order (every node is expanded)."""
+    out, stack = [], list(reversed(tree.root.children))
+    while stack:
+        n = stack.pop()
+        out.append(n.data)
+        stack.extend(reversed(n.children))
+    return out
+
+
+async def _cursor_to(pilot, tree, data):
+    rows = _tree_rows(tree)
+    now = rows.index(tree.cursor_node.data)
+    want = rows.index(data)
+    await press(pilot, *(["down"] * (want - now) if want > now else ["up"] * (now - want)))
+    assert tree.cursor_node.data == data
+
+
+async def test_selection_follows_cursor_across_loops(two_loops):
+    """Cursor on a revision of loop pos, then on loop vel's header: the plots, the diff and the
+    add-revision form all take vel and its tip r3 (not pos's r1, which vel also has)."""
+    from textual.widgets import Static, Tree
+
+    lg = two_loops
+    app = make_app(lg)
+    async with app.run_test(size=(120, 40)) as pilot:
+        await settle(pilot)
+        tree = app.screen.query_one(Tree)
+        await _cursor_to(pilot, tree, ("pos", "r1"))
+        assert app.selection == ("pos", "r1")
+        await _cursor_to(pilot, tree, ("vel", None))
+        assert app.selection == ("vel", "r3")  # the header selects the loop and its tip
+        detail = str(app.screen.query_one("#lineage-detail", Static).render())
+        assert "loop vel" in detail and "tip r3" in detail
+        # plots follow: vel/r3 has K = 4 (closed form of the module docstring)
+        await press(pilot, "5")
+        d = app.screen.plot_data
+        assert (d.loop, d.label) == ("vel", "r3")
+        np.testing.assert_allclose(d.phase_margin_deg, pm_of(4), rtol=1e-6)
+        # diff follows: vel r2 -> r3 (K 2 -> 4), PM 38.7 -> 28.0 deg by the closed forms
+        await press(pilot, "4")
+        cmp_ = app.screen.comparison
+        assert (app.screen._loop, cmp_.old.label, cmp_.new.label) == ("vel", "r2", "r3")
+        pm = next(c for c in cmp_.changes if c.requirement == "PM-1")
+        np.testing.assert_allclose(pm.value_delta, pm_of(4) - pm_of(2), rtol=1e-6)
+        # back on the lineage, the header again; `a` offers vel's tip, and saving records under it
+        await press(pilot, "1")
+        tree = app.screen.query_one(Tree)
+        await _cursor_to(pilot, tree, ("pos", "r1"))
+        await _cursor_to(pilot, tree, ("vel", None))
+        await press(pilot, "a")
+        form = app.screen
+        assert type(form).__name__ == "RevisionForm"
+        assert form.loop == "vel"
+        assert form.query_one("#form-parent").value == "r3"
+        assert "loop: vel" in str(form.query_one("#form-loop").render())
+        assert "tip of loop vel" in str(form.query_one("#form-parent-note").render())
+        await press(pilot, "2", "tab", "tab", "x", "ctrl+s")
+        await settle(pilot, rounds=6)
+        assert type(app.screen).__name__ == "MatrixScreen"
+    vel = lg.revisions("vel")
+    assert [r.label for r in vel] == ["r1", "r2", "r3", "r4"]
+    assert vel[-1].parent == "r3"                      # B's tip, not the r1 selected in A
+    assert [r.label for r in lg.revisions("pos")] == ["r1", "r2"]
+
+
+async def test_selection_revision_row_and_back_to_other_loop(two_loops):
+    """A revision row selects that revision (the form then says it starts a branch, the plots and
+    diff show it); moving to another loop's header selects that loop's tip."""
+    from textual.widgets import Tree
+
+    lg = two_loops
+    before = lg.counts()
+    app = make_app(lg)
+    async with app.run_test(size=(120, 40)) as pilot:
+        await settle(pilot)
+        tree = app.screen.query_one(Tree)
+        await _cursor_to(pilot, tree, ("vel", "r2"))
+        assert app.selection == ("vel", "r2")
+        await press(pilot, "5")
+        d = app.screen.plot_data
+        assert (d.loop, d.label) == ("vel", "r2")
+        np.testing.assert_allclose(d.phase_margin_deg, pm_of(2), rtol=1e-6)  # K = 2
+        await press(pilot, "4")
+        cmp_ = app.screen.comparison
+        assert (cmp_.old.label, cmp_.new.label) == ("r1", "r2")
+        await press(pilot, "a")
+        assert app.screen.query_one("#form-parent").value == "r2"
+        note = str(app.screen.query_one("#form-parent-note").render())
+        assert "not the tip (r3)" in note and "branch" in note
+        await press(pilot, "escape")
+        # to pos's header: pos and its tip r2 -- even though vel/r2 was selected before
+        await press(pilot, "1")
+        tree = app.screen.query_one(Tree)
+        await _cursor_to(pilot, tree, ("pos", None))
+        assert app.selection == ("pos", "r2")
+        await press(pilot, "4")
+        cmp_ = app.screen.comparison
+        assert (app.screen._loop, cmp_.old.label, cmp_.new.label) == ("pos", "r1", "r2")
+        await press(pilot, "5")
+        d = app.screen.plot_data
+        assert (d.loop, d.label) == ("pos", "r2")
+        np.testing.assert_allclose(d.phase_margin_deg, pm_of(4), rtol=1e-6)  # pos r2: K = 4
+    assert lg.counts() == before  # the cancelled form recorded nothing
