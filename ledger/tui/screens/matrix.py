@@ -196,13 +196,14 @@ class MatrixScreen(ViewScreen):
         status.append(f"columns: {'tips' if self.tips_only else 'all revisions'}   "
                       f"loop: {self.loop_filter or 'all'}   status: {self.status_filter or 'all'}"
                       f"   text: {self.text_filter or '-'}\n")
-        status.append(f"{len(rows)} of {len(d.rows)} requirement(s), {len(d.columns)} revision(s)",
-                      style="dim")
+        status.append(f"{len(rows)} of {len(d.rows)} requirement(s)", style="dim")
         if stop - first < len(d.columns):
             more = " and ".join(w for w, yes in (("left", first > 0),
                                                  ("right", stop < len(d.columns))) if yes)
-            status.append(f"   shown: revisions {first + 1}-{stop}, more to the {more}",
+            status.append(f"; revisions {first + 1}-{stop} of {len(d.columns)} shown, more {more}",
                           style="bold")
+        else:
+            status.append(f", {len(d.columns)} revision(s)", style="dim")
         self.query_one("#matrix-status", Static).update(status)
         if rows and stop > first:
             row = min(old.row, len(rows) - 1)
