@@ -127,6 +127,26 @@ def _param_specs(params: Mapping[str, Any] | None, *, what: str) -> dict:
     return out
 
 
+#: fields of a plant version that its content hash covers
+PLANT_HASH_FIELDS = ("canonical", "parameters_json", "fidelity_json", "samples", "seed",
+                     "sample_time", "input_unit", "output_unit")
+
+
+def plant_content_hash(fields: Mapping[str, Any]) -> str:
+    """Content hash of a plant version from its stored fields (a row or a dict).
+
+    ``parameters_json`` keeps the parameters in the order they were given (for display and
+    corner names); the hash reads it in canonical form (keys sorted), so the order does not
+    change the hash, and every version stored before the order was kept (stored sorted) has the
+    same hash as before.  The family's numbers do not depend on the order either (samples are
+    drawn in sorted name order), so the hash remains a valid cache key.
+    """
+    get = fields.get if hasattr(fields, "get") else (lambda k: getattr(fields, k))
+    f = {k: get(k) for k in PLANT_HASH_FIELDS}
+    f["parameters_json"] = json.dumps(json.loads(f["parameters_json"] or "{}"), sort_keys=True)
+    return sha256_of(f)
+
+
 class Ledger:
     """An open ledger.  Use :func:`open_ledger` to get one; close it (or use ``with``)."""
 
@@ -269,7 +289,9 @@ class Ledger:
         fields = dict(
             model_text=model,
             canonical=canonical,
-            parameters_json=json.dumps(_param_specs(params, what=what), sort_keys=True),
+            # in the order given (docs/models.md: corners name parameters in that order);
+            # the content hash reads it sorted (plant_content_hash)
+            parameters_json=json.dumps(_param_specs(params, what=what)),
             fidelity_json=json.dumps(fid, sort_keys=True),
             samples=samples,
             seed=int(seed or 0),
@@ -286,10 +308,7 @@ class Ledger:
                          sample_time=sample_time)
         except LedgerError as e:
             raise type(e)(f"{what}: {e}") from e
-        fields["content_hash"] = sha256_of(
-            {k: fields[k] for k in ("canonical", "parameters_json", "fidelity_json", "samples",
-                                    "seed", "sample_time", "input_unit", "output_unit")}
-        )
+        fields["content_hash"] = plant_content_hash(fields)
         return fields
 
     def _add_plant(self, s: Session, name: str, model: str, *, params=None, fidelity=None,

@@ -43,6 +43,9 @@ def register(app, tools) -> None:
             "default: each loop's tip."),
         every: bool = typer.Option(False, "--all", help="Every revision of the selected loops."),
         title: str = typer.Option("Verification matrix", "--title", help="Document title."),
+        stale_as_skipped: bool = typer.Option(
+            False, "--stale-as-skipped", help="JUnit only: write stale and unverified results "
+            "as skipped (the older behaviour) instead of failures 'stale, run verify'."),
     ):
         """Write the verification matrix (requirements x revisions, with verdicts, values,
         headroom and worst variants) as CSV, JSON, XLSX, an HTML report, JUnit XML or ReqIF."""
@@ -52,13 +55,16 @@ def register(app, tools) -> None:
             from .history.matrix import build_matrix
 
             f = format_for(path, fmt)
+            if stale_as_skipped and f != "junit":
+                raise LedgerError(f"--stale-as-skipped applies to the JUnit export only, not {f}")
             sel = _selection(loop, revision, every)
             with tools.open() as lg:
                 m = build_matrix(lg, sel, loop=loop, title=title)
                 if not m.columns:
                     raise LedgerError("nothing to export: no revisions match; record one or "
                                       "change --loop/--revision")
-                written = export_matrix(m, path, f, ledger=lg)
+                written = export_matrix(m, path, f, ledger=lg,
+                                        stale_as_skipped=stale_as_skipped)
             counts = m.counts()
             summary = ", ".join(f"{counts[v]} {v}" for v in VERDICT_ORDER if counts.get(v))
             cols = ", ".join(f"{c.loop}/{c.label}" for c in m.columns)

@@ -266,7 +266,8 @@ def dump_spec(ledger) -> dict:
     out["plant"] = [_drop_empty({
         "name": p.name, "model": p.model, "description": p.description,
         "input_unit": p.input_unit, "output_unit": p.output_unit, "sample_time": p.sample_time,
-        "samples": p.samples, "seed": p.seed, "params": p.params, "fidelity": p.fidelity,
+        "samples": p.samples, "seed": p.seed, "note": p.note, "params": p.params,
+        "fidelity": p.fidelity,
     }) for p in ledger.plants()]
     loops = ledger.loops()
     out["loop"] = [_drop_empty({

@@ -223,12 +223,14 @@ def rejudge_cached(s: Session, loop: Loop, keys: Iterable[str] | None = None) ->
 
 
 # -- numerics (no database) ------------------------------------------------------------------
-_FAMILIES: dict[str, object] = {}
+_FAMILIES: dict[tuple, object] = {}
 
 
 def family_for(plan: RevisionPlan):
-    """The plant family of the plan's plant version (memoised by content hash)."""
-    fam = _FAMILIES.get(plan.plant_hash)
+    """The plant family of the plan's plant version (memoised by content hash and parameter
+    order: the order names the corners)."""
+    memo = (plan.plant_hash, tuple(plan.plant_spec["params"]))
+    fam = _FAMILIES.get(memo)
     if fam is None:
         from .systems import build_family
 
@@ -237,7 +239,7 @@ def family_for(plan: RevisionPlan):
                            seed=p["seed"], fidelity=p["fidelity"], sample_time=p["sample_time"])
         if len(_FAMILIES) > 32:
             _FAMILIES.clear()
-        _FAMILIES[plan.plant_hash] = fam
+        _FAMILIES[memo] = fam
     return fam
 
 

@@ -164,6 +164,63 @@ def test_every_command_has_help_and_is_documented():
                 assert p.help, f"{name} option {p.opts} has no help"
 
 
+def _doc_sections(doc: str) -> dict:
+    """docs/cli.md sections by command: heading line (inside the backticks) and body text."""
+    out = {}
+    for m in re.finditer(r"^### `loopledger ([^`]*)`\n(.*?)(?=^#{2,3} |\Z)", doc, re.M | re.S):
+        head = m.group(1)
+        name = re.match(r"[a-z][a-z-]*(?: [a-z][a-z-]*)?", head).group(0)
+        out.setdefault(name, []).append((head, m.group(2)))
+    return out
+
+
+#: options the command line parser leaves optional but the command refuses to run without
+#: (checked below by running the command without each)
+REFUSED_WITHOUT = {"requirement add": (("--title", "t"), ("--statement", "s"))}
+
+
+def test_commands_refuse_to_run_without_these_options(tmp_path, monkeypatch):
+    monkeypatch.setenv("LOOPLEDGER_DB", str(tmp_path / "r.db"))
+    runner = CliRunner()
+    assert runner.invoke(app, ["init"]).exit_code == 0
+    for name, opts in REFUSED_WITHOUT.items():
+        for i, (opt, _) in enumerate(opts):
+            rest = [a for j, o in enumerate(opts) if j != i for a in o]
+            res = runner.invoke(app, [*name.split(), "X-1", *rest])
+            word = opt.lstrip("-")
+            assert res.exit_code == 1 and f"{word} is required" in res.output, (name, opt)
+
+
+def test_docs_name_every_required_option():
+    """Each required option is in the command's heading outside [...] or in a sentence of its
+    section that says "required" and names no optional option (`requirement add` needed
+    --title while the docs read "`--title`, `--statement` (required), `--rationale`, ...")."""
+    sections = _doc_sections((ROOT / "docs" / "cli.md").read_text())
+    for name, cmd in _all_commands():
+        extra = {o for o, _ in REFUSED_WITHOUT.get(name, ())}
+        required = [p for p in cmd.params if p.param_type_name == "option"
+                    and (p.required or set(p.opts) & extra)]
+        if not required:
+            continue
+        # the longest heading prefix that is this command ('requirement add', not 'requirement')
+        secs = [sec for key, v in sections.items() for sec in v
+                if sec[0] == name or sec[0].startswith(name + " ")]
+        assert secs, f"docs/cli.md has no section for 'loopledger {name}'"
+        must = {o for p in required for o in p.opts}
+        for p in required:
+            ok = False
+            for head, body in secs:
+                bare = re.sub(r"\[[^\]]*\]", "", head)
+                sentences = re.split(r"(?<=\.)\s+", " ".join(body.split()))
+                for t in sentences:
+                    named = set(re.findall(r"`(--[a-z][a-z-]*)", t))
+                    if "required" in t and named & set(p.opts) and named <= must:
+                        ok = True
+                if any(o in bare.split() for o in p.opts):
+                    ok = True
+            assert ok, f"docs/cli.md: 'loopledger {name}' does not say {p.opts[0]} is required"
+
+
 def test_revision_add_exit_on_broke(cli):
     # L = k/(s(s+1)): pm(1) = 51.8 deg, pm(2) = 38.7 deg (closed form, see test_verify.py)
     cli("plant", "add", "p", "1/(s*(s+1))")

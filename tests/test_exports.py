@@ -1,5 +1,6 @@
 """Exports of the verification matrix: CSV/JSON parsed back equal to the ledger's results, XLSX
-re-read with openpyxl, JUnit XML validated against tests/junit.xsd and counted, ReqIF parsed
+re-read with openpyxl, JUnit XML validated against tests/junit-10-rules.xsd and counted
+with junitparser, ReqIF parsed
 back with its IDs and relations, the HTML report's figures and caution, a headless-browser
 screenshot that is not blank, and the evidence curves against python-control."""
 
@@ -176,46 +177,142 @@ def _junit_counts(path):
                   "skipped": len(tree.findall(".//testcase/skipped"))}
 
 
-def test_junit_valid_and_counted(book, tmp_path):
+def _junit_schema():
     from lxml import etree
 
-    m = build_matrix(book, "all")
-    # one entry turned into an error, as a result that could not be computed reads
+    # Source: tests/junit-10-rules.xsd, written from the published rules of junit-10.xsd, the
+    # JUnit schema CI servers commonly validate against (origin named in that file)
+    return etree.XMLSchema(etree.parse(str(HERE / "junit-10-rules.xsd")))
+
+
+def _independent_counts(path):
+    """Counts read by junitparser, an independent JUnit reader: from the test cases' outcomes
+    and from the attributes it reads on every level."""
+    from junitparser import Error, Failure, JUnitXml, Skipped
+
+    doc = JUnitXml.fromfile(str(path))
+    suites = list(doc)
+    outcomes = [type(r) for s in suites for c in s for r in c.result]
+    per_case = {"tests": sum(1 for s in suites for _ in s),
+                "failures": outcomes.count(Failure), "errors": outcomes.count(Error),
+                "skipped": outcomes.count(Skipped)}
+    suite_attrs = {k: sum(getattr(s, k) for s in suites)
+                   for k in ("tests", "failures", "errors", "skipped")}
+    top = {"tests": doc.tests, "failures": doc.failures, "errors": doc.errors}
+    return doc, per_case, suite_attrs, top
+
+
+def _with_error(m):
+    """The matrix with one passing entry turned into an error, as a result that could not be
+    computed reads."""
     i = next(k for k, e in enumerate(m.entries) if e.verdict == "pass")
     e = m.entries[i]
     bad = dataclasses.replace(e.result, verdict="error", value=None, headroom=None,
                               reason="cannot compute on nominal: test")
-    m = dataclasses.replace(m, entries=m.entries[:i] + (dataclasses.replace(e, result=bad),)
-                            + m.entries[i + 1:])
+    return dataclasses.replace(m, entries=m.entries[:i] + (dataclasses.replace(e, result=bad),)
+                               + m.entries[i + 1:])
+
+
+def test_junit_valid_and_counted(book, tmp_path):
+    """Default: stale and unverified entries are failures ('stale, run verify'), so a CI gate
+    turns red; the file passes the published schema rules and an independent reader agrees
+    with the ledger's counts."""
+    m = _with_error(build_matrix(book, "all"))
     p = export_matrix(m, tmp_path / "m.xml")
-    # Source: tests/junit.xsd, the common JUnit XML layout CI servers read
-    schema = etree.XMLSchema(etree.parse(str(HERE / "junit.xsd")))
     tree, n = _junit_counts(p)
-    schema.assertValid(tree)
+    _junit_schema().assertValid(tree)
     c = m.counts()
-    assert n == {"tests": len(m.entries), "failures": c.get("fail", 0),
-                 "errors": c.get("error", 0),
-                 "skipped": c.get("stale", 0) + c.get("unverified", 0)}
-    root = tree.getroot()
-    assert {k: int(root.get(k)) for k in n} == n
+    # the book has a stale entry (pz/r1 PZ-3 after the edit) and an unverified column (sh/r1)
+    assert c.get("stale", 0) >= 1 and c.get("unverified", 0) >= 1
     assert c.get("error") == 1 and c.get("fail", 0) >= 1
+    want = {"tests": len(m.entries),
+            "failures": c.get("fail", 0) + c.get("stale", 0) + c.get("unverified", 0),
+            "errors": c.get("error", 0), "skipped": 0}
+    assert n == want
+    root = tree.getroot()
+    assert "skipped" not in root.attrib      # not an attribute of <testsuites> in the schema
+    assert {k: int(root.get(k)) for k in ("tests", "failures", "errors")} == {
+        k: want[k] for k in ("tests", "failures", "errors")}
+    doc, per_case, suite_attrs, top = _independent_counts(p)
+    assert per_case == want and suite_attrs == want
+    assert top == {k: want[k] for k in ("tests", "failures", "errors")}
+    # messages: value and limit for a fail, "stale/unverified, run verify" for the others
     for case in tree.findall(".//testcase"):
         f = case.find("failure")
-        if f is not None:
-            r = _results(book, case.get("classname"),
-                         case.getparent().get("name").split("/")[1])[case.get("name")]
+        col = case.getparent().get("name").split("/")[1]
+        r = _results(book, case.get("classname"), col).get(case.get("name"))
+        if f is None:
+            continue
+        if f.get("type") == "fail":
+            assert r.verdict == "fail"
             assert f"limit {r.limit_text}" in f.get("message")
             assert f"{r.value:.6g}" in f.get("message")
+        elif f.get("type") == "stale":
+            assert r.verdict == "stale" and f.get("message") == "stale, run verify"
+        else:
+            assert f.get("type") == "unverified" and r is None
+            assert f.get("message") == "unverified, run verify"
+    # property names never repeat across suites (a reader that merges every suite's properties
+    # into one table, xunitparser 1.3, asserts on a repeated name)
+    names = [p_.get("name") for p_ in tree.findall(".//property")]
+    assert len(names) == len(set(names)) and "caution" in names
 
 
-def test_junit_schema_catches_wrong_counts(tmp_path):
+def test_junit_stale_as_skipped(book, tmp_path):
+    """The option keeps the older mapping: stale and unverified as <skipped>."""
+    m = build_matrix(book, "all")
+    p = export_matrix(m, tmp_path / "m.xml", stale_as_skipped=True)
+    tree, n = _junit_counts(p)
+    _junit_schema().assertValid(tree)
+    c = m.counts()
+    want = {"tests": len(m.entries), "failures": c.get("fail", 0), "errors": c.get("error", 0),
+            "skipped": c.get("stale", 0) + c.get("unverified", 0)}
+    assert n == want and want["skipped"] >= 2
+    assert {s.get("message") for s in tree.findall(".//skipped")} == {
+        "stale, run verify", "unverified, run verify"}
+    _, per_case, suite_attrs, _ = _independent_counts(p)
+    assert per_case == want and suite_attrs == want
+    with pytest.raises(LedgerError, match="JUnit export only"):
+        export_matrix(m, tmp_path / "m.csv", stale_as_skipped=True)
+    assert not (tmp_path / "m.csv").exists()
+
+
+def test_junit_schema_catches_what_ci_servers_refuse(book, tmp_path):
+    """The schema must be able to fail: a suite without its required counts, and the older
+    export's ``skipped`` attribute on <testsuites>."""
     from lxml import etree
 
-    # the schema must be able to fail: a suite without its required counts
-    schema = etree.XMLSchema(etree.parse(str(HERE / "junit.xsd")))
-    doc = etree.fromstring(b"<testsuites><testsuite name='x'><testcase name='a' classname='b'>"
-                           b"<failure/><error/></testcase></testsuite></testsuites>")
+    schema = _junit_schema()
+    doc = etree.fromstring(b"<testsuites><testsuite name='x'><testcase name='a' classname='b'/>"
+                           b"</testsuite></testsuites>")
     assert not schema.validate(doc)
+    p = export_matrix(build_matrix(book, "tips"), tmp_path / "t.xml")
+    ok = etree.parse(str(p))
+    assert schema.validate(ok)
+    ok.getroot().set("skipped", "0")
+    assert not schema.validate(ok)
+
+
+def test_cli_export_junit_stale_option(book, tmp_path, monkeypatch):
+    from typer.testing import CliRunner
+
+    from ledger.cli import app
+
+    monkeypatch.setenv("LOOPLEDGER_DB", book.url)
+    c = build_matrix(book, "all").counts()
+    late = c.get("stale", 0) + c.get("unverified", 0)
+    assert late >= 2
+    for extra, want in (([], {"failures": c.get("fail", 0) + late, "skipped": 0}),
+                        (["--stale-as-skipped"], {"failures": c.get("fail", 0), "skipped": late})):
+        out = tmp_path / f"gate{len(extra)}.xml"
+        res = CliRunner().invoke(app, ["export-matrix", str(out), "--all", *extra])
+        assert res.exit_code == 0, res.output
+        _, n = _junit_counts(out)
+        assert {k: n[k] for k in want} == want
+    res = CliRunner().invoke(app, ["export-matrix", str(tmp_path / "x.csv"),
+                                   "--stale-as-skipped"])
+    assert res.exit_code == 1 and "JUnit export only" in res.output
+    assert not (tmp_path / "x.csv").exists()
 
 
 def test_reqif_ids_and_relations(book, tmp_path):

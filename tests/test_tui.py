@@ -272,11 +272,14 @@ async def test_add_revision_form_records_and_shows_verdicts(ledger):
         np.testing.assert_allclose(res["OS-1"].value, os_of(2), rtol=1e-6)
         assert {k: r.verdict for k, r in res.items()} == {
             "PM-1": "fail", "OS-1": "fail", "WC-1": "pass", "GM-1": "pass"}
-        table = app.screen.query_one(DataTable)
-        assert len(table.columns) == 4
-        assert table.cursor_column == 3  # the new column is selected
-        assert "✗ fail" in str(table.get_cell_at((2, 3)))
-        assert "BROKE" not in str(table.get_cell_at((2, 3)))  # r2 already failed PM-1
+        scr = app.screen
+        table = scr.query_one(DataTable)
+        assert len(scr._data.columns) == 3
+        assert scr.shown[1] == 3  # the window of whole columns reaches the new column ...
+        assert scr.selected()[1:] == ("pos", "r3")  # ... and the cursor is on it
+        col = table.cursor_column
+        assert "✗ fail" in str(table.get_cell_at((2, col)))
+        assert "BROKE" not in str(table.get_cell_at((2, col)))  # r2 already failed PM-1
 
 
 async def test_bad_model_text_shows_error_and_writes_nothing(ledger):
@@ -402,3 +405,220 @@ def test_lineage_data_shows_the_latest_revisions_only(ledger, monkeypatch):
     assert [r.revision.label for r in d.loops["pos"]] == ["r2"]
     assert d.hidden["pos"] == 1
     assert d.loops["pos"][0].counts == ledger.verdict_counts("pos")["r2"]
+
+
+# -- the selection follows the cursor across loops (issue 10, item 3) --------------------------
+@pytest.fixture
+def two_loops(tmp_path):
+    """Loops ``pos`` (r1 K=1, r2 K=4) and ``vel`` (r1 K=1, r2 K=2, r3 K=4) on the plant of the
+    module docstring; PM-1 and OS-1 apply to both, so every value has a closed form."""
+    lg = open_ledger(tmp_path / "two.db", create=True, author="tester")
+    lg.add_plant("servo", "1/(s*(s+1))")
+    lg.add_loop("pos", "servo")
+    lg.add_loop("vel", "servo")
+    lg.add_requirement("PM-1", title="Phase margin", statement="PM at least 45 deg.",
+                       metric="phase_margin", limit=">= 45 deg", loops=["pos", "vel"])
+    lg.add_requirement("OS-1", title="Overshoot", statement="Step overshoot at most 25 %.",
+                       metric="overshoot", limit="<= 25 %", loops=["pos", "vel"])
+    for loop, gains in (("pos", (1, 4)), ("vel", (1, 2, 4))):
+        for i, k in enumerate(gains, 1):
+            lg.add_revision(loop, str(k), rationale=f"gain {k}", label=f"r{i}")
+    yield lg
+    lg.close()
+
+
+def _tree_rows(tree):
+    """The tree's node data in display order (every node is expanded)."""
+    out, stack = [], list(reversed(tree.root.children))
+    while stack:
+        n = stack.pop()
+        out.append(n.data)
+        stack.extend(reversed(n.children))
+    return out
+
+
+async def _cursor_to(pilot, tree, data):
+    rows = _tree_rows(tree)
+    now = rows.index(tree.cursor_node.data)
+    want = rows.index(data)
+    await press(pilot, *(["down"] * (want - now) if want > now else ["up"] * (now - want)))
+    assert tree.cursor_node.data == data
+
+
+async def test_selection_follows_cursor_across_loops(two_loops):
+    """Cursor on a revision of loop pos, then on loop vel's header: the plots, the diff and the
+    add-revision form all take vel and its tip r3 (not pos's r1, which vel also has)."""
+    from textual.widgets import Static, Tree
+
+    lg = two_loops
+    app = make_app(lg)
+    async with app.run_test(size=(120, 40)) as pilot:
+        await settle(pilot)
+        tree = app.screen.query_one(Tree)
+        await _cursor_to(pilot, tree, ("pos", "r1"))
+        assert app.selection == ("pos", "r1")
+        await _cursor_to(pilot, tree, ("vel", None))
+        assert app.selection == ("vel", "r3")  # the header selects the loop and its tip
+        detail = str(app.screen.query_one("#lineage-detail", Static).render())
+        assert "loop vel" in detail and "tip r3" in detail
+        # plots follow: vel/r3 has K = 4 (closed form of the module docstring)
+        await press(pilot, "5")
+        d = app.screen.plot_data
+        assert (d.loop, d.label) == ("vel", "r3")
+        np.testing.assert_allclose(d.phase_margin_deg, pm_of(4), rtol=1e-6)
+        # diff follows: vel r2 -> r3 (K 2 -> 4), PM 38.7 -> 28.0 deg by the closed forms
+        await press(pilot, "4")
+        cmp_ = app.screen.comparison
+        assert (app.screen._loop, cmp_.old.label, cmp_.new.label) == ("vel", "r2", "r3")
+        pm = next(c for c in cmp_.changes if c.requirement == "PM-1")
+        np.testing.assert_allclose(pm.value_delta, pm_of(4) - pm_of(2), rtol=1e-6)
+        # back on the lineage, the header again; `a` offers vel's tip, and saving records under it
+        await press(pilot, "1")
+        tree = app.screen.query_one(Tree)
+        await _cursor_to(pilot, tree, ("pos", "r1"))
+        await _cursor_to(pilot, tree, ("vel", None))
+        await press(pilot, "a")
+        form = app.screen
+        assert type(form).__name__ == "RevisionForm"
+        assert form.loop == "vel"
+        assert form.query_one("#form-parent").value == "r3"
+        assert "loop: vel" in str(form.query_one("#form-loop").render())
+        assert "tip of loop vel" in str(form.query_one("#form-parent-note").render())
+        await press(pilot, "2", "tab", "tab", "x", "ctrl+s")
+        await settle(pilot, rounds=6)
+        assert type(app.screen).__name__ == "MatrixScreen"
+    vel = lg.revisions("vel")
+    assert [r.label for r in vel] == ["r1", "r2", "r3", "r4"]
+    assert vel[-1].parent == "r3"                      # B's tip, not the r1 selected in A
+    assert [r.label for r in lg.revisions("pos")] == ["r1", "r2"]
+
+
+async def test_selection_revision_row_and_back_to_other_loop(two_loops):
+    """A revision row selects that revision (the form then says it starts a branch, the plots and
+    diff show it); moving to another loop's header selects that loop's tip."""
+    from textual.widgets import Tree
+
+    lg = two_loops
+    before = lg.counts()
+    app = make_app(lg)
+    async with app.run_test(size=(120, 40)) as pilot:
+        await settle(pilot)
+        tree = app.screen.query_one(Tree)
+        await _cursor_to(pilot, tree, ("vel", "r2"))
+        assert app.selection == ("vel", "r2")
+        await press(pilot, "5")
+        d = app.screen.plot_data
+        assert (d.loop, d.label) == ("vel", "r2")
+        np.testing.assert_allclose(d.phase_margin_deg, pm_of(2), rtol=1e-6)  # K = 2
+        await press(pilot, "4")
+        cmp_ = app.screen.comparison
+        assert (cmp_.old.label, cmp_.new.label) == ("r1", "r2")
+        await press(pilot, "a")
+        assert app.screen.query_one("#form-parent").value == "r2"
+        note = str(app.screen.query_one("#form-parent-note").render())
+        assert "not the tip (r3)" in note and "branch" in note
+        await press(pilot, "escape")
+        # to pos's header: pos and its tip r2 -- even though vel/r2 was selected before
+        await press(pilot, "1")
+        tree = app.screen.query_one(Tree)
+        await _cursor_to(pilot, tree, ("pos", None))
+        assert app.selection == ("pos", "r2")
+        await press(pilot, "4")
+        cmp_ = app.screen.comparison
+        assert (app.screen._loop, cmp_.old.label, cmp_.new.label) == ("pos", "r1", "r2")
+        await press(pilot, "5")
+        d = app.screen.plot_data
+        assert (d.loop, d.label) == ("pos", "r2")
+        np.testing.assert_allclose(d.phase_margin_deg, pm_of(4), rtol=1e-6)  # pos r2: K = 4
+    assert lg.counts() == before  # the cancelled form recorded nothing
+
+
+# -- the matrix never shows a fragment of a cell (issue 10, item 3) ---------------------------
+#: gains of the revisions: K = 0.002222 gives the tiny crossover 0.00222 rad/s (closed form
+#: wc ~ K for K << 1), the value that used to show as "2222 [--]" when cut
+WIDE_GAINS = (1, 4, 0.002222, 2, 0.5, 3, 1.5, 0.8)
+
+
+@pytest.fixture
+def wide(tmp_path):
+    lg = open_ledger(tmp_path / "wide.db", create=True, author="tester")
+    lg.add_plant("servo", "1/(s*(s+1))")
+    lg.add_loop("remote-shaker", "servo")
+    lg.add_requirement("PM-1", title="Phase margin", statement="PM at least 45 deg.",
+                       metric="phase_margin", limit=">= 45 deg", loops=["remote-shaker"])
+    lg.add_requirement("WC-1", title="Crossover", statement="Crossover at least 1 rad/s.",
+                       metric="gain_crossover", limit=">= 1 rad/s", loops=["remote-shaker"])
+    lg.add_requirement("OS-1", title="Overshoot", statement="Overshoot at most 25 %.",
+                       metric="overshoot", limit="<= 25 %", loops=["remote-shaker"])
+    for i, k in enumerate(WIDE_GAINS, 1):
+        lg.add_revision("remote-shaker", repr(k), rationale=f"gain {k}", label=f"r{i}")
+    yield lg
+    lg.close()
+
+
+_GLYPHS = " ▌▐█▁▔▏▎▍▋▊▉━╸╺"
+
+
+def _check_whole_cells(screen: str, scr) -> set:
+    """Every table line on screen holds whole cells (or blanks) only; returns the column labels
+    seen.  Whole cell texts come from the data the view shows; a line with those (and the
+    requirement label) removed must be empty apart from blanks and scrollbar glyphs."""
+    from ledger.tui.widgets.verdict import cell_text
+
+    d = scr._data
+    headers = [f"{c.loop}/{c.label}" for c in d.columns]
+    lines = screen.replace("\xa0", " ").splitlines()  # the SVG writes blanks as no-break spaces
+    head = next(l for l in lines if l.strip().startswith("requirement"))
+    rest = head.replace("requirement", "", 1)
+    seen = set()
+    for h in sorted(headers, key=len, reverse=True):  # longest first: r1 is inside r10
+        if re.search(rf"(?<![\w/-]){re.escape(h)}(?![\w/-])", rest):
+            seen.add(h)
+            rest = re.sub(rf"(?<![\w/-]){re.escape(h)}(?![\w/-])", " ", rest, count=1)
+    assert not rest.strip(_GLYPHS), f"header fragment {rest.strip()!r} in {head!r}"
+    assert seen, head
+    for r in scr.visible_rows():
+        parent = f" ({r.parents[0]})" if r.parents else ""
+        label = f"{r.key}{parent} {r.limit_text}"
+        line = next(l for l in lines if l.strip().startswith(label))
+        rest = line.replace(label, "", 1)
+        cells = [cell_text(d.cells.get((r.key, c.loop, c.label)),
+                           applies=(r.key, c.loop, c.label) in d.cells,
+                           broke=(r.key, c.loop, c.label) in d.broke).plain for c in d.columns]
+        shown = [t for h, t in zip(headers, cells) if h in seen]
+        for t in shown:
+            assert t in rest, f"cell {t!r} of a shown column missing from {line!r}"
+            rest = rest.replace(t, " ", 1)
+        assert not rest.strip(_GLYPHS), f"fragment {rest.strip()!r} in {line!r}"
+    return seen
+
+
+@pytest.mark.parametrize("size", [(80, 24), (120, 40)])
+async def test_matrix_scrolls_sideways_by_whole_cells(wide, size):
+    from textual.widgets import DataTable
+
+    app = make_app(wide)
+    async with app.run_test(size=size) as pilot:
+        await settle(pilot)
+        await press(pilot, "2")
+        scr = app.screen
+        table = scr.query_one(DataTable)
+        # Source: closed form wc ~ K for K << 1 (|K/(jw(jw+1))| = 1): r3's tiny crossover
+        res3 = {r.requirement: r for r in wide.results("remote-shaker", "r3")}
+        np.testing.assert_allclose(res3["WC-1"].value, wc_of(0.002222), rtol=1e-6)
+        await press(pilot, "home")
+        seen_all, n = set(), len(WIDE_GAINS)
+        # right to the last column, then back to the first: every screen shows whole cells
+        for key in ["right"] * (n + 2) + ["left"] * (n + 2):
+            await press(pilot, key)
+            await _scroll_at_rest(pilot)
+            screen = _screen_text(app.export_screenshot())
+            seen = _check_whole_cells(screen, scr)
+            assert len(seen) == scr.shown[1] - scr.shown[0]
+            assert table.scroll_x == 0  # never scrolled by characters
+            seen_all |= seen
+            sel = scr.selected()
+            assert f"{sel[1]}/{sel[2]}" in seen  # the cursor's column is on screen
+        assert seen_all == {f"remote-shaker/r{i}" for i in range(1, n + 1)}
+        assert scr.shown[0] == 0 and scr.selected()[2] == "r1"
+        assert scr.shown[1] - scr.shown[0] < n  # the window really was narrower than the data

@@ -56,7 +56,8 @@ def format_for(path, fmt: str | None = None) -> str:
     return SUFFIXES[suffix]
 
 
-def export_matrix(matrix, path, fmt: str | None = None, *, ledger=None) -> Path:
+def export_matrix(matrix, path, fmt: str | None = None, *, ledger=None,
+                  stale_as_skipped: bool = False) -> Path:
     """Write ``matrix`` to ``path`` in one format.
 
     Parameters
@@ -69,13 +70,25 @@ def export_matrix(matrix, path, fmt: str | None = None, *, ledger=None) -> Path:
     ledger : Ledger, optional
         The ledger the matrix came from; required for ``html`` (the curves are rebuilt from
         the revisions).
+    stale_as_skipped : bool
+        JUnit only: write stale and unverified entries as ``<skipped>`` (the older behaviour)
+        instead of failures (the default).
 
     Returns
     -------
     Path
         Absolute path written.
+
+    Raises
+    ------
+    LedgerError
+        Unknown format, HTML without ``ledger``, or ``stale_as_skipped`` for another format.
     """
     f = format_for(path, fmt)
+    if stale_as_skipped and f != "junit":
+        raise LedgerError(f"stale_as_skipped applies to the JUnit export only, not {f}")
+    if f == "junit":
+        return export_junit(matrix, path, stale_as_skipped=stale_as_skipped)
     if f == "html":
         if ledger is None:
             raise LedgerError("the HTML report needs the ledger to draw its curves; pass "

@@ -1,20 +1,27 @@
 """JUnit XML export, so a CI job can gate on the verification matrix.
 
-Layout (the common JUnit XML structure that CI servers read)::
+Layout (the JUnit XML structure that CI servers commonly read, junit-10.xsd)::
 
-    <testsuites name tests failures errors skipped timestamp>
-      <properties><property name="caution" value="..."/></properties>   (on each suite)
-      <testsuite name="LOOP/REVISION" tests failures errors skipped timestamp>
+    <testsuites name tests failures errors time>
+      <testsuite name="LOOP/REVISION" tests failures errors skipped time timestamp>
+        <properties>
+          <property name="caution" value="..."/>                 (first suite only)
+          <property name="revision_hash LOOP/REVISION" value="..."/>
+        </properties>
         <testcase classname="LOOP" name="REQUIREMENT-ID" time="0">
           <failure message="value ... does not meet limit ..." type="fail">...</failure>
+          <failure message="stale, run verify" type="stale">...</failure>
           <error message="..." type="error">reason</error>
-          <skipped message="stale: ..."/>
         </testcase>
 
 One test case per (requirement, revision column); with the default selection (each loop's
 tip) that is one per (requirement, loop).  ``pass`` has no child, ``fail`` a ``<failure>``
-carrying value and limit, ``error`` an ``<error>`` with the reason, ``stale`` and
-``unverified`` a ``<skipped>``.
+carrying value and limit, ``error`` an ``<error>`` with the reason.  ``stale`` and
+``unverified`` are failures too (``type="stale"`` / ``"unverified"``), so that a gate turns
+red after a plant or requirement change until ``verify`` has run; ``stale_as_skipped=True``
+writes them as ``<skipped>`` instead (the older behaviour).  ``<testsuites>`` carries no
+``skipped`` count (the schema has none there), and property names never repeat across suites
+(some readers merge the properties of every suite into one table).
 """
 
 from __future__ import annotations
@@ -33,21 +40,30 @@ def _value_text(r) -> str:
     return f"{number_text(r.value, digits=6)}{unit}"
 
 
-def junit_tree(matrix):
-    """The JUnit XML document as an lxml element tree."""
+def junit_tree(matrix, *, stale_as_skipped: bool = False):
+    """The JUnit XML document as an lxml element tree.
+
+    Parameters
+    ----------
+    matrix : ledger.history.matrix.Matrix
+    stale_as_skipped : bool
+        Write stale and unverified entries as ``<skipped>`` rather than ``<failure>``.
+    """
     etree = require("lxml.etree")
 
     rows = matrix_rows(matrix)
     stamp = matrix.generated_at.replace(microsecond=0).isoformat()
     root = etree.Element("testsuites", name=matrix.title)
-    totals = {"tests": 0, "failures": 0, "errors": 0, "skipped": 0}
-    for col in matrix.columns:
+    totals = {"tests": 0, "failures": 0, "errors": 0}
+    for i, col in enumerate(matrix.columns):
         mine = [r for r in rows if r.loop == col.loop and r.revision == col.label]
         suite = etree.SubElement(root, "testsuite", name=f"{col.loop}/{col.label}",
                                  timestamp=stamp)
         props = etree.SubElement(suite, "properties")
-        etree.SubElement(props, "property", name="caution", value=matrix.caution)
-        etree.SubElement(props, "property", name="revision_hash", value=col.content_hash)
+        if i == 0:
+            etree.SubElement(props, "property", name="caution", value=matrix.caution)
+        etree.SubElement(props, "property", name=f"revision_hash {col.loop}/{col.label}",
+                         value=col.content_hash)
         n = {"tests": 0, "failures": 0, "errors": 0, "skipped": 0}
         for r in mine:
             n["tests"] += 1
@@ -69,13 +85,20 @@ def junit_tree(matrix):
                                      type="error")
                 e.text = detail
             elif r.verdict in ("stale", "unverified"):
-                n["skipped"] += 1
-                why = ("judged against an older requirement or plant version; re-verify"
-                       if r.verdict == "stale" else "never verified; run verify")
-                etree.SubElement(case, "skipped", message=f"{r.verdict}: {why}")
+                why = ("judged against an older requirement or plant version"
+                       if r.verdict == "stale" else "never verified against this requirement")
+                if stale_as_skipped:
+                    n["skipped"] += 1
+                    etree.SubElement(case, "skipped", message=f"{r.verdict}, run verify")
+                else:
+                    n["failures"] += 1
+                    f = etree.SubElement(case, "failure", message=f"{r.verdict}, run verify",
+                                         type=r.verdict)
+                    f.text = f"{detail} ({why})"
         for k, v in n.items():
             suite.set(k, str(v))
-            totals[k] += v
+            if k in totals:
+                totals[k] += v
         suite.set("time", "0")
     for k, v in totals.items():
         root.set(k, str(v))
@@ -84,17 +107,21 @@ def junit_tree(matrix):
     return etree.ElementTree(root)
 
 
-def export_junit(matrix, path) -> Path:
+def export_junit(matrix, path, *, stale_as_skipped: bool = False) -> Path:
     """Write the matrix as JUnit XML (UTF-8).
 
     Parameters
     ----------
     matrix : ledger.history.matrix.Matrix
     path : str or Path
+    stale_as_skipped : bool
+        Write stale and unverified entries as ``<skipped>`` (the older behaviour) instead of
+        failures ``stale, run verify`` / ``unverified, run verify`` (the default, so that a CI
+        gate fails until the matrix is verified again).
 
     Returns
     -------
     Path
     """
-    tree = junit_tree(matrix)
+    tree = junit_tree(matrix, stale_as_skipped=stale_as_skipped)
     return write_xml(tree, path)

@@ -181,7 +181,8 @@ def build_family(model: str | Model, params: Mapping[str, Any], *, corners: bool
         named like ``corner:J+,b-`` (``+`` high, ``-`` low; parameters in ``params`` order).
     samples : int
         Number of random samples ``sample:0001``, ... drawn with
-        ``numpy.random.default_rng(seed)``, parameter by parameter in ``params`` order.
+        ``numpy.random.default_rng(seed)``, parameter by parameter in sorted name order (so
+        the samples depend on the parameters, not on the order they are given in).
     seed : int
         Seed of the sample generator (same seed, same samples).
     fidelity : mapping of str to str, optional
@@ -239,7 +240,9 @@ def build_family(model: str | Model, params: Mapping[str, Any], *, corners: bool
     if samples:
         rng = np.random.default_rng(seed)
         drawn = {}
-        for n in varied:
+        # sorted order: the numbers depend only on the parameters (a plant's content hash reads
+        # them sorted too), while corner names keep the order given
+        for n in sorted(varied):
             s = specs[n]
             if s.distribution == "normal":
                 drawn[n] = np.clip(rng.normal(s.nominal, s.sigma, samples), s.low, s.high)

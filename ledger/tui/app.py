@@ -2,6 +2,10 @@
 
 Views are modes switched with the number keys; the selected loop, revision and requirement
 are shared through the app so that every view follows the same selection.
+
+The selection follows the cursor: a loop's header row in the lineage selects that loop and
+its tip, a revision row (or a matrix column) selects that revision.  The add-revision form,
+the plots and the diff read only this selection (:meth:`LedgerApp.select`).
 """
 
 from __future__ import annotations
@@ -55,6 +59,23 @@ class LedgerApp(App):
         self.current_label: str | None = None
         self.current_req: str | None = None
 
+    def select(self, loop: str | None, label: str | None) -> None:
+        """Make ``loop``/``label`` the selection every view follows.
+
+        ``label=None`` selects the loop's tip (none when the loop has no revision yet).
+        """
+        if loop is not None and label is None:
+            try:
+                label = self.lg.loop(loop).tip
+            except LookupError:
+                loop, label = None, None
+        self.current_loop, self.current_label = loop, label
+
+    @property
+    def selection(self) -> tuple[str | None, str | None]:
+        """The selected (loop, revision label)."""
+        return self.current_loop, self.current_label
+
     def action_view(self, name: str) -> None:
         if self.current_mode == name:
             self.screen.reload()
@@ -71,19 +92,21 @@ class LedgerApp(App):
             self.push_screen(HelpScreen())
 
     def action_add_revision(self) -> None:
-        loop = self.current_loop or next((l.name for l in self.lg.loops()), None)
+        loop, label = self.selection
+        if loop is None:
+            loop = next((l.name for l in self.lg.loops()), None)
+            label = None
         if loop is None:
             self.notify("add a loop first (loopledger loop add ...)", severity="error")
             return
-        tip = self.current_label if self.current_loop == loop else None
-        if tip is None:
-            tip = self.lg.loop(loop).tip
-        self.push_screen(RevisionForm(loop, tip), self._recorded)
+        tip = self.lg.loop(loop).tip
+        # the parent offered is the selected revision of the selected loop, else that loop's tip
+        self.push_screen(RevisionForm(loop, label or tip, tip=tip), self._recorded)
 
     def _recorded(self, rec: Recorded | None) -> None:
         if rec is None:
             return
-        self.current_loop, self.current_label = rec.loop, rec.label
+        self.select(rec.loop, rec.label)
         self.notify(f"recorded {rec.loop}/{rec.label} and verified it")
         self.action_view("matrix")
 

@@ -35,10 +35,12 @@ class RevisionRow:
 @dataclass(frozen=True)
 class LineageData:
     """Per loop name, the revisions in tree order (depth-first, children in recorded order);
-    ``hidden`` counts a loop's older revisions left out of the view."""
+    ``hidden`` counts a loop's older revisions left out of the view; ``tips`` names each
+    loop's tip (latest recorded revision, ``None`` before the first)."""
 
     loops: dict = field(default_factory=dict)
     hidden: dict = field(default_factory=dict)
+    tips: dict = field(default_factory=dict)
 
 
 #: deepest indentation of the lineage tree
@@ -48,8 +50,9 @@ MAX_SHOWN = 400
 
 
 def load_lineage(lg) -> LineageData:
-    loops, hidden = {}, {}
+    loops, hidden, tips = {}, {}, {}
     for lp in lg.loops():
+        tips[lp.name] = lp.tip
         revs = lg.revisions(lp.name)
         hidden[lp.name] = max(0, len(revs) - MAX_SHOWN)
         revs = revs[-MAX_SHOWN:]
@@ -70,7 +73,7 @@ def load_lineage(lg) -> LineageData:
             stack.extend((by_label[c], min(depth + 1, MAX_DEPTH)) for c in reversed(r.children)
                          if c in by_label)
         loops[lp.name] = tuple(rows)
-    return LineageData(loops, hidden)
+    return LineageData(loops, hidden, tips)
 
 
 @dataclass(frozen=True)

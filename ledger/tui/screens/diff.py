@@ -35,6 +35,7 @@ class DiffScreen(ViewScreen):
         self.new_label: str | None = None
         self.comparison = None
         self._loop = None
+        self._sel = (None, None)  # the app's selection this comparison was made for
         self._quiet = False
 
     def compose(self):
@@ -51,31 +52,36 @@ class DiffScreen(ViewScreen):
 
     def fetch(self):
         lg = self.app.lg
-        loop = self.app.current_loop or next((l.name for l in lg.loops()), None)
+        sel_loop, sel_label = self.app.selection
+        loop = sel_loop or next((l.name for l in lg.loops()), None)
         if loop is None:
             return None
         revs = lg.revisions(loop)
-        if loop != self._loop:
+        if (loop, sel_label) != self._sel:
+            # the selection moved (another loop, another revision): compare what is selected now,
+            # never a pick left over from an earlier selection
             self.old_label = self.new_label = None
-        new = self.new_label or (self.app.current_label if any(
-            r.label == self.app.current_label for r in revs) else (revs[-1].label if revs else None))
+        labels = {r.label for r in revs}
+        new = self.new_label or (sel_label if sel_label in labels
+                                 else (revs[-1].label if revs else None))
         if new is None:
-            return (loop, revs, None, None, None)
+            return (loop, sel_label, revs, None, None, None)
         parent = next(r.parent for r in revs if r.label == new)
-        old = self.old_label or parent
+        old = self.old_label if self.old_label in labels else parent
         if old is None or old == new:
-            return (loop, revs, old, new, None)
+            return (loop, sel_label, revs, old, new, None)
         from ...history.diff import diff
 
-        return (loop, revs, old, new, diff(lg, loop, new, old))
+        return (loop, sel_label, revs, old, new, diff(lg, loop, new, old))
 
     def present(self, data) -> None:
         body = self.query_one("#diff-body", Static)
         if data is None:
             body.update("No loops yet.")
             return
-        loop, revs, old, new, cmp_ = data
+        loop, sel_label, revs, old, new, cmp_ = data
         self._loop, self.old_label, self.new_label, self.comparison = loop, old, new, cmp_
+        self._sel = (loop, sel_label)
         opts = [(f"{loop}/{r.label}", r.label) for r in revs]
         self._quiet = True
         for sel_id, value in (("#diff-old", old), ("#diff-new", new)):
@@ -117,7 +123,9 @@ class DiffScreen(ViewScreen):
             self.old_label = event.value
         else:
             self.new_label = event.value
-            self.app.current_label = event.value
+            # picking the newer revision moves the shared selection (same loop)
+            self.app.current_loop, self.app.current_label = self._loop, event.value
+            self._sel = (self._loop, event.value)
         self.reload()
 
     def action_compare(self) -> None:

@@ -42,7 +42,8 @@ class LineageScreen(ViewScreen):
         tree = self.query_one(Tree)
         tree.clear()
         self._rows = {}
-        want = (self.app.current_loop, self.app.current_label)
+        self._tips = dict(data.tips)
+        want = self.app.selection
         target = None
         for lname, rows in data.loops.items():
             title = Text(f"loop {lname}", style="bold")
@@ -50,6 +51,8 @@ class LineageScreen(ViewScreen):
                 title.append(f"  (latest {len(rows)} revisions; {data.hidden[lname]} older ones "
                              f"in 'loopledger revision list {lname}')", style="dim")
             node = tree.root.add(title, data=(lname, None), expand=True)
+            if want == (lname, None):
+                target = node
             stack = [node]
             for row in rows:
                 r = row.revision
@@ -78,11 +81,18 @@ class LineageScreen(ViewScreen):
             box.update("No loops yet.")
             return
         lname, label = node.data
-        self.app.current_loop = lname
         if label is None:
-            box.update(Text(f"loop {lname}: pick a revision below it.", style="dim"))
+            # a loop's header row selects that loop and its tip, never a revision of another loop
+            tip = self._tips.get(lname)
+            self.app.current_loop, self.app.current_label = lname, tip
+            t = Text()
+            t.append(f"loop {lname}\n", style="bold")
+            t.append(f"selected: its tip {tip}\n" if tip else "no revision yet\n")
+            t.append("a: add a revision of this loop (parent: its tip); pick a revision below "
+                     "to branch from it or to plot and compare it.", style="dim")
+            box.update(t)
             return
-        self.app.current_label = label
+        self.app.current_loop, self.app.current_label = lname, label
         row = self._rows[(lname, label)]
         r = row.revision
         t = Text()

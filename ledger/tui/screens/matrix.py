@@ -1,4 +1,10 @@
-"""Matrix view: requirements (grouped by loop and trace parent) x revisions."""
+"""Matrix view: requirements (grouped by loop and trace parent) x revisions.
+
+The table never scrolls sideways by characters (that cut cells into misleading fragments such
+as ``2222 [--]`` for ``0.002222 [--]``): it shows the requirement column and as many whole
+revision columns as fit, and moving the cursor past either edge shifts that window by whole
+columns.
+"""
 
 from __future__ import annotations
 
@@ -16,6 +22,66 @@ __all__ = ["MatrixScreen"]
 
 STATUS_FILTERS = (None, "fail", "error", "stale", "pass", "unverified")
 
+#: narrowest requirement column when long requirement labels are shortened (with an ellipsis)
+MIN_REQ_WIDTH = 12
+
+
+def column_window(widths, first: int, avail: int, want: int | None = None) -> tuple[int, int]:
+    """Whole columns that fit: ``(first, stop)`` with ``widths[first:stop]`` summing to at most
+    ``avail`` (at least one column when there is any), shifted so that column ``want`` is in it.
+
+    Parameters
+    ----------
+    widths : sequence of int
+        Rendered width of each column in cells (padding included).
+    first : int
+        First column wanted at the left edge.
+    avail : int
+        Cells available for the columns.
+    want : int, optional
+        A column that must be inside the window (the cursor's).
+    """
+    n = len(widths)
+    if n == 0:
+        return 0, 0
+    first = min(max(first, 0), n - 1)
+    if want is not None:
+        want = min(max(want, 0), n - 1)
+        first = min(first, want)
+
+    def stop_from(f):
+        used, k = 0, f
+        while k < n and (k == f or used + widths[k] <= avail):
+            used += widths[k]
+            k += 1
+        return k
+
+    stop = stop_from(first)
+    while want is not None and want >= stop:
+        first += 1
+        stop = stop_from(first)
+    # fill a window that ends early (after shrinking or at the right end) from the left
+    while first > 0 and sum(widths[first - 1:stop]) <= avail:
+        first -= 1
+    return first, stop
+
+
+class MatrixTable(DataTable):
+    """The matrix's table: left/right past the shown columns shift the column window."""
+
+    def action_cursor_right(self) -> None:
+        scr = self.screen
+        if (self.cursor_column >= len(self.columns) - 1 and hasattr(scr, "shift_columns")
+                and scr.shift_columns(+1)):
+            return
+        super().action_cursor_right()
+
+    def action_cursor_left(self) -> None:
+        scr = self.screen
+        if self.cursor_column <= 1 and hasattr(scr, "shift_columns") and scr.shift_columns(-1):
+            return
+        super().action_cursor_left()
+
 
 class MatrixScreen(ViewScreen):
     """Verification matrix with filters by status, loop and text."""
@@ -29,6 +95,9 @@ class MatrixScreen(ViewScreen):
         self.text_filter = ""
         self.tips_only = False
         self._data = None
+        #: first revision column shown (index into the data's columns) and the shown range
+        self.first_col = 0
+        self.shown = (0, 0)
 
     def compose(self):
         header, footer = self.header_footer()
@@ -36,7 +105,8 @@ class MatrixScreen(ViewScreen):
         yield Input(placeholder="filter: requirement ID, title or statement text (/ to edit)",
                     id="matrix-filter")
         yield Static("", id="matrix-status")
-        yield DataTable(id="matrix-table", zebra_stripes=True, cursor_type="cell", fixed_columns=1)
+        yield MatrixTable(id="matrix-table", zebra_stripes=True, cursor_type="cell",
+                          fixed_columns=1)
         yield Static("", id="matrix-legend")
         yield footer
 
@@ -72,45 +142,93 @@ class MatrixScreen(ViewScreen):
             rows.append(r)
         return rows
 
-    def _fill(self) -> None:
+    def _available_width(self, table) -> int:
+        width = table.size.width or self.app.size.width
+        # room for a vertical scrollbar whether or not it shows, so no column is ever cut
+        return max(1, width - table.styles.scrollbar_size_vertical)
+
+    def _fill(self, *, want_col: int | None = None) -> None:
         d = self._data
+        if d is None:
+            return
         table = self.query_one(DataTable)
         old = table.cursor_coordinate
-        table.clear(columns=True)
+        old_data_col = self.shown[0] + old.column - 1 if old.column >= 1 else None
         rows = self.visible_rows()
-        grid = []
+        req_cells = []
         for r in rows:
             parent = f" ({r.parents[0]})" if r.parents else ""
-            cells = [Text(f"{r.key}{parent} {r.limit_text}")]
+            req_cells.append(Text(f"{r.key}{parent} {r.limit_text}"))
+        grid = []  # revision cells per row, every column
+        for r in rows:
+            cells = []
             for c in d.columns:
                 applies = (r.key, c.loop, c.label) in d.cells
                 res = d.cells.get((r.key, c.loop, c.label))
                 cells.append(cell_text(res, applies=applies,
                                        broke=(r.key, c.loop, c.label) in d.broke))
             grid.append(cells)
+        headers = [f"{c.loop}/{c.label}" for c in d.columns]
         # explicit widths from the content: the table lays out once, the same way every time
-        headers = ["requirement"] + [f"{c.loop}/{c.label}" for c in d.columns]
-        keys = ["req"] + [f"{c.loop}/{c.label}" for c in d.columns]
-        for j, (head, key) in enumerate(zip(headers, keys)):
-            width = max([len(head)] + [row[j].cell_len for row in grid])
-            table.add_column(head, key=key, width=width)
-        for r, cells in zip(rows, grid):
-            table.add_row(*cells, key=r.key)
+        widths = [max([len(h)] + [row[j].cell_len for row in grid]) for j, h in enumerate(headers)]
+        pad = 2 * table.cell_padding
+        avail = self._available_width(table)
+        req_w = max([len("requirement")] + [t.cell_len for t in req_cells])
+        widest = max(widths, default=0) + pad
+        req_w = min(req_w, max(MIN_REQ_WIDTH, avail - widest - pad))
+        for t in req_cells:
+            t.truncate(req_w, overflow="ellipsis")
+        # which revision column the cursor should be on: the app's selection, else where it was
+        if want_col is None:
+            want = self.app.selection
+            want_col = next((i for i, c in enumerate(d.columns) if (c.loop, c.label) == want),
+                            old_data_col)
+        first, stop = column_window([w + pad for w in widths], self.first_col,
+                                    avail - req_w - pad, want_col)
+        self.first_col, self.shown = first, (first, stop)
+        table.clear(columns=True)
+        table.add_column("requirement", key="req", width=req_w)
+        for j in range(first, stop):
+            table.add_column(headers[j], key=headers[j], width=widths[j])
+        for r, req_cell, cells in zip(rows, req_cells, grid):
+            table.add_row(req_cell, *cells[first:stop], key=r.key)
         status = Text()
         status.append(f"columns: {'tips' if self.tips_only else 'all revisions'}   "
                       f"loop: {self.loop_filter or 'all'}   status: {self.status_filter or 'all'}"
-                      f"   text: {self.text_filter or '-'}   ")
-        status.append(f"{len(rows)} of {len(d.rows)} requirement(s), {len(d.columns)} revision(s)",
-                      style="dim")
+                      f"   text: {self.text_filter or '-'}\n")
+        status.append(f"{len(rows)} of {len(d.rows)} requirement(s)", style="dim")
+        if stop - first < len(d.columns):
+            more = " and ".join(w for w, yes in (("left", first > 0),
+                                                 ("right", stop < len(d.columns))) if yes)
+            status.append(f"; revisions {first + 1}-{stop} of {len(d.columns)} shown, more {more}",
+                          style="bold")
+        else:
+            status.append(f", {len(d.columns)} revision(s)", style="dim")
         self.query_one("#matrix-status", Static).update(status)
-        if rows:
+        if rows and stop > first:
             row = min(old.row, len(rows) - 1)
-            col = old.column
-            want = (self.app.current_loop, self.app.current_label)
-            for i, c in enumerate(d.columns):
-                if (c.loop, c.label) == want:
-                    col = i + 1
-            table.move_cursor(row=row, column=min(max(col, 1), len(d.columns)))
+            col = (want_col - first + 1) if want_col is not None and first <= want_col < stop else 1
+            table.move_cursor(row=row, column=col)
+
+    def shift_columns(self, step: int) -> bool:
+        """Move the column window by one whole column (the cursor stays on the edge column);
+        False when there is nothing more that way."""
+        d = self._data
+        if d is None:
+            return False
+        first, stop = self.shown
+        if step > 0 and stop < len(d.columns):
+            self._fill(want_col=stop)
+            return True
+        if step < 0 and first > 0:
+            self.first_col = first - 1
+            self._fill(want_col=first - 1)
+            return True
+        return False
+
+    def on_resize(self, event) -> None:
+        if self._data is not None:
+            self.call_after_refresh(self._fill)
 
     # -- actions ------------------------------------------------------------------------
     def action_focus_filter(self) -> None:
@@ -149,7 +267,8 @@ class MatrixScreen(ViewScreen):
             return None
         coord = table.cursor_coordinate
         key = table.coordinate_to_cell_key(coord).row_key.value
-        col = self._data.columns[max(coord.column, 1) - 1] if self._data.columns else None
+        j = self.shown[0] + max(coord.column, 1) - 1
+        col = self._data.columns[j] if j < min(self.shown[1], len(self._data.columns)) else None
         return key, (col.loop if col else None), (col.label if col else None)
 
     def on_data_table_cell_highlighted(self, event: DataTable.CellHighlighted) -> None:

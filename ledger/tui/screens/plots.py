@@ -42,10 +42,12 @@ class PlotsScreen(ViewScreen):
         from ..plotdata import load_plot_data, worst_variant
 
         lg = self.app.lg
-        loop = self.app.current_loop or next((l.name for l in lg.loops()), None)
+        sel_loop, sel_label = self.app.selection
+        loop = sel_loop or next((l.name for l in lg.loops()), None)
         if loop is None:
             return None
-        rev = lg.revision(loop, self.app.current_label if self.app.current_loop == loop else None)
+        # the selected revision of the selected loop; its tip when the selection names none
+        rev = lg.revision(loop, sel_label if sel_loop == loop else None)
         variant = worst_variant(lg.results(loop, rev.label)) if self.use_worst else "nominal"
         return load_plot_data(lg, loop, rev.label, variant=variant)
 

@@ -23,24 +23,47 @@ class Recorded:
     label: str
 
 
+def parent_note(loop: str, parent: str | None, tip: str | None) -> str:
+    """One line saying where the new revision goes: after the tip, on a branch, or as a root."""
+    if not parent:
+        return (f"no parent: starts a new root of loop {loop}"
+                + (f" (its tip is {tip})" if tip else ""))
+    if parent == tip:
+        return f"parent {loop}/{parent}: the tip of loop {loop}"
+    return f"parent {loop}/{parent} is not the tip ({tip or 'none'}): this starts a branch"
+
+
 class RevisionForm(ModalScreen[Recorded | None]):
-    """Controller text, parent and rationale for a new revision of ``loop``."""
+    """Controller text, parent and rationale for a new revision of ``loop``.
+
+    Parameters
+    ----------
+    loop : str
+        Loop the revision is recorded under (shown in the title).
+    parent : str or None
+        Parent offered in the form (the selected revision, else the loop's tip).
+    tip : str or None
+        The loop's tip, so that the form says when the parent starts a branch.
+    """
 
     BINDINGS = bindings.FORM
 
-    def __init__(self, loop: str, parent: str | None):
+    def __init__(self, loop: str, parent: str | None, *, tip: str | None = None):
         super().__init__()
         self.loop = loop
         self.parent_label = parent
+        self.tip = tip
         self.busy = False
 
     def compose(self):
         with Vertical(id="form"):
             yield Label(f"New revision of loop {self.loop}", id="form-title")
+            yield Label(f"loop: {self.loop}   tip: {self.tip or 'none yet'}", id="form-loop")
             yield Label("controller (model text)")
             yield Input(placeholder="e.g. pid(kp=0.4, ki=4, kd=0.006, tf=0.0008)", id="form-controller")
-            yield Label("parent revision (empty: new root)")
+            yield Label(f"parent revision of loop {self.loop} (empty: new root)")
             yield Input(self.parent_label or "", id="form-parent")
+            yield Static(parent_note(self.loop, self.parent_label, self.tip), id="form-parent-note")
             yield Label("rationale: why this change")
             yield Input(placeholder="required", id="form-rationale")
             yield Static("", id="form-error")
@@ -58,6 +81,11 @@ class RevisionForm(ModalScreen[Recorded | None]):
             self.action_submit()
         else:
             self.action_cancel()
+
+    def on_input_changed(self, event: Input.Changed) -> None:
+        if event.input.id == "form-parent":
+            self.query_one("#form-parent-note", Static).update(
+                parent_note(self.loop, event.value.strip() or None, self.tip))
 
     def on_input_submitted(self, event: Input.Submitted) -> None:
         self.focus_next()
