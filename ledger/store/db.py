@@ -7,6 +7,7 @@ and then overwrite, losing updates; an immediate write lock serialises them inst
 
 from __future__ import annotations
 
+import json
 import os
 import re
 from contextlib import contextmanager
@@ -207,11 +208,16 @@ def session_scope(factory: sessionmaker, url: str | None = None) -> Iterator[Ses
                           f"{driver_message(e, url)}") from e
     except (ValueError, OverflowError) as e:
         session.rollback()
-        if isinstance(e, LedgerError) or not _raised_reading_rows(e):
+        if isinstance(e, LedgerError):
+            raise
+        if isinstance(e, json.JSONDecodeError):  # stored JSON fields are only written by us
+            raise SchemaError(f"ledger damaged: a stored JSON field is not valid JSON "
+                              f"({e.msg} at character {e.pos}); restore it from a backup") from e
+        if not _raised_reading_rows(e):
             raise
         raise SchemaError(f"ledger damaged: a stored value cannot be read "
-                          f"({type(e).__name__}: {_short_reason(e)}); run 'loopledger audit' "
-                          "and restore from a backup") from e
+                          f"({type(e).__name__}: {_short_reason(e)}); restore it from a "
+                          "backup") from e
     except BaseException:
         session.rollback()
         raise
@@ -228,12 +234,9 @@ def _short_reason(e: BaseException) -> str:
 def _raised_reading_rows(e: BaseException) -> bool:
     """True when ``e`` came out of SQLAlchemy or the driver turning stored bytes into values
     (the innermost Python frame belongs to SQLAlchemy), not out of loopledger's own code."""
-    import sqlalchemy
-
-    root = os.path.dirname(sqlalchemy.__file__)
     tb = e.__traceback__
-    last = None
-    while tb is not None:
-        last = tb.tb_frame.f_code.co_filename
+    last = ""
+    while tb is not None:  # compiled (Cython) frames carry their module's globals too
+        last = str(tb.tb_frame.f_globals.get("__name__", ""))
         tb = tb.tb_next
-    return last is not None and os.path.abspath(last).startswith(root + os.sep)
+    return last == "sqlalchemy" or last.startswith("sqlalchemy.")
