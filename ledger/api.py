@@ -31,7 +31,7 @@ from .errors import (
 from .chain import append_link
 from .hashing import sha256_of
 from .records import LineageNode, LoopInfo, PlantInfo, RequirementInfo, ResultInfo, RevisionInfo
-from .store.db import is_sqlite, make_engine, resolve_url, session_scope
+from .store.db import display_url, is_sqlite, make_engine, resolve_url, scrub_secret, session_scope
 from .store.migrate import ensure_schema
 from .store.models import (
     Loop,
@@ -164,6 +164,11 @@ class Ledger:
         #: number of (metric, settings) requests the engine evaluated through this object
         self.kernel_requests = 0
 
+    @property
+    def display_url(self) -> str:
+        """:attr:`url` fit to print or store in an export: the password masked."""
+        return display_url(self.url)
+
     # -- plumbing -------------------------------------------------------------------------
     def close(self) -> None:
         self._engine.dispose()
@@ -177,11 +182,11 @@ class Ledger:
 
     def transaction(self):
         """A session context manager: one write transaction, committed on success."""
-        return session_scope(self._sessions)
+        return session_scope(self._sessions, self.url)
 
     def reading(self):
         """A session context manager for reads: one consistent snapshot, no write lock."""
-        return session_scope(self._read_sessions)
+        return session_scope(self._read_sessions, self.url)
 
     #: how many times a write may be retried when the database is busy (bounded)
     WRITE_RETRIES = 5
@@ -1292,7 +1297,13 @@ def open_ledger(target: str | os.PathLike | None = None, *, create: bool = False
     ledger from a newer loopledger, or a file that is not a ledger, is refused.
     """
     url = resolve_url(target)
-    action = ensure_schema(url, create=create)
-    ledger = Ledger(url, author=author)
+    try:
+        action = ensure_schema(url, create=create)
+        ledger = Ledger(url, author=author)
+    except LedgerError as e:
+        masked = scrub_secret(str(e), url)
+        if masked == str(e):
+            raise
+        raise SchemaError(masked) from None  # the cause would carry the password
     ledger.schema_action = action
     return ledger

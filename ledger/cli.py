@@ -37,7 +37,7 @@ app.add_typer(loop_app, name="loop")
 app.add_typer(req_app, name="requirement")
 app.add_typer(rev_app, name="revision")
 
-_state: dict = {"db": None, "author": None}
+_state: dict = {"db": None, "author": None, "init": None}
 
 
 @app.callback()
@@ -60,8 +60,20 @@ def _open(create: bool = False):
     return open_ledger(_state["db"], create=create, author=_state["author"])
 
 
+def _masked(msg: str) -> str:
+    """``msg`` with the password of every database named on this run masked."""
+    import os
+
+    from .store.db import scrub_secret
+
+    for target in (_state.get("init"), _state["db"], os.environ.get("LOOPLEDGER_DB")):
+        if target:
+            msg = scrub_secret(msg, str(target))
+    return scrub_secret(msg, None)
+
+
 def _fail(msg: str) -> None:
-    typer.echo(f"error: {msg}", err=True)
+    typer.echo(f"error: {_masked(msg)}", err=True)
     raise typer.Exit(1)
 
 
@@ -152,7 +164,7 @@ def run(fn):
     except Exception as e:  # noqa: BLE001 - last resort: one line, not a traceback
         if os.environ.get("LOOPLEDGER_DEBUG"):
             raise
-        typer.echo(f"error: internal error ({type(e).__name__}: {e}); nothing of the failed "
+        typer.echo(f"error: internal error ({type(e).__name__}: {_masked(str(e))}); nothing of the failed "
                    "step was written; rerun with LOOPLEDGER_DEBUG=1 for details and report it",
                    err=True)
         raise typer.Exit(2) from e
@@ -165,8 +177,9 @@ def init_cmd(path: Optional[str] = typer.Argument(None, help="Ledger file or URL
     def body():
         from .api import open_ledger
 
+        _state["init"] = path
         with open_ledger(path or _state["db"], create=True) as lg:
-            typer.echo(f"ledger {lg.schema_action}: {lg.url}")
+            typer.echo(f"ledger {lg.schema_action}: {lg.display_url}")
     run(body)
 
 

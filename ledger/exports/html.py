@@ -171,7 +171,7 @@ def render_html(matrix, lg) -> str:
            f"<title>{_e(matrix.title)}</title>", f"<style>{_CSS}</style></head><body>",
            f"<h1>{_e(matrix.title)}</h1>",
            f"<p class='meta'>Generated {_e(matrix.generated_at.isoformat(timespec='seconds'))}"
-           f" from {_e(getattr(lg, 'url', ''))}. {len(matrix.columns)} revision(s), "
+           f" from {_e(getattr(lg, 'display_url', ''))}. {len(matrix.columns)} revision(s), "
            f"{len(matrix.loops)} loop(s), {len(rows)} entries.</p>",
            f"<div class='caution'>Caution: {_e(matrix.caution)}</div>"]
     out += _summary(matrix, rows)

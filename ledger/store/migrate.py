@@ -19,7 +19,7 @@ from sqlalchemy import inspect, text
 from sqlalchemy.exc import DatabaseError, OperationalError
 
 from ..errors import SchemaError
-from .db import make_engine, sqlite_path
+from .db import display_url, driver_message, make_engine, sqlite_path
 
 __all__ = ["migrations_dir", "alembic_config", "head_revision", "current_revision", "ensure_schema"]
 
@@ -85,30 +85,102 @@ def current_revision(conn) -> str | None:
 
 
 def _check_is_ledger(url: str) -> str | None:
-    """Return the current revision (None for an empty database); raise if not a ledger."""
+    """Return the current revision (None for an empty database); raise if not a ledger.
+
+    Nothing is written: an SQLite file is read through a read-only connection (no journal
+    mode switch, no file created), so a file that is then refused is left byte for byte as
+    it was.
+    """
+    path = sqlite_path(url)
+    if path is not None:
+        return _check_sqlite_file(path)
+    shown = display_url(url)
     engine = make_engine(url)
     try:
-        with engine.connect() as conn:  # connecting runs pragmas: a damaged file fails here
+        with engine.connect() as conn:
             try:
                 tables = set(inspect(conn).get_table_names())
             except DatabaseError as e:
-                raise SchemaError(f"{url}: not a ledger database ({e.orig})") from e
-            if not tables:
-                return None
-            if "alembic_version" not in tables:
-                raise SchemaError(
-                    f"{url}: has tables but no ledger schema version; not a ledger database"
-                )
-            rev = current_revision(conn)
-            if rev is None:
-                raise SchemaError(f"{url}: ledger schema version is missing")
-            return rev
+                raise SchemaError(f"{shown}: not a ledger database "
+                                  f"({driver_message(e, url)})") from e
+            return _revision_of(conn, tables, shown)
     except OperationalError as e:
-        raise SchemaError(f"cannot open {url}: {e.orig}") from e
+        raise SchemaError(f"cannot open {shown}: {driver_message(e, url)}") from e
     except DatabaseError as e:
-        raise SchemaError(f"{url}: not a ledger database or damaged ({e.orig})") from e
+        raise SchemaError(f"{shown}: not a ledger database or damaged "
+                          f"({driver_message(e, url)})") from e
     finally:
         engine.dispose()
+
+
+def _revision_of(conn, tables: set[str], shown: str) -> str | None:
+    if not tables:
+        return None
+    if "alembic_version" not in tables:
+        raise SchemaError(f"{shown}: has tables but no ledger schema version; not a ledger database")
+    rev = current_revision(conn)
+    if rev is None:
+        raise SchemaError(f"{shown}: ledger schema version is missing")
+    return rev
+
+
+_SQLITE_MAGIC = b"SQLite format 3\x00"
+
+
+def _check_sqlite_file(path: Path) -> str | None:
+    """:func:`_check_is_ledger` for an SQLite file, read-only.
+
+    The 100-byte header is read first: an empty file is an empty database, anything else
+    without the SQLite signature is refused unopened.  A file in WAL mode with no ``-wal``
+    beside it is opened ``immutable`` (no ``-wal``/``-shm`` is created); otherwise
+    ``mode=ro``, which never creates the file nor changes its journal mode.
+    """
+    import sqlite3
+    from urllib.parse import quote
+
+    if not path.exists():
+        return None
+    if path.is_dir():
+        raise SchemaError(f"{path}: is a folder, not a ledger file")
+    try:
+        with open(path, "rb") as fh:
+            header = fh.read(100)
+    except OSError as e:
+        raise SchemaError(f"cannot read {path}: {e.strerror or e}") from e
+    if not header:
+        return None
+    if len(header) < 100 or not header.startswith(_SQLITE_MAGIC):
+        raise SchemaError(f"{path}: not an SQLite database (no SQLite header); not a ledger file")
+    wal_mode = header[18] == 2 or header[19] == 2
+    wal_file = path.with_name(path.name + "-wal")
+    mode = "immutable=1" if wal_mode and not wal_file.exists() else "mode=ro"
+    uri = f"file:{quote(str(path))}?{mode}"
+    conn = None
+    try:
+        conn = sqlite3.connect(uri, uri=True, isolation_level=None)
+        tables = {r[0] for r in conn.execute(
+            "SELECT name FROM sqlite_master WHERE type = 'table' AND name NOT LIKE 'sqlite_%'")}
+        return _revision_of(_RawConn(conn), tables, str(path))
+    except sqlite3.OperationalError as e:
+        raise SchemaError(f"cannot open {path}: {e}") from e
+    except sqlite3.DatabaseError as e:
+        raise SchemaError(f"{path}: not a ledger database or damaged ({e})") from e
+    except (ValueError, UnicodeDecodeError) as e:
+        raise SchemaError(f"{path}: ledger file damaged: its schema version is unreadable "
+                          f"({type(e).__name__})") from e
+    finally:
+        if conn is not None:
+            conn.close()
+
+
+class _RawConn:
+    """Just enough of a SQLAlchemy connection for :func:`current_revision` over sqlite3."""
+
+    def __init__(self, conn):
+        self._conn = conn
+
+    def execute(self, clause):
+        return self._conn.execute(str(clause))
 
 
 def _upgrade(url: str, target: str = "head") -> None:
@@ -155,7 +227,8 @@ def ensure_schema(url: str, *, create: bool) -> str:
         return "current"
     if rev is None:
         if not create:
-            raise SchemaError(f"{url}: empty database, not a ledger; create one with 'loopledger init'")
+            raise SchemaError(f"{display_url(url)}: empty database, not a ledger; "
+                              "create one with 'loopledger init'")
         _upgrade(url)
         return "created"
     if rev not in known_revisions():

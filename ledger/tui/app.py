@@ -54,7 +54,7 @@ class LedgerApp(App):
         else:
             self._owns = False
         self.lg = ledger
-        self.sub_title = str(ledger.url).rsplit("/", 1)[-1]
+        self.sub_title = str(ledger.display_url).rsplit("/", 1)[-1]
         self.current_loop: str | None = None
         self.current_label: str | None = None
         self.current_req: str | None = None
