@@ -110,7 +110,6 @@ def test_hashes_of_existing_ledgers_unchanged(tmp_path):
     with eng.connect() as c:
         for pv in c.execute(text("SELECT * FROM plant_version")).mappings():
             params = list(json.loads(pv["parameters_json"]))
-            assert params == sorted(params)
             assert plant_content_hash(pv) == pv["content_hash"], pv["id"]
             seen += 1
     eng.dispose()
