@@ -974,6 +974,7 @@ class Ledger:
             from concurrent.futures import ProcessPoolExecutor, as_completed
 
             from .engine import measure as _engine_loaded  # noqa: F401 - forked workers inherit it
+            from .workers import die_with_parent
 
             for plan, _ in plans[:1]:
                 V.family_for(plan)  # and the family cache, for the common one-plant case
@@ -983,7 +984,8 @@ class Ledger:
             # worker still gets several tasks to balance uneven revisions
             chunk = max(1, total // (4 * n_workers))
             batches = [plans[k:k + chunk] for k in range(0, total, chunk)]
-            with ProcessPoolExecutor(max_workers=n_workers, mp_context=ctx) as pool:
+            with ProcessPoolExecutor(max_workers=n_workers, mp_context=ctx,
+                                     initializer=die_with_parent) as pool:
                 futures = {pool.submit(V.compute_plans, batch): batch for batch in batches}
                 done = 0
                 for fut in as_completed(futures):
