@@ -109,7 +109,18 @@ def _model_canonical(text: str, *, what: str, sample_time: float | None = None) 
         raise type(e)(f"{what}: {e}") from e
     if model.variable == "z" and sample_time is None:
         raise ModelError(f"{what}: a model in z needs a sample time")
+    _in_range(model, what, sample_time)  # representable numbers (ledger/systems/bounds.py)
     return model.canonical
+
+
+def _in_range(model, what: str, sample_time: float | None) -> None:
+    from .systems.bounds import check_system
+
+    if not model.parameters:  # a parametric model is checked per variant (_plant_fields)
+        try:
+            check_system(model.evaluate(sample_time=sample_time).system, "model")
+        except LedgerError as e:
+            raise type(e)(f"{what}: {e}") from e
 
 
 def _param_specs(params: Mapping[str, Any] | None, *, what: str) -> dict:
@@ -282,6 +293,7 @@ class Ledger:
                       input_unit, output_unit) -> dict:
         what = f"plant {name!r}"
         sample_time = _finite("sample_time", sample_time, allow_none=True, minimum=0, strict=True)
+        from .systems.bounds import check_seed
         canonical = _model_canonical(model, what=what, sample_time=sample_time)
         fid = {}
         for fname, ftext in (fidelity or {}).items():
@@ -299,18 +311,19 @@ class Ledger:
             parameters_json=json.dumps(_param_specs(params, what=what)),
             fidelity_json=json.dumps(fid, sort_keys=True),
             samples=samples,
-            seed=int(seed or 0),
+            seed=check_seed(seed or 0, f"{what}: seed"),
             sample_time=sample_time,
             input_unit=input_unit or "",
             output_unit=output_unit or "",
         )
         # the family must build (parameters present, tolerances sane); fails fast with the reason
         from .systems import build_family
+        from .systems.bounds import check_family
 
         try:
-            build_family(model, json.loads(fields["parameters_json"]), corners=True,
-                         samples=min(samples, 2), seed=fields["seed"], fidelity=fid,
-                         sample_time=sample_time)
+            check_family(build_family(model, json.loads(fields["parameters_json"]), corners=True,
+                                      samples=min(samples, 2), seed=fields["seed"], fidelity=fid,
+                                      sample_time=sample_time), "model")
         except LedgerError as e:
             raise type(e)(f"{what}: {e}") from e
         fields["content_hash"] = plant_content_hash(fields)
