@@ -333,3 +333,12 @@ def test_unreachable_range_stored_behind_the_ledger_is_an_error_verdict(tmp_path
     with open_ledger(path) as lg:
         (r,) = lg.results("lp", "r1")
         assert r.verdict == "error" and "not representable" in r.reason, r
+
+
+@pytest.mark.parametrize("url,expect", [
+    ("mysql://ops:pw@127.0.0.1/x", "driver for 'mysql' is not installed"),
+    ("foo://ops:pw@h/x", "unknown database kind 'foo'"),
+])
+def test_unknown_scheme_or_missing_driver_is_a_one_line_error(url, expect):
+    line = _one_line_error(_cli(f"--db={url}", "loop", "list"))
+    assert expect in line and "pw" not in line, line

@@ -46,7 +46,7 @@ def _alive(pid: int) -> bool:
 
 @pytest.fixture
 def busy_ledger(tmp_path):
-    """Enough work for two workers for several seconds: 8 revisions, 6 metrics, 300 variants."""
+    """Enough work for two workers for several seconds: 12 revisions, 6 metrics, 300 variants."""
     path = tmp_path / "busy.db"
     with open_ledger(path, create=True, author="tester") as lg:
         lg.auto_verify = False
@@ -62,7 +62,7 @@ def busy_ledger(tmp_path):
                                              ("delay_margin", ">= 1 ms"))):
             lg.add_requirement(f"R-{i}", title=metric, statement=f"{metric} {limit}.",
                                metric=metric, limit=limit, loops=["lp"])
-        for k in range(8):
+        for k in range(12):
             lg.add_revision("lp", f"pid(kp={0.2 + 0.05 * k}, ki=0.1, kd=0.01, tf=0.001)",
                             rationale=f"step {k}", verify=False)
     return path
