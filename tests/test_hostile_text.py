@@ -278,3 +278,43 @@ def test_terminal_tables_escape_control_characters(hostile):
     res = _cli(f"--db={db_url}", "requirement", "list")
     assert res.exit_code == 0, res.output
     assert "\x1b" not in res.output and "\\u001b" in res.output
+
+
+# -- the escaping helpers against the readers themselves ---------------------------------
+from hypothesis import given, settings  # noqa: E402
+from hypothesis import strategies as st  # noqa: E402
+
+ANY_TEXT = st.text(alphabet=st.characters(min_codepoint=0, max_codepoint=0x10FFFF), max_size=60)
+
+
+@settings(max_examples=300, deadline=None)
+@given(ANY_TEXT)
+def test_xml_safe_text_is_accepted_by_libxml2(s):
+    from lxml import etree
+
+    from ledger.text import xml_safe
+
+    el = etree.Element("e", a=xml_safe(s))  # lxml refuses non-XML text with ValueError
+    el.text = xml_safe(s)
+    assert etree.fromstring(etree.tostring(el)).text == (xml_safe(s) or None)
+
+
+@settings(max_examples=300, deadline=None)
+@given(ANY_TEXT)
+def test_cell_safe_text_is_accepted_by_openpyxl(s):
+    openpyxl = pytest.importorskip("openpyxl")
+
+    from ledger.text import cell_safe
+
+    ws = openpyxl.Workbook().active
+    ws["A1"] = cell_safe(s)  # raises IllegalCharacterError on what a cell cannot hold
+
+
+@settings(max_examples=300, deadline=None)
+@given(ANY_TEXT)
+def test_input_rule_accepts_exactly_what_the_exports_keep(s):
+    """Text the input rule accepts for a multi-line field passes every export unchanged."""
+    from ledger.text import cell_safe, first_bad, printable, xml_safe
+
+    if first_bad(s, multiline=True) is None:
+        assert xml_safe(s) == s and cell_safe(s) == s and printable(s) == s
