@@ -109,18 +109,10 @@ def _model_canonical(text: str, *, what: str, sample_time: float | None = None) 
         raise type(e)(f"{what}: {e}") from e
     if model.variable == "z" and sample_time is None:
         raise ModelError(f"{what}: a model in z needs a sample time")
-    _in_range(model, what, sample_time)  # representable numbers (ledger/systems/bounds.py)
+    from .systems.bounds import check_model
+
+    check_model(model, what, sample_time)  # representable numbers (docs/models.md)
     return model.canonical
-
-
-def _in_range(model, what: str, sample_time: float | None) -> None:
-    from .systems.bounds import check_system
-
-    if not model.parameters:  # a parametric model is checked per variant (_plant_fields)
-        try:
-            check_system(model.evaluate(sample_time=sample_time).system, "model")
-        except LedgerError as e:
-            raise type(e)(f"{what}: {e}") from e
 
 
 def _param_specs(params: Mapping[str, Any] | None, *, what: str) -> dict:

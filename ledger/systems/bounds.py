@@ -27,7 +27,7 @@ import numpy as np
 from ledger.errors import ModelError
 
 __all__ = ["NUMBER_RANGE", "ROOT_RANGE", "SEED_MAX", "check_number", "check_seed",
-           "check_system", "check_family"]
+           "check_system", "check_family", "check_model"]
 
 NUMBER_RANGE = 1e100
 """Largest magnitude of a number in model text or of a parameter value."""
@@ -143,3 +143,17 @@ def check_family(family, what: str = "the model") -> None:
         name = what if v.name == "nominal" and len(family.variants) == 1 \
             else f"{what} ({v.name})"
         check_system(v.system, name)
+
+
+def check_model(model, what: str, sample_time: float | None = None) -> None:
+    """:func:`check_system` on a compiled model without parameters (a controller or loop
+    filter), evaluated as written; a parametric model is checked per variant of its plant
+    family instead (:func:`check_family`).  Errors are prefixed with ``what``."""
+    from ledger.errors import LedgerError
+
+    if model.parameters:
+        return
+    try:
+        check_system(model.evaluate(sample_time=sample_time).system, "model")
+    except LedgerError as e:
+        raise type(e)(f"{what}: {e}") from e
