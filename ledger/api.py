@@ -109,6 +109,9 @@ def _model_canonical(text: str, *, what: str, sample_time: float | None = None) 
         raise type(e)(f"{what}: {e}") from e
     if model.variable == "z" and sample_time is None:
         raise ModelError(f"{what}: a model in z needs a sample time")
+    from .systems.bounds import check_model
+
+    check_model(model, what, sample_time)  # representable numbers (docs/models.md)
     return model.canonical
 
 
@@ -282,6 +285,7 @@ class Ledger:
                       input_unit, output_unit) -> dict:
         what = f"plant {name!r}"
         sample_time = _finite("sample_time", sample_time, allow_none=True, minimum=0, strict=True)
+        from .systems.bounds import check_seed
         canonical = _model_canonical(model, what=what, sample_time=sample_time)
         fid = {}
         for fname, ftext in (fidelity or {}).items():
@@ -299,18 +303,19 @@ class Ledger:
             parameters_json=json.dumps(_param_specs(params, what=what)),
             fidelity_json=json.dumps(fid, sort_keys=True),
             samples=samples,
-            seed=int(seed or 0),
+            seed=check_seed(seed or 0, f"{what}: seed"),
             sample_time=sample_time,
             input_unit=input_unit or "",
             output_unit=output_unit or "",
         )
         # the family must build (parameters present, tolerances sane); fails fast with the reason
         from .systems import build_family
+        from .systems.bounds import check_family
 
         try:
-            build_family(model, json.loads(fields["parameters_json"]), corners=True,
-                         samples=min(samples, 2), seed=fields["seed"], fidelity=fid,
-                         sample_time=sample_time)
+            check_family(build_family(model, json.loads(fields["parameters_json"]), corners=True,
+                                      samples=min(samples, 2), seed=fields["seed"], fidelity=fid,
+                                      sample_time=sample_time), "model")
         except LedgerError as e:
             raise type(e)(f"{what}: {e}") from e
         fields["content_hash"] = plant_content_hash(fields)
@@ -974,6 +979,7 @@ class Ledger:
             from concurrent.futures import ProcessPoolExecutor, as_completed
 
             from .engine import measure as _engine_loaded  # noqa: F401 - forked workers inherit it
+            from .workers import die_with_parent
 
             for plan, _ in plans[:1]:
                 V.family_for(plan)  # and the family cache, for the common one-plant case
@@ -983,7 +989,8 @@ class Ledger:
             # worker still gets several tasks to balance uneven revisions
             chunk = max(1, total // (4 * n_workers))
             batches = [plans[k:k + chunk] for k in range(0, total, chunk)]
-            with ProcessPoolExecutor(max_workers=n_workers, mp_context=ctx) as pool:
+            with ProcessPoolExecutor(max_workers=n_workers, mp_context=ctx,
+                                     initializer=die_with_parent) as pool:
                 futures = {pool.submit(V.compute_plans, batch): batch for batch in batches}
                 done = 0
                 for fut in as_completed(futures):

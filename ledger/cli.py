@@ -98,8 +98,10 @@ def _table(columns: list[str], rows: list[list[str]], title: str | None = None) 
     t = Table(title=title, show_lines=False, header_style="bold")
     for c in columns:
         t.add_column(c, overflow="fold")
-    for r in rows:
-        t.add_row(*[str(x) for x in r])
+    from .text import printable
+
+    for r in rows:  # stored text may hold ESC sequences: shown as \uXXXX, never sent raw
+        t.add_row(*[printable(str(x)) for x in r])
     _console().print(t)
 
 

@@ -199,7 +199,8 @@ def import_spec(ledger, path: str | os.PathLike) -> ImportReport:
                 raise
             except LedgerError as e:
                 where = f"{kind} {name!r}" if name else kind
-                raise type(e)(f"{p}: {where}: {e}") from e
+                msg = str(e) if str(e).startswith(f"{where}: ") else f"{where}: {e}"
+                raise type(e)(f"{p}: {msg}") from e
 
         for rec in data.get("plant", []):
             where = f"plant {rec['name']!r}"

@@ -71,8 +71,9 @@ def _pint_convert(value: float, unit_text: str, target: str, metric_unit: str) -
     ureg = _ureg()
     try:
         q = ureg.Quantity(value, unit_text)
-    except (pint.errors.UndefinedUnitError, pint.errors.DefinitionSyntaxError, AttributeError,
-            AssertionError, TypeError, ValueError) as e:
+    except Exception as e:  # noqa: BLE001 - pint's parser raises many kinds on odd text
+        # (an unbalanced ')' gives tokenize.TokenError, '1/0' ZeroDivisionError...): all of
+        # them mean the text is not a unit
         raise UnitError(f"unknown unit {unit_text!r}") from e
     try:
         return float(q.to(target).magnitude)
@@ -80,6 +81,8 @@ def _pint_convert(value: float, unit_text: str, target: str, metric_unit: str) -
         raise UnitError(
             f"unit {unit_text!r} does not fit a metric measured in {metric_unit}"
         ) from e
+    except (ArithmeticError, TypeError, ValueError) as e:
+        raise UnitError(f"unit {unit_text!r} cannot be converted to {target}") from e
 
 
 def convert(value: float, unit_text: str, metric_unit: str) -> float:
@@ -164,6 +167,8 @@ def parse_limit(text: str, metric_unit: str) -> Limit:
     if not math.isfinite(raw):
         raise UnitError(f"limit {text!r} is not a finite number")
     value = convert(raw, m["unit"], metric_unit)
+    if not math.isfinite(value):
+        raise UnitError(f"limit {text!r} overflows in {metric_unit}; give a smaller number")
     if math.isnan(value):
         raise UnitError(f"limit {text!r} is not a number")
     return Limit(cmp_, value, metric_unit, text.strip())

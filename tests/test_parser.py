@@ -204,7 +204,7 @@ SEMANTIC_ERRORS = [
     ("K/(s+1)", {"K": "3"}, None, "real number"),
     ("1/(s-s)", None, None, "division by zero"),
     ("1/(a-1)", {"a": 1.0}, None, "division by zero"),
-    ("1e300*1e300/(s+1)", None, None, "overflow"),
+    ("1e99*1e99*1e99*1e99/(s+1)", None, None, "overflow"),  # 1e396 > float max (IEEE 754)
     ("zpk([1+1j], [-1, -2], 1)", None, None, "conjugate"),
     ("delay(-0.1)/(s+1)", None, None, "zero or positive"),
     ("1/(s+1)", None, -1.0, "positive number of seconds"),

@@ -463,6 +463,9 @@ def _grid(evaluate, dt, poles, zeros, *, points_per_decade: int, w_min, w_max,
         hi = min(hi, wnyq)
     if not (0 < lo < hi):
         raise ComputeError(f"frequency range [{lo}, {hi}] rad/s is empty; give 0 < w_min < w_max")
+    if not (math.isfinite(lo) and math.isfinite(hi)):  # a pole or zero near the float limit
+        raise ComputeError(f"frequency range [{lo:.3g}, {hi:.3g}] rad/s is not representable; "
+                           "a pole or zero lies beyond 1e100 rad/s (docs/models.md)")
 
     axis = _axis_roots(poles, dt, axis_tol=axis_tol)
 

@@ -16,6 +16,7 @@ from pathlib import Path
 
 import numpy as np
 
+from ..text import printable
 from ..errors import LedgerError
 from .rows import VERDICT_ORDER, matrix_rows, number_text, verdict_counts, write_atomic
 
@@ -60,7 +61,8 @@ table.fields th { width: 150px; }
 
 
 def _e(x) -> str:
-    return html.escape("" if x is None else str(x), quote=True)
+    # control characters of hostile stored text become a visible \uXXXX (ledger/text.py)
+    return html.escape(printable(x), quote=True)
 
 
 def _verdict(word: str) -> str:
@@ -228,5 +230,5 @@ def export_html(matrix, path, lg) -> Path:
     -------
     Path
     """
-    text = render_html(matrix, lg)
+    text = printable(render_html(matrix, lg))  # and anything that reached the figures
     return write_atomic(path, lambda tmp: tmp.write_text(text, encoding="utf-8"))

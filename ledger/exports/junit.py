@@ -28,6 +28,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
+from ..text import xml_safe
 from .rows import require, matrix_rows, number_text, write_xml
 
 __all__ = ["export_junit", "junit_tree"]
@@ -51,24 +52,25 @@ def junit_tree(matrix, *, stale_as_skipped: bool = False):
     """
     etree = require("lxml.etree")
 
+    def sub(parent, tag, **attrs):  # stored text may hold anything: keep it XML (text.py)
+        return etree.SubElement(parent, tag, {k: xml_safe(v) for k, v in attrs.items()})
+
     rows = matrix_rows(matrix)
     stamp = matrix.generated_at.replace(microsecond=0).isoformat()
-    root = etree.Element("testsuites", name=matrix.title)
+    root = etree.Element("testsuites", name=xml_safe(matrix.title))
     totals = {"tests": 0, "failures": 0, "errors": 0}
     for i, col in enumerate(matrix.columns):
         mine = [r for r in rows if r.loop == col.loop and r.revision == col.label]
-        suite = etree.SubElement(root, "testsuite", name=f"{col.loop}/{col.label}",
-                                 timestamp=stamp)
-        props = etree.SubElement(suite, "properties")
+        suite = sub(root, "testsuite", name=f"{col.loop}/{col.label}", timestamp=stamp)
+        props = sub(suite, "properties")
         if i == 0:
-            etree.SubElement(props, "property", name="caution", value=matrix.caution)
-        etree.SubElement(props, "property", name=f"revision_hash {col.loop}/{col.label}",
-                         value=col.content_hash)
+            sub(props, "property", name="caution", value=matrix.caution)
+        sub(props, "property", name=f"revision_hash {col.loop}/{col.label}",
+            value=col.content_hash)
         n = {"tests": 0, "failures": 0, "errors": 0, "skipped": 0}
         for r in mine:
             n["tests"] += 1
-            case = etree.SubElement(suite, "testcase", classname=r.loop, name=r.requirement,
-                                    time="0")
+            case = sub(suite, "testcase", classname=r.loop, name=r.requirement, time="0")
             detail = (f"{r.requirement} v{r.version} ({r.metric}) on {r.loop}/{r.revision}: "
                       f"value {_value_text(r)}, limit {r.limit}, headroom "
                       f"{number_text(r.headroom, digits=6) or 'none'}, worst variant "
@@ -77,24 +79,24 @@ def junit_tree(matrix, *, stale_as_skipped: bool = False):
                 n["failures"] += 1
                 msg = (f"value {_value_text(r)} does not meet limit {r.limit}"
                        + (f" ({r.reason})" if r.reason else ""))
-                f = etree.SubElement(case, "failure", message=msg, type="fail")
-                f.text = detail
+                f = sub(case, "failure", message=msg, type="fail")
+                f.text = xml_safe(detail)
             elif r.verdict == "error":
                 n["errors"] += 1
-                e = etree.SubElement(case, "error", message=r.reason or "could not be computed",
-                                     type="error")
-                e.text = detail
+                e = sub(case, "error", message=r.reason or "could not be computed",
+                        type="error")
+                e.text = xml_safe(detail)
             elif r.verdict in ("stale", "unverified"):
                 why = ("judged against an older requirement or plant version"
                        if r.verdict == "stale" else "never verified against this requirement")
                 if stale_as_skipped:
                     n["skipped"] += 1
-                    etree.SubElement(case, "skipped", message=f"{r.verdict}, run verify")
+                    sub(case, "skipped", message=f"{r.verdict}, run verify")
                 else:
                     n["failures"] += 1
-                    f = etree.SubElement(case, "failure", message=f"{r.verdict}, run verify",
-                                         type=r.verdict)
-                    f.text = f"{detail} ({why})"
+                    f = sub(case, "failure", message=f"{r.verdict}, run verify",
+                            type=r.verdict)
+                    f.text = xml_safe(f"{detail} ({why})")
         for k, v in n.items():
             suite.set(k, str(v))
             if k in totals:

@@ -24,6 +24,7 @@ import re
 
 import numpy as np
 
+from ..text import printable
 from .rows import require
 
 __all__ = ["entry_figure", "entry_plot", "figure_kind", "PALETTE"]
@@ -106,7 +107,7 @@ def _svg(fig) -> str:
     buf = io.StringIO()
     with matplotlib.rc_context({"svg.fonttype": "none", "svg.hashsalt": "loopledger"}):
         fig.savefig(buf, format="svg")
-    text = buf.getvalue()
+    text = printable(buf.getvalue())  # figure titles carry stored text (ledger/text.py)
     text = re.sub(r"^<\?xml[^>]*>\s*", "", text)
     text = re.sub(r"<!DOCTYPE[^>]*>\s*", "", text)
     text = re.sub(r"<metadata>.*?</metadata>\s*", "", text, flags=re.S)

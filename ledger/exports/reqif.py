@@ -21,6 +21,7 @@ import hashlib
 import re
 from pathlib import Path
 
+from ..text import xml_safe
 from .rows import require, matrix_rows, write_xml
 
 __all__ = ["REQIF_NS", "export_reqif", "reqif_tree", "reqif_identifier", "REQIF_ATTRIBUTES"]
@@ -51,10 +52,11 @@ def reqif_tree(matrix):
     N = "{%s}" % REQIF_NS
 
     def el(parent, tag, text=None, **attrs):
-        e = etree.SubElement(parent, N + tag, {k.replace("_", "-").upper(): v
+        # stored text may hold anything: keep it XML (ledger/text.py)
+        e = etree.SubElement(parent, N + tag, {k.replace("_", "-").upper(): xml_safe(v)
                                                 for k, v in attrs.items()})
         if text is not None:
-            e.text = text
+            e.text = xml_safe(text)
         return e
 
     def ref(parent, wrapper, tag, target):

@@ -16,6 +16,7 @@ import json
 from dataclasses import asdict
 from pathlib import Path
 
+from ..text import cell_safe
 from .rows import (COLUMNS, SCHEMA_VERSION, matrix_rows, number_text, verdict_counts,
                    write_atomic)
 
@@ -27,7 +28,7 @@ def _csv_cell(name: str, value) -> str:
         return ""
     if isinstance(value, float):
         return number_text(value)
-    return str(value)
+    return cell_safe(str(value))  # NUL, ESC... of hostile stored text as \uXXXX (text.py)
 
 
 def export_csv(matrix, path) -> Path:

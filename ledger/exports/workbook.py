@@ -13,6 +13,7 @@ import math
 import re
 from pathlib import Path
 
+from ..text import cell_safe, printable
 from .rows import require, COLUMNS, VERDICT_ORDER, matrix_rows, verdict_counts, write_atomic
 
 __all__ = ["export_xlsx", "VERDICT_FILLS", "sheet_name"]
@@ -41,7 +42,8 @@ _BAD_SHEET_CHARS = re.compile(r"[\[\]:*?/\\]")
 
 def sheet_name(loop: str, taken: set[str]) -> str:
     """A valid, unique sheet name (<= 31 characters, none of ``[]:*?/\\``) for a loop."""
-    base = _BAD_SHEET_CHARS.sub("_", loop)[:31] or "loop"
+    base = _BAD_SHEET_CHARS.sub("_", printable(loop).replace("\t", " ").replace("\n", " ")
+                                .replace("\r", " "))[:31].strip("'") or "loop"
     name, i = base, 2
     while name.lower() in taken or name.lower() == "summary":
         suffix = f"~{i}"
@@ -52,10 +54,12 @@ def sheet_name(loop: str, taken: set[str]) -> str:
 
 
 def _cell_value(v):
-    """openpyxl cell value: infinities as the text 'inf'/'-inf' (XLSX has no infinity)."""
+    """openpyxl cell value: infinities as the text 'inf'/'-inf' (XLSX has no infinity);
+    text with characters a workbook cannot hold (openpyxl's ILLEGAL_CHARACTERS_RE, XML's
+    forbidden ones) escaped as \\uXXXX (ledger/text.py)."""
     if isinstance(v, float) and math.isinf(v):
         return "inf" if v > 0 else "-inf"
-    return v
+    return cell_safe(v)
 
 
 def export_xlsx(matrix, path) -> Path:
@@ -80,7 +84,7 @@ def export_xlsx(matrix, path) -> Path:
     ws = wb.active
     ws.title = "Summary"
     bold = Font(bold=True)
-    ws["A1"] = matrix.title
+    ws["A1"] = cell_safe(matrix.title)
     ws["A1"].font = Font(bold=True, size=14)
     ws["A2"] = "Generated (UTC)"
     ws["B2"] = matrix.generated_at.isoformat(timespec="seconds")
@@ -98,7 +102,8 @@ def export_xlsx(matrix, path) -> Path:
     for loop in matrix.loops:
         counts = verdict_counts(rows, loop)
         labels = ", ".join(c.label for c in matrix.columns if c.loop == loop)
-        ws.append([loop, labels] + [counts[v] for v in VERDICT_ORDER] + [sum(counts.values())])
+        ws.append([cell_safe(loop), cell_safe(labels)] + [counts[v] for v in VERDICT_ORDER]
+                  + [sum(counts.values())])
     total = verdict_counts(rows)
     ws.append(["All loops", ""] + [total[v] for v in VERDICT_ORDER] + [sum(total.values())])
     for c in ws[ws.max_row]:
@@ -133,6 +138,6 @@ def export_xlsx(matrix, path) -> Path:
         sh.auto_filter.ref = f"A1:{get_column_letter(len(COLUMNS))}{max(sh.max_row, 1)}"
         for j, w in enumerate(widths):
             sh.column_dimensions[get_column_letter(j + 1)].width = min(max(w + 2, 8), 60)
-    wb.properties.title = matrix.title
+    wb.properties.title = cell_safe(matrix.title)
     wb.properties.description = matrix.caution
     return write_atomic(path, lambda tmp: wb.save(tmp))

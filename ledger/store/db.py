@@ -200,6 +200,9 @@ def session_scope(factory: sessionmaker, url: str | None = None) -> Iterator[Ses
         raise
     except OperationalError as e:
         session.rollback()
+        if "Could not decode to UTF-8" in str(e.orig):  # sqlite3: stored text is not UTF-8
+            raise SchemaError(f"ledger damaged: a stored value cannot be read "
+                              f"({driver_message(e, url)}); restore it from a backup") from e
         raise SchemaError(f"database error: {driver_message(e, url)}; "
                           "nothing was written") from e
     except DatabaseError as e:

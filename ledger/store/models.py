@@ -363,3 +363,45 @@ class ResultBatch(Base):
     subjects: Mapped[str] = mapped_column(Text)
     digest: Mapped[str] = mapped_column(String(64))
     created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True))
+
+
+# -- text fields: one rule for every entry path (ledger/text.py) ---------------------------
+#: (record class, kind named in messages, one-line fields, multi-line fields, JSON fields)
+TEXT_FIELDS = (
+    (Plant, "plant", ("name",), ("description",), ()),
+    (PlantVersion, "plant", ("input_unit", "output_unit", "author"),
+     ("model_text", "note"), ("parameters_json", "fidelity_json")),
+    (Loop, "loop", ("name", "kind"), ("description", "sensor_text", "prefilter_text"), ()),
+    (Revision, "revision", ("label", "author"), ("rationale", "controller_text"), ()),
+    (Requirement, "requirement", ("key",), (), ()),
+    (RequirementVersion, "requirement", ("title", "limit_text", "author", "method", "status"),
+     ("statement", "rationale", "note"), ("settings_json",)),
+    (Baseline, "baseline", ("name", "author"), ("note",), ()),
+    (Signoff, "sign-off", ("name", "role", "author"), ("statement",), ()),
+)
+
+
+def _install_text_checks() -> None:
+    """Refuse control characters when a record's text attribute is set (constructor or
+    assignment), so the API, the CLI, spec import and the UI share one check; values loaded
+    from the database are not checked (exports make those safe, ledger/text.py)."""
+    from sqlalchemy import event
+
+    from ledger.text import check_block, check_json_strings, check_line
+
+    def listener(check, what):
+        def on_set(target, value, oldvalue, initiator):
+            return check(what, value)
+        return on_set
+
+    for cls, kind, lines, blocks, jsons in TEXT_FIELDS:
+        for group, check in ((lines, check_line), (blocks, check_block),
+                             (jsons, check_json_strings)):
+            for name in group:
+                label = f"{kind} {name.replace('_json', '').replace('_text', '').replace('_', ' ')}"
+                if name in ("model_text", "controller_text", "sensor_text", "prefilter_text"):
+                    label = f"{kind} {name.replace('_', ' ')}"
+                event.listen(getattr(cls, name), "set", listener(check, label), retval=True)
+
+
+_install_text_checks()

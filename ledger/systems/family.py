@@ -17,6 +17,7 @@ import numpy as np
 
 from ledger.engine.types import PlantFamily, Variant
 from ledger.errors import ModelError
+from ledger.systems.bounds import check_number, check_seed
 from ledger.systems.model import Model, compile_model
 
 __all__ = ["ParamSpec", "build_family", "DISTRIBUTIONS"]
@@ -32,10 +33,7 @@ _KEYS = ("nominal", "tol", "low", "high", "distribution")
 def _number(name: str, value: Any) -> float:
     if isinstance(value, bool) or not isinstance(value, (int, float, np.integer, np.floating)):
         raise ModelError(f"{name} must be a number, got {value!r}")
-    x = float(value)
-    if not math.isfinite(x):
-        raise ModelError(f"{name} must be finite, got {value!r}")
-    return x
+    return check_number(name, value)  # finite and within NUMBER_RANGE (ledger/systems/bounds)
 
 
 @dataclass(frozen=True)
@@ -209,6 +207,7 @@ def build_family(model: str | Model, params: Mapping[str, Any], *, corners: bool
         raise ModelError(f"model must be text or a compiled Model, got {type(model).__name__}")
     if isinstance(samples, bool) or not isinstance(samples, int) or samples < 0:
         raise ModelError(f"samples must be a whole number >= 0, got {samples!r}")
+    seed = check_seed(seed)
     if isinstance(max_corners, bool) or not isinstance(max_corners, int) or max_corners < 1:
         raise ModelError(f"max_corners must be a whole number >= 1, got {max_corners!r}")
     specs = {}

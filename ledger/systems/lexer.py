@@ -13,6 +13,7 @@ import re
 from dataclasses import dataclass
 
 from ledger.errors import ModelSyntaxError
+from ledger.systems.bounds import NUMBER_RANGE
 
 __all__ = ["Token", "tokenize", "MAX_TEXT_LENGTH"]
 
@@ -67,6 +68,10 @@ def _number(text: str, i: int) -> tuple[Token, int]:
     if not math.isfinite(value):
         raise ModelSyntaxError(
             f"number {lexeme} is too large for a float; rescale the model", text, i)
+    if abs(value) > NUMBER_RANGE:
+        raise ModelSyntaxError(
+            f"number {lexeme} exceeds 1e100 in magnitude, not representable; "
+            "rescale the model (choose other units)", text, i)
     kind = "number"
     if end < len(text) and text[end] == "j" and (
             end + 1 == len(text) or not (text[end + 1].isascii()
