@@ -201,13 +201,15 @@ def test_write_is_one_transaction(populated, monkeypatch):
     """A failure in the middle of a multi-row write leaves nothing of it behind."""
     lg = populated
     before = _counts(lg)
-    orig = lg._write_req_version
+    import ledger.store.requirements as R
+
+    orig = R.write_version
 
     def boom(s, req, number, fields, author, note):
         orig(s, req, number, fields, author, note)  # rows written into the session...
         raise RuntimeError("simulated crash after the version row")
 
-    monkeypatch.setattr(lg, "_write_req_version", boom)
+    monkeypatch.setattr(R, "write_version", boom)
     with pytest.raises(RuntimeError):
         lg.add_requirement("PZ-9", title="t", statement="s", parents=["SYS-1"], loops=["pz"])
     assert _counts(lg) == before
