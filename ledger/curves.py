@@ -1,8 +1,10 @@
-"""Curves behind a matrix entry, recomputed from the engine for plotting only.
+"""The curves of a revision (step responses, loop functions, margins, poles), recomputed from
+the engine for plotting only: the one home used by the HTML export and the terminal UI's plot
+view.
 
 For one revision column the revision's plant family, controller and loop are rebuilt with the
-ledger's own helpers (:func:`ledger.verify.plan_revision` in a read snapshot, then
-``family_for``, ``controller_for``, ``loop_spec_for``) and closed with
+ledger's own helpers (:meth:`ledger.api.Ledger.numeric_setup`: the plan in a read snapshot, then
+``family_for``, ``controller_for``, ``loop_spec_for`` of :mod:`ledger.verification`) and closed with
 :func:`ledger.engine.loop.assemble` round the nominal variant and the worst variants the
 results name.  Step responses come from :func:`ledger.engine.timeresp.step_response`, loop
 functions from the exact frequency-response evaluators of the assembly, margins from
@@ -19,9 +21,17 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from ..errors import LedgerError, NotFoundError
+from .errors import LedgerError, NotFoundError
 
-__all__ = ["StepCurves", "FreqCurves", "ColumnCurves", "column_curves"]
+__all__ = ["StepCurves", "FreqCurves", "ColumnCurves", "column_curves", "revision_curves",
+           "DISPLAY_GRID"]
+
+#: Time-grid settings for display (looser than verification: samples stay exact for
+#: delay-free loops; the method of steps for delays is accurate to about 1e-3 relative).
+DISPLAY_GRID = {"settle_factor": 10.0, "points_per_period": 16.0, "delay_rtol": 1e-3,
+                "max_samples": 100_000, "tail_rtol": 1e-4}
+#: Frequency-grid settings for display.
+DISPLAY_FREQ_GRID = {"points_per_decade": 60, "max_points": 20_000}
 
 
 @dataclass(frozen=True)
@@ -83,11 +93,10 @@ class ColumnCurves:
     assembly: object
     output_unit: str = ""
     input_unit: str = ""
-    #: Time-grid settings for display (looser than verification: samples stay exact for
-    #: delay-free loops; the method of steps for delays is accurate to about 1e-3 relative).
-    grid: dict = field(default_factory=lambda: {"settle_factor": 10.0, "points_per_period": 16.0,
-                                                "delay_rtol": 1e-3, "max_samples": 100_000,
-                                                "tail_rtol": 1e-4})
+    #: time-grid settings of the step responses (:data:`DISPLAY_GRID` by default)
+    grid: dict = field(default_factory=lambda: dict(DISPLAY_GRID))
+    #: settings of the frequency grid (:data:`DISPLAY_FREQ_GRID` by default)
+    freq_grid: dict = field(default_factory=lambda: dict(DISPLAY_FREQ_GRID))
     _steps: dict = field(default_factory=dict)
     _freq: FreqCurves | None = None
 
@@ -101,7 +110,7 @@ class ColumnCurves:
 
     def step(self, path: str = "r->y", amplitude: float = 1.0) -> StepCurves:
         """Step responses of ``path`` (``r->y``, ``r->e``, ``r->u``, ``d->y``)."""
-        from ..engine.timeresp import step_response
+        from .engine.timeresp import step_response
 
         key = (path, float(amplitude))
         if key not in self._steps:
@@ -116,13 +125,13 @@ class ColumnCurves:
 
     def freq(self) -> FreqCurves:
         """Loop gain, S, T, CS and classical margins per variant."""
-        from ..engine.freqresp import frequency_grid
-        from ..engine.margins import margins
+        from .engine.freqresp import frequency_grid
+        from .engine.margins import margins
 
         if self._freq is None:
             out = {k: {} for k in ("w", "L", "S", "T", "CS", "gm", "pm", "wpc", "wgc")}
             for g in self.assembly.groups:
-                w = frequency_grid(g.loop_gain, points_per_decade=60, max_points=20_000)
+                w = frequency_grid(g.loop_gain, **self.freq_grid)
                 w = w[w > 0]
                 L = g.loop_gain.evaluate(w)
                 S, T, CS = (g.closed[k].evaluate(w) for k in ("S", "T", "CS"))
@@ -155,6 +164,56 @@ class ColumnCurves:
         return out
 
 
+def revision_curves(lg, loop: str, label: str, variants=(), *, include_nominal: bool = True,
+                    grid: dict | None = None, freq_grid: dict | None = None) -> ColumnCurves:
+    """Rebuild one revision's loop round the nominal variant (first in the family) and the
+    variants named ``variants`` (in family order) for its curves.
+
+    Parameters
+    ----------
+    lg : Ledger
+    loop, label : str
+        The revision.
+    variants : iterable of str
+        Variant names; unknown names are ignored.
+    include_nominal : bool
+        Include the nominal variant even when ``variants`` does not name it.
+    grid, freq_grid : dict, optional
+        Time- and frequency-grid settings (default :data:`DISPLAY_GRID`,
+        :data:`DISPLAY_FREQ_GRID`; ``{}`` for the engine's own defaults).
+
+    Raises
+    ------
+    NotFoundError
+        None of ``variants`` is in the family.
+    LedgerError
+        The revision cannot be rebuilt (a model that no longer parses, an algebraic loop...).
+    """
+    from .engine.loop import assemble
+    from .engine.types import PlantFamily
+
+    fam, controller, loop_spec = lg.numeric_setup(loop, label)
+    wanted = set(variants)
+    picked = [v for k, v in enumerate(fam.variants)
+              if v.name in wanted or (include_nominal and k == 0)]
+    if not picked:
+        raise NotFoundError(f"plant family of loop {loop!r} has no variant "
+                            f"{sorted(wanted)[0] if wanted else 'nominal'!r}")
+    asm = assemble(PlantFamily(tuple(picked)), controller, loop_spec)
+    try:
+        plant = lg.plant(lg.loop(loop).plant)
+        units = (plant.output_unit or "", plant.input_unit or "")
+    except LedgerError:
+        units = ("", "")
+    extra = {}
+    if grid is not None:
+        extra["grid"] = dict(grid)
+    if freq_grid is not None:
+        extra["freq_grid"] = dict(freq_grid)
+    return ColumnCurves(loop=loop, revision=label, variants=tuple(v.name for v in picked),
+                        assembly=asm, output_unit=units[0], input_unit=units[1], **extra)
+
+
 def column_curves(lg, loop: str, label: str, worst: set[str] | None = None) -> ColumnCurves:
     """Rebuild one revision's loop round its nominal and named worst variants.
 
@@ -172,16 +231,4 @@ def column_curves(lg, loop: str, label: str, worst: set[str] | None = None) -> C
     LedgerError
         The revision cannot be rebuilt (a model that no longer parses, an algebraic loop...).
     """
-    from ..engine.loop import assemble
-    from ..engine.types import PlantFamily
-
-    fam, controller, loop_spec = lg.numeric_setup(loop, label)
-    picked = [fam.variants[0]] + [v for v in fam.variants[1:] if worst and v.name in worst]
-    asm = assemble(PlantFamily(tuple(picked)), controller, loop_spec)
-    try:
-        plant = lg.plant(lg.loop(loop).plant)
-        units = (plant.output_unit or "", plant.input_unit or "")
-    except LedgerError:
-        units = ("", "")
-    return ColumnCurves(loop=loop, revision=label, variants=tuple(v.name for v in picked),
-                        assembly=asm, output_unit=units[0], input_unit=units[1])
+    return revision_curves(lg, loop, label, worst or ())
