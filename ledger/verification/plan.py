@@ -10,7 +10,7 @@ import json
 from dataclasses import dataclass, field
 from typing import Iterable
 
-from sqlalchemy.orm import Session
+from ..store.session import Session
 
 from ..hashing import sha256_of
 from ..store import loops as loops_db

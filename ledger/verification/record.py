@@ -6,7 +6,7 @@ import json
 from datetime import datetime, timezone
 from typing import Iterable
 
-from sqlalchemy.orm import Session
+from ..store.session import Session
 
 from ..store import chain as chain_db
 from ..store import plants as plants_db
