@@ -63,11 +63,12 @@ def make_info(row: Revision, loop: str, parent: str | None,
     )
 
 
-def info(s: Session, row: Revision) -> RevisionInfo:
+def info(s: Session, row: Revision, loop: Loop | None = None) -> RevisionInfo:
+    """The view of ``row`` (``loop``: its loop row when the caller holds it already)."""
     parent = s.get(Revision, row.parent_id).label if row.parent_id else None
     kids = s.scalars(select(Revision.label).where(Revision.parent_id == row.id)
                      .order_by(Revision.seq)).all()
-    return make_info(row, row.loop.name, parent, tuple(kids))
+    return make_info(row, (loop or row.loop).name, parent, tuple(kids))
 
 
 def add(s: Session, loop: str, controller: str, *, rationale: str, author: str,
@@ -96,7 +97,7 @@ def add(s: Session, loop: str, controller: str, *, rationale: str, author: str,
                     and existing.rationale == rationale.strip()
                     and existing.parent_id == (prow.id if prow else None))
             if same:
-                return info(s, existing), False
+                return info(s, existing, lp), False
             raise DuplicateError(
                 f"loop {loop!r} already has revision {label!r} with other content; revisions "
                 "are immutable: add a new one with another label"
@@ -115,7 +116,7 @@ def add(s: Session, loop: str, controller: str, *, rationale: str, author: str,
     s.add(row)
     s.flush()
     append_link(s, "revision", row)
-    return info(s, row), True
+    return info(s, row, lp), True
 
 
 def all_revisions(s: Session, loop: str) -> list[RevisionInfo]:
@@ -132,7 +133,8 @@ def all_revisions(s: Session, loop: str) -> list[RevisionInfo]:
 
 
 def get(s: Session, loop: str, label: str | None = None) -> RevisionInfo:
-    return info(s, revision_or_tip(s, loop_row(s, loop), label))
+    lp = loop_row(s, loop)
+    return info(s, revision_or_tip(s, lp, label), lp)
 
 
 def ancestry_labels(s: Session, loop: str, label: str) -> list[str]:
