@@ -16,10 +16,6 @@ from pathlib import Path
 from typing import Any
 
 from .errors import LedgerError, SpecError, UnitError, with_context
-from .store import loops as loops_db
-from .store import plants as plants_db
-from .store import requirements as req_db
-from .store import revisions as rev_db
 
 __all__ = ["SPEC_FORMAT", "ImportReport", "load_spec", "import_spec", "export_spec", "dump_spec"]
 
@@ -191,6 +187,11 @@ def import_spec(ledger, path: str | os.PathLike) -> ImportReport:
     The whole import is one writing context of the ledger's unit of work (retried as a whole
     while the database is busy): every record goes in through the store, or nothing does.
     """
+    from .store import loops as loops_db
+    from .store import plants as plants_db
+    from .store import requirements as req_db
+    from .store import revisions as rev_db
+
     p = Path(path)
     data = load_spec(p)
 
