@@ -25,13 +25,13 @@ from .store import revisions as rev_db
 from .store.db import display_url, resolve_url, scrub_secret
 from .store.migrate import ensure_schema
 from .store.session import UnitOfWork
-from .validate import LOOP_KINDS, METHODS, PLANT_HASH_FIELDS, STATUSES, plant_content_hash
+from .validate import LOOP_KINDS, METHODS, STATUSES
+from .validate import PLANT_HASH_FIELDS, plant_content_hash  # noqa: F401 - importable from here
 from .verification import runner
 
 __all__ = ["open_ledger", "Ledger", "METHODS", "STATUSES", "LOOP_KINDS"]
 
-#: kept importable from here (their home is :mod:`ledger.validate` and :mod:`ledger.config`)
-_ = (PLANT_HASH_FIELDS, plant_content_hash)
+#: the name recorded on new records by default (kept importable from here; see ledger.config)
 default_author = config.author
 
 
@@ -54,7 +54,8 @@ class Ledger:
         (metric, settings) requests the engine evaluated through this object.
     """
 
-    #: how many times a write may be retried when the database is busy (bounded)
+    #: how many times a write may be retried when the database is busy (bounded; read when
+    #: the ledger is opened, ``lg.store.write_retries`` afterwards)
     WRITE_RETRIES = config.WRITE_RETRIES
 
     def __init__(self, url: str, *, author: str | None = None):
