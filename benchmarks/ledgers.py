@@ -213,7 +213,7 @@ class _QueryCounter:
         from sqlalchemy import event
 
         self.n = 0
-        self._engines = {id(e): e for e in (lg._engine, lg._read_engine)}.values()
+        self._engines = lg.store.engines
         for e in self._engines:
             event.listen(e, "before_cursor_execute", self._hit)
 

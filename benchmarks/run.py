@@ -156,7 +156,7 @@ def run_split(cfg, rows, notes, tmp):
         for key, metric, limit in S.REQUIREMENTS:
             lg.add_requirement(key, title=metric, statement=f"{metric} {limit}", metric=metric,
                                limit=limit, loops=["pipette-z"])
-        V._FAMILIES.clear()          # the family build is part of a first revision's cost
+        V.clear_family_cache()       # the family build is part of a first revision's cost
         prof = W.profile_split(lambda: lg.add_revision("pipette-z", S.CONTROLLER,
                                                        rationale="profiled revision"))
     share = prof["outside_share"]

@@ -2,8 +2,8 @@
 
 Reduced design model ``K/(s (tau_m s + 1))`` with the full-order model
 ``K/(s (tau_m s + 1)(tau_e s + 1))`` beside it; tau_e = 0.4 ms, tau_m = 30 ms (+-20 %),
-K = 180 (+-10 %).  All numbers are invented for the benchmark (the demo scenario of
-``DESIGN.md``).  When ``sample_db/demo.toml`` exists its presence is reported, but the
+K = 180 (+-10 %).  All numbers are invented for the benchmark (the pipette axis of the
+demo in ``sample_db/``).  When ``sample_db/demo.toml`` exists its presence is reported, but the
 workloads stay on this fixed scenario so that figures from different runs compare.
 """
 

@@ -19,6 +19,9 @@ __all__ = [
     "SchemaError",
     "ComputeError",
     "UnstableLoopError",
+    "UsageError",
+    "OutputError",
+    "with_context",
 ]
 
 
@@ -85,3 +88,22 @@ class ComputeError(LedgerError, ArithmeticError):
 
 class UnstableLoopError(ComputeError):
     """The closed loop is unstable, so a response metric does not exist."""
+
+
+class UsageError(LedgerError, ValueError):
+    """A request that does not make sense as given (an unknown export format, options that
+    exclude each other, a folder that does not exist, an optional package not installed)."""
+
+
+class OutputError(LedgerError, OSError):
+    """A file could not be written (nothing is left half-written)."""
+
+
+def with_context(e: LedgerError, prefix: str) -> LedgerError:
+    """A copy of ``e`` (same class, same fields, e.g. a parse error's ``text`` and
+    ``position``) whose message starts with ``prefix: ``.  Raise it ``from e``."""
+    import copy
+
+    out = copy.copy(e)
+    out.args = (f"{prefix}: {e}",)
+    return out

@@ -7,7 +7,7 @@ import tempfile
 from pathlib import Path
 from typing import Callable
 
-from .errors import LedgerError
+from .errors import OutputError, UsageError
 
 __all__ = ["write_atomic"]
 
@@ -24,7 +24,7 @@ def write_atomic(path, writer: Callable[[Path], None]) -> Path:
     """
     path = Path(path).expanduser().resolve()
     if not path.parent.is_dir():
-        raise LedgerError(f"folder {path.parent} does not exist; create it first")
+        raise UsageError(f"folder {path.parent} does not exist; create it first")
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent)
     os.close(fd)
     tmp_path = Path(tmp)
@@ -36,7 +36,7 @@ def write_atomic(path, writer: Callable[[Path], None]) -> Path:
         os.replace(tmp_path, path)
     except OSError as e:
         tmp_path.unlink(missing_ok=True)
-        raise LedgerError(f"cannot write {path}: {e.strerror or e}; check the path and "
+        raise OutputError(f"cannot write {path}: {e.strerror or e}; check the path and "
                           "permissions") from e
     except BaseException:
         tmp_path.unlink(missing_ok=True)

@@ -13,9 +13,22 @@ from dataclasses import dataclass
 
 from .units import Limit
 
-__all__ = ["Judgement", "judge", "VERDICTS", "worse", "headroom_array", "passes_array"]
+__all__ = ["Judgement", "judge", "VERDICTS", "worse", "headroom_array", "passes_array",
+           "MATRIX_VERDICTS", "count_verdicts"]
 
 VERDICTS = ("pass", "fail", "error", "n/a", "stale")
+#: the words a matrix cell may show, in the order counts are reported
+MATRIX_VERDICTS = ("pass", "fail", "error", "stale", "unverified")
+
+
+def count_verdicts(items, words=MATRIX_VERDICTS) -> dict[str, int]:
+    """How many of ``items`` (anything with a ``verdict``) carry each verdict: every word of
+    ``words`` present (0 when none), then any other verdict met, in the order met.  The one
+    count behind the UI, the exports, the matrix and baselines."""
+    out = {w: 0 for w in words}
+    for it in items:
+        out[it.verdict] = out.get(it.verdict, 0) + 1
+    return out
 
 
 @dataclass(frozen=True)

@@ -13,6 +13,11 @@ __all__ = [
     "RevisionInfo",
     "ResultInfo",
     "LineageNode",
+    "lineage_forest",
+    "BaselineColumn",
+    "FrozenCell",
+    "SignoffInfo",
+    "BaselineInfo",
     "to_jsonable",
 ]
 
@@ -120,6 +125,87 @@ class ResultInfo:
 class LineageNode:
     revision: RevisionInfo
     children: tuple["LineageNode", ...] = field(default_factory=tuple)
+
+
+def lineage_forest(revs: list[RevisionInfo]) -> list[LineageNode]:
+    """The revision tree of one loop's revisions (in recorded order): a list of roots,
+    children in recorded order."""
+    # children are always recorded after their parent: build bottom-up without recursion
+    # (a loop may carry thousands of revisions in one chain)
+    built: dict[str, LineageNode] = {}
+    for r in reversed(revs):
+        built[r.label] = LineageNode(r, tuple(built[c] for c in r.children))
+    return [built[r.label] for r in revs if r.parent is None]
+
+
+# -- baselines and sign-offs (ledger.signoff) ----------------------------------------------
+@dataclass(frozen=True)
+class BaselineColumn:
+    """A frozen revision and the plant version its results are judged against."""
+
+    loop: str
+    revision: str
+    revision_hash: str
+    plant: str
+    plant_version: int
+    plant_hash: str
+
+
+@dataclass(frozen=True)
+class FrozenCell:
+    """A frozen matrix cell.  ``value`` and ``headroom`` are in the metric's unit (may be
+    ``math.inf``; ``None`` when there is no value)."""
+
+    requirement: str
+    requirement_version: int
+    requirement_hash: str
+    limit: str
+    loop: str
+    revision: str
+    revision_hash: str
+    plant: str
+    plant_version: int
+    plant_hash: str
+    verdict: str
+    value: float | None
+    headroom: float | None
+    engine_version: str
+
+
+@dataclass(frozen=True)
+class SignoffInfo:
+    baseline: str
+    name: str
+    role: str
+    statement: str
+    author: str
+    matrix_hash: str
+    chain_head: str
+    signed_at: datetime
+
+
+@dataclass(frozen=True)
+class BaselineInfo:
+    name: str
+    note: str
+    author: str
+    created_at: datetime
+    matrix_hash: str
+    supersedes: str | None
+    superseded_by: str | None
+    columns: tuple[BaselineColumn, ...]
+    cells: tuple[FrozenCell, ...]
+    signoffs: tuple[SignoffInfo, ...]
+
+    @property
+    def signed(self) -> bool:
+        return bool(self.signoffs)
+
+    def counts(self) -> dict[str, int]:
+        from .judge import count_verdicts
+
+        return count_verdicts(self.cells, ())
+
 
 
 def to_jsonable(obj: Any) -> Any:

@@ -15,7 +15,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from .errors import LedgerError, SpecError, UnitError
+from .errors import LedgerError, SpecError, UnitError, with_context
 
 __all__ = ["SPEC_FORMAT", "ImportReport", "load_spec", "import_spec", "export_spec", "dump_spec"]
 
@@ -182,16 +182,24 @@ def _topo_requirements(path, reqs: list[dict], existing: set[str]) -> list[dict]
 
 
 def import_spec(ledger, path: str | os.PathLike) -> ImportReport:
-    """Import a spec file into ``ledger`` in one transaction; return what changed."""
-    from sqlalchemy import select
+    """Import a spec file into ``ledger`` in one transaction; return what changed.
 
-    from .store.models import Requirement
+    The whole import is one writing context of the ledger's unit of work (retried as a whole
+    while the database is busy): every record goes in through the store, or nothing does.
+    """
+    from .store import loops as loops_db
+    from .store import plants as plants_db
+    from .store import requirements as req_db
+    from .store import revisions as rev_db
 
     p = Path(path)
     data = load_spec(p)
-    report = ImportReport()
-    with ledger.transaction() as s:
-        def guard(kind, rec, fld_hint, fn):
+
+    def work(s) -> ImportReport:
+        report = ImportReport()
+        author = ledger.author
+
+        def guard(kind, rec, fn):
             name = rec.get("name") or rec.get("id") or rec.get("label") or ""
             try:
                 return fn()
@@ -199,14 +207,14 @@ def import_spec(ledger, path: str | os.PathLike) -> ImportReport:
                 raise
             except LedgerError as e:
                 where = f"{kind} {name!r}" if name else kind
-                msg = str(e) if str(e).startswith(f"{where}: ") else f"{where}: {e}"
-                raise type(e)(f"{p}: {msg}") from e
+                prefix = p if str(e).startswith(f"{where}: ") else f"{p}: {where}"
+                raise with_context(e, prefix) from e
 
         for rec in data.get("plant", []):
             where = f"plant {rec['name']!r}"
             st = _seconds(p, where, "sample_time", rec.get("sample_time"))
-            info, changed = guard("plant", rec, None, lambda: ledger._add_plant(
-                s, rec["name"], rec["model"], params=rec.get("params"),
+            info, changed = guard("plant", rec, lambda: plants_db.add(
+                s, rec["name"], rec["model"], author=author, params=rec.get("params"),
                 fidelity=rec.get("fidelity"), samples=rec.get("samples", 0),
                 seed=rec.get("seed", 0), sample_time=st, input_unit=rec.get("input_unit", ""),
                 output_unit=rec.get("output_unit", ""), description=rec.get("description", ""),
@@ -217,7 +225,7 @@ def import_spec(ledger, path: str | os.PathLike) -> ImportReport:
             where = f"loop {rec['name']!r}"
             kw = {k: _seconds(p, where, k, rec.get(k)) for k in ("input_delay", "output_delay",
                                                                   "sample_time")}
-            info, changed = guard("loop", rec, None, lambda: ledger._add_loop(
+            info, changed = guard("loop", rec, lambda: loops_db.add(
                 s, rec["name"], rec["plant"], kind=rec.get("kind", "position"),
                 sensor=rec.get("sensor", ""), prefilter=rec.get("prefilter", ""),
                 input_delay=kw["input_delay"] or 0.0, output_delay=kw["output_delay"] or 0.0,
@@ -225,10 +233,10 @@ def import_spec(ledger, path: str | os.PathLike) -> ImportReport:
                 actuator_limit=rec.get("actuator_limit"), description=rec.get("description", "")))
             _tally(report, f"loop {info.name}", changed, 1)
 
-        existing = set(s.scalars(select(Requirement.key)))
+        existing = req_db.keys(s)
         for rec in _topo_requirements(p, data.get("requirement", []), existing):
-            info, changed = guard("requirement", rec, None, lambda: ledger._upsert_requirement(
-                s, rec["id"], title=rec["title"], statement=rec["statement"],
+            info, changed = guard("requirement", rec, lambda: req_db.upsert(
+                s, rec["id"], title=rec["title"], statement=rec["statement"], author=author,
                 rationale=rec.get("rationale", ""), method=rec.get("method", "analysis"),
                 status=rec.get("status", "draft"), metric=rec.get("metric"),
                 settings=rec.get("settings"), limit=rec.get("limit"),
@@ -237,15 +245,17 @@ def import_spec(ledger, path: str | os.PathLike) -> ImportReport:
 
         for rec in data.get("revision", []):
             parent = rec.get("parent", None)
-            info, changed = guard("revision", rec, None, lambda: ledger._add_revision(
+            info, changed = guard("revision", rec, lambda: rev_db.add(
                 s, rec["loop"], rec["controller"], rationale=rec["rationale"],
-                parent=parent if parent else None, author=rec.get("author"),
+                parent=parent if parent else None, author=rec.get("author") or author,
                 label=rec.get("label")))
             if changed:
                 report.revisions_added.append((info.loop, info.label))
             else:
                 report.unchanged.append(f"revision {info.loop}/{info.label}")
-    return report
+        return report
+
+    return ledger.store.write(work)
 
 
 def _tally(report: ImportReport, name: str, changed: bool, version: int) -> None:

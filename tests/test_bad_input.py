@@ -342,3 +342,25 @@ def test_unreachable_range_stored_behind_the_ledger_is_an_error_verdict(tmp_path
 def test_unknown_scheme_or_missing_driver_is_a_one_line_error(url, expect):
     line = _one_line_error(_cli(f"--db={url}", "loop", "list"))
     assert expect in line and "pw" not in line, line
+
+
+def test_prefixed_error_keeps_the_parse_position(tmp_path):
+    """An error re-raised with the record's name in front keeps its class and fields: the
+    position the model parser itself reports for the same text (the reference is the
+    parser's own error, raised directly)."""
+    from ledger.errors import ModelSyntaxError
+    from ledger.systems import compile_model
+
+    text = "K/(s*(tau*s + ))"
+    with pytest.raises(ModelSyntaxError) as direct:
+        compile_model(text)
+    with open_ledger(tmp_path / "l.db", create=True) as lg:
+        before = lg.counts()
+        with pytest.raises(ModelSyntaxError) as via_ledger:
+            lg.add_plant("p", text, params={"K": 1.0, "tau": 0.1})
+        assert lg.counts() == before
+    e = via_ledger.value
+    assert str(e).startswith("plant 'p': ")
+    assert (e.text, e.position, e.reason) == (direct.value.text, direct.value.position,
+                                              direct.value.reason)
+    assert e.position is not None

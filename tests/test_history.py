@@ -31,7 +31,7 @@ def _res(key="R-1", verdict="pass", value=50.0, limit=45.0, *, headroom=None, un
 
 
 # -- classes on hand-made results --------------------------------------------------------
-# Source for every class: the regression classes of DESIGN.md's glossary (our own
+# Source for every class: the regression classes of docs/history.md (our own
 # definitions: broke pass->fail, fixed fail->pass, eroded/improved beyond a fraction of the
 # older headroom); expected values below are plain arithmetic on the inputs.
 
@@ -193,7 +193,7 @@ def test_closed_form_values_are_what_the_ledger_holds(kloop):
     for label, k in (("r1", 0.5), ("r2", 1.0), ("r3", 2.0), ("r4", 2.5), ("b1", 0.6)):
         res = {r.requirement: r for r in kloop.results("ax", label)}
         pm, wc = _pm_closed_form(k)
-        # Target of DESIGN.md: closed-form cases agree to 1e-6 relative.
+        # Target (docs/performance.md, family sweep): closed-form cases agree to 1e-6 relative.
         assert_allclose(res["PM"].value, pm, rtol=1e-6)
         assert_allclose(res["WC"].value, wc, rtol=1e-6)
         # arg L = -90 deg - atan(w) > -180 deg for every finite w: no phase crossover, GM = inf

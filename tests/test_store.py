@@ -201,13 +201,15 @@ def test_write_is_one_transaction(populated, monkeypatch):
     """A failure in the middle of a multi-row write leaves nothing of it behind."""
     lg = populated
     before = _counts(lg)
-    orig = lg._write_req_version
+    import ledger.store.requirements as R
+
+    orig = R.write_version
 
     def boom(s, req, number, fields, author, note):
         orig(s, req, number, fields, author, note)  # rows written into the session...
         raise RuntimeError("simulated crash after the version row")
 
-    monkeypatch.setattr(lg, "_write_req_version", boom)
+    monkeypatch.setattr(R, "write_version", boom)
     with pytest.raises(RuntimeError):
         lg.add_requirement("PZ-9", title="t", statement="s", parents=["SYS-1"], loops=["pz"])
     assert _counts(lg) == before
@@ -223,3 +225,27 @@ def test_rationale_check_constraint_in_database(populated):
                 "controller_text, controller_canonical, content_hash, created_at) VALUES "
                 "(1, 'rx', 99, NULL, 'a', '  ', 'gain(1)', 'gain(1)', 'h', '2026-01-01')"))
     engine.dispose()
+
+
+def test_unit_of_work_translates_a_refused_constraint_and_writes_nothing(populated):
+    """A constraint the database refuses inside ``lg.store.write`` comes back as one
+    IntegrityViolation naming the refusal, and the whole transaction (the plant added first
+    in it, too) is rolled back.  The constraint is the schema's own CHECK on a revision's
+    rationale (migrations/versions; common practice, no source)."""
+    from ledger.store import plants as plants_db
+
+    lg = populated
+    before = _counts(lg)
+
+    def work(s):
+        plants_db.add(s, "extra", "1/(s+1)", author="t")
+        s.execute(text(
+            "INSERT INTO revision (loop_id, label, seq, parent_id, author, rationale, "
+            "controller_text, controller_canonical, content_hash, created_at) VALUES "
+            "(1, 'rx', 99, NULL, 'a', '  ', 'gain(1)', 'gain(1)', 'h', '2026-01-01')"))
+
+    with pytest.raises(IntegrityViolation, match="(?i)database refused the change: .*check"):
+        lg.store.write(work)
+    assert _counts(lg) == before
+    with pytest.raises(NotFoundError):
+        lg.plant("extra")

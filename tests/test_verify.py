@@ -116,7 +116,7 @@ def test_improper_controller_is_refused_and_nothing_written(pm_ledger):
 def test_interrupted_write_leaves_no_half_result_set(pm_ledger, monkeypatch):
     lg = pm_ledger
     lg.add_revision("p", "gain(1)", rationale="unity gain", verify=False)
-    import ledger.chain as C
+    import ledger.store.chain as C
 
     orig = C.append_results
 

@@ -10,7 +10,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from ..errors import LedgerError
+from ..errors import UsageError
 from .junit import export_junit
 from .reqif import export_reqif
 from .rows import COLUMNS, SCHEMA_VERSION, ExportRow, matrix_rows
@@ -41,17 +41,17 @@ def format_for(path, fmt: str | None = None) -> str:
 
     Raises
     ------
-    LedgerError
+    UsageError
         Unknown format or suffix.
     """
     if fmt is not None:
         f = fmt.lower()
         if f not in FORMATS:
-            raise LedgerError(f"unknown export format {fmt!r}; use one of {', '.join(FORMATS)}")
+            raise UsageError(f"unknown export format {fmt!r}; use one of {', '.join(FORMATS)}")
         return f
     suffix = Path(path).suffix.lower()
     if suffix not in SUFFIXES:
-        raise LedgerError(f"cannot tell the format from {Path(path).name!r}; use a suffix of "
+        raise UsageError(f"cannot tell the format from {Path(path).name!r}; use a suffix of "
                           f"{', '.join(sorted(SUFFIXES))} or give the format")
     return SUFFIXES[suffix]
 
@@ -81,17 +81,17 @@ def export_matrix(matrix, path, fmt: str | None = None, *, ledger=None,
 
     Raises
     ------
-    LedgerError
+    UsageError
         Unknown format, HTML without ``ledger``, or ``stale_as_skipped`` for another format.
     """
     f = format_for(path, fmt)
     if stale_as_skipped and f != "junit":
-        raise LedgerError(f"stale_as_skipped applies to the JUnit export only, not {f}")
+        raise UsageError(f"stale_as_skipped applies to the JUnit export only, not {f}")
     if f == "junit":
         return export_junit(matrix, path, stale_as_skipped=stale_as_skipped)
     if f == "html":
         if ledger is None:
-            raise LedgerError("the HTML report needs the ledger to draw its curves; pass "
+            raise UsageError("the HTML report needs the ledger to draw its curves; pass "
                               "ledger=lg")
         return export_html(matrix, path, ledger)
     return {"csv": export_csv, "json": export_json, "xlsx": export_xlsx,

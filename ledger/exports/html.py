@@ -165,7 +165,7 @@ def render_html(matrix, lg) -> str:
     lg : Ledger
         The ledger the matrix came from; its revisions are rebuilt to draw the curves.
     """
-    from .evidence import column_curves
+    from ..curves import column_curves
     from .plots import entry_figure
 
     rows = matrix_rows(matrix)

@@ -19,7 +19,8 @@ from pathlib import Path
 from typing import Callable
 
 from ..fileio import write_atomic  # noqa: F401 - re-exported for the exporters
-from ..errors import ComputeError, LedgerError
+from ..errors import ComputeError, UsageError
+from ..judge import MATRIX_VERDICTS, count_verdicts
 
 __all__ = ["require", "SCHEMA_VERSION", "COLUMNS", "VERDICT_ORDER", "ExportRow", "matrix_rows",
            "number_text", "parse_number", "write_atomic", "write_xml", "verdict_counts"]
@@ -28,7 +29,7 @@ __all__ = ["require", "SCHEMA_VERSION", "COLUMNS", "VERDICT_ORDER", "ExportRow",
 SCHEMA_VERSION = "loopledger-matrix/1"
 
 #: Verdict words in the order summaries list them.
-VERDICT_ORDER = ("pass", "fail", "error", "stale", "unverified")
+VERDICT_ORDER = MATRIX_VERDICTS
 
 
 @dataclass(frozen=True)
@@ -119,7 +120,7 @@ def require(module: str):
     try:
         return importlib.import_module(module)
     except ImportError as e:
-        raise LedgerError(f"this export needs the Python package {module.split('.')[0]!r}; "
+        raise UsageError(f"this export needs the Python package {module.split('.')[0]!r}; "
                           "install the extra: pip install 'loopledger[export]'") from e
 
 
@@ -154,11 +155,7 @@ def matrix_rows(matrix) -> list[ExportRow]:
 
 def verdict_counts(rows, loop: str | None = None) -> dict[str, int]:
     """Number of rows per verdict word (every word of :data:`VERDICT_ORDER` present)."""
-    out = {v: 0 for v in VERDICT_ORDER}
-    for r in rows:
-        if loop is None or r.loop == loop:
-            out[r.verdict] = out.get(r.verdict, 0) + 1
-    return out
+    return count_verdicts((r for r in rows if loop is None or r.loop == loop), VERDICT_ORDER)
 
 
 def number_text(x: float | None, *, digits: int = 17) -> str:

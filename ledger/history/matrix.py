@@ -13,6 +13,7 @@ from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from typing import Iterable, Sequence
 
+from ..judge import count_verdicts
 from ..records import RequirementInfo, ResultInfo, RevisionInfo
 
 __all__ = ["CAUTION", "MatrixEntry", "Matrix", "build_matrix"]
@@ -67,10 +68,7 @@ class Matrix:
         return None
 
     def counts(self) -> dict[str, int]:
-        out: dict[str, int] = {}
-        for e in self.entries:
-            out[e.verdict] = out.get(e.verdict, 0) + 1
-        return out
+        return count_verdicts(self.entries, ())
 
     @property
     def loops(self) -> tuple[str, ...]:

@@ -25,13 +25,11 @@ from sqlalchemy.exc import (
 )
 from sqlalchemy.orm import Session, sessionmaker
 
+from ..config import BUSY_TIMEOUT_MS, DEFAULT_PATH, db_target
 from ..errors import LedgerError, SchemaError
 
 __all__ = ["DEFAULT_PATH", "resolve_url", "make_engine", "session_scope", "is_sqlite",
            "display_url", "scrub_secret", "driver_message"]
-
-DEFAULT_PATH = "loopledger.db"
-BUSY_TIMEOUT_MS = 10_000
 
 
 _USERINFO_RE = re.compile(r"(://[^:/@\s]*:)[^@\s]*@")
@@ -107,7 +105,7 @@ def resolve_url(target: str | os.PathLike | None = None) -> str:
     SQLite URL; anything with ``://`` is taken as a URL (e.g. ``postgresql+psycopg://...``).
     """
     if target is None:
-        target = os.environ.get("LOOPLEDGER_DB") or DEFAULT_PATH
+        target = db_target()
     text = os.fspath(target)
     if "://" in text:
         try:

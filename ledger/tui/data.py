@@ -9,6 +9,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 
+from ..judge import count_verdicts
 from ..records import RequirementInfo, RevisionInfo
 
 __all__ = ["RevisionRow", "LineageData", "load_lineage", "MatrixData", "load_matrix",
@@ -19,10 +20,7 @@ VERDICTS = ("pass", "fail", "error", "stale")
 
 def verdict_counts(results) -> dict[str, int]:
     """Number of results per verdict (every verdict in :data:`VERDICTS` present)."""
-    out = {v: 0 for v in VERDICTS}
-    for r in results:
-        out[r.verdict] = out.get(r.verdict, 0) + 1
-    return out
+    return count_verdicts(results, VERDICTS)
 
 
 @dataclass(frozen=True)

@@ -1,6 +1,6 @@
 """Numbers behind the plot view: step response and loop-gain frequency response of one
-revision on one plant variant, rebuilt with the same helpers verification uses
-(``ledger.verify.family_for``, ``loop_spec_for``, ``controller_for``).  Run in a worker; the
+revision on one plant variant, rebuilt through the one home of a revision's curves
+(:func:`ledger.curves.revision_curves`, the same helpers verification uses).  Run in a worker; the
 engine is imported here lazily so that the UI starts fast.
 """
 
@@ -70,32 +70,22 @@ def _thin(t: np.ndarray, y: np.ndarray, n: int = 400):
 def load_plot_data(lg, loop: str, label: str | None = None, *, variant: str | None = None
                    ) -> PlotData:
     """Rebuild the loop of ``loop/label`` on ``variant`` (default: nominal) and compute its
-    step response and loop-gain frequency response."""
-    from ..engine.freqresp import frequency_grid
-    from ..engine.loop import assemble
-    from ..engine.margins import margins
-    from ..engine.timeresp import step_response
-    from ..engine.types import PlantFamily
-    from ..errors import NotFoundError
+    step response and loop-gain frequency response (:func:`ledger.curves.revision_curves`
+    with the engine's own grids)."""
+    from ..curves import revision_curves
 
     rev = lg.revision(loop, label)
-    fam, controller, loop_spec = lg.numeric_setup(loop, rev.label)
     name = variant or "nominal"
-    if name not in fam.names:
-        raise NotFoundError(f"plant family of loop {loop!r} has no variant {name!r}")
-    v = fam.variants[fam.names.index(name)]
-    asm = assemble(PlantFamily((v,)), controller, loop_spec)
-    grp = asm.groups[0]
-    sr = step_response(grp.paths["r->y"])
-    t, y = _thin(sr.t, sr.y[0])
-    fb = grp.loop_gain
-    w = frequency_grid(fb)
-    w = w[w > 0]
-    L = fb.evaluate(w)[0]
+    curves = revision_curves(lg, loop, rev.label, [name], include_nominal=False, grid={},
+                             freq_grid={})
+    st, fr = curves.step("r->y"), curves.freq()
+    t, y = _thin(st.t[name], st.y[name])
+    w = fr.w[name]
+    L = fr.L[name]
     mag = 20 * np.log10(np.abs(L))
     ph = np.degrees(np.unwrap(np.angle(L)))
     idx = np.unique(np.geomspace(1, w.size, min(w.size, 400)).round().astype(int) - 1)
-    m = margins(fb)
+    final = st.final[name]
     bounds = []
     checks = [r for r in lg.requirements(loop=loop) if r.metric and r.status != "retired"]
     for c in checks:
@@ -104,8 +94,8 @@ def load_plot_data(lg, loop: str, label: str | None = None, *, variant: str | No
             continue
         val = c.limit_value
         if kind == "overshoot":
-            val = float(sr.final[0]) * (1 + c.limit_value / 100.0)
+            val = float(final) * (1 + c.limit_value / 100.0)
         bounds.append(Bound(c.key, kind, float(val), f"{c.key} {c.metric} {c.limit_text}"))
-    return PlotData(loop, rev.label, name, t, y, float(sr.final[0]), tuple(bounds), w[idx],
-                    mag[idx], ph[idx], float(m.gain_margin[0]), float(m.phase_crossover[0]),
-                    float(m.phase_margin[0]), float(m.gain_crossover[0]))
+    return PlotData(loop, rev.label, name, t, y, float(final), tuple(bounds), w[idx],
+                    mag[idx], ph[idx], float(fr.gain_margin[name]), float(fr.phase_crossover[name]),
+                    float(fr.phase_margin[name]), float(fr.gain_crossover[name]))

@@ -1,0 +1,53 @@
+"""Configuration: every environment variable loopledger reads and its tunables, in one place.
+
+Environment variables (read when asked, never at import, so a test or a caller may set them):
+
+``LOOPLEDGER_DB``
+    The ledger opened when no path or URL is given (default ``./loopledger.db``).
+``LOOPLEDGER_AUTHOR``
+    The name recorded on new records (default: the login name).
+``LOOPLEDGER_DEBUG``
+    Set to show the traceback of an unexpected error in the command line.
+
+Tunables are module constants; change them here, not where they are used.
+"""
+
+from __future__ import annotations
+
+import getpass
+import os
+
+__all__ = ["DEFAULT_PATH", "BUSY_TIMEOUT_MS", "WRITE_RETRIES", "IN_CHUNK", "FAMILY_CACHE_SIZE",
+           "db_target", "author", "debug"]
+
+#: the ledger file used when none is named and ``$LOOPLEDGER_DB`` is unset
+DEFAULT_PATH = "loopledger.db"
+#: how long an SQLite connection waits for a lock before the database counts as busy (ms)
+BUSY_TIMEOUT_MS = 10_000
+#: how many times one write transaction is retried while the database is busy
+WRITE_RETRIES = 5
+#: values per ``IN (...)`` list in one query (under SQLite's and PostgreSQL's parameter limits)
+IN_CHUNK = 500
+#: plant families kept built in one process (keyed by content hash and parameter order)
+FAMILY_CACHE_SIZE = 32
+
+
+def db_target() -> str:
+    """``$LOOPLEDGER_DB`` or :data:`DEFAULT_PATH`."""
+    return os.environ.get("LOOPLEDGER_DB") or DEFAULT_PATH
+
+
+def author() -> str:
+    """``$LOOPLEDGER_AUTHOR``, else the login name, else ``"unknown"``."""
+    env = os.environ.get("LOOPLEDGER_AUTHOR")
+    if env:
+        return env
+    try:
+        return getpass.getuser()
+    except (KeyError, OSError):
+        return "unknown"
+
+
+def debug() -> bool:
+    """True when ``$LOOPLEDGER_DEBUG`` is set to anything but empty."""
+    return bool(os.environ.get("LOOPLEDGER_DEBUG"))

@@ -1,0 +1,164 @@
+"""Computing: metric values of a plan over the plant family and the verdicts they give.
+
+No database here: a plan (:mod:`ledger.verification.plan`) and the cached payloads in, the
+payloads (JSON-able) out.  This is what worker processes run.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+from ..config import FAMILY_CACHE_SIZE
+from ..errors import LedgerError, ModelError
+from ..judge import headroom_array, judge, passes_array
+from ..units import Limit
+from .plan import Check, RevisionPlan
+
+__all__ = ["family_for", "clear_family_cache", "loop_spec_for", "controller_for",
+           "validate_controller", "compute_plan", "compute_plans", "Judged", "judge_payload"]
+
+_FAMILIES: dict[tuple, object] = {}
+
+
+def family_for(plan: RevisionPlan):
+    """The plant family of the plan's plant version (memoised by content hash and parameter
+    order: the order names the corners)."""
+    memo = (plan.plant_hash, tuple(plan.plant_spec["params"]))
+    fam = _FAMILIES.get(memo)
+    if fam is None:
+        from ..systems import build_family
+
+        p = plan.plant_spec
+        fam = build_family(p["model"], p["params"], corners=True, samples=p["samples"],
+                           seed=p["seed"], fidelity=p["fidelity"], sample_time=p["sample_time"])
+        if len(_FAMILIES) > FAMILY_CACHE_SIZE:
+            _FAMILIES.clear()
+        _FAMILIES[memo] = fam
+    return fam
+
+
+def clear_family_cache() -> None:
+    """Forget the plant families built in this process."""
+    _FAMILIES.clear()
+
+
+def loop_spec_for(plan: RevisionPlan):
+    from ..engine.loop import LoopSpec
+    from ..systems import parse_model
+
+    f = plan.loop_form
+    ts = f["sample_time"]
+
+    def block(text, what):
+        if not text:
+            return None
+        ev = parse_model(text, sample_time=ts)
+        if ev.delay:
+            raise ModelError(f"the loop's {what} has a delay; give it as a loop delay instead")
+        return ev.system
+
+    return LoopSpec(sensor=block(f["sensor"], "sensor"), prefilter=block(f["prefilter"], "prefilter"),
+                    input_delay=f["input_delay"], output_delay=f["output_delay"],
+                    sample_time=ts, computation_delay=f["computation_delay"],
+                    actuator_limit=f["actuator_limit"])
+
+
+def controller_for(plan: RevisionPlan):
+    from ..systems import parse_model
+
+    ev = parse_model(plan.controller_text, sample_time=plan.loop_form["sample_time"])
+    if ev.delay:
+        raise ModelError("the controller text has a delay; give loop delays on the loop")
+    return ev.system
+
+
+def validate_controller(plan: RevisionPlan) -> None:
+    """Refuse a controller that cannot close this loop at all (improper, wrong sample time,
+    algebraic loop), with the engine's reason."""
+    from ..engine.loop import assemble
+    from ..engine.types import PlantFamily
+
+    fam = family_for(plan)
+    assemble(PlantFamily((fam.variants[0],)), controller_for(plan), loop_spec_for(plan))
+
+
+def _encode(values: np.ndarray) -> list:
+    return [("inf" if v > 0 else "-inf") if math.isinf(v) else float(v) for v in values]
+
+
+def _decode(values: list) -> np.ndarray:
+    return np.array([float(v) for v in values], dtype=float)
+
+
+def compute_plan(plan: RevisionPlan, cached: dict[str, dict]) -> tuple[dict[str, dict], int]:
+    """Payloads for every check's metric key: cached ones as given, the rest computed in one
+    batched call.  Returns (payloads by key, number of (metric, settings) requests computed)."""
+    payloads: dict[str, dict] = {}
+    todo: dict[str, tuple[str, dict]] = {}
+    for c in plan.checks:
+        k = plan.metric_key(c.metric, c.settings)
+        if k in cached:
+            payloads[k] = cached[k]
+        else:
+            todo[k] = (c.metric, c.settings)
+    if not todo:
+        return payloads, 0
+    from ..engine.measure import measure_family
+
+    fam = family_for(plan)
+    try:
+        res = measure_family(fam, controller_for(plan), loop_spec_for(plan), list(todo.values()))
+    except LedgerError as e:
+        for k, (metric, _) in todo.items():
+            payloads[k] = {"metric": metric, "variants": list(fam.names), "values": [],
+                           "errors": {"*": str(e)}, "unstable": False}
+        return payloads, len(todo)
+    for k, (metric, settings) in todo.items():
+        r = res.get(metric, settings)
+        payloads[k] = {"metric": metric, "variants": list(r.variants), "values": _encode(r.values),
+                       "errors": dict(r.variant_errors), "unstable": bool(r.unstable)}
+    return payloads, len(todo)
+
+
+def compute_plans(batch: list[tuple[RevisionPlan, dict]]) -> list[tuple[dict, int]]:
+    """:func:`compute_plan` for several plans (one task of a worker process)."""
+    return [compute_plan(plan, cached) for plan, cached in batch]
+
+
+@dataclass(frozen=True)
+class Judged:
+    verdict: str
+    value: float | None
+    headroom: float | None
+    headroom_fraction: float | None
+    worst_variant: str
+    pass_fraction: float | None
+    variants: int
+    reason: str
+
+
+def judge_payload(check: Check, payload: dict) -> Judged:
+    """Worst case over the family by the requirement's own comparator."""
+    variants = payload["variants"]
+    errors = payload.get("errors") or {}
+    n = len(variants)
+    if errors:
+        first_variant, reason = next(iter(errors.items()))
+        more = f" (and {len(errors) - 1} more variant(s))" if len(errors) > 1 else ""
+        where = "" if first_variant == "*" else f" on {first_variant}"
+        if payload.get("unstable"):
+            return Judged("fail", None, None, None, first_variant, 1 - len(errors) / n if n else None,
+                          n, f"unstable{where}: {reason}{more}")
+        return Judged("error", None, None, None, first_variant, None, n,
+                      f"cannot compute{where}: {reason}{more}")
+    vals = _decode(payload["values"])
+    lim = Limit(check.comparator, check.limit_value, check.unit, check.limit_text)
+    h = headroom_array(check.comparator, vals, check.limit_value)
+    i = int(np.argmin(h))
+    j = judge(lim, float(vals[i]))
+    passing = passes_array(check.comparator, vals, check.limit_value)
+    return Judged(j.verdict, float(vals[i]), j.headroom, j.headroom_fraction, variants[i],
+                  float(passing.mean()), n, "")

@@ -1,0 +1,155 @@
+"""Planning: what must be computed to bring a revision up to date (read side, one snapshot).
+
+A plan holds everything the computation needs as plain data (texts, numbers, ids), so it can
+be sent to a worker process and computed without a session.
+"""
+
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass, field
+from typing import Iterable
+
+from ..store.session import Session
+
+from ..hashing import sha256_of
+from ..store import loops as loops_db
+from ..store import plants as plants_db
+from ..store import requirements as req_db
+from ..store import results as results_db
+from ..store import revisions as rev_db
+from ..store.models import Loop, PlantVersion, Revision
+
+__all__ = ["Check", "RevisionPlan", "engine_version", "applicable_checks", "plan_revision",
+           "plan_head", "plan_loops", "plan_controller"]
+
+
+def engine_version() -> str:
+    from ..engine.measure import ENGINE_VERSION
+
+    return ENGINE_VERSION
+
+
+@dataclass(frozen=True)
+class Check:
+    """One requirement version to judge."""
+
+    version_id: int
+    key: str
+    version: int
+    status: str
+    metric: str
+    settings: dict          # complete (defaults filled in)
+    comparator: str
+    limit_value: float
+    limit_text: str
+    unit: str
+
+
+@dataclass
+class RevisionPlan:
+    loop: str
+    loop_id: int
+    label: str | None
+    revision_id: int | None
+    controller_text: str
+    controller_canonical: str
+    loop_form: dict
+    plant_version_id: int
+    plant_version: int
+    plant_hash: str
+    plant_spec: dict
+    checks: list[Check] = field(default_factory=list)
+
+    def metric_key(self, metric: str, settings: dict) -> str:
+        """Content hash of everything a family's metric values depend on."""
+        return sha256_of({
+            "engine": engine_version(), "plant": self.plant_hash,
+            "controller": self.controller_canonical, "loop": self.loop_form,
+            "metric": metric, "settings": _jsonable_settings(settings),
+        })
+
+    def keys(self) -> list[str]:
+        """The metric key of every check, in order."""
+        return [self.metric_key(c.metric, c.settings) for c in self.checks]
+
+
+def _jsonable_settings(settings: dict) -> dict:
+    return {k: list(v) if isinstance(v, tuple) else v for k, v in sorted(settings.items())}
+
+
+def applicable_checks(s: Session, loop_id: int, keys: Iterable[str] | None = None) -> list[Check]:
+    """Latest, non-retired, metric-bearing requirement versions that apply to the loop."""
+    from ..catalogue import metric_unit
+    from ..engine.metrics import resolve_settings
+
+    return [Check(
+        version_id=v.id, key=key, version=v.number, status=v.status, metric=v.metric,
+        settings=resolve_settings(v.metric, json.loads(v.settings_json)),
+        comparator=v.comparator, limit_value=v.limit_value, limit_text=v.limit_text,
+        unit=metric_unit(v.metric),
+    ) for key, v in req_db.applicable_versions(s, loop_id, keys)]
+
+
+def plan_head(loop: Loop, pv: PlantVersion, revision: Revision | None,
+              controller_text: str | None = None,
+              controller_canonical: str | None = None) -> RevisionPlan:
+    """A plan without checks for ``revision`` (or a controller) against plant version ``pv``."""
+    return RevisionPlan(
+        loop=loop.name, loop_id=loop.id, label=revision.label if revision else None,
+        revision_id=revision.id if revision else None,
+        controller_text=revision.controller_text if revision else controller_text,
+        controller_canonical=revision.controller_canonical if revision else controller_canonical,
+        loop_form=loops_db.loop_form(loop), plant_version_id=pv.id, plant_version=pv.number,
+        plant_hash=pv.content_hash,
+        plant_spec={"model": pv.model_text, "params": json.loads(pv.parameters_json),
+                    "fidelity": json.loads(pv.fidelity_json), "samples": pv.samples,
+                    "seed": pv.seed, "sample_time": pv.sample_time},
+    )
+
+
+def plan_revision(s: Session, loop: Loop, *, revision: Revision | None = None,
+                  controller_text: str | None = None, controller_canonical: str | None = None,
+                  keys: Iterable[str] | None = None, missing_only: bool = True) -> RevisionPlan:
+    """What must be computed to bring ``revision`` (or a not-yet-recorded controller) up to
+    date against the latest requirement and plant versions."""
+    pv = plants_db.latest_version(s, loop.plant_id)
+    plan = plan_head(loop, pv, revision, controller_text, controller_canonical)
+    checks = applicable_checks(s, loop.id, keys)
+    if revision is not None and missing_only:
+        done = results_db.judged_version_ids(s, revision.id, pv.id)
+        checks = [c for c in checks if c.version_id not in done]
+    plan.checks = checks
+    return plan
+
+
+def plan_loops(s: Session, loop: str | None = None, *, label: str | None = None,
+               tips_only: bool = False, keys: Iterable[str] | None = None
+               ) -> list[tuple[RevisionPlan, dict]]:
+    """(plan, cached payloads) of every revision with something missing: all revisions, the
+    tips only, or revision ``label``, of one loop or all of them."""
+    plans = []
+    for lp in loops_db.loop_rows(s, loop):
+        if label is not None:
+            revs = [rev_db.revision_row(s, lp, label)]
+        elif tips_only:
+            tip = rev_db.tip_row(s, lp)
+            revs = [tip] if tip is not None else []
+        else:
+            revs = rev_db.revision_rows(s, lp)
+        for rev in revs:
+            plan = plan_revision(s, lp, revision=rev, keys=keys)
+            if plan.checks:
+                plans.append((plan, results_db.load_cached(s, plan.keys())))
+    return plans
+
+
+def plan_controller(s: Session, loop: str, controller: str) -> tuple[RevisionPlan, dict]:
+    """(plan, cached payloads) for a controller not recorded yet on ``loop``."""
+    from ..validate import model_canonical
+
+    lp = loops_db.loop_row(s, loop)
+    canonical = model_canonical(controller, what=f"revision of loop {loop!r}: controller",
+                                sample_time=lp.sample_time)
+    plan = plan_revision(s, lp, controller_text=controller, controller_canonical=canonical)
+    return plan, results_db.load_cached(s, plan.keys())
