@@ -280,6 +280,8 @@ class Ledger:
     # -- plants ---------------------------------------------------------------------------
     def _plant_fields(self, name, model, params, fidelity, samples, seed, sample_time,
                       input_unit, output_unit) -> dict:
+        from .units import check_plant_unit
+
         what = f"plant {name!r}"
         sample_time = _finite("sample_time", sample_time, allow_none=True, minimum=0, strict=True)
         canonical = _model_canonical(model, what=what, sample_time=sample_time)
@@ -301,8 +303,8 @@ class Ledger:
             samples=samples,
             seed=int(seed or 0),
             sample_time=sample_time,
-            input_unit=input_unit or "",
-            output_unit=output_unit or "",
+            input_unit=check_plant_unit(input_unit, f"{what}: input unit"),
+            output_unit=check_plant_unit(output_unit, f"{what}: output unit"),
         )
         # the family must build (parameters present, tolerances sane); fails fast with the reason
         from .systems import build_family
@@ -523,7 +525,7 @@ class Ledger:
         limit_text = ""
         if metric:
             from .catalogue import check_settings, metric_unit
-            from .units import parse_limit
+            from .units import parse_limit_for
 
             unit = metric_unit(metric)  # raises for an unknown metric
             try:
@@ -532,8 +534,12 @@ class Ledger:
                 raise type(e)(f"{what}: {e}") from e
             if limit is None:
                 raise IntegrityViolation(f"{what}: metric {metric!r} needs a limit, e.g. '<= 25 ms'")
+            plants = []  # (loop, plant input unit, plant output unit): the limit must fit each
+            for ln in sorted(set(loops or ())):
+                pv = self._latest_plant_version(s, self._loop_row(s, ln).plant_id)
+                plants.append((ln, pv.input_unit if pv else "", pv.output_unit if pv else ""))
             try:
-                lim = parse_limit(limit, unit)
+                lim = parse_limit_for(limit, metric, unit, plants)
             except LedgerError as e:
                 raise type(e)(f"{what}: {e}") from e
             comparator, limit_value, limit_text = lim.comparator, lim.value, lim.text
@@ -1054,6 +1060,7 @@ class Ledger:
     def _results_for(self, s: Session, lp: Loop, revs: list[Revision], include_stale: bool,
                      keys: Sequence[str] | None = None) -> dict[str, list[ResultInfo]]:
         from .catalogue import metric_unit
+        from .units import resolve_unit
         from .verify import uncap
 
         pv = self._latest_plant_version(s, lp.plant_id)
@@ -1102,7 +1109,8 @@ class Ledger:
                 loop=lp.name, revision=by_id[rev_id].label, requirement=key,
                 requirement_version=rv.number, plant_version=rpv_number,
                 verdict="stale" if stale else res.verdict, value=uncap(res.value),
-                unit=metric_unit(rv.metric) if rv.metric else "", limit_text=rv.limit_text,
+                unit=(resolve_unit(rv.metric, metric_unit(rv.metric), pv.input_unit, pv.output_unit)
+                      if rv.metric else ""), limit_text=rv.limit_text,
                 headroom=uncap(res.headroom), headroom_fraction=uncap(res.headroom_fraction),
                 worst_variant=res.worst_variant, pass_fraction=res.pass_fraction,
                 variants=res.variants, reason=res.reason, engine_version=res.engine_version,

@@ -68,6 +68,7 @@ class Check:
     limit_value: float
     limit_text: str
     unit: str
+    problem: str = ""       # the limit does not fit the plant's units (judged as an error)
 
 
 @dataclass
@@ -133,13 +134,26 @@ def applicable_checks(s: Session, loop_id: int, keys: Iterable[str] | None = Non
              .order_by(Requirement.key))
     if keys is not None:
         query = query.where(Requirement.key.in_(list(keys)))
+    from .units import PLANT_UNIT_METRICS, parse_limit_for
+
+    loop = s.get(Loop, loop_id)
+    pv = latest_plant_version(s, loop.plant_id) if loop is not None else None
+    iu, ou = (pv.input_unit, pv.output_unit) if pv is not None else ("", "")
     out = []
     for key, v in s.execute(query):
+        unit, limit_value, problem = metric_unit(v.metric), v.limit_value, ""
+        if v.metric in PLANT_UNIT_METRICS and (iu or ou):
+            # the limit read against this plant's declared units (docs/metrics.md, units)
+            try:
+                lim = parse_limit_for(v.limit_text, v.metric, unit, [(loop.name, iu, ou)])
+                unit, limit_value = lim.unit, lim.value
+            except LedgerError as e:
+                problem = str(e)
         out.append(Check(
             version_id=v.id, key=key, version=v.number, status=v.status, metric=v.metric,
             settings=resolve_settings(v.metric, json.loads(v.settings_json)),
-            comparator=v.comparator, limit_value=v.limit_value, limit_text=v.limit_text,
-            unit=metric_unit(v.metric),
+            comparator=v.comparator, limit_value=limit_value, limit_text=v.limit_text,
+            unit=unit, problem=problem,
         ))
     return out
 
@@ -343,6 +357,8 @@ def judge_payload(check: Check, payload: dict) -> Judged:
     variants = payload["variants"]
     errors = payload.get("errors") or {}
     n = len(variants)
+    if check.problem:
+        return Judged("error", None, None, None, "", None, n, check.problem)
     if errors:
         first_variant, reason = next(iter(errors.items()))
         more = f" (and {len(errors) - 1} more variant(s))" if len(errors) > 1 else ""

@@ -29,7 +29,8 @@ BACKENDS = ["sqlite", "postgresql"]
 # another BLAS set-up (see .ci/run), so a tolerance that holds on one kernel only fails there.
 # A new numeric test module goes in this list.
 NUMERIC_MODULES = {"test_blocks", "test_family", "test_freqresp", "test_loop", "test_measure",
-                   "test_parser", "test_stability", "test_timeresp", "test_units"}
+                   "test_parser", "test_stability", "test_timeresp", "test_units", "test_plant_units",
+                   "test_display"}
 
 
 def pytest_configure(config):
