@@ -49,9 +49,16 @@ def _main(
     author: Optional[str] = typer.Option(
         None, "--author", help="Name recorded on new records (default: $LOOPLEDGER_AUTHOR or login)."
     ),
+    digits: Optional[int] = typer.Option(
+        None, "--digits", min=1, max=17,
+        help="Significant digits of shown values (default: $LOOPLEDGER_DIGITS or 4).",
+    ),
 ):
+    from .display import set_digits
+
     _state["db"] = db
     _state["author"] = author
+    set_digits(digits)
 
 
 def _open(create: bool = False):
@@ -609,15 +616,14 @@ def _print_results(results, title: str) -> None:
     if not results:
         typer.echo("  no applicable requirements with a metric")
         return
+    from .display import headroom_text, value_text
+
     rows = []
     for r in results:
-        head = "-" if r.headroom is None or r.unit == "bool" else _fmt(r.headroom, r.unit)
-        if r.headroom_fraction is not None and r.headroom is not None and r.unit != "bool":
-            import math
-            if math.isfinite(r.headroom_fraction):
-                head += f" ({r.headroom_fraction:+.0%})"
+        head = headroom_text(r.value, r.headroom, r.headroom_fraction, r.unit, r.limit_text)
+        head = head.replace(" of the limit)", ")")
         rows.append([r.requirement, f"{_MARK.get(r.verdict, r.verdict)} {r.verdict}",
-                     _fmt(r.value, r.unit) if r.value is not None else "-", r.limit_text,
+                     value_text(r.value, r.unit, r.limit_text), r.limit_text,
                      head, r.worst_variant or "-",
                      "-" if r.pass_fraction is None else f"{r.pass_fraction:.0%}",
                      _short(r.reason, 50) or ""])

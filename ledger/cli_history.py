@@ -25,22 +25,21 @@ class ExitOn(str, Enum):
     any = "any"
 
 
-def _fmt(value, unit: str) -> str:
-    from .units import format_value
+def _fmt(value, unit: str, limit_text: str = "") -> str:
+    from .display import value_text
 
-    return format_value(value, unit)
+    return value_text(value, unit, limit_text)
 
 
 def _delta(c) -> str:
+    from .display import headroom_delta_text
+
     if c.headroom_delta is None:
         return "-"
-    text = _fmt(c.headroom_delta, c.unit)
-    if c.headroom_delta > 0 and not text.startswith("+"):
-        text = "+" + text
     both_pass = c.old_verdict == "pass" and c.new_verdict == "pass"
-    if (both_pass or c.kind == "moved") and c.headroom_change is not None and math.isfinite(c.headroom_change):
-        text += f" ({c.headroom_change:+.0%})"
-    return text
+    change = c.headroom_change if (both_pass or c.kind == "moved") else None
+    return headroom_delta_text(c.old_value, c.new_value, c.old_headroom, c.new_headroom,
+                               c.unit, c.limit_text, change)
 
 
 def _versions(c) -> str:
@@ -61,7 +60,8 @@ def diff_rows(changes) -> list[list[str]]:
         rows.append([
             c.requirement, c.kind.upper() if c.kind in ("broke", "eroded") else c.kind,
             f"{c.old_verdict or '-'} -> {c.new_verdict or '-'}",
-            _fmt(c.old_value, c.unit), _fmt(c.new_value, c.unit), c.limit_text or "-",
+            _fmt(c.old_value, c.unit, c.limit_text), _fmt(c.new_value, c.unit, c.limit_text),
+            c.limit_text or "-",
             _delta(c), worst, _versions(c), c.note,
         ])
     return rows
@@ -136,7 +136,7 @@ def trace_lines(t) -> list[str]:
             lines.append(head)
             for v in n.verdicts:
                 res = v.result
-                value = _fmt(res.value, res.unit) if res is not None else "-"
+                value = _fmt(res.value, res.unit, res.limit_text) if res is not None else "-"
                 where = f"{v.loop}/{v.revision}" if v.revision else v.loop
                 lines.append(f"{'   ' * depth}{'  ' if depth else ''}    {where}: {v.verdict}  "
                              f"{r.metric} {value} (limit {r.limit_text})")
@@ -241,7 +241,7 @@ def register(app, tools) -> None:
                 for lbl in run.run:
                     res = results[lbl]
                     rows.append([lbl, res.verdict if res else "-",
-                                 _fmt(res.value, res.unit) if res else "-",
+                                 _fmt(res.value, res.unit, res.limit_text) if res else "-",
                                  res.worst_variant if res and res.worst_variant else "-",
                                  tools.short(revs[lbl].rationale, 60)])
                 tools.table(["revision", "verdict", "worst value", "worst variant", "rationale"],

@@ -261,7 +261,7 @@ def convert(value: float, unit_text: str, metric_unit: str) -> float:
     return _pint_convert(value, u, metric_unit, metric_unit)
 
 
-def parse_limit(text: str, metric_unit: str) -> Limit:
+def parse_limit(text: str, metric_unit: str, *, signal: bool = False) -> Limit:
     """Parse a limit such as ``"<= 25 ms"`` for a metric measured in ``metric_unit``.
 
     Examples
@@ -287,7 +287,10 @@ def parse_limit(text: str, metric_unit: str) -> Limit:
     raw = float(m["num"])
     if not math.isfinite(raw):
         raise UnitError(f"limit {text!r} is not a finite number")
-    value = convert(raw, m["unit"], metric_unit)
+    if signal:  # a unit declared by the plant (may read like a catalogue unit, e.g. rad/s)
+        value = _convert_signal(raw, m["unit"].strip(), metric_unit)
+    else:
+        value = convert(raw, m["unit"], metric_unit)
     if math.isnan(value):
         raise UnitError(f"limit {text!r} is not a number")
     return Limit(cmp_, value, metric_unit, text.strip())
@@ -349,7 +352,7 @@ def parse_limit_for(text: str, metric: str, catalogue_unit: str,
     for loop, iu, ou in plants:
         unit = resolve_unit(metric, catalogue_unit, iu, ou)
         try:
-            lim = parse_limit(text, unit)
+            lim = parse_limit(text, unit, signal=unit != catalogue_unit)
         except UnitError as e:
             written = limit_unit_text(text)
             if "does not fit" in str(e):
@@ -369,6 +372,6 @@ def parse_limit_for(text: str, metric: str, catalogue_unit: str,
         written = limit_unit_text(text)
         check_plant_unit(written, "limit unit")
         base = str(_ureg().Quantity(1.0, written).to_base_units().units)
-        lim = parse_limit(text, base)
+        lim = parse_limit(text, base, signal=True)
         return Limit(lim.comparator, lim.value, base, lim.text)
     return parse_limit(text, catalogue_unit)

@@ -149,3 +149,14 @@ def test_unknown_plant_unit_refused(tmp_path):
     with pytest.raises(LedgerError, match="not a unit pint knows"):
         lg.add_plant("p", PLANT, params={"K": 1.0, "tau": 0.03}, input_unit="zorks")
     lg.close()
+
+
+def test_plant_unit_named_like_a_catalogue_unit():
+    # a speed loop's output in rad/s: a bare number is in rad/s, rpm converts by pint
+    # (1 rpm = 2 pi rad / 60 s), Hz is refused (no angle in it; pint would map it 1:1)
+    lim = parse_limit_for("<= 0.5", "steady_state_error", "", [("sh", "V", "rad/s")])
+    assert lim.value == 0.5 and lim.unit == "rad/s"
+    lim = parse_limit_for("<= 5 rpm", "steady_state_error", "", [("sh", "V", "rad/s")])
+    assert_allclose(lim.value, UREG.Quantity(5, "rpm").to("rad/s").magnitude, rtol=1e-12)
+    with pytest.raises(UnitError, match="does not fit"):
+        parse_limit_for("<= 5 Hz", "steady_state_error", "", [("sh", "V", "rad/s")])

@@ -154,8 +154,16 @@ async def test_matrix_view_cells_navigation_and_filters(ledger):
         keys = [r.key for r in scr.visible_rows()]
         assert keys == ["GM-1", "OS-1", "PM-1", "WC-1"]  # no parent first, then under SYS-1
         pm_r2 = str(table.get_cell_at((2, 2)))
-        assert "✗ fail" in pm_r2 and "BROKE" in pm_r2  # symbol and word, not colour alone
-        assert "✓ pass" in str(table.get_cell_at((2, 1)))
+        assert pm_r2.startswith("✗ ") and "BROKE" in pm_r2  # a symbol, not colour alone
+        assert str(table.get_cell_at((2, 1))).startswith("✓ ")
+        # narrow cells hold symbol + value in the limit's unit; the detail line under the table
+        # names the verdict, limit and headroom of the cell under the cursor
+        assert " deg" in pm_r2 and "%" not in pm_r2
+        table.move_cursor(row=2, column=2)
+        await pilot.pause()
+        detail = str(scr.query_one("#matrix-detail").render())
+        assert "PM-1 on pos/r2" in detail and "fail" in detail and "limit >= " in detail
+        assert "headroom -" in detail and " deg" in detail
         row0 = table.cursor_row
         await press(pilot, "down")
         assert table.cursor_row == row0 + 1
@@ -278,7 +286,7 @@ async def test_add_revision_form_records_and_shows_verdicts(ledger):
         assert scr.shown[1] == 3  # the window of whole columns reaches the new column ...
         assert scr.selected()[1:] == ("pos", "r3")  # ... and the cursor is on it
         col = table.cursor_column
-        assert "✗ fail" in str(table.get_cell_at((2, col)))
+        assert str(table.get_cell_at((2, col))).startswith("✗ ")  # fail symbol
         assert "BROKE" not in str(table.get_cell_at((2, col)))  # r2 already failed PM-1
 
 

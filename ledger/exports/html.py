@@ -67,6 +67,12 @@ def _verdict(word: str) -> str:
     return f'<span class="v v-{_e(word)}">{_e(word)}</span>'
 
 
+def value_text(value, unit, limit_text):
+    from ..display import value_text as _vt
+
+    return _vt(value, unit, limit_text) if value is not None else ""
+
+
 def _val(x, unit="") -> str:
     if x is None:
         return ""
@@ -116,7 +122,8 @@ def _matrix_table(matrix) -> list[str]:
                 cells.append('<td class="note">n/a</td>')
                 continue
             r = e.result
-            cells.append(f"<td>{_verdict(e.verdict)} {_val(r.value, r.unit) if r else ''}</td>")
+            cells.append(f"<td>{_verdict(e.verdict)} "
+                         f"{_e(value_text(r.value, r.unit, q.limit_text)) if r else ''}</td>")
         out.append(f"<tr><td><b>{_e(q.key)}</b> v{q.version}<br>{_e(q.title)}</td>"
                    f"<td>{_e(q.limit_text)}<br><span class='meta'>{_e(q.metric)}</span></td>"
                    + "".join(cells) + "</tr>")
@@ -134,11 +141,10 @@ def _fields(entry, row) -> str:
              ("Method", _e(q.method)), ("Status", _e(q.status)),
              ("Metric", _e(q.metric)), ("Limit", _e(q.limit_text)),
              ("Verdict", _verdict(entry.verdict)),
-             ("Value (worst case)", _val(row.value, row.unit)),
-             ("Headroom", _val(row.headroom, row.unit)
-              + (f" ({_e(number_text(100 * row.headroom_fraction, digits=4))} % of the limit)"
-                 if row.headroom_fraction is not None and math.isfinite(row.headroom_fraction)
-                 else "")),
+             ("Value (worst case)", _e(row.value_shown)
+              + (f" <span class='meta'>({_val(row.value, row.unit)})</span>"
+                 if row.value is not None and row.value_shown != _val(row.value, row.unit) else "")),
+             ("Headroom", _e(row.headroom_shown)),
              ("Worst variant", _e(row.worst_variant)),
              ("Variants passing", (_e(number_text(100 * row.pass_fraction, digits=4)) + " %"
                                    if row.pass_fraction is not None else "")

@@ -52,6 +52,9 @@ class ExportRow:
         Unit of ``value`` and ``headroom``.
     headroom : float or None
         Signed distance from the limit, in ``unit``, positive on the passing side.
+    value_shown, headroom_shown : str
+        ``value`` and ``headroom`` as shown to a person: in the limit's unit, with the
+        configured significant digits (``ledger.display``); e.g. ``145.1 ms``, ``+2.1 dB``.
     headroom_fraction : float or None
         Headroom divided by ``|limit|``, dimensionless.
     verdict : str
@@ -84,6 +87,8 @@ class ExportRow:
     unit: str
     headroom: float | None
     headroom_fraction: float | None
+    value_shown: str
+    headroom_shown: str
     verdict: str
     worst_variant: str
     pass_fraction: float | None
@@ -130,6 +135,8 @@ def matrix_rows(matrix) -> list[ExportRow]:
     ----------
     matrix : ledger.history.matrix.Matrix
     """
+    from ..display import headroom_text, value_text
+
     out = []
     for e in matrix.entries:
         q, r = e.requirement, e.result
@@ -142,6 +149,10 @@ def matrix_rows(matrix) -> list[ExportRow]:
             unit=(r.unit if r else q.unit) or "",
             headroom=_finite_or_inf(r.headroom) if r else None,
             headroom_fraction=_finite_or_inf(r.headroom_fraction) if r else None,
+            value_shown=value_text(r.value, r.unit, q.limit_text) if r and r.value is not None
+            else "",
+            headroom_shown=headroom_text(r.value, r.headroom, r.headroom_fraction, r.unit,
+                                         q.limit_text) if r and r.headroom is not None else "",
             verdict=e.verdict, worst_variant=r.worst_variant if r else "",
             pass_fraction=_finite_or_inf(r.pass_fraction) if r else None,
             variants=r.variants if r else None, loop=e.loop, revision=e.revision.label,

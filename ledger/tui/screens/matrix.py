@@ -15,7 +15,7 @@ from textual.widgets import DataTable, Input, Static
 
 from .. import bindings
 from ..data import load_matrix
-from ..widgets.verdict import cell_text
+from ..widgets.verdict import cell_text, detail_text
 from .base import ViewScreen
 
 __all__ = ["MatrixScreen"]
@@ -107,6 +107,7 @@ class MatrixScreen(ViewScreen):
         yield Static("", id="matrix-status")
         yield MatrixTable(id="matrix-table", zebra_stripes=True, cursor_type="cell",
                           fixed_columns=1)
+        yield Static("", id="matrix-detail")
         yield Static("", id="matrix-legend")
         yield footer
 
@@ -114,8 +115,7 @@ class MatrixScreen(ViewScreen):
         self.query_one(DataTable).focus()
         self.query_one("#matrix-legend", Static).update(Text(
             "✓ pass  ✗ fail  ! error  ~ stale (older requirement/plant version)  ? unverified  "
-            "· n/a   headroom +++ ≥50% ++ ≥20% + ≥0 - short <20% -- short more   BROKE = failed "
-            "where the parent revision passed\n", style="dim").append("Caution: " + CAUTION, style="italic"))
+            "· n/a  BROKE: failed where the parent passed; values in the limit's unit\n", style="dim").append("Caution: " + CAUTION, style="italic"))
 
     def fetch(self):
         return load_matrix(self.app.lg, self.loop_filter, tips_only=self.tips_only)
@@ -277,6 +277,17 @@ class MatrixScreen(ViewScreen):
             self.app.current_req = sel[0]
             if sel[1]:
                 self.app.current_loop, self.app.current_label = sel[1], sel[2]
+        self._show_detail(sel)
+
+    def _show_detail(self, sel) -> None:
+        d, line = self._data, Text("")
+        if d is not None and sel and sel[1]:
+            k = (sel[0], sel[1], sel[2])
+            line = detail_text(sel[0], f"{sel[1]}/{sel[2]}", d.cells.get(k),
+                               broke=k in d.broke, applies=k in d.cells)
+        elif sel:
+            line = Text(f"{sel[0]}: move right onto a revision for its result", style="dim")
+        self.query_one("#matrix-detail", Static).update(line)
 
     def on_data_table_cell_selected(self, event: DataTable.CellSelected) -> None:
         self.action_open_requirement()

@@ -84,7 +84,7 @@ class RequirementScreen(ViewScreen):
             v = res.verdict if res else "unverified"
             t.append(f"  {lname}/{rev.label:<6} ")
             t.append(f"{SYMBOL.get(v, '?')} {v:<10}", style=STYLE.get(v, ""))
-            t.append(f" {fmt_value(res.value, res.unit) if res else '-'}\n")
+            t.append(f" {fmt_value(res.value, res.unit, res.limit_text) if res else '-'}\n")
         t.append("\nversions\n", style="bold underline")
         for h in data.history:
             t.append(f"  v{h.version} {h.created_at:%Y-%m-%d} {h.author}: {h.metric or '-'} "
