@@ -71,6 +71,21 @@ _DIFF_COLS = ["ID", "change", "verdict", "old value", "new value", "limit", "hea
               "worst variant", "req", "note"]
 
 
+# taken out first when the terminal is narrow (shown in detail lines under the table)
+_DIFF_DROP = ("note", "req", "worst variant", "verdict")
+
+
+def _same_sides(v: str) -> bool:
+    a, _, b = v.partition(" -> ")
+    return not b or a == b
+
+
+def _diff_table(tools, rows, title=None) -> None:
+    tools.table(_DIFF_COLS, rows, title=title, drop=_DIFF_DROP,
+                shorten={"worst variant": tools.short_variant},
+                quiet={"verdict": _same_sides, "req": _same_sides})
+
+
 def _diff_json(d) -> dict:
     return {
         "loop": d.loop, "new": d.new.label, "old": d.old.label if d.old else None,
@@ -106,7 +121,7 @@ def print_regressions(lg, loop: str, label: str, tools) -> object:
         typer.echo(f"against parent {d.old.label}: no change beyond {d.threshold:.0%} of headroom "
                    f"({_counts_line(d)})")
         return d
-    tools.table(_DIFF_COLS, diff_rows(moved),
+    _diff_table(tools, diff_rows(moved),
                 title=f"changes of {loop}/{d.new.label} against parent {d.old.label}")
     typer.echo("  " + _counts_line(d))
     return d
@@ -197,12 +212,12 @@ def register(app, tools) -> None:
                 return
             against = f"{d.old.label}" + (" (parent)" if d.old and d.old.label == d.new.parent else "") \
                 if d.old else "nothing (root revision)"
-            typer.echo(f"loop {loop}: {d.new.label} against {against}, threshold {d.threshold:.0%} of headroom")
+            tools.say(f"loop {loop}: {d.new.label} against {against}, threshold {d.threshold:.0%} of headroom")
             shown = d.changes if show_all else tuple(c for c in d.changes if c.kind != "unchanged")
             if shown:
-                tools.table(_DIFF_COLS, diff_rows(shown))
+                _diff_table(tools, diff_rows(shown))
             typer.echo("  " + _counts_line(d))
-            typer.echo(tools.caution)
+            tools.say(tools.caution)
 
         tools.run(body)
         if status["code"]:
@@ -264,7 +279,7 @@ def register(app, tools) -> None:
             if not t.roots:
                 typer.echo("no live requirements")
             for line in trace_lines(t):
-                typer.echo(line)
+                tools.say(line, indent="    ")
             counts = t.counts()
             typer.echo("  " + ", ".join(f"{counts[s]} {s}" for s in ("satisfied", "incomplete", "violated")
                                         if s in counts))
@@ -278,6 +293,6 @@ def register(app, tools) -> None:
                 tools.table(["ID", "retired parents"],
                             [[o.requirement, ", ".join(o.retired_parents)] for o in t.orphans],
                             title="orphans (derived from a retired requirement)")
-            typer.echo(tools.caution)
+            tools.say(tools.caution)
 
         tools.run(body)

@@ -86,7 +86,7 @@ def register(app, tools) -> None:
                        f"{so.statement}")
         if not b.signoffs:
             typer.echo("  not signed")
-        typer.echo(tools.caution)
+        tools.say(tools.caution)
 
     @baseline_app.command("create")
     def baseline_create(
