@@ -12,6 +12,7 @@ from pathlib import Path
 from typing import List, Optional
 
 import typer
+import typer.core
 
 from .errors import LedgerError
 
@@ -20,12 +21,47 @@ CAUTION = (
     "standards and qualified review."
 )
 
+class _Group(typer.core.TyperGroup):
+    """The root command group: a usage error (unknown option, missing argument, bad value)
+    is one line on stderr with a ``--help`` hint, exit status 2 (the Click convention,
+    docs/cli.md); help for a bare group is printed as usual."""
+
+    @staticmethod
+    def _one_line(e) -> None:
+        ctx = getattr(e, "ctx", None)
+        where = ctx.command_path if ctx is not None else "loopledger"
+        msg = " ".join(e.format_message().split())
+        typer.echo(f"error: {msg} (see '{where} --help')", err=True)
+        raise typer.Exit(2)
+
+    def make_context(self, *args, **kwargs):
+        from typer._click.exceptions import NoArgsIsHelpError, UsageError
+
+        try:
+            return super().make_context(*args, **kwargs)
+        except NoArgsIsHelpError:
+            raise
+        except UsageError as e:
+            self._one_line(e)
+
+    def invoke(self, ctx):
+        from typer._click.exceptions import NoArgsIsHelpError, UsageError
+
+        try:
+            return super().invoke(ctx)
+        except NoArgsIsHelpError:
+            raise
+        except UsageError as e:
+            self._one_line(e)
+
+
 app = typer.Typer(
+    cls=_Group,
     name="loopledger",
     help="A requirements ledger for feedback-control loops: plants, controller revisions with "
     "rationale, numeric requirements, automatic verification.\n\n" + CAUTION,
     no_args_is_help=True,
-    add_completion=False,
+    add_completion=True,
     pretty_exceptions_enable=False,
 )
 plant_app = typer.Typer(help="Plants (the things controlled) and their versions.", no_args_is_help=True)

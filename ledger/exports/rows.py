@@ -21,11 +21,19 @@ from typing import Callable
 from ..fileio import write_atomic  # noqa: F401 - re-exported for the exporters
 from ..errors import ComputeError, LedgerError
 
-__all__ = ["require", "SCHEMA_VERSION", "COLUMNS", "VERDICT_ORDER", "ExportRow", "matrix_rows",
+__all__ = ["require", "SCHEMA_VERSION", "JSON_SCHEMA_NAME", "json_schema_path", "COLUMNS", "VERDICT_ORDER", "ExportRow", "matrix_rows",
            "number_text", "parse_number", "write_atomic", "write_xml", "verdict_counts"]
 
 #: Version of the CSV/JSON record layout (docs/exports.md); bump on any incompatible change.
-SCHEMA_VERSION = "loopledger-matrix/1"
+SCHEMA_VERSION = "loopledger-matrix/2"
+
+#: The JSON Schema of the JSON export, shipped in the package (``ledger/schemas/``).
+JSON_SCHEMA_NAME = "loopledger-matrix-2.schema.json"
+
+
+def json_schema_path() -> Path:
+    """Path of the JSON Schema file the JSON export names (inside the installed package)."""
+    return Path(__file__).resolve().parents[1] / "schemas" / JSON_SCHEMA_NAME
 
 #: Verdict words in the order summaries list them.
 VERDICT_ORDER = ("pass", "fail", "error", "stale", "unverified")
