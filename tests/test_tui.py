@@ -630,3 +630,33 @@ async def test_matrix_scrolls_sideways_by_whole_cells(wide, size):
         assert seen_all == {f"remote-shaker/r{i}" for i in range(1, n + 1)}
         assert scr.shown[0] == 0 and scr.selected()[2] == "r1"
         assert scr.shown[1] - scr.shown[0] < n  # the window really was narrower than the data
+
+
+async def test_plots_frequency_unit_remembered_and_step_horizon(ledger):
+    from ledger import prefs
+    from ledger.tui.plotdata import settle_time
+
+    app = make_app(ledger)
+    app.current_loop, app.current_label = "pos", "r2"
+    async with app.run_test(size=(120, 40)) as pilot:
+        await settle(pilot)
+        await press(pilot, "5")
+        scr = app.screen
+        assert scr.freq_unit == "Hz"  # the default for display
+        cap = str(scr.query_one("#plots-caption").render())
+        # Source: closed form wc (module docstring), shown in Hz: f = w / (2 pi)
+        assert f"{wc_of(4) / (2 * math.pi):.4g} Hz" in cap
+        await press(pilot, "f")
+        assert scr.freq_unit == "rad/s" and prefs.frequency_unit(ledger.url) == "rad/s"
+        cap = str(scr.query_one("#plots-caption").render())
+        assert f"{wc_of(4):.4g} rad/s" in cap
+        d = scr.plot_data
+        # the step plot ends at a few (3) settling times of the plotted variant, not at the
+        # simulation's end; within the sampling of the thinned curve
+        ts = settle_time(d.t, d.y, d.final)
+        assert d.t[-1] == pytest.approx(3 * ts, rel=0.05)
+    app2 = make_app(ledger)
+    async with app2.run_test(size=(120, 40)) as pilot:
+        await settle(pilot)
+        await press(pilot, "5")
+        assert app2.screen.freq_unit == "rad/s"  # remembered for this ledger

@@ -169,9 +169,11 @@ def render_html(matrix, lg) -> str:
     lg : Ledger
         The ledger the matrix came from; its revisions are rebuilt to draw the curves.
     """
+    from ..prefs import frequency_unit
     from .evidence import column_curves
     from .plots import entry_figure
 
+    funit = frequency_unit(getattr(lg, "url", ""))  # the reader's choice for this ledger
     rows = matrix_rows(matrix)
     out = ["<!DOCTYPE html>", '<html lang="en"><head><meta charset="utf-8">',
            f"<title>{_e(matrix.title)}</title>", f"<style>{_CSS}</style></head><body>",
@@ -211,7 +213,7 @@ def render_html(matrix, lg) -> str:
         else:
             try:
                 with np.errstate(all="ignore"):
-                    svg = entry_figure(curves, q, entry.result)
+                    svg = entry_figure(curves, q, entry.result, frequency_unit=funit)
                 out.append(f"<div class='figure'>{svg}</div>")
             except LedgerError as e:
                 out.append(f"<p class='note'>No figure: {_e(e)}</p>")
