@@ -237,8 +237,8 @@ def _table(columns: list[str], rows: list[list[str]], title: str | None = None, 
                      and not (columns[j] in quiet and quiet[columns[j]](r[j]))]
             if parts:
                 _say(f"  {r[0]}: " + "; ".join(parts), indent="      ")
-        _say(f"  ({', '.join(columns[j] for j in sorted(hidden))} in the lines above; "
-             "--wide for one wide table)")
+        _say(f"  (not in the table: {', '.join(columns[j] for j in sorted(hidden))}; "
+             "their notable values are above; --wide shows every column)")
 
 
 def _short(text: str, n: int = 60) -> str:
