@@ -75,6 +75,12 @@ app.add_typer(rev_app, name="revision")
 
 _state: dict = {"db": None, "author": None, "init": None, "wide": False}
 
+WIDE_HELP = "Every table column whatever the terminal width (also a global option)."
+
+
+def _set_wide(on: bool) -> None:
+    _state["wide"] = _state["wide"] or bool(on)
+
 
 @app.callback()
 def _main(
@@ -794,9 +800,12 @@ def verify_cmd(loop: Optional[str] = typer.Option(None, "--loop", help="Only thi
 @app.command("results")
 def results_cmd(loop: str = typer.Argument(..., help="Loop name."),
                 label: Optional[str] = typer.Argument(None, help="Revision label (default: tip)."),
-                as_json: bool = typer.Option(False, "--json", help="Print JSON.")):
+                as_json: bool = typer.Option(False, "--json", help="Print JSON."),
+                wide: bool = typer.Option(False, "--wide", help=WIDE_HELP)):
     """Show the verdicts of one revision: worst value over the plant family, headroom,
     the variant that produced it and the fraction of variants that pass."""
+    _state["wide"] = _state["wide"] or wide
+
     def body():
         with _open() as lg:
             res = lg.results(loop, label)
@@ -817,6 +826,8 @@ class _Tools:
     emit_json = staticmethod(_emit_json)
     table = staticmethod(_table)
     say = staticmethod(_say)
+    set_wide = staticmethod(_set_wide)
+    wide_help = WIDE_HELP
     print_results = staticmethod(_print_results)
     short = staticmethod(_short)
     short_variant = staticmethod(short_variant)

@@ -195,10 +195,12 @@ def register(app, tools) -> None:
         show_all: bool = typer.Option(False, "--all", help="List unchanged requirements too."),
         exit_on: Optional[ExitOn] = typer.Option(None, "--exit-on", case_sensitive=False,
                                                  help="Exit with status 3 when a requirement broke ('broke'), an approved one broke ('approved-broke'), or anything broke or eroded ('any')."),
+        wide: bool = typer.Option(False, "--wide", help=tools.wide_help),
     ):
         """Regressions between two revisions of a loop, requirement by requirement: broke,
         eroded, fixed, improved, moved (still failing, large move), new, dropped,
         incomparable, unchanged."""
+        tools.set_wide(wide)
         status = {"code": 0}
 
         def body():
@@ -265,9 +267,12 @@ def register(app, tools) -> None:
         tools.run(body)
 
     @app.command("trace")
-    def trace_cmd(as_json: bool = typer.Option(False, "--json", help="Print JSON.")):
+    def trace_cmd(as_json: bool = typer.Option(False, "--json", help="Print JSON."),
+                  wide: bool = typer.Option(False, "--wide", help=tools.wide_help)):
         """The requirement tree (system needs down to loop requirements) with each loop tip's
         verdicts rolled up (satisfied, incomplete, violated), then coverage gaps and orphans."""
+        tools.set_wide(wide)
+
         def body():
             from .history.trace import build_trace
 

@@ -64,3 +64,12 @@ def test_values_read_in_the_limits_unit(demo):
     out = _run(demo, 120, "results", "gantry-x")
     row = next(line for line in out.splitlines() if line.startswith("GX-01"))
     assert " ms " in row and "<= 200 ms" in row   # a settling time beside a limit in ms
+
+
+def test_wide_after_the_command(demo):
+    for args in (("diff", "gantry-x", "r6", "--wide"), ("results", "gantry-x", "--wide"),
+                 ("trace", "--wide")):
+        out = _run(demo, 80, *args)
+        assert "not in the table" not in out
+    assert any(len(line) > 80 for line in _run(demo, 80, "diff", "gantry-x", "r6",
+                                               "--wide").splitlines())
