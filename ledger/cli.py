@@ -366,15 +366,22 @@ def metrics_cmd(as_json: bool = typer.Option(False, "--json", help="Print JSON."
     """List the metrics a requirement can use, with units and settings."""
     def body():
         from .catalogue import metric_def, metric_names
+        from .units import PLANT_UNIT_METRICS
 
         defs = [metric_def(n) for n in metric_names()]
         if as_json:
             _emit_json([{"name": d.name, "unit": d.unit, "better": d.better,
+                         "unit_from_plant": PLANT_UNIT_METRICS.get(d.name),
                          "settings": dict(d.settings), "doc": d.doc} for d in defs])
             return
+        words = {"in": "plant input", "out": "plant output", "in/out": "input/output"}
+
+        def unit(d):
+            own = words.get(PLANT_UNIT_METRICS.get(d.name, ""))
+            return f"{own} ({d.unit or '-'} if none)" if own else (d.unit or "-")
         _table(["metric", "unit", "better", "settings"],
-               [[d.name, d.unit or "-", d.better, ", ".join(f"{k}={v}" for k, v in dict(d.settings).items())]
-                for d in defs])
+               [[d.name, unit(d), d.better, ", ".join(f"{k}={v}" for k, v in dict(d.settings).items())]
+                for d in defs], drop=("settings",))
     run(body)
 
 

@@ -105,7 +105,8 @@ def test_shell_completion_is_installable():
     res = runner.invoke(app, ["--help"], prog_name="loopledger", env={"COLUMNS": "200"})
     assert "--install-completion" in res.output and "--show-completion" in res.output
     script = runner.invoke(app, ["--show-completion", "bash"], prog_name="loopledger")
-    assert script.exit_code == 0 and "_LOOPLEDGER_COMPLETE" in script.output
+    assert script.exit_code == 0 and "_LOOPLEDGER_COMPLETE" in script.output, (
+        script.output, script.stderr, script.exception)
     # a completion request, as the installed bash function makes it
     got = runner.invoke(app, [], prog_name="loopledger",
                         env={"_LOOPLEDGER_COMPLETE": "complete_bash",
