@@ -25,7 +25,7 @@ from .units import (_DB, _PERCENT, _RATIO, _LIMIT_RE, _COMPARATOR_ALIASES, conve
                     format_value, limit_unit_text)
 
 __all__ = ["digits", "set_digits", "shown_unit", "to_shown", "value_text", "headroom_text",
-           "headroom_shown", "delta_text", "headroom_delta_text", "number", "is_logarithmic", "DEFAULT_DIGITS"]
+           "headroom_shown", "delta_text", "headroom_delta_text", "value_number", "number", "is_logarithmic", "DEFAULT_DIGITS"]
 
 DEFAULT_DIGITS = 4
 _digits: int | None = None
@@ -216,3 +216,14 @@ def headroom_delta_text(old_value: float | None, new_value: float | None,
             and not is_logarithmic(unit, limit_text) and mode != "toratio":
         text += f" ({change:+.0%})"
     return text
+
+
+def value_number(value: float | None, unit: str, limit_text: str = "",
+                 d: int | None = None) -> str:
+    """Only the number of :func:`value_text`, in the limit's unit (for a cell whose row
+    already shows the limit, hence the unit); the metric's own unit when the limit has none."""
+    if value is None or (isinstance(value, float) and math.isnan(value)):
+        return "-"
+    if unit == "bool":
+        return format_value(value, unit)
+    return number(to_shown(value, unit, limit_text), d)

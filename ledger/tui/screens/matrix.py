@@ -168,9 +168,14 @@ class MatrixScreen(ViewScreen):
                 cells.append(cell_text(res, applies=applies,
                                        broke=(r.key, c.loop, c.label) in d.broke))
             grid.append(cells)
-        headers = [f"{c.loop}/{c.label}" for c in d.columns]
+        # a column header names its loop only where the loop changes (and on the first
+        # column shown, below): "gantry-x/r3", "r4", "r5", ... keeps the columns narrow
+        full = [f"{c.loop}/{c.label}" for c in d.columns]
+        short = [full[j] if j == 0 or c.loop != d.columns[j - 1].loop else c.label
+                 for j, c in enumerate(d.columns)]
         # explicit widths from the content: the table lays out once, the same way every time
-        widths = [max([len(h)] + [row[j].cell_len for row in grid]) for j, h in enumerate(headers)]
+        widths = [max([len(h)] + [row[j].cell_len for row in grid]) for j, h in enumerate(short)]
+        spare = max((len(f) - len(h) for f, h in zip(full, short)), default=0)
         pad = 2 * table.cell_padding
         avail = self._available_width(table)
         req_w = max([len("requirement")] + [t.cell_len for t in req_cells])
@@ -184,12 +189,13 @@ class MatrixScreen(ViewScreen):
             want_col = next((i for i, c in enumerate(d.columns) if (c.loop, c.label) == want),
                             old_data_col)
         first, stop = column_window([w + pad for w in widths], self.first_col,
-                                    avail - req_w - pad, want_col)
+                                    avail - req_w - pad - spare, want_col)
         self.first_col, self.shown = first, (first, stop)
         table.clear(columns=True)
         table.add_column("requirement", key="req", width=req_w)
         for j in range(first, stop):
-            table.add_column(headers[j], key=headers[j], width=widths[j])
+            head = full[j] if j == first else short[j]
+            table.add_column(head, key=full[j], width=max(widths[j], len(head)))
         for r, req_cell, cells in zip(rows, req_cells, grid):
             table.add_row(req_cell, *cells[first:stop], key=r.key)
         status = Text()

@@ -40,9 +40,12 @@ def _headroom_bar(fraction) -> str:
 
 
 def cell_text(result, *, broke: bool = False, applies: bool = True) -> Text:
-    """One matrix cell, narrow: symbol and value in the limit's unit (``!`` after it when the
-    requirement broke here).  Verdict word, headroom and worst variant are in the detail line
-    under the table (:func:`detail_text`) for the cell under the cursor."""
+    """One matrix cell, narrow: symbol and the value's number in the limit's unit (the row
+    shows the limit, hence the unit; ``BROKE`` after it when the requirement broke here).
+    Verdict word, unit, headroom and worst variant are in the detail line under the table
+    (:func:`detail_text`) for the cell under the cursor."""
+    from ...display import value_number
+
     if not applies:
         return Text("·", style=STYLE["n/a"])
     if result is None:
@@ -50,7 +53,7 @@ def cell_text(result, *, broke: bool = False, applies: bool = True) -> Text:
     v = result.verdict
     t = Text(SYMBOL.get(v, "?"), style=STYLE.get(v, ""))
     if v in ("pass", "fail", "stale") and result.value is not None:
-        t.append(f" {fmt_value(result.value, result.unit, result.limit_text)}")
+        t.append(f" {value_number(result.value, result.unit, result.limit_text)}")
     elif v == "error":
         t.append(" error")
     if broke:
