@@ -193,6 +193,12 @@ def _convert_signal(value: float, u: str, metric_unit: str) -> float:
         return float(q.to(metric_unit).magnitude)
     except pint.errors.DimensionalityError as e:
         raise UnitError(f"unit {u!r} does not fit a metric measured in {metric_unit}") from e
+    except (pint.errors.UndefinedUnitError, pint.errors.DefinitionSyntaxError, AttributeError,
+            AssertionError, TypeError, ValueError) as e:
+        # a plant unit recorded before units were checked, unknown to pint: only a bare
+        # number (in that unit) can be compared with it
+        raise UnitError(f"unit {u!r} cannot be converted to {metric_unit!r}, which pint does "
+                        "not know; write the limit as a plain number in that unit") from e
 
 
 def convert(value: float, unit_text: str, metric_unit: str) -> float:

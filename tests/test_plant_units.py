@@ -160,3 +160,15 @@ def test_plant_unit_named_like_a_catalogue_unit():
     assert_allclose(lim.value, UREG.Quantity(5, "rpm").to("rad/s").magnitude, rtol=1e-12)
     with pytest.raises(UnitError, match="does not fit"):
         parse_limit_for("<= 5 Hz", "steady_state_error", "", [("sh", "V", "rad/s")])
+
+
+def test_an_old_plant_unit_pint_does_not_know():
+    # recorded before plant units were checked: a bare number still works, a unit is refused
+    # with a reason (never a crash) and a value is shown in that unit
+    from ledger.display import value_text
+
+    assert parse_limit_for("<= 40", "peak_effort", "", [("x", "zorks", "")]).value == 40
+    with pytest.raises(UnitError, match="cannot be converted"):
+        parse_limit_for("<= 40 A", "peak_effort", "", [("x", "zorks", "")])
+    assert value_text(12.0, "zorks", "<= 40") == "12 zorks"
+    assert value_text(12.0, "zorks", "<= 40 A") == "12 zorks"
