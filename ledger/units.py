@@ -74,6 +74,18 @@ class Limit:
     text: str
 
 
+def _parse_errors() -> tuple:
+    """What pint raises on unit text it cannot parse (its tokenizer raises TokenError on
+    unbalanced brackets, its parser AssertionError on a dangling operator)."""
+    import tokenize
+
+    import pint
+
+    return (pint.errors.UndefinedUnitError, pint.errors.DefinitionSyntaxError, AttributeError,
+            AssertionError, TypeError, ValueError, IndexError, KeyError, SyntaxError,
+            tokenize.TokenError)
+
+
 @lru_cache(maxsize=1)
 def _ureg():
     import pint
@@ -87,8 +99,7 @@ def _pint_convert(value: float, unit_text: str, target: str, metric_unit: str) -
     ureg = _ureg()
     try:
         q = ureg.Quantity(value, unit_text)
-    except (pint.errors.UndefinedUnitError, pint.errors.DefinitionSyntaxError, AttributeError,
-            AssertionError, TypeError, ValueError) as e:
+    except _parse_errors() as e:
         raise UnitError(f"unknown unit {unit_text!r}") from e
     try:
         return float(q.to(target).magnitude)
@@ -125,8 +136,7 @@ def check_plant_unit(text: str, what: str = "unit") -> str:
         return ""
     try:
         q = _ureg().Quantity(1.0, u)
-    except (pint.errors.UndefinedUnitError, pint.errors.DefinitionSyntaxError, AttributeError,
-            AssertionError, TypeError, ValueError) as e:
+    except _parse_errors() as e:
         raise UnitError(f"{what} {u!r} is not a unit pint knows; write e.g. 'A', 'V', 'rad', "
                         "'mm' or 'N*m'") from e
     if not q._is_multiplicative:
@@ -184,8 +194,7 @@ def _convert_signal(value: float, u: str, metric_unit: str) -> float:
         u = "percent"
     try:
         q = _ureg().Quantity(value, u)
-    except (pint.errors.UndefinedUnitError, pint.errors.DefinitionSyntaxError, AttributeError,
-            AssertionError, TypeError, ValueError) as e:
+    except _parse_errors() as e:
         raise UnitError(f"unknown unit {u!r}") from e
     try:
         if _angle_power(u) != _angle_power(metric_unit):
@@ -193,8 +202,7 @@ def _convert_signal(value: float, u: str, metric_unit: str) -> float:
         return float(q.to(metric_unit).magnitude)
     except pint.errors.DimensionalityError as e:
         raise UnitError(f"unit {u!r} does not fit a metric measured in {metric_unit}") from e
-    except (pint.errors.UndefinedUnitError, pint.errors.DefinitionSyntaxError, AttributeError,
-            AssertionError, TypeError, ValueError) as e:
+    except _parse_errors() as e:
         # a plant unit recorded before units were checked, unknown to pint: only a bare
         # number (in that unit) can be compared with it
         raise UnitError(f"unit {u!r} cannot be converted to {metric_unit!r}, which pint does "

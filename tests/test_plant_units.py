@@ -172,3 +172,16 @@ def test_an_old_plant_unit_pint_does_not_know():
         parse_limit_for("<= 40 A", "peak_effort", "", [("x", "zorks", "")])
     assert value_text(12.0, "zorks", "<= 40") == "12 zorks"
     assert value_text(12.0, "zorks", "<= 40 A") == "12 zorks"
+
+
+@pytest.mark.parametrize("bad", ["A]", "(m", "m)", "V**", "1/"])
+def test_unparsable_unit_text_is_a_one_line_refusal(bad):
+    # pint's tokenizer and parser raise TokenError / AssertionError on such text
+    from ledger.units import check_plant_unit
+
+    with pytest.raises(UnitError):
+        check_plant_unit(bad)
+    with pytest.raises(UnitError):
+        parse_limit(f"<= 3 {bad}", "A", signal=True)
+    with pytest.raises(UnitError):
+        parse_limit(f"<= 3 {bad}", "s")
