@@ -12,6 +12,7 @@ from pathlib import Path
 from typing import List, Optional
 
 import typer
+import typer.core
 
 from .errors import LedgerError
 
@@ -20,12 +21,47 @@ CAUTION = (
     "standards and qualified review."
 )
 
+class _Group(typer.core.TyperGroup):
+    """The root command group: a usage error (unknown option, missing argument, bad value)
+    is one line on stderr with a ``--help`` hint, exit status 2 (the Click convention,
+    docs/cli.md); help for a bare group is printed as usual."""
+
+    @staticmethod
+    def _one_line(e) -> None:
+        ctx = getattr(e, "ctx", None)
+        where = ctx.command_path if ctx is not None else "loopledger"
+        msg = " ".join(e.format_message().split())
+        typer.echo(f"error: {msg} (see '{where} --help')", err=True)
+        raise typer.Exit(2)
+
+    def make_context(self, *args, **kwargs):
+        from typer._click.exceptions import NoArgsIsHelpError, UsageError
+
+        try:
+            return super().make_context(*args, **kwargs)
+        except NoArgsIsHelpError:
+            raise
+        except UsageError as e:
+            self._one_line(e)
+
+    def invoke(self, ctx):
+        from typer._click.exceptions import NoArgsIsHelpError, UsageError
+
+        try:
+            return super().invoke(ctx)
+        except NoArgsIsHelpError:
+            raise
+        except UsageError as e:
+            self._one_line(e)
+
+
 app = typer.Typer(
+    cls=_Group,
     name="loopledger",
     help="A requirements ledger for feedback-control loops: plants, controller revisions with "
     "rationale, numeric requirements, automatic verification.\n\n" + CAUTION,
     no_args_is_help=True,
-    add_completion=False,
+    add_completion=True,
     pretty_exceptions_enable=False,
 )
 plant_app = typer.Typer(help="Plants (the things controlled) and their versions.", no_args_is_help=True)
@@ -37,7 +73,13 @@ app.add_typer(loop_app, name="loop")
 app.add_typer(req_app, name="requirement")
 app.add_typer(rev_app, name="revision")
 
-_state: dict = {"db": None, "author": None, "init": None}
+_state: dict = {"db": None, "author": None, "init": None, "wide": False}
+
+WIDE_HELP = "Every table column whatever the terminal width (also a global option)."
+
+
+def _set_wide(on: bool) -> None:
+    _state["wide"] = _state["wide"] or bool(on)
 
 
 @app.callback()
@@ -49,9 +91,20 @@ def _main(
     author: Optional[str] = typer.Option(
         None, "--author", help="Name recorded on new records (default: $LOOPLEDGER_AUTHOR or login)."
     ),
+    digits: Optional[int] = typer.Option(
+        None, "--digits", min=1, max=17,
+        help="Significant digits of shown values (default: $LOOPLEDGER_DIGITS or 4).",
+    ),
+    wide: bool = typer.Option(
+        False, "--wide", help="Show every table column whatever the terminal width.",
+    ),
 ):
+    from .display import set_digits
+
     _state["db"] = db
     _state["author"] = author
+    _state["wide"] = wide
+    set_digits(digits)
 
 
 def _open(create: bool = False):
@@ -77,13 +130,39 @@ def _fail(msg: str) -> None:
     raise typer.Exit(1)
 
 
-def _console():
+def _width() -> int | None:
+    """Terminal width for tables and wrapped lines (``None``: no limit, ``--wide``)."""
     import os
+    import shutil
 
+    if _state.get("wide"):
+        return None
+    env = int(os.environ.get("COLUMNS", "0") or 0)
+    if env > 0:
+        return env
+    return shutil.get_terminal_size((160, 24)).columns if sys.stdout.isatty() else 160
+
+
+def _console():
     from rich.console import Console
 
-    width = int(os.environ.get("COLUMNS", "0") or 0) or (None if sys.stdout.isatty() else 160)
-    return Console(soft_wrap=False, highlight=False, width=width)
+    width = _width()
+    return Console(soft_wrap=False, highlight=False, width=width or 100_000)
+
+
+def _say(text: str, indent: str = "") -> None:
+    """Echo ``text`` wrapped to the terminal width (continuation lines indented)."""
+    import textwrap
+
+    width = _width()
+    for line in str(text).splitlines() or [""]:
+        if width is None or len(line) <= width:
+            typer.echo(line)
+            continue
+        lead = line[:len(line) - len(line.lstrip())]
+        typer.echo("\n".join(textwrap.wrap(line, width=width, initial_indent="",
+                                            subsequent_indent=lead + (indent or "  "),
+                                            break_long_words=True, break_on_hyphens=False)))
 
 
 def _emit_json(obj) -> None:
@@ -92,17 +171,83 @@ def _emit_json(obj) -> None:
     typer.echo(json.dumps(to_jsonable(obj), indent=2, ensure_ascii=False))
 
 
-def _table(columns: list[str], rows: list[list[str]], title: str | None = None) -> None:
+def short_variant(text: str) -> str:
+    """Plant variant names shortened for narrow tables: ``corner:mp+`` -> ``mp+``,
+    ``sample:0007`` -> ``#0007``, ``fidelity:full-order`` -> ``full-order``."""
+    import re
+
+    text = re.sub(r"\bsample:", "#", text or "")
+    return re.sub(r"\b(corner|fidelity):", "", text)
+
+
+def _table(columns: list[str], rows: list[list[str]], title: str | None = None, *,
+           drop: tuple[str, ...] = (), shorten: dict | None = None,
+           quiet: dict | None = None) -> None:
+    """Print a table that fits the terminal width.
+
+    When the table is wider than the terminal (and ``--wide`` is not given), first the
+    columns in ``shorten`` get their short form (``{column: function}``), then the columns
+    named in ``drop`` are taken out in that order until it fits; what they held is printed
+    below the table, one detail line per row (keyed by the first column), so nothing is lost,
+    except values ``quiet[column](value)`` calls unremarkable (e.g. a 100 % pass fraction).
+    Cells still too wide are wrapped inside their column.
+    """
+    from rich import box
+    from rich.measure import Measurement
     from rich.table import Table
 
-    t = Table(title=title, show_lines=False, header_style="bold")
-    for c in columns:
-        t.add_column(c, overflow="fold")
+    console = _console()
+    width = _width()
     from .text import printable
 
-    for r in rows:  # stored text may hold ESC sequences: shown as \uXXXX, never sent raw
-        t.add_row(*[printable(str(x)) for x in r])
-    _console().print(t)
+    # stored text may hold ESC sequences: shown as \uXXXX, never sent raw
+    rows = [[printable(str(x)) for x in r] for r in rows]
+
+    def build(keep):
+        t = Table(title=title, show_lines=False, header_style="bold",
+                  box=box.HEAVY_HEAD if width is None else box.SIMPLE_HEAD,
+                  pad_edge=width is None, show_edge=width is None,
+                  collapse_padding=width is not None)
+        for j, c in enumerate(columns):
+            if j in keep:
+                t.add_column(c, overflow="fold")
+        for r in rows:
+            t.add_row(*[r[j] for j in keep])
+        return t
+
+    keep = list(range(len(columns)))
+    if width is not None:  # a column empty in every row says nothing
+        keep = [j for j in keep if j == 0 or any(r[j] not in ("",) for r in rows)] or keep
+    t = build(keep)
+    hidden: list[int] = []
+    if width is not None:
+        wide_open = console.options.update_width(1_000_000)
+        full = [list(r) for r in rows]
+        if shorten and Measurement.get(console, wide_open, t).maximum > width:
+            for name, fn in shorten.items():
+                if name in columns:
+                    j = columns.index(name)
+                    for r in rows:
+                        r[j] = fn(r[j])
+            t = build(keep)
+        for name in drop:
+            if Measurement.get(console, wide_open, t).maximum <= width:
+                break
+            if name in columns and columns.index(name) in keep:
+                j = columns.index(name)
+                keep.remove(j)
+                hidden.append(j)
+                t = build(keep)
+    console.print(t)
+    if hidden:
+        quiet = quiet or {}
+        for r in full:
+            parts = [f"{columns[j]} {r[j]}" for j in sorted(hidden) if r[j] not in ("", "-")
+                     and not (columns[j] in quiet and quiet[columns[j]](r[j]))]
+            if parts:
+                _say(f"  {r[0]}: " + "; ".join(parts), indent="      ")
+        _say(f"  (not in the table: {', '.join(columns[j] for j in sorted(hidden))}; "
+             "their notable values are above; --wide shows every column)")
 
 
 def _short(text: str, n: int = 60) -> str:
@@ -224,15 +369,22 @@ def metrics_cmd(as_json: bool = typer.Option(False, "--json", help="Print JSON."
     """List the metrics a requirement can use, with units and settings."""
     def body():
         from .catalogue import metric_def, metric_names
+        from .units import PLANT_UNIT_METRICS
 
         defs = [metric_def(n) for n in metric_names()]
         if as_json:
             _emit_json([{"name": d.name, "unit": d.unit, "better": d.better,
+                         "unit_from_plant": PLANT_UNIT_METRICS.get(d.name),
                          "settings": dict(d.settings), "doc": d.doc} for d in defs])
             return
+        words = {"in": "plant input", "out": "plant output", "in/out": "input/output"}
+
+        def unit(d):
+            own = words.get(PLANT_UNIT_METRICS.get(d.name, ""))
+            return f"{own} ({d.unit or '-'} if none)" if own else (d.unit or "-")
         _table(["metric", "unit", "better", "settings"],
-               [[d.name, d.unit or "-", d.better, ", ".join(f"{k}={v}" for k, v in dict(d.settings).items())]
-                for d in defs])
+               [[d.name, unit(d), d.better, ", ".join(f"{k}={v}" for k, v in dict(d.settings).items())]
+                for d in defs], drop=("settings",))
     run(body)
 
 
@@ -545,7 +697,7 @@ def rev_add(loop: str = typer.Argument(..., help="Loop name."),
 
                 d = print_regressions(lg, r.loop, r.label, _Tools)
                 _print_results(lg.results(r.loop, r.label), f"verdicts for {r.loop}/{r.label}")
-                typer.echo(CAUTION)
+                _say(CAUTION)
                 status["code"] = _exit_status(d, exit_choice) if d.old is not None else 0
     run(body)
     if status["code"]:
@@ -598,7 +750,8 @@ def rev_show(loop: str, label: Optional[str] = typer.Argument(None, help="Revisi
     run(body)
 
 
-_MARK = {"pass": "ok  ", "fail": "FAIL", "error": "ERR ", "stale": "old ", "n/a": "n/a "}
+# the verdict word, failing ones in capitals (a cue that survives without colour)
+_MARK = {"pass": "pass", "fail": "FAIL", "error": "ERROR", "stale": "stale", "n/a": "n/a"}
 
 
 def _fmt(value, unit):
@@ -611,20 +764,20 @@ def _print_results(results, title: str) -> None:
     if not results:
         typer.echo("  no applicable requirements with a metric")
         return
+    from .display import headroom_text, value_text
+
     rows = []
     for r in results:
-        head = "-" if r.headroom is None or r.unit == "bool" else _fmt(r.headroom, r.unit)
-        if r.headroom_fraction is not None and r.headroom is not None and r.unit != "bool":
-            import math
-            if math.isfinite(r.headroom_fraction):
-                head += f" ({r.headroom_fraction:+.0%})"
-        rows.append([r.requirement, f"{_MARK.get(r.verdict, r.verdict)} {r.verdict}",
-                     _fmt(r.value, r.unit) if r.value is not None else "-", r.limit_text,
+        head = headroom_text(r.value, r.headroom, r.headroom_fraction, r.unit, r.limit_text)
+        head = head.replace(" of the limit)", ")")
+        rows.append([r.requirement, _MARK.get(r.verdict, r.verdict),
+                     value_text(r.value, r.unit, r.limit_text), r.limit_text,
                      head, r.worst_variant or "-",
                      "-" if r.pass_fraction is None else f"{r.pass_fraction:.0%}",
                      _short(r.reason, 50) or ""])
     _table(["ID", "verdict", "worst value", "limit", "headroom", "worst variant", "pass", "note"],
-           rows, title=title)
+           rows, title=title, drop=("note", "pass", "worst variant"),
+           shorten={"worst variant": short_variant}, quiet={"pass": lambda v: v == "100%"})
     counts = {}
     for r in results:
         counts[r.verdict] = counts.get(r.verdict, 0) + 1
@@ -657,9 +810,12 @@ def verify_cmd(loop: Optional[str] = typer.Option(None, "--loop", help="Only thi
 @app.command("results")
 def results_cmd(loop: str = typer.Argument(..., help="Loop name."),
                 label: Optional[str] = typer.Argument(None, help="Revision label (default: tip)."),
-                as_json: bool = typer.Option(False, "--json", help="Print JSON.")):
+                as_json: bool = typer.Option(False, "--json", help="Print JSON."),
+                wide: bool = typer.Option(False, "--wide", help=WIDE_HELP)):
     """Show the verdicts of one revision: worst value over the plant family, headroom,
     the variant that produced it and the fraction of variants that pass."""
+    _state["wide"] = _state["wide"] or wide
+
     def body():
         with _open() as lg:
             res = lg.results(loop, label)
@@ -667,7 +823,7 @@ def results_cmd(loop: str = typer.Argument(..., help="Loop name."),
         if as_json:
             return _emit_json(res)
         _print_results(res, f"verdicts for {rev.loop}/{rev.label}")
-        typer.echo(CAUTION)
+        _say(CAUTION)
     run(body)
 
 
@@ -679,8 +835,12 @@ class _Tools:
     run = staticmethod(run)
     emit_json = staticmethod(_emit_json)
     table = staticmethod(_table)
+    say = staticmethod(_say)
+    set_wide = staticmethod(_set_wide)
+    wide_help = WIDE_HELP
     print_results = staticmethod(_print_results)
     short = staticmethod(_short)
+    short_variant = staticmethod(short_variant)
     fail = staticmethod(_fail)
 
 

@@ -70,5 +70,5 @@ def register(app, tools) -> None:
             cols = ", ".join(f"{c.loop}/{c.label}" for c in m.columns)
             typer.echo(f"wrote {written} ({f}): {len(m.entries)} entries over {cols}"
                        + (f"; {summary}" if summary else ""))
-            typer.echo(tools.caution)
+            tools.say(tools.caution)
         tools.run(body)

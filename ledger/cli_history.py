@@ -25,22 +25,21 @@ class ExitOn(str, Enum):
     any = "any"
 
 
-def _fmt(value, unit: str) -> str:
-    from .units import format_value
+def _fmt(value, unit: str, limit_text: str = "") -> str:
+    from .display import value_text
 
-    return format_value(value, unit)
+    return value_text(value, unit, limit_text)
 
 
 def _delta(c) -> str:
+    from .display import headroom_delta_text
+
     if c.headroom_delta is None:
         return "-"
-    text = _fmt(c.headroom_delta, c.unit)
-    if c.headroom_delta > 0 and not text.startswith("+"):
-        text = "+" + text
     both_pass = c.old_verdict == "pass" and c.new_verdict == "pass"
-    if (both_pass or c.kind == "moved") and c.headroom_change is not None and math.isfinite(c.headroom_change):
-        text += f" ({c.headroom_change:+.0%})"
-    return text
+    change = c.headroom_change if (both_pass or c.kind == "moved") else None
+    return headroom_delta_text(c.old_value, c.new_value, c.old_headroom, c.new_headroom,
+                               c.unit, c.limit_text, change)
 
 
 def _versions(c) -> str:
@@ -61,7 +60,8 @@ def diff_rows(changes) -> list[list[str]]:
         rows.append([
             c.requirement, c.kind.upper() if c.kind in ("broke", "eroded") else c.kind,
             f"{c.old_verdict or '-'} -> {c.new_verdict or '-'}",
-            _fmt(c.old_value, c.unit), _fmt(c.new_value, c.unit), c.limit_text or "-",
+            _fmt(c.old_value, c.unit, c.limit_text), _fmt(c.new_value, c.unit, c.limit_text),
+            c.limit_text or "-",
             _delta(c), worst, _versions(c), c.note,
         ])
     return rows
@@ -69,6 +69,21 @@ def diff_rows(changes) -> list[list[str]]:
 
 _DIFF_COLS = ["ID", "change", "verdict", "old value", "new value", "limit", "headroom change",
               "worst variant", "req", "note"]
+
+
+# taken out first when the terminal is narrow (shown in detail lines under the table)
+_DIFF_DROP = ("note", "req", "worst variant", "verdict")
+
+
+def _same_sides(v: str) -> bool:
+    a, _, b = v.partition(" -> ")
+    return not b or a == b
+
+
+def _diff_table(tools, rows, title=None) -> None:
+    tools.table(_DIFF_COLS, rows, title=title, drop=_DIFF_DROP,
+                shorten={"worst variant": tools.short_variant},
+                quiet={"verdict": _same_sides, "req": _same_sides})
 
 
 def _diff_json(d) -> dict:
@@ -106,7 +121,7 @@ def print_regressions(lg, loop: str, label: str, tools) -> object:
         typer.echo(f"against parent {d.old.label}: no change beyond {d.threshold:.0%} of headroom "
                    f"({_counts_line(d)})")
         return d
-    tools.table(_DIFF_COLS, diff_rows(moved),
+    _diff_table(tools, diff_rows(moved),
                 title=f"changes of {loop}/{d.new.label} against parent {d.old.label}")
     typer.echo("  " + _counts_line(d))
     return d
@@ -136,7 +151,7 @@ def trace_lines(t) -> list[str]:
             lines.append(head)
             for v in n.verdicts:
                 res = v.result
-                value = _fmt(res.value, res.unit) if res is not None else "-"
+                value = _fmt(res.value, res.unit, res.limit_text) if res is not None else "-"
                 where = f"{v.loop}/{v.revision}" if v.revision else v.loop
                 lines.append(f"{'   ' * depth}{'  ' if depth else ''}    {where}: {v.verdict}  "
                              f"{r.metric} {value} (limit {r.limit_text})")
@@ -180,10 +195,12 @@ def register(app, tools) -> None:
         show_all: bool = typer.Option(False, "--all", help="List unchanged requirements too."),
         exit_on: Optional[ExitOn] = typer.Option(None, "--exit-on", case_sensitive=False,
                                                  help="Exit with status 3 when a requirement broke ('broke'), an approved one broke ('approved-broke'), or anything broke or eroded ('any')."),
+        wide: bool = typer.Option(False, "--wide", help=tools.wide_help),
     ):
         """Regressions between two revisions of a loop, requirement by requirement: broke,
         eroded, fixed, improved, moved (still failing, large move), new, dropped,
         incomparable, unchanged."""
+        tools.set_wide(wide)
         status = {"code": 0}
 
         def body():
@@ -197,12 +214,12 @@ def register(app, tools) -> None:
                 return
             against = f"{d.old.label}" + (" (parent)" if d.old and d.old.label == d.new.parent else "") \
                 if d.old else "nothing (root revision)"
-            typer.echo(f"loop {loop}: {d.new.label} against {against}, threshold {d.threshold:.0%} of headroom")
+            tools.say(f"loop {loop}: {d.new.label} against {against}, threshold {d.threshold:.0%} of headroom")
             shown = d.changes if show_all else tuple(c for c in d.changes if c.kind != "unchanged")
             if shown:
-                tools.table(_DIFF_COLS, diff_rows(shown))
+                _diff_table(tools, diff_rows(shown))
             typer.echo("  " + _counts_line(d))
-            typer.echo(tools.caution)
+            tools.say(tools.caution)
 
         tools.run(body)
         if status["code"]:
@@ -241,7 +258,7 @@ def register(app, tools) -> None:
                 for lbl in run.run:
                     res = results[lbl]
                     rows.append([lbl, res.verdict if res else "-",
-                                 _fmt(res.value, res.unit) if res else "-",
+                                 _fmt(res.value, res.unit, res.limit_text) if res else "-",
                                  res.worst_variant if res and res.worst_variant else "-",
                                  tools.short(revs[lbl].rationale, 60)])
                 tools.table(["revision", "verdict", "worst value", "worst variant", "rationale"],
@@ -250,9 +267,12 @@ def register(app, tools) -> None:
         tools.run(body)
 
     @app.command("trace")
-    def trace_cmd(as_json: bool = typer.Option(False, "--json", help="Print JSON.")):
+    def trace_cmd(as_json: bool = typer.Option(False, "--json", help="Print JSON."),
+                  wide: bool = typer.Option(False, "--wide", help=tools.wide_help)):
         """The requirement tree (system needs down to loop requirements) with each loop tip's
         verdicts rolled up (satisfied, incomplete, violated), then coverage gaps and orphans."""
+        tools.set_wide(wide)
+
         def body():
             from .history.trace import build_trace
 
@@ -264,7 +284,7 @@ def register(app, tools) -> None:
             if not t.roots:
                 typer.echo("no live requirements")
             for line in trace_lines(t):
-                typer.echo(line)
+                tools.say(line, indent="    ")
             counts = t.counts()
             typer.echo("  " + ", ".join(f"{counts[s]} {s}" for s in ("satisfied", "incomplete", "violated")
                                         if s in counts))
@@ -278,6 +298,6 @@ def register(app, tools) -> None:
                 tools.table(["ID", "retired parents"],
                             [[o.requirement, ", ".join(o.retired_parents)] for o in t.orphans],
                             title="orphans (derived from a retired requirement)")
-            typer.echo(tools.caution)
+            tools.say(tools.caution)
 
         tools.run(body)

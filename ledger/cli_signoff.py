@@ -31,13 +31,43 @@ def _fmt(x) -> str:
     return str(x)
 
 
+def cell_units(lg, cells) -> dict:
+    """``(requirement, version, plant, plant version) -> unit`` of each frozen cell's metric,
+    with the plant's declared units (``ledger.units.resolve_unit``)."""
+    from .catalogue import metric_unit
+    from .units import resolve_unit
+
+    out: dict = {}
+    for c in cells:
+        k = (c.requirement, c.requirement_version, c.plant, c.plant_version)
+        if k in out:
+            continue
+        try:
+            q = lg.requirement(c.requirement, version=c.requirement_version)
+            p = lg.plant(c.plant, version=c.plant_version)
+            out[k] = resolve_unit(q.metric, metric_unit(q.metric), p.input_unit, p.output_unit) \
+                if q.metric else ""
+        except LedgerError:
+            out[k] = ""
+    return out
+
+
+def _cell_row(c, units) -> list:
+    from .display import headroom_text, value_text
+
+    unit = units.get((c.requirement, c.requirement_version, c.plant, c.plant_version), "")
+    return [c.requirement, c.requirement_version, f"{c.loop}/{c.revision}", c.verdict,
+            value_text(c.value, unit, c.limit), c.limit,
+            headroom_text(c.value, c.headroom, None, unit, c.limit)]
+
+
 def register(app, tools) -> None:
     """Add ``baseline create/list/show``, ``sign`` and ``audit`` to ``app``."""
     baseline_app = typer.Typer(help="Baselines: frozen sets of revisions, requirement versions "
                                "and plant versions with their verdicts.", no_args_is_help=True)
     app.add_typer(baseline_app, name="baseline")
 
-    def show(b) -> None:
+    def show(b, units=None) -> None:
         typer.echo(f"baseline {b.name}  frozen {b.created_at:%Y-%m-%d %H:%M} UTC by {b.author}")
         typer.echo(f"  matrix SHA-256 {b.matrix_hash}")
         if b.supersedes:
@@ -50,14 +80,13 @@ def register(app, tools) -> None:
                     [[c.loop, c.revision, f"{c.plant} v{c.plant_version}", c.revision_hash[:12]]
                      for c in b.columns], title="revisions")
         tools.table(["ID", "ver", "loop/revision", "verdict", "value", "limit", "headroom"],
-                    [[c.requirement, c.requirement_version, f"{c.loop}/{c.revision}", c.verdict,
-                      _fmt(c.value), c.limit, _fmt(c.headroom)] for c in b.cells], title="cells")
+                    [_cell_row(c, units or {}) for c in b.cells], title="cells")
         for so in b.signoffs:
             typer.echo(f"  signed {so.signed_at:%Y-%m-%d %H:%M} UTC by {so.name} ({so.role}): "
                        f"{so.statement}")
         if not b.signoffs:
             typer.echo("  not signed")
-        typer.echo(tools.caution)
+        tools.say(tools.caution)
 
     @baseline_app.command("create")
     def baseline_create(
@@ -110,9 +139,10 @@ def register(app, tools) -> None:
 
             with tools.open() as lg:
                 b = baseline(lg, name)
+                units = None if as_json else cell_units(lg, b.cells)
             if as_json:
                 return tools.emit_json(b)
-            show(b)
+            show(b, units)
         tools.run(body)
 
     @app.command("sign")

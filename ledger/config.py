@@ -8,6 +8,11 @@ Environment variables (read when asked, never at import, so a test or a caller m
     The name recorded on new records (default: the login name).
 ``LOOPLEDGER_DEBUG``
     Set to show the traceback of an unexpected error in the command line.
+``LOOPLEDGER_DIGITS``
+    Significant digits of values shown beside their limits (1-17; default 4).
+``LOOPLEDGER_CONFIG_DIR``
+    Folder of the per-user display preferences file ``prefs.json`` (default
+    ``$XDG_CONFIG_HOME/loopledger``, else ``~/.config/loopledger``).
 
 Tunables are module constants; change them here, not where they are used.
 """
@@ -18,7 +23,7 @@ import getpass
 import os
 
 __all__ = ["DEFAULT_PATH", "BUSY_TIMEOUT_MS", "WRITE_RETRIES", "IN_CHUNK", "FAMILY_CACHE_SIZE",
-           "db_target", "author", "debug"]
+           "db_target", "author", "debug", "digits_setting", "prefs_dir"]
 
 #: the ledger file used when none is named and ``$LOOPLEDGER_DB`` is unset
 DEFAULT_PATH = "loopledger.db"
@@ -46,6 +51,20 @@ def author() -> str:
         return getpass.getuser()
     except (KeyError, OSError):
         return "unknown"
+
+
+def digits_setting() -> str:
+    """``$LOOPLEDGER_DIGITS`` as written (``""`` when unset); ledger/display.py reads it."""
+    return os.environ.get("LOOPLEDGER_DIGITS", "")
+
+
+def prefs_dir() -> str:
+    """Folder of the display preferences file (``$LOOPLEDGER_CONFIG_DIR``, else the XDG one)."""
+    base = os.environ.get("LOOPLEDGER_CONFIG_DIR")
+    if base:
+        return base
+    xdg = os.environ.get("XDG_CONFIG_HOME") or os.path.join(os.path.expanduser("~"), ".config")
+    return os.path.join(xdg, "loopledger")
 
 
 def debug() -> bool:

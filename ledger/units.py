@@ -8,6 +8,21 @@ conversions pint cannot know are done here, by the trade's convention:
 * ``Hz`` to ``rad/s`` multiplies by 2 pi (pint treats the radian as dimensionless and would
   convert 1 Hz to 1 rad/s);
 * ``dB`` to a plain magnitude ratio is 10^(x/20), and a ratio to dB is 20 log10(x).
+
+Units carried from the plant
+----------------------------
+A plant may declare the unit of its input (e.g. ``A``, ``V``) and of its output (e.g. ``rad``,
+``mm``).  The metrics that are signals of the loop then carry those units
+(:data:`PLANT_UNIT_METRICS`): the peak control effort is in the input unit, the disturbance peak
+and the steady-state, ramp and parabola errors in the output unit, the peak of |C S| in input
+unit per output unit.  :func:`resolve_unit` gives a metric's unit for a plant.  A limit on such a
+metric may be written in any compatible unit (``<= 20 mrad`` for a plant in ``rad``,
+``<= 2500 mA`` for one in ``A``); a bare number is read in the plant's own unit.  A plant that
+declares no units keeps these metrics dimensionless: a bare number or a dimensionless unit
+(``%``, and ``dB`` for ratios).
+
+pint treats the radian as dimensionless.  Angles are kept apart here: a limit in ``mrad`` does not
+fit a metric in ``mm`` or a dimensionless one, and ``%`` does not fit one in ``rad``.
 """
 
 from __future__ import annotations
@@ -19,7 +34,8 @@ from functools import lru_cache
 
 from .errors import UnitError
 
-__all__ = ["Limit", "parse_limit", "convert", "COMPARATORS", "format_value"]
+__all__ = ["Limit", "parse_limit", "convert", "COMPARATORS", "format_value", "PLANT_UNIT_METRICS",
+           "resolve_unit", "check_plant_unit", "unit_origin"]
 
 COMPARATORS = ("<=", "<", ">=", ">", "==")
 _COMPARATOR_ALIASES = {"≤": "<=", "≥": ">=", "=": "==", "=<": "<=", "=>": ">="}
@@ -58,6 +74,18 @@ class Limit:
     text: str
 
 
+def _parse_errors() -> tuple:
+    """What pint raises on unit text it cannot parse (its tokenizer raises TokenError on
+    unbalanced brackets, its parser AssertionError on a dangling operator)."""
+    import tokenize
+
+    import pint
+
+    return (pint.errors.UndefinedUnitError, pint.errors.DefinitionSyntaxError, AttributeError,
+            AssertionError, TypeError, ValueError, IndexError, KeyError, SyntaxError,
+            tokenize.TokenError)
+
+
 @lru_cache(maxsize=1)
 def _ureg():
     import pint
@@ -71,9 +99,7 @@ def _pint_convert(value: float, unit_text: str, target: str, metric_unit: str) -
     ureg = _ureg()
     try:
         q = ureg.Quantity(value, unit_text)
-    except Exception as e:  # noqa: BLE001 - pint's parser raises many kinds on odd text
-        # (an unbalanced ')' gives tokenize.TokenError, '1/0' ZeroDivisionError...): all of
-        # them mean the text is not a unit
+    except _parse_errors() as e:
         raise UnitError(f"unknown unit {unit_text!r}") from e
     try:
         return float(q.to(target).magnitude)
@@ -83,6 +109,108 @@ def _pint_convert(value: float, unit_text: str, target: str, metric_unit: str) -
         ) from e
     except (ArithmeticError, TypeError, ValueError) as e:
         raise UnitError(f"unit {unit_text!r} cannot be converted to {target}") from e
+
+
+#: Metrics whose unit comes from the plant: ``in`` (plant input), ``out`` (plant output) or
+#: ``in/out``.  Every other metric has the fixed unit of the catalogue.
+PLANT_UNIT_METRICS = {
+    "peak_effort": "in",
+    "disturbance_peak": "out",
+    "steady_state_error": "out",
+    "ramp_error": "out",
+    "parabola_error": "out",
+    "peak_control_sensitivity": "in/out",
+}
+
+
+def check_plant_unit(text: str, what: str = "unit") -> str:
+    """Check a plant's declared unit (``""`` = none); return it stripped.
+
+    Raises
+    ------
+    UnitError
+        pint does not know the unit, or it carries an offset (e.g. degC).
+    """
+    import pint
+
+    from .text import check_line
+
+    u = check_line(what, (text or "").strip())  # the one text rule first (ledger/text.py)
+    if not u:
+        return ""
+    try:
+        q = _ureg().Quantity(1.0, u)
+    except _parse_errors() as e:
+        raise UnitError(f"{what} {u!r} is not a unit pint knows; write e.g. 'A', 'V', 'rad', "
+                        "'mm' or 'N*m'") from e
+    if not q._is_multiplicative:
+        raise UnitError(f"{what} {u!r} has an offset; use an absolute unit (e.g. K)")
+    return u
+
+
+def resolve_unit(metric: str, catalogue_unit: str, input_unit: str = "",
+                 output_unit: str = "") -> str:
+    """A metric's unit for a plant with the given declared units.
+
+    Examples
+    --------
+    >>> resolve_unit("peak_effort", "", "A", "rad")
+    'A'
+    >>> resolve_unit("peak_control_sensitivity", "ratio", "A", "rad")
+    'A/rad'
+    >>> resolve_unit("peak_effort", "", "", "")
+    ''
+    """
+    kind = PLANT_UNIT_METRICS.get(metric)
+    iu, ou = (input_unit or "").strip(), (output_unit or "").strip()
+    if kind == "in":
+        return iu or catalogue_unit
+    if kind == "out":
+        return ou or catalogue_unit
+    if kind == "in/out":
+        if not iu and not ou:
+            return catalogue_unit
+        return f"{iu or '1'}/{ou}" if ou else iu
+    return catalogue_unit
+
+
+def unit_origin(metric: str) -> str:
+    """Words naming where a metric's unit comes from, for messages (``""`` if fixed)."""
+    return {"in": "the plant's input unit", "out": "the plant's output unit",
+            "in/out": "plant input unit per output unit"}.get(PLANT_UNIT_METRICS.get(metric, ""), "")
+
+
+def _angle_power(unit_text: str) -> int:
+    """Power of the radian in a unit (pint counts the radian as dimensionless)."""
+    q = _ureg().Quantity(1.0, unit_text).to_root_units()
+    return int(round(dict(q.unit_items()).get("radian", 0)))
+
+
+def _convert_signal(value: float, u: str, metric_unit: str) -> float:
+    """A limit on a metric in a plant-declared unit (any pint unit)."""
+    import pint
+
+    if not u:
+        return value  # a bare number is in the plant's own unit (documented)
+    if u in _DB or u in _PERCENT and _angle_power(metric_unit) != 0:
+        raise UnitError(f"unit {u!r} does not fit a metric measured in {metric_unit}")
+    if u in _PERCENT:
+        u = "percent"
+    try:
+        q = _ureg().Quantity(value, u)
+    except _parse_errors() as e:
+        raise UnitError(f"unknown unit {u!r}") from e
+    try:
+        if _angle_power(u) != _angle_power(metric_unit):
+            raise pint.errors.DimensionalityError(u, metric_unit)
+        return float(q.to(metric_unit).magnitude)
+    except pint.errors.DimensionalityError as e:
+        raise UnitError(f"unit {u!r} does not fit a metric measured in {metric_unit}") from e
+    except _parse_errors() as e:
+        # a plant unit recorded before units were checked, unknown to pint: only a bare
+        # number (in that unit) can be compared with it
+        raise UnitError(f"unit {u!r} cannot be converted to {metric_unit!r}, which pint does "
+                        "not know; write the limit as a plain number in that unit") from e
 
 
 def convert(value: float, unit_text: str, metric_unit: str) -> float:
@@ -130,17 +258,28 @@ def convert(value: float, unit_text: str, metric_unit: str) -> float:
             return value
         if u in _DB:
             return 10.0 ** (value / 20.0)
+        if u in _PERCENT:
+            return value / 100.0
         raise UnitError(f"unit {unit_text!r} does not fit a magnitude ratio; write e.g. '2' or '6 dB'")
-    if metric_unit in ("", "bool"):
+    if metric_unit == "bool":
         if u in ("",):
             return value
         raise UnitError(f"unit {unit_text!r} does not fit a metric without unit")
+    if metric_unit == "":
+        if u in ("",):
+            return value
+        if u in _PERCENT:
+            return value / 100.0
+        raise UnitError(f"unit {unit_text!r} does not fit a metric without unit (the plant "
+                        "declares no units; give its input and output units to use them)")
+    if metric_unit not in ("1/s^2",):
+        return _convert_signal(value, u, metric_unit)
     if not u:
         raise UnitError(f"a limit on a metric in {metric_unit} needs a unit")
     return _pint_convert(value, u, metric_unit, metric_unit)
 
 
-def parse_limit(text: str, metric_unit: str) -> Limit:
+def parse_limit(text: str, metric_unit: str, *, signal: bool = False) -> Limit:
     """Parse a limit such as ``"<= 25 ms"`` for a metric measured in ``metric_unit``.
 
     Examples
@@ -166,7 +305,10 @@ def parse_limit(text: str, metric_unit: str) -> Limit:
     raw = float(m["num"])
     if not math.isfinite(raw):
         raise UnitError(f"limit {text!r} is not a finite number")
-    value = convert(raw, m["unit"], metric_unit)
+    if signal:  # a unit declared by the plant (may read like a catalogue unit, e.g. rad/s)
+        value = _convert_signal(raw, m["unit"].strip(), metric_unit)
+    else:
+        value = convert(raw, m["unit"], metric_unit)
     if not math.isfinite(value):
         raise UnitError(f"limit {text!r} overflows in {metric_unit}; give a smaller number")
     if math.isnan(value):
@@ -192,3 +334,64 @@ def format_value(value: float | None, unit: str, digits: int = 4) -> str:
     if unit in ("ratio", ""):
         return f"{value:.{digits}g}"
     return f"{value:.{digits}g} {unit}"
+
+
+def limit_unit_text(text: str) -> str:
+    """The unit part of a limit as written (``"<= 25 ms"`` -> ``"ms"``; ``""`` if none)."""
+    m = _LIMIT_RE.match(text or "")
+    return m["unit"].strip() if m else ""
+
+
+def parse_limit_for(text: str, metric: str, catalogue_unit: str,
+                    plants: list[tuple[str, str, str]] = ()) -> Limit:
+    """Parse a requirement's limit against every loop it applies to.
+
+    Parameters
+    ----------
+    text : str
+        The limit as written, e.g. ``"<= 3 A"``.
+    metric, catalogue_unit : str
+        The metric's name and its unit in the catalogue.
+    plants : list of (loop name, plant input unit, plant output unit)
+        The loops the requirement applies to, with their plants' declared units.
+
+    Returns
+    -------
+    Limit
+        In the first loop's unit for the metric (the catalogue unit without loops; a limit on
+        a plant-unit metric written in a unit is then kept in that unit's SI coherent unit and
+        read again against each plant when verified).
+
+    Raises
+    ------
+    UnitError
+        The limit does not parse, or its unit does not fit the metric on one of the loops;
+        the message names both units.
+    """
+    first = None
+    for loop, iu, ou in plants:
+        unit = resolve_unit(metric, catalogue_unit, iu, ou)
+        try:
+            lim = parse_limit(text, unit, signal=unit != catalogue_unit)
+        except UnitError as e:
+            written = limit_unit_text(text)
+            if "does not fit" in str(e):
+                where = unit_origin(metric) if unit != catalogue_unit else ""
+                raise UnitError(
+                    f"limit {text!r}: unit {written or '(none)'!s} does not fit {metric} on loop "
+                    f"{loop!r}, measured in "
+                    + (unit or "no unit (the plant declares no units; give its input and output "
+                               "units, or write a plain number)")
+                    + (f" ({where})" if where else "")) from e
+            raise
+        first = first or lim
+    if first is not None:
+        return first
+    if metric in PLANT_UNIT_METRICS and limit_unit_text(text) and \
+            limit_unit_text(text) not in _PERCENT | _DB:
+        written = limit_unit_text(text)
+        check_plant_unit(written, "limit unit")
+        base = str(_ureg().Quantity(1.0, written).to_base_units().units)
+        lim = parse_limit(text, base, signal=True)
+        return Limit(lim.comparator, lim.value, base, lim.text)
+    return parse_limit(text, catalogue_unit)

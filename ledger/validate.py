@@ -109,6 +109,7 @@ def plant_fields(name, model, params, fidelity, samples, seed, sample_time, inpu
     """The stored fields of a plant version (content hash included), checked: the model and
     every fidelity model parse, and the family builds."""
     from .systems.bounds import check_seed
+    from .units import check_plant_unit
 
     what = f"plant {name!r}"
     sample_time = finite("sample_time", sample_time, allow_none=True, minimum=0, strict=True)
@@ -131,8 +132,8 @@ def plant_fields(name, model, params, fidelity, samples, seed, sample_time, inpu
         samples=samples,
         seed=check_seed(seed or 0, f"{what}: seed"),
         sample_time=sample_time,
-        input_unit=input_unit or "",
-        output_unit=output_unit or "",
+        input_unit=check_plant_unit(input_unit, f"{what}: input unit"),
+        output_unit=check_plant_unit(output_unit, f"{what}: output unit"),
     )
     # the family must build (parameters present, tolerances sane); fails fast with the reason
     from .systems import build_family
@@ -178,9 +179,11 @@ def loop_fields(name, kind, sensor, prefilter, input_delay, output_delay, sample
 
 
 def requirement_fields(key: str, *, title, statement, rationale, method, status, metric,
-                       settings, limit, parents, loops) -> dict:
+                       settings, limit, parents, loops, plant_units=lambda names: ()) -> dict:
     """The stored fields of a requirement version, checked (that the parents and loops exist
-    is the store's check).  ``parents`` and ``loops`` come back sorted, without repeats."""
+    is the store's check).  ``parents`` and ``loops`` come back sorted, without repeats.
+    ``plant_units(loop names)`` gives ``(loop, plant input unit, plant output unit)`` for each
+    loop, so that a limit is checked against the units of every plant it applies to."""
     what = f"requirement {key!r}"
     if not isinstance(title, str) or not title.strip():
         raise IntegrityViolation(f"{what}: a title is required")
@@ -195,7 +198,7 @@ def requirement_fields(key: str, *, title, statement, rationale, method, status,
     limit_text = ""
     if metric:
         from .catalogue import check_settings, metric_unit
-        from .units import parse_limit
+        from .units import parse_limit_for
 
         unit = metric_unit(metric)  # raises for an unknown metric
         try:
@@ -205,7 +208,9 @@ def requirement_fields(key: str, *, title, statement, rationale, method, status,
         if limit is None:
             raise IntegrityViolation(f"{what}: metric {metric!r} needs a limit, e.g. '<= 25 ms'")
         try:
-            lim = parse_limit(limit, unit)
+            # the limit must fit each loop's plant units (docs/metrics.md, units)
+            lim = parse_limit_for(limit, metric, unit,
+                                  list(plant_units(sorted(set(loops or ())))))
         except LedgerError as e:
             raise with_context(e, what) from e
         comparator, limit_value, limit_text = lim.comparator, lim.value, lim.text

@@ -29,7 +29,8 @@ BACKENDS = ["sqlite", "postgresql"]
 # another BLAS set-up (see .ci/run), so a tolerance that holds on one kernel only fails there.
 # A new numeric test module goes in this list.
 NUMERIC_MODULES = {"test_blocks", "test_family", "test_freqresp", "test_loop", "test_measure",
-                   "test_parser", "test_stability", "test_timeresp", "test_units"}
+                   "test_parser", "test_stability", "test_timeresp", "test_units", "test_plant_units",
+                   "test_display", "test_plot_axes"}
 
 
 def pytest_configure(config):
@@ -82,6 +83,12 @@ def db_url(request, tmp_path):
     url, drop = pg_database()
     yield url
     drop()
+
+
+@pytest.fixture(autouse=True)
+def _private_prefs(tmp_path_factory, monkeypatch):
+    """Display preferences (ledger.prefs) in a throwaway folder, never the user's."""
+    monkeypatch.setenv("LOOPLEDGER_CONFIG_DIR", str(tmp_path_factory.mktemp("prefs")))
 
 
 @pytest.fixture

@@ -72,8 +72,8 @@ def book(tmp_path_factory):
 
 
 def _data_lines(path: Path) -> str:
-    return "".join(l for l in path.read_text(encoding="utf-8").splitlines(True)
-                   if not l.startswith("#"))
+    """Everything after the one-line preamble (docs/exports.md, CSV)."""
+    return "".join(path.read_text(encoding="utf-8").splitlines(True)[1:])
 
 
 def _results(lg, loop, label):
@@ -84,7 +84,8 @@ def test_csv_round_trip(book, tmp_path):
     m = build_matrix(book, "all")
     p = export_matrix(m, tmp_path / "m.csv")
     text = p.read_text(encoding="utf-8")
-    assert f"# caution: {CAUTION}" in text
+    preamble = next(csv.reader(io.StringIO(text.splitlines()[0])))
+    assert preamble[0] == SCHEMA_VERSION and preamble[2] == " ".join(CAUTION.split())
     rows = list(csv.DictReader(io.StringIO(_data_lines(p))))
     assert tuple(rows[0].keys()) == COLUMNS
     assert len(rows) == len(m.entries) == 2 * len(REQS) + 1
@@ -135,7 +136,10 @@ def test_json_schema_and_values(book, tmp_path):
 
 
 def test_xlsx_values_fills_panes_filters(book, tmp_path):
+    import datetime
+
     from openpyxl import load_workbook
+    from openpyxl.utils import get_column_letter
 
     m = build_matrix(book, "all")
     p = export_matrix(m, tmp_path / "m.xlsx")
@@ -151,9 +155,21 @@ def test_xlsx_values_fills_panes_filters(book, tmp_path):
         assert counts[word] == sum(e.verdict == word for e in pz_entries)
     ws = wb["pz"]
     assert ws.freeze_panes == "A2"
-    assert ws.auto_filter.ref == f"A1:W{1 + len(pz_entries)}"
+    last = get_column_letter(len(COLUMNS))
+    assert ws.auto_filter.ref == f"A1:{last}{1 + len(pz_entries)}"
     cols = [c.value for c in ws[1]]
-    vi, ki, ri, vali = (cols.index(n) for n in ("Verdict", "Requirement", "Revision", "Value"))
+    assert tuple(cols) == COLUMNS  # the documented column names (docs/exports.md)
+    # print set-up, read back through openpyxl (ECMA-376 pageSetup / definedName Print_Titles)
+    assert ws.page_setup.orientation == "landscape"
+    assert ws.page_setup.fitToWidth == 1 and ws.sheet_properties.pageSetUpPr.fitToPage
+    assert ws.print_title_rows.replace("$", "") == "1:1"
+    assert str(ws.print_area).replace("$", "").endswith(f"A1:{last}{1 + len(pz_entries)}")
+    ti = cols.index("verified_at")
+    for row in ws.iter_rows(min_row=2):
+        if row[ti].value is not None:
+            assert isinstance(row[ti].value, datetime.datetime)
+            assert row[ti].is_date
+    vi, ki, ri, vali = (cols.index(n) for n in ("verdict", "requirement", "revision", "value"))
     for row in ws.iter_rows(min_row=2):
         word = row[vi].value
         assert row[vi].fill.fgColor.rgb.endswith(VERDICT_FILLS[word])   # colour ...
@@ -246,7 +262,14 @@ def test_junit_valid_and_counted(book, tmp_path):
         if f.get("type") == "fail":
             assert r.verdict == "fail"
             assert f"limit {r.limit_text}" in f.get("message")
-            assert f"{r.value:.6g}" in f.get("message")
+            # the value reads in the limit's unit, 4 significant digits; reference: pint
+            unit_written = r.limit_text.split(None, 2)[2] if r.limit_text.count(" ") >= 2 else ""
+            if unit_written in ("ms", "s", "deg", "us"):
+                import pint
+
+                q = pint.UnitRegistry().Quantity(r.value, r.unit).to(unit_written).magnitude
+                assert f"value {q:.4g} {unit_written} does not meet" in f.get("message")
+            assert f"{r.value!r}" in f.text  # the raw value in the details
         elif f.get("type") == "stale":
             assert r.verdict == "stale" and f.get("message") == "stale, run verify"
         else:

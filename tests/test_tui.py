@@ -154,8 +154,16 @@ async def test_matrix_view_cells_navigation_and_filters(ledger):
         keys = [r.key for r in scr.visible_rows()]
         assert keys == ["GM-1", "OS-1", "PM-1", "WC-1"]  # no parent first, then under SYS-1
         pm_r2 = str(table.get_cell_at((2, 2)))
-        assert "✗ fail" in pm_r2 and "BROKE" in pm_r2  # symbol and word, not colour alone
-        assert "✓ pass" in str(table.get_cell_at((2, 1)))
+        assert pm_r2.startswith("✗ ") and "BROKE" in pm_r2  # a symbol, not colour alone
+        assert str(table.get_cell_at((2, 1))).startswith("✓ ")
+        # narrow cells hold symbol + value in the limit's unit; the detail line under the table
+        # names the verdict, limit and headroom of the cell under the cursor
+        assert "28.02" in pm_r2 and "%" not in pm_r2  # the unit is in the row's limit
+        table.move_cursor(row=2, column=2)
+        await pilot.pause()
+        detail = str(scr.query_one("#matrix-detail").render())
+        assert "PM-1 on pos/r2" in detail and "fail" in detail and "limit >= " in detail
+        assert "headroom -" in detail and " deg" in detail
         row0 = table.cursor_row
         await press(pilot, "down")
         assert table.cursor_row == row0 + 1
@@ -278,7 +286,7 @@ async def test_add_revision_form_records_and_shows_verdicts(ledger):
         assert scr.shown[1] == 3  # the window of whole columns reaches the new column ...
         assert scr.selected()[1:] == ("pos", "r3")  # ... and the cursor is on it
         col = table.cursor_column
-        assert "✗ fail" in str(table.get_cell_at((2, col)))
+        assert str(table.get_cell_at((2, col))).startswith("✗ ")  # fail symbol
         assert "BROKE" not in str(table.get_cell_at((2, col)))  # r2 already failed PM-1
 
 
@@ -566,17 +574,23 @@ def _check_whole_cells(screen: str, scr) -> set:
     from ledger.tui.widgets.verdict import cell_text
 
     d = scr._data
-    headers = [f"{c.loop}/{c.label}" for c in d.columns]
+    first = scr.shown[0]
+    # a header names its loop on the first column shown and where the loop changes
+    headers = [f"{c.loop}/{c.label}" if j == first or j == 0 or c.loop != d.columns[j - 1].loop
+               else c.label for j, c in enumerate(d.columns)]
     lines = screen.replace("\xa0", " ").splitlines()  # the SVG writes blanks as no-break spaces
     head = next(l for l in lines if l.strip().startswith("requirement"))
     rest = head.replace("requirement", "", 1)
     seen = set()
-    for h in sorted(headers, key=len, reverse=True):  # longest first: r1 is inside r10
-        if re.search(rf"(?<![\w/-]){re.escape(h)}(?![\w/-])", rest):
-            seen.add(h)
-            rest = re.sub(rf"(?<![\w/-]){re.escape(h)}(?![\w/-])", " ", rest, count=1)
+    for j in range(*scr.shown):
+        h = headers[j]
+        pattern = rf"(?<![\w/-]){re.escape(h)}(?![\w/-])"
+        if re.search(pattern, rest):
+            seen.add(f"{d.columns[j].loop}/{d.columns[j].label}")
+            rest = re.sub(pattern, " ", rest, count=1)
     assert not rest.strip(_GLYPHS), f"header fragment {rest.strip()!r} in {head!r}"
     assert seen, head
+    headers = [f"{c.loop}/{c.label}" for c in d.columns]
     for r in scr.visible_rows():
         parent = f" ({r.parents[0]})" if r.parents else ""
         label = f"{r.key}{parent} {r.limit_text}"
@@ -622,3 +636,33 @@ async def test_matrix_scrolls_sideways_by_whole_cells(wide, size):
         assert seen_all == {f"remote-shaker/r{i}" for i in range(1, n + 1)}
         assert scr.shown[0] == 0 and scr.selected()[2] == "r1"
         assert scr.shown[1] - scr.shown[0] < n  # the window really was narrower than the data
+
+
+async def test_plots_frequency_unit_remembered_and_step_horizon(ledger):
+    from ledger import prefs
+    from ledger.tui.plotdata import settle_time
+
+    app = make_app(ledger)
+    app.current_loop, app.current_label = "pos", "r2"
+    async with app.run_test(size=(120, 40)) as pilot:
+        await settle(pilot)
+        await press(pilot, "5")
+        scr = app.screen
+        assert scr.freq_unit == "Hz"  # the default for display
+        cap = str(scr.query_one("#plots-caption").render())
+        # Source: closed form wc (module docstring), shown in Hz: f = w / (2 pi)
+        assert f"{wc_of(4) / (2 * math.pi):.4g} Hz" in cap
+        await press(pilot, "f")
+        assert scr.freq_unit == "rad/s" and prefs.frequency_unit(ledger.url) == "rad/s"
+        cap = str(scr.query_one("#plots-caption").render())
+        assert f"{wc_of(4):.4g} rad/s" in cap
+        d = scr.plot_data
+        # the step plot ends at a few (3) settling times of the plotted variant, not at the
+        # simulation's end; within the sampling of the thinned curve
+        ts = settle_time(d.t, d.y, d.final)
+        assert d.t[-1] == pytest.approx(3 * ts, rel=0.05)
+    app2 = make_app(ledger)
+    async with app2.run_test(size=(120, 40)) as pilot:
+        await settle(pilot)
+        await press(pilot, "5")
+        assert app2.screen.freq_unit == "rad/s"  # remembered for this ledger

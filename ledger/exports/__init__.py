@@ -13,13 +13,13 @@ from pathlib import Path
 from ..errors import UsageError
 from .junit import export_junit
 from .reqif import export_reqif
-from .rows import COLUMNS, SCHEMA_VERSION, ExportRow, matrix_rows
+from .rows import COLUMNS, JSON_SCHEMA_NAME, SCHEMA_VERSION, ExportRow, json_schema_path, matrix_rows
 from .tabular import export_csv, export_json
 from .workbook import export_xlsx
 
 __all__ = ["FORMATS", "SUFFIXES", "format_for", "export_matrix", "export_csv", "export_json",
            "export_xlsx", "export_html", "export_junit", "export_reqif", "matrix_rows",
-           "ExportRow", "COLUMNS", "SCHEMA_VERSION"]
+           "ExportRow", "COLUMNS", "SCHEMA_VERSION", "JSON_SCHEMA_NAME", "json_schema_path"]
 
 #: Format names.
 FORMATS = ("csv", "json", "xlsx", "html", "junit", "reqif")

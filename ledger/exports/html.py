@@ -69,6 +69,12 @@ def _verdict(word: str) -> str:
     return f'<span class="v v-{_e(word)}">{_e(word)}</span>'
 
 
+def value_text(value, unit, limit_text):
+    from ..display import value_text as _vt
+
+    return _vt(value, unit, limit_text) if value is not None else ""
+
+
 def _val(x, unit="") -> str:
     if x is None:
         return ""
@@ -118,7 +124,8 @@ def _matrix_table(matrix) -> list[str]:
                 cells.append('<td class="note">n/a</td>')
                 continue
             r = e.result
-            cells.append(f"<td>{_verdict(e.verdict)} {_val(r.value, r.unit) if r else ''}</td>")
+            cells.append(f"<td>{_verdict(e.verdict)} "
+                         f"{_e(value_text(r.value, r.unit, q.limit_text)) if r else ''}</td>")
         out.append(f"<tr><td><b>{_e(q.key)}</b> v{q.version}<br>{_e(q.title)}</td>"
                    f"<td>{_e(q.limit_text)}<br><span class='meta'>{_e(q.metric)}</span></td>"
                    + "".join(cells) + "</tr>")
@@ -136,11 +143,10 @@ def _fields(entry, row) -> str:
              ("Method", _e(q.method)), ("Status", _e(q.status)),
              ("Metric", _e(q.metric)), ("Limit", _e(q.limit_text)),
              ("Verdict", _verdict(entry.verdict)),
-             ("Value (worst case)", _val(row.value, row.unit)),
-             ("Headroom", _val(row.headroom, row.unit)
-              + (f" ({_e(number_text(100 * row.headroom_fraction, digits=4))} % of the limit)"
-                 if row.headroom_fraction is not None and math.isfinite(row.headroom_fraction)
-                 else "")),
+             ("Value (worst case)", _e(row.value_shown)
+              + (f" <span class='meta'>({_val(row.value, row.unit)})</span>"
+                 if row.value is not None and row.value_shown != _val(row.value, row.unit) else "")),
+             ("Headroom", _e(row.headroom_shown)),
              ("Worst variant", _e(row.worst_variant)),
              ("Variants passing", (_e(number_text(100 * row.pass_fraction, digits=4)) + " %"
                                    if row.pass_fraction is not None else "")
@@ -166,8 +172,10 @@ def render_html(matrix, lg) -> str:
         The ledger the matrix came from; its revisions are rebuilt to draw the curves.
     """
     from ..curves import column_curves
+    from ..prefs import frequency_unit
     from .plots import entry_figure
 
+    funit = frequency_unit(getattr(lg, "url", ""))  # the reader's choice for this ledger
     rows = matrix_rows(matrix)
     out = ["<!DOCTYPE html>", '<html lang="en"><head><meta charset="utf-8">',
            f"<title>{_e(matrix.title)}</title>", f"<style>{_CSS}</style></head><body>",
@@ -207,7 +215,7 @@ def render_html(matrix, lg) -> str:
         else:
             try:
                 with np.errstate(all="ignore"):
-                    svg = entry_figure(curves, q, entry.result)
+                    svg = entry_figure(curves, q, entry.result, frequency_unit=funit)
                 out.append(f"<div class='figure'>{svg}</div>")
             except LedgerError as e:
                 out.append(f"<p class='note'>No figure: {_e(e)}</p>")

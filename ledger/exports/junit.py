@@ -35,10 +35,15 @@ __all__ = ["export_junit", "junit_tree"]
 
 
 def _value_text(r) -> str:
+    """The value in the limit's unit (``ledger.display``)."""
     if r.value is None:
         return "no value"
+    return r.value_shown
+
+
+def _raw_text(r) -> str:
     unit = f" {r.unit}" if r.unit and r.unit not in ("bool", "ratio") else ""
-    return f"{number_text(r.value, digits=6)}{unit}"
+    return f"{number_text(r.value, digits=17)}{unit}" if r.value is not None else "none"
 
 
 def junit_tree(matrix, *, stale_as_skipped: bool = False):
@@ -73,8 +78,8 @@ def junit_tree(matrix, *, stale_as_skipped: bool = False):
             case = sub(suite, "testcase", classname=r.loop, name=r.requirement, time="0")
             detail = (f"{r.requirement} v{r.version} ({r.metric}) on {r.loop}/{r.revision}: "
                       f"value {_value_text(r)}, limit {r.limit}, headroom "
-                      f"{number_text(r.headroom, digits=6) or 'none'}, worst variant "
-                      f"{r.worst_variant or 'none'}")
+                      f"{r.headroom_shown or 'none'}, worst variant "
+                      f"{r.worst_variant or 'none'}; raw value {_raw_text(r)}")
             if r.verdict == "fail":
                 n["failures"] += 1
                 msg = (f"value {_value_text(r)} does not meet limit {r.limit}"

@@ -420,8 +420,29 @@ def _draw_poles(fig, curves, req, res, worst):
     ax.grid(True, alpha=0.3)
 
 
+_RADS_TEXT = re.compile(r"(-?\d+(?:\.\d*)?(?:e[-+]?\d+)?) rad/s")
+
+
+def _axes_to_hz(fig) -> None:
+    """Turn the frequency axes of ``fig`` (drawn in rad/s) into Hz: line data, limits, the
+    axis label and the frequencies written in legend labels (f = w / 2 pi)."""
+    k = 1.0 / (2.0 * math.pi)
+    for ax in fig.axes:
+        if ax.get_xscale() != "log":
+            continue
+        lo, hi = ax.get_xlim()
+        for line in ax.get_lines():
+            x = np.asarray(line.get_xdata(), float)
+            line.set_xdata(x * k)
+            lab = line.get_label()
+            if lab and not lab.startswith("_"):
+                line.set_label(_RADS_TEXT.sub(lambda m: f"{_num(float(m[1]) * k)} Hz", lab))
+        ax.set_xlim(lo * k, hi * k)
+        ax.set_xlabel(ax.get_xlabel().replace("frequency w (rad/s)", "frequency f (Hz)"))
+
+
 def entry_plot(curves, requirement, result, *, width_in: float = 10.0,
-               height_in: float = 3.8):
+               height_in: float = 3.8, frequency_unit: str = "Hz"):
     """The evidence figure of one entry as a matplotlib ``Figure`` (no pyplot state).
 
     Parameters
@@ -432,6 +453,9 @@ def entry_plot(curves, requirement, result, *, width_in: float = 10.0,
     result : ResultInfo or None
     width_in, height_in : float
         Figure size in inches (the Bode plot is 1.5 times taller).
+    frequency_unit : str
+        ``"Hz"`` (default) or ``"rad/s"``: the unit of frequency axes (log axes, real tick
+        values).
 
     Raises
     ------
@@ -466,6 +490,8 @@ def entry_plot(curves, requirement, result, *, width_in: float = 10.0,
         _draw_poles(fig, curves, requirement, result, worst)
     else:
         _draw_bode(fig, curves, requirement, result, worst)
+    if frequency_unit == "Hz" and kind in ("bode", "sensitivity", "disk", "poles"):
+        _axes_to_hz(fig)
     _finish(fig, fig.axes)
     return fig
 

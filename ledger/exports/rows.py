@@ -22,11 +22,19 @@ from ..fileio import write_atomic  # noqa: F401 - re-exported for the exporters
 from ..errors import ComputeError, UsageError
 from ..judge import MATRIX_VERDICTS, count_verdicts
 
-__all__ = ["require", "SCHEMA_VERSION", "COLUMNS", "VERDICT_ORDER", "ExportRow", "matrix_rows",
+__all__ = ["require", "SCHEMA_VERSION", "JSON_SCHEMA_NAME", "json_schema_path", "COLUMNS", "VERDICT_ORDER", "ExportRow", "matrix_rows",
            "number_text", "parse_number", "write_atomic", "write_xml", "verdict_counts"]
 
 #: Version of the CSV/JSON record layout (docs/exports.md); bump on any incompatible change.
-SCHEMA_VERSION = "loopledger-matrix/1"
+SCHEMA_VERSION = "loopledger-matrix/2"
+
+#: The JSON Schema of the JSON export, shipped in the package (``ledger/schemas/``).
+JSON_SCHEMA_NAME = "loopledger-matrix-2.schema.json"
+
+
+def json_schema_path() -> Path:
+    """Path of the JSON Schema file the JSON export names (inside the installed package)."""
+    return Path(__file__).resolve().parents[1] / "schemas" / JSON_SCHEMA_NAME
 
 #: Verdict words in the order summaries list them.
 VERDICT_ORDER = MATRIX_VERDICTS
@@ -53,6 +61,9 @@ class ExportRow:
         Unit of ``value`` and ``headroom``.
     headroom : float or None
         Signed distance from the limit, in ``unit``, positive on the passing side.
+    value_shown, headroom_shown : str
+        ``value`` and ``headroom`` as shown to a person: in the limit's unit, with the
+        configured significant digits (``ledger.display``); e.g. ``145.1 ms``, ``+2.1 dB``.
     headroom_fraction : float or None
         Headroom divided by ``|limit|``, dimensionless.
     verdict : str
@@ -85,6 +96,8 @@ class ExportRow:
     unit: str
     headroom: float | None
     headroom_fraction: float | None
+    value_shown: str
+    headroom_shown: str
     verdict: str
     worst_variant: str
     pass_fraction: float | None
@@ -131,6 +144,8 @@ def matrix_rows(matrix) -> list[ExportRow]:
     ----------
     matrix : ledger.history.matrix.Matrix
     """
+    from ..display import headroom_text, value_text
+
     out = []
     for e in matrix.entries:
         q, r = e.requirement, e.result
@@ -143,6 +158,10 @@ def matrix_rows(matrix) -> list[ExportRow]:
             unit=(r.unit if r else q.unit) or "",
             headroom=_finite_or_inf(r.headroom) if r else None,
             headroom_fraction=_finite_or_inf(r.headroom_fraction) if r else None,
+            value_shown=value_text(r.value, r.unit, q.limit_text) if r and r.value is not None
+            else "",
+            headroom_shown=headroom_text(r.value, r.headroom, r.headroom_fraction, r.unit,
+                                         q.limit_text) if r and r.headroom is not None else "",
             verdict=e.verdict, worst_variant=r.worst_variant if r else "",
             pass_fraction=_finite_or_inf(r.pass_fraction) if r else None,
             variants=r.variants if r else None, loop=e.loop, revision=e.revision.label,

@@ -1,11 +1,15 @@
 """CSV and JSON exports of the verification matrix (layout in docs/exports.md).
 
-CSV: three comment lines starting with ``#`` (schema, generation time, caution), then a header
-row of :data:`~ledger.exports.rows.COLUMNS` and one row per matrix entry.  Numbers are written
-exactly (``repr``), missing ones as empty fields, infinities as ``inf``/``-inf``.
+CSV: one preamble line (a CSV record of three fields: the schema, ``generated <ISO time>``, the
+caution; never more than one physical line), then a header row of
+:data:`~ledger.exports.rows.COLUMNS` and one row per matrix entry.  Readers skip exactly one
+line (``pandas.read_csv(path, skiprows=1)``); no comment character is involved, so a ``#`` in a
+field is data.  Numbers are written exactly (``repr``), missing ones as empty fields,
+infinities as ``inf``/``-inf``.
 
-JSON: one object with a ``schema`` field, the caution, the generation time, the revision
-columns, counts by verdict and one record per entry.  Infinities are the strings
+JSON: one object with a ``schema`` field, the name of its JSON Schema (``json_schema``, the
+file ``ledger/schemas/loopledger-matrix-2.schema.json`` in the package), the caution, the
+generation time, the revision columns, counts by verdict and one record per entry.  Infinities are the strings
 ``"inf"``/``"-inf"``, missing numbers ``null``; NaN never appears.
 """
 
@@ -17,8 +21,8 @@ from dataclasses import asdict
 from pathlib import Path
 
 from ..text import cell_safe
-from .rows import (COLUMNS, SCHEMA_VERSION, matrix_rows, number_text, verdict_counts,
-                   write_atomic)
+from .rows import (COLUMNS, JSON_SCHEMA_NAME, SCHEMA_VERSION, matrix_rows, number_text,
+                   verdict_counts, write_atomic)
 
 __all__ = ["export_csv", "export_json", "matrix_document"]
 
@@ -32,7 +36,7 @@ def _csv_cell(name: str, value) -> str:
 
 
 def export_csv(matrix, path) -> Path:
-    """Write the matrix as CSV (UTF-8, comma separated, ``#`` comment lines first).
+    """Write the matrix as CSV (UTF-8, comma separated, one preamble line first).
 
     Parameters
     ----------
@@ -48,10 +52,10 @@ def export_csv(matrix, path) -> Path:
 
     def write(tmp: Path) -> None:
         with tmp.open("w", newline="", encoding="utf-8") as fh:
-            fh.write(f"# schema: {SCHEMA_VERSION}\n")
-            fh.write(f"# generated: {matrix.generated_at.isoformat()}\n")
-            fh.write(f"# caution: {' '.join(matrix.caution.split())}\n")
             w = csv.writer(fh)
+            # one physical line whatever the text: whitespace runs (newlines) become spaces
+            w.writerow([SCHEMA_VERSION, f"generated {matrix.generated_at.isoformat()}",
+                        " ".join(matrix.caution.split())])
             w.writerow(COLUMNS)
             for r in rows:
                 d = asdict(r)
@@ -72,6 +76,7 @@ def matrix_document(matrix) -> dict:
     rows = matrix_rows(matrix)
     return {
         "schema": SCHEMA_VERSION,
+        "json_schema": JSON_SCHEMA_NAME,
         "title": matrix.title,
         "generated_at": matrix.generated_at.isoformat(),
         "caution": matrix.caution,

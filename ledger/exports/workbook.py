@@ -3,14 +3,18 @@
 A ``Summary`` sheet (title, generation time, the caution, counts by verdict per loop) and one
 sheet per loop with a row per (requirement, revision).  Verdict cells are filled with a colour
 of our own palette, and the verdict word is always in the cell (colour is never the only
-cue).  Every loop sheet has a frozen header row, an auto-filter and column widths fitted to
-the content.
+cue).  Every loop sheet has a frozen header row holding the documented column names
+(``docs/exports.md``, the same as the CSV and JSON keys), an auto-filter, column widths fitted
+to the content, numbers as numbers (infinities as the text ``inf``), ``verified_at`` as a real
+date-time (UTC, without zone: XLSX has none), and a print set-up: landscape, fitted to one page
+width, the header row repeated on every page, the used range as the print area.
 """
 
 from __future__ import annotations
 
 import math
 import re
+from datetime import timezone
 from pathlib import Path
 
 from ..text import cell_safe, printable
@@ -25,16 +29,6 @@ VERDICT_FILLS = {
     "error": "FFE08A",
     "stale": "C5CAE9",
     "unverified": "E0E0E0",
-}
-
-_HEADERS = {
-    "requirement": "Requirement", "version": "Version", "judged_version": "Judged version",
-    "title": "Title", "statement": "Statement", "method": "Method", "status": "Status",
-    "metric": "Metric", "limit": "Limit", "value": "Value", "unit": "Unit",
-    "headroom": "Headroom", "headroom_fraction": "Headroom fraction", "verdict": "Verdict",
-    "worst_variant": "Worst variant", "pass_fraction": "Pass fraction", "variants": "Variants",
-    "loop": "Loop", "revision": "Revision", "plant_version": "Plant version",
-    "verified_at": "Verified at (UTC)", "engine_version": "Engine version", "reason": "Reason",
 }
 
 _BAD_SHEET_CHARS = re.compile(r"[\[\]:*?/\\]")
@@ -53,13 +47,32 @@ def sheet_name(loop: str, taken: set[str]) -> str:
     return name
 
 
-def _cell_value(v):
+def _cell_value(v, column: str = ""):
     """openpyxl cell value: infinities as the text 'inf'/'-inf' (XLSX has no infinity);
-    text with characters a workbook cannot hold (openpyxl's ILLEGAL_CHARACTERS_RE, XML's
-    forbidden ones) escaped as \\uXXXX (ledger/text.py)."""
+    ``verified_at`` as a naive UTC datetime; text with characters a workbook cannot hold
+    (openpyxl's ILLEGAL_CHARACTERS_RE, XML's forbidden ones) escaped as \\uXXXX
+    (ledger/text.py)."""
     if isinstance(v, float) and math.isinf(v):
         return "inf" if v > 0 else "-inf"
+    if column == "verified_at":
+        if not v:
+            return None
+        from datetime import datetime, timezone
+
+        return datetime.fromisoformat(v).astimezone(timezone.utc).replace(tzinfo=None)
     return cell_safe(v)
+
+
+def _print_setup(sh, ncols: int) -> None:
+    from openpyxl.utils import get_column_letter
+
+    sh.page_setup.orientation = "landscape"
+    sh.page_setup.paperSize = sh.PAPERSIZE_A4
+    sh.page_setup.fitToWidth = 1
+    sh.page_setup.fitToHeight = 0
+    sh.sheet_properties.pageSetUpPr.fitToPage = True
+    sh.print_title_rows = "1:1"
+    sh.print_area = f"A1:{get_column_letter(ncols)}{max(sh.max_row, 1)}"
 
 
 def export_xlsx(matrix, path) -> Path:
@@ -87,7 +100,8 @@ def export_xlsx(matrix, path) -> Path:
     ws["A1"] = cell_safe(matrix.title)
     ws["A1"].font = Font(bold=True, size=14)
     ws["A2"] = "Generated (UTC)"
-    ws["B2"] = matrix.generated_at.isoformat(timespec="seconds")
+    ws["B2"] = matrix.generated_at.astimezone(timezone.utc).replace(tzinfo=None, microsecond=0)
+    ws["B2"].number_format = "yyyy-mm-dd hh:mm:ss"
     ws["A3"] = "Caution"
     ws["B3"] = matrix.caution
     ws["A3"].font = bold
@@ -115,22 +129,25 @@ def export_xlsx(matrix, path) -> Path:
     ws.column_dimensions["B"].width = 60
     for j in range(len(VERDICT_ORDER) + 1):
         ws.column_dimensions[get_column_letter(3 + j)].width = 12
+    _print_setup(ws, 3 + len(VERDICT_ORDER))
 
     taken: set[str] = set()
     vcol = COLUMNS.index("verdict") + 1
     for loop in matrix.loops:
         sh = wb.create_sheet(sheet_name(loop, taken))
-        sh.append([_HEADERS[c] for c in COLUMNS])
+        sh.append(list(COLUMNS))
         for c in sh[1]:
             c.font = bold
-        widths = [len(_HEADERS[c]) for c in COLUMNS]
+        widths = [len(c) for c in COLUMNS]
+        tcol = COLUMNS.index("verified_at") + 1
         for r in rows:
             if r.loop != loop:
                 continue
-            values = [_cell_value(getattr(r, c)) for c in COLUMNS]
+            values = [_cell_value(getattr(r, c), c) for c in COLUMNS]
             sh.append(values)
             for j, v in enumerate(values):
                 widths[j] = max(widths[j], len(str(v)) if v is not None else 0)
+            sh.cell(row=sh.max_row, column=tcol).number_format = "yyyy-mm-dd hh:mm:ss"
             cell = sh.cell(row=sh.max_row, column=vcol)
             cell.fill = PatternFill("solid", fgColor=VERDICT_FILLS.get(r.verdict, "FFFFFF"))
             cell.font = bold
@@ -138,6 +155,7 @@ def export_xlsx(matrix, path) -> Path:
         sh.auto_filter.ref = f"A1:{get_column_letter(len(COLUMNS))}{max(sh.max_row, 1)}"
         for j, w in enumerate(widths):
             sh.column_dimensions[get_column_letter(j + 1)].width = min(max(w + 2, 8), 60)
+        _print_setup(sh, len(COLUMNS))
     wb.properties.title = cell_safe(matrix.title)
     wb.properties.description = matrix.caution
     return write_atomic(path, lambda tmp: wb.save(tmp))

@@ -58,6 +58,22 @@ def display_url(url: str | os.PathLike | None) -> str:
     return u.render_as_string(hide_password=True)
 
 
+def ledger_key(url: str | os.PathLike) -> str:
+    """A stable name of a ledger for per-user settings (ledger/prefs.py): an SQLite file's
+    resolved path, else the URL without its password."""
+    from pathlib import Path
+
+    try:
+        u = make_url(str(url)) if "://" in str(url) else None
+        if u is None:
+            return "sqlite:" + str(Path(url).resolve())
+        if u.drivername.startswith("sqlite") and u.database:
+            return "sqlite:" + str(Path(u.database).resolve())
+        return u.render_as_string(hide_password=True)
+    except Exception:  # noqa: BLE001 - a key is only a name; any text will do
+        return str(url)
+
+
 def scrub_secret(message: str, url: str | os.PathLike | None) -> str:
     """``message`` with the password of ``url`` (plain and URL-quoted) replaced by ``***``.
 

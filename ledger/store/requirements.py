@@ -168,6 +168,14 @@ def write_version(s: Session, req: Requirement, number: int, fields: dict, autho
     return v
 
 
+def plant_units(s: Session, loop: str) -> tuple[str, str, str]:
+    """``(loop, input unit, output unit)`` of the loop's current plant version."""
+    from .plants import latest_version
+
+    pv = latest_version(s, loop_row(s, loop).plant_id)
+    return (loop, pv.input_unit if pv else "", pv.output_unit if pv else "")
+
+
 def upsert(s: Session, key: str, *, title, statement, author: str, rationale="",
            method="analysis", status="draft", metric=None, settings=None, limit=None,
            parents=(), loops=(), note="", must_exist: bool | None = None
@@ -177,7 +185,8 @@ def upsert(s: Session, key: str, *, title, statement, author: str, rationale="",
     check_name("requirement ID", key, KEY_RE)
     fields = requirement_fields(key, title=title, statement=statement, rationale=rationale,
                                 method=method, status=status, metric=metric, settings=settings,
-                                limit=limit, parents=parents, loops=loops)
+                                limit=limit, parents=parents, loops=loops,
+                                plant_units=lambda names: [plant_units(s, ln) for ln in names])
     for pk in fields["parents"]:
         requirement_row(s, pk)
     for ln in fields["loops"]:

@@ -61,6 +61,7 @@ def for_revisions(s: Session, lp: Loop, revs: list[Revision], include_stale: boo
     """Per revision label: the best result of each requirement (fresh over stale, newest
     versions first), a fixed number of queries whatever the number of revisions."""
     from ..catalogue import metric_unit
+    from ..units import resolve_unit
 
     pv = latest_plant_version(s, lp.plant_id)
     by_id = {r.id: r for r in revs}
@@ -104,7 +105,8 @@ def for_revisions(s: Session, lp: Loop, revs: list[Revision], include_stale: boo
             loop=lp.name, revision=by_id[rev_id].label, requirement=key,
             requirement_version=rv.number, plant_version=rpv_number,
             verdict="stale" if stale else res.verdict, value=uncap(res.value),
-            unit=metric_unit(rv.metric) if rv.metric else "", limit_text=rv.limit_text,
+            unit=(resolve_unit(rv.metric, metric_unit(rv.metric), pv.input_unit, pv.output_unit)
+                  if rv.metric else ""), limit_text=rv.limit_text,
             headroom=uncap(res.headroom), headroom_fraction=uncap(res.headroom_fraction),
             worst_variant=res.worst_variant, pass_fraction=res.pass_fraction,
             variants=res.variants, reason=res.reason, engine_version=res.engine_version,

@@ -51,6 +51,7 @@ DIFF = [
 
 PLOTS = [
     Binding("w", "toggle_variant", "Nominal/worst variant"),
+    Binding("f", "toggle_frequency_unit", "Hz / rad/s"),
 ]
 
 FORM = [

@@ -11,7 +11,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["Bound", "PlotData", "load_plot_data", "worst_variant"]
+__all__ = ["Bound", "PlotData", "load_plot_data", "worst_variant", "settle_time", "step_horizon",
+           "log_ticks"]
 
 
 @dataclass(frozen=True)
@@ -60,6 +61,32 @@ def worst_variant(results) -> str:
     return min(named, key=rank).worst_variant
 
 
+def settle_time(t: np.ndarray, y: np.ndarray, final: float, band: float = 0.02) -> float:
+    """For display only: the first sample time after which ``y`` stays within
+    ``band * |final|`` of ``final`` (the end of ``t`` if it never does).  The ledger's
+    settling-time metric is refined by the engine; this only sizes a plot."""
+    tol = band * abs(final) if final != 0 else band * float(np.max(np.abs(y)) or 1.0)
+    out = np.nonzero(np.abs(np.asarray(y, float) - final) > tol)[0]
+    if out.size == 0:
+        return float(t[0])
+    k = out[-1] + 1
+    return float(t[k]) if k < t.size else float(t[-1])
+
+
+def step_horizon(t: np.ndarray, ys, finals, *, limits=(), factor: float = 3.0,
+                 cap: float | None = None) -> float:
+    """End of the step plot: ``factor`` times the slowest settling among the plotted
+    variants, long enough to show every time limit drawn (x 1.2), at most the simulated end
+    (or ``cap``)."""
+    ts = max(settle_time(t, y, f) for y, f in zip(ys, finals))
+    h = factor * ts if ts > 0 else float(t[-1])
+    times = [x for x in limits if x is not None and math.isfinite(x) and x > 0]
+    if times:
+        h = max(h, 1.2 * max(times))
+    end = float(t[-1]) if cap is None else min(float(t[-1]), cap)
+    return min(h, end)
+
+
 def _thin(t: np.ndarray, y: np.ndarray, n: int = 400):
     if t.size <= n:
         return t, y
@@ -79,7 +106,7 @@ def load_plot_data(lg, loop: str, label: str | None = None, *, variant: str | No
     curves = revision_curves(lg, loop, rev.label, [name], include_nominal=False, grid={},
                              freq_grid={})
     st, fr = curves.step("r->y"), curves.freq()
-    t, y = _thin(st.t[name], st.y[name])
+    t_all, y_all = np.asarray(st.t[name]), np.asarray(st.y[name])
     w = fr.w[name]
     L = fr.L[name]
     mag = 20 * np.log10(np.abs(L))
@@ -96,6 +123,31 @@ def load_plot_data(lg, loop: str, label: str | None = None, *, variant: str | No
         if kind == "overshoot":
             val = float(final) * (1 + c.limit_value / 100.0)
         bounds.append(Bound(c.key, kind, float(val), f"{c.key} {c.metric} {c.limit_text}"))
+    horizon = step_horizon(t_all, [y_all], [float(final)],
+                           limits=[b.value for b in bounds if b.kind in ("settling", "rise")])
+    keep = t_all <= horizon
+    t, y = _thin(t_all[keep], y_all[keep])
     return PlotData(loop, rev.label, name, t, y, float(final), tuple(bounds), w[idx],
                     mag[idx], ph[idx], float(fr.gain_margin[name]), float(fr.phase_crossover[name]),
                     float(fr.phase_margin[name]), float(fr.gain_crossover[name]))
+
+
+def log_ticks(lo: float, hi: float, max_ticks: int = 7) -> tuple[list[float], list[str]]:
+    """Tick positions (log10 of the value) and labels (the value itself, e.g. ``0.1``,
+    ``10``, ``1k``) for a log axis spanning ``lo..hi`` (both > 0): every decade, or every
+    second or third when there are many."""
+    a, b = math.floor(math.log10(lo)), math.ceil(math.log10(hi))
+    decades = list(range(a, b + 1))
+    step = max(1, math.ceil(len(decades) / max_ticks))
+    decades = decades[::step]
+    names = {3: "k", 6: "M"}
+
+    def label(k: int) -> str:
+        if -2 <= k <= 2:
+            return f"{10.0 ** k:g}"
+        if k in names:
+            return f"1{names[k]}"
+        return f"1e{k}"
+
+    pos = [float(k) for k in decades if math.log10(lo) - 1e-9 <= k <= math.log10(hi) + 1e-9]
+    return pos, [label(int(k)) for k in pos]

@@ -145,6 +145,8 @@ def judge_payload(check: Check, payload: dict) -> Judged:
     variants = payload["variants"]
     errors = payload.get("errors") or {}
     n = len(variants)
+    if check.problem:
+        return Judged("error", None, None, None, "", None, n, check.problem)
     if errors:
         first_variant, reason = next(iter(errors.items()))
         more = f" (and {len(errors) - 1} more variant(s))" if len(errors) > 1 else ""

@@ -44,6 +44,7 @@ class Check:
     limit_value: float
     limit_text: str
     unit: str
+    problem: str = ""       # the limit does not fit the plant's units (judged as an error)
 
 
 @dataclass
@@ -82,13 +83,29 @@ def applicable_checks(s: Session, loop_id: int, keys: Iterable[str] | None = Non
     """Latest, non-retired, metric-bearing requirement versions that apply to the loop."""
     from ..catalogue import metric_unit
     from ..engine.metrics import resolve_settings
+    from ..errors import LedgerError
+    from ..units import PLANT_UNIT_METRICS, parse_limit_for
 
-    return [Check(
-        version_id=v.id, key=key, version=v.number, status=v.status, metric=v.metric,
-        settings=resolve_settings(v.metric, json.loads(v.settings_json)),
-        comparator=v.comparator, limit_value=v.limit_value, limit_text=v.limit_text,
-        unit=metric_unit(v.metric),
-    ) for key, v in req_db.applicable_versions(s, loop_id, keys)]
+    loop = s.get(Loop, loop_id)
+    pv = plants_db.latest_version(s, loop.plant_id) if loop is not None else None
+    iu, ou = (pv.input_unit, pv.output_unit) if pv is not None else ("", "")
+    out = []
+    for key, v in req_db.applicable_versions(s, loop_id, keys):
+        unit, limit_value, problem = metric_unit(v.metric), v.limit_value, ""
+        if v.metric in PLANT_UNIT_METRICS and (iu or ou):
+            # the limit read against this plant's declared units (docs/metrics.md, units)
+            try:
+                lim = parse_limit_for(v.limit_text, v.metric, unit, [(loop.name, iu, ou)])
+                unit, limit_value = lim.unit, lim.value
+            except LedgerError as e:
+                problem = str(e)
+        out.append(Check(
+            version_id=v.id, key=key, version=v.number, status=v.status, metric=v.metric,
+            settings=resolve_settings(v.metric, json.loads(v.settings_json)),
+            comparator=v.comparator, limit_value=limit_value, limit_text=v.limit_text,
+            unit=unit, problem=problem,
+        ))
+    return out
 
 
 def plan_head(loop: Loop, pv: PlantVersion, revision: Revision | None,

@@ -8,6 +8,7 @@ from textual.containers import Horizontal, VerticalScroll
 from textual.widgets import Label, Select, Static
 
 from .. import bindings
+from ...display import delta_text
 from ..widgets.verdict import SYMBOL, fmt_value
 from .base import ViewScreen
 
@@ -106,9 +107,10 @@ class DiffScreen(ViewScreen):
                 ov, nv = c.old_verdict or "n/a", c.new_verdict or "n/a"
                 t.append(f"  {c.requirement:<12} {SYMBOL.get(ov, '?')} {ov}"
                          f" -> {SYMBOL.get(nv, '?')} {nv:<6} "
-                         f"{fmt_value(c.old_value, c.unit)} -> {fmt_value(c.new_value, c.unit)}")
+                         f"{fmt_value(c.old_value, c.unit, c.limit_text)} -> "
+                         f"{fmt_value(c.new_value, c.unit, c.limit_text)}")
                 if c.value_delta is not None:
-                    t.append(f"  (delta {c.value_delta:+.4g}{' ' + c.unit if c.unit else ''})")
+                    t.append(f"  (delta {delta_text(c.old_value, c.new_value, c.unit, c.limit_text)})")
                 t.append(f"  limit {c.limit_text}\n")
             t.append("\n")
         body.update(t)

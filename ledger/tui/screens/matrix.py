@@ -15,7 +15,7 @@ from textual.widgets import DataTable, Input, Static
 
 from .. import bindings
 from ..data import load_matrix
-from ..widgets.verdict import cell_text
+from ..widgets.verdict import cell_text, detail_text
 from .base import ViewScreen
 
 __all__ = ["MatrixScreen"]
@@ -107,6 +107,7 @@ class MatrixScreen(ViewScreen):
         yield Static("", id="matrix-status")
         yield MatrixTable(id="matrix-table", zebra_stripes=True, cursor_type="cell",
                           fixed_columns=1)
+        yield Static("", id="matrix-detail")
         yield Static("", id="matrix-legend")
         yield footer
 
@@ -114,8 +115,7 @@ class MatrixScreen(ViewScreen):
         self.query_one(DataTable).focus()
         self.query_one("#matrix-legend", Static).update(Text(
             "✓ pass  ✗ fail  ! error  ~ stale (older requirement/plant version)  ? unverified  "
-            "· n/a   headroom +++ ≥50% ++ ≥20% + ≥0 - short <20% -- short more   BROKE = failed "
-            "where the parent revision passed\n", style="dim").append("Caution: " + CAUTION, style="italic"))
+            "· n/a  BROKE: failed where the parent passed; values in the limit's unit\n", style="dim").append("Caution: " + CAUTION, style="italic"))
 
     def fetch(self):
         return load_matrix(self.app.lg, self.loop_filter, tips_only=self.tips_only)
@@ -168,9 +168,14 @@ class MatrixScreen(ViewScreen):
                 cells.append(cell_text(res, applies=applies,
                                        broke=(r.key, c.loop, c.label) in d.broke))
             grid.append(cells)
-        headers = [f"{c.loop}/{c.label}" for c in d.columns]
+        # a column header names its loop only where the loop changes (and on the first
+        # column shown, below): "gantry-x/r3", "r4", "r5", ... keeps the columns narrow
+        full = [f"{c.loop}/{c.label}" for c in d.columns]
+        short = [full[j] if j == 0 or c.loop != d.columns[j - 1].loop else c.label
+                 for j, c in enumerate(d.columns)]
         # explicit widths from the content: the table lays out once, the same way every time
-        widths = [max([len(h)] + [row[j].cell_len for row in grid]) for j, h in enumerate(headers)]
+        widths = [max([len(h)] + [row[j].cell_len for row in grid]) for j, h in enumerate(short)]
+        spare = max((len(f) - len(h) for f, h in zip(full, short)), default=0)
         pad = 2 * table.cell_padding
         avail = self._available_width(table)
         req_w = max([len("requirement")] + [t.cell_len for t in req_cells])
@@ -184,12 +189,13 @@ class MatrixScreen(ViewScreen):
             want_col = next((i for i, c in enumerate(d.columns) if (c.loop, c.label) == want),
                             old_data_col)
         first, stop = column_window([w + pad for w in widths], self.first_col,
-                                    avail - req_w - pad, want_col)
+                                    avail - req_w - pad - spare, want_col)
         self.first_col, self.shown = first, (first, stop)
         table.clear(columns=True)
         table.add_column("requirement", key="req", width=req_w)
         for j in range(first, stop):
-            table.add_column(headers[j], key=headers[j], width=widths[j])
+            head = full[j] if j == first else short[j]
+            table.add_column(head, key=full[j], width=max(widths[j], len(head)))
         for r, req_cell, cells in zip(rows, req_cells, grid):
             table.add_row(req_cell, *cells[first:stop], key=r.key)
         status = Text()
@@ -277,6 +283,17 @@ class MatrixScreen(ViewScreen):
             self.app.current_req = sel[0]
             if sel[1]:
                 self.app.current_loop, self.app.current_label = sel[1], sel[2]
+        self._show_detail(sel)
+
+    def _show_detail(self, sel) -> None:
+        d, line = self._data, Text("")
+        if d is not None and sel and sel[1]:
+            k = (sel[0], sel[1], sel[2])
+            line = detail_text(sel[0], f"{sel[1]}/{sel[2]}", d.cells.get(k),
+                               broke=k in d.broke, applies=k in d.cells)
+        elif sel:
+            line = Text(f"{sel[0]}: move right onto a revision for its result", style="dim")
+        self.query_one("#matrix-detail", Static).update(line)
 
     def on_data_table_cell_selected(self, event: DataTable.CellSelected) -> None:
         self.action_open_requirement()

@@ -26,6 +26,31 @@ class PlotsScreen(ViewScreen):
         super().__init__(*a, **kw)
         self.use_worst = False
         self.plot_data = None
+        self.freq_unit = None  # "Hz" or "rad/s", read from the ledger's preferences on mount
+
+    def on_mount(self) -> None:
+        from ...prefs import frequency_unit
+
+        self.freq_unit = frequency_unit(self.app.lg.url)
+
+    def _fk(self) -> float:
+        """Factor from rad/s to the frequency unit shown."""
+        return 1.0 / (2.0 * math.pi) if self.freq_unit == "Hz" else 1.0
+
+    def _ftext(self, w: float) -> str:
+        if w is None or not math.isfinite(w):
+            return fmt_value(w, self.freq_unit or "Hz")
+        return f"{w * self._fk():.4g} {self.freq_unit}"
+
+    def action_toggle_frequency_unit(self) -> None:
+        from ...prefs import set_frequency_unit
+
+        self.freq_unit = "rad/s" if self.freq_unit == "Hz" else "Hz"
+        if not set_frequency_unit(self.app.lg.url, self.freq_unit):
+            self.notify("frequency unit not saved (preferences file not writable)",
+                        severity="warning")
+        if self.plot_data is not None:
+            self.present(self.plot_data)
 
     def compose(self):
         header, footer = self.header_footer()
@@ -68,9 +93,9 @@ class PlotsScreen(ViewScreen):
         t = Text()
         t.append(f"{d.loop}/{d.label} on variant {d.variant}", style="bold")
         t.append(f" ({'worst' if self.use_worst else 'nominal'}; w toggles)   ")
-        t.append(f"GM {fmt_value(d.gain_margin_db, 'dB')} at {fmt_value(d.phase_crossover, 'rad/s')}"
+        t.append(f"GM {fmt_value(d.gain_margin_db, 'dB')} at {self._ftext(d.phase_crossover)}"
                  f"   PM {fmt_value(d.phase_margin_deg, 'deg')} at "
-                 f"{fmt_value(d.gain_crossover, 'rad/s')}")
+                 f"{self._ftext(d.gain_crossover)}   (f: Hz / rad/s)")
         t.append("\nModel-based: not a substitute for hardware tests, safety standards and "
                  "qualified review.", style="italic dim")
         cap.update(t)
@@ -98,22 +123,28 @@ class PlotsScreen(ViewScreen):
         plot.refresh()
 
     def _bode(self, d) -> None:
+        from ..plotdata import log_ticks
+
         mag = self.query_one("#plot-mag", PlotextPlot).plt
         ph = self.query_one("#plot-phase", PlotextPlot).plt
-        lw = [math.log10(w) for w in d.w.tolist()]
-        for plt, ys, title in ((mag, d.mag_db.tolist(), "|L| dB vs log10 w [rad/s]"),
-                               (ph, d.phase_deg.tolist(), "arg L deg vs log10 w [rad/s]")):
+        k, unit = self._fk(), self.freq_unit or "Hz"
+        f = [w * k for w in d.w.tolist()]
+        lw = [math.log10(x) for x in f]
+        pos, labels = log_ticks(min(f), max(f))
+        for plt, ys, title in ((mag, d.mag_db.tolist(), f"|L| (dB) vs frequency ({unit})"),
+                               (ph, d.phase_deg.tolist(), f"arg L (deg) vs frequency ({unit})")):
             plt.clear_data()
             plt.clear_figure()
             plt.title(title)
             plt.plot(lw, ys, marker="braille")
+            plt.xticks(pos, labels)  # real frequencies on the log axis
         mag.hline(0.0, "gray")
         if math.isfinite(d.gain_crossover) and d.gain_crossover > 0:
-            mag.vline(math.log10(d.gain_crossover), "red")
-            ph.vline(math.log10(d.gain_crossover), "red")
+            mag.vline(math.log10(d.gain_crossover * k), "red")
+            ph.vline(math.log10(d.gain_crossover * k), "red")
         if math.isfinite(d.phase_crossover) and d.phase_crossover > 0:
-            mag.vline(math.log10(d.phase_crossover), "orange")
-            ph.vline(math.log10(d.phase_crossover), "orange")
+            mag.vline(math.log10(d.phase_crossover * k), "orange")
+            ph.vline(math.log10(d.phase_crossover * k), "orange")
         ph.hline(-180.0, "gray")
         for pid in ("#plot-mag", "#plot-phase"):
             self.query_one(pid, PlotextPlot).refresh()

@@ -84,7 +84,7 @@ class RequirementScreen(ViewScreen):
             v = res.verdict if res else "unverified"
             t.append(f"  {lname}/{rev.label:<6} ")
             t.append(f"{SYMBOL.get(v, '?')} {v:<10}", style=STYLE.get(v, ""))
-            t.append(f" {fmt_value(res.value, res.unit) if res else '-'}\n")
+            t.append(f" {fmt_value(res.value, res.unit, res.limit_text) if res else '-'}\n")
         t.append("\nversions\n", style="bold underline")
         for h in data.history:
             t.append(f"  v{h.version} {h.created_at:%Y-%m-%d} {h.author}: {h.metric or '-'} "
@@ -97,18 +97,37 @@ class RequirementScreen(ViewScreen):
         plt = plot.plt
         plt.clear_data()
         plt.clear_figure()
+        from ...display import shown_unit, to_shown
+        from ...prefs import frequency_unit
+
         r = data.requirement
+        unit = next((res.unit for _, _, res in data.trend if res is not None), r.unit or "")
+        if unit == "rad/s":  # a frequency: in the unit chosen for this ledger's plots
+            fu = frequency_unit(self.app.lg.url)
+            k = 1 / (2 * math.pi) if fu == "Hz" else 1.0
+
+            def conv(x):
+                return x * k
+            shown = fu
+        else:  # in the limit's unit, as everywhere else
+            def conv(x):
+                return to_shown(x, unit, r.limit_text)
+            shown = shown_unit(unit, r.limit_text)
         xs, ys, labels = [], [], []
         for i, (lname, rev, res) in enumerate(data.trend):
             if res is not None and res.value is not None and math.isfinite(res.value):
-                xs.append(i + 1)
-                ys.append(res.value)
+                y = conv(res.value)
+                if y is not None and math.isfinite(y):
+                    xs.append(i + 1)
+                    ys.append(y)
             labels.append(rev.label)
         plt.title(f"{r.key}: {r.metric or '-'} per revision")
         if xs:
             plt.plot(xs, ys, marker="dot", label="worst value")
             if r.limit_value is not None and math.isfinite(r.limit_value):
-                plt.hline(r.limit_value, "red")
+                lim = conv(r.limit_value)
+                if lim is not None and math.isfinite(lim):
+                    plt.hline(lim, "red")
             plt.xticks(list(range(1, len(labels) + 1)), labels)
-            plt.ylabel(r.unit or "")
+            plt.ylabel(shown if shown not in ("ratio", "") else "")
         plot.refresh()

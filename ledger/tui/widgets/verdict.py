@@ -6,21 +6,19 @@ import math
 
 from rich.text import Text
 
-__all__ = ["SYMBOL", "STYLE", "fmt_value", "verdict_text", "cell_text", "counts_text"]
+__all__ = ["SYMBOL", "STYLE", "fmt_value", "verdict_text", "cell_text", "detail_text",
+           "counts_text"]
 
 SYMBOL = {"pass": "✓", "fail": "✗", "error": "!", "stale": "~", "unverified": "?", "n/a": "·"}
 STYLE = {"pass": "green", "fail": "bold red", "error": "bold magenta", "stale": "yellow dim",
          "unverified": "dim", "n/a": "dim"}
 
 
-def fmt_value(value, unit: str = "") -> str:
-    """A value with its unit, 4 significant digits; ``inf`` spelled out; ``-`` for none."""
-    if value is None:
-        return "-"
-    if isinstance(value, float) and math.isinf(value):
-        return "inf" if value > 0 else "-inf"
-    u = f" {unit}" if unit and unit not in ("bool", "ratio") else ""
-    return f"{value:.4g}{u}"
+def fmt_value(value, unit: str = "", limit_text: str = "") -> str:
+    """A value in the limit's unit (``ledger.display``); ``inf`` spelled out; ``-`` for none."""
+    from ...display import value_text
+
+    return value_text(value, unit, limit_text)
 
 
 def verdict_text(verdict: str) -> Text:
@@ -42,22 +40,56 @@ def _headroom_bar(fraction) -> str:
 
 
 def cell_text(result, *, broke: bool = False, applies: bool = True) -> Text:
-    """One matrix cell: symbol, verdict word, value, headroom gauge and percentage."""
+    """One matrix cell, narrow: symbol and the value's number in the limit's unit (the row
+    shows the limit, hence the unit; ``BROKE`` after it when the requirement broke here).
+    Verdict word, unit, headroom and worst variant are in the detail line under the table
+    (:func:`detail_text`) for the cell under the cursor."""
+    from ...display import value_number
+
     if not applies:
-        return Text("· n/a", style=STYLE["n/a"])
+        return Text("·", style=STYLE["n/a"])
     if result is None:
-        return Text("? unverified", style=STYLE["unverified"])
+        return Text("?", style=STYLE["unverified"])
     v = result.verdict
-    t = Text(f"{SYMBOL.get(v, '?')} {v:<5}", style=STYLE.get(v, ""))
+    t = Text(SYMBOL.get(v, "?"), style=STYLE.get(v, ""))
     if v in ("pass", "fail", "stale") and result.value is not None:
-        t.append(f" {fmt_value(result.value, result.unit)}")
-        hf = result.headroom_fraction
-        if hf is not None and math.isfinite(hf):
-            t.append(f" [{_headroom_bar(hf)}] {hf:+.0%}")
+        t.append(f" {value_number(result.value, result.unit, result.limit_text)}")
     elif v == "error":
-        t.append(" cannot compute")
+        t.append(" error")
     if broke:
         t.append(" BROKE", style="bold reverse red")
+    return t
+
+
+def detail_text(key: str, where: str, result, *, broke: bool = False,
+                applies: bool = True) -> Text:
+    """The detail line of the cell under the cursor: verdict, value, limit, headroom (in the
+    limit's unit, with the gauge), worst variant, pass fraction, reason."""
+    from ...display import headroom_text
+
+    t = Text(f"{key} on {where}: ", style="bold")
+    if not applies:
+        return t.append("does not apply (n/a)", style=STYLE["n/a"])
+    if result is None:
+        return t.append("unverified: run verify", style=STYLE["unverified"])
+    t.append_text(verdict_text(result.verdict))
+    if broke:
+        t.append(" BROKE (the parent revision passed)", style="bold red")
+    if result.value is not None:
+        t.append(f"  value {fmt_value(result.value, result.unit, result.limit_text)}"
+                 f"  limit {result.limit_text}")
+        head = headroom_text(result.value, result.headroom, result.headroom_fraction,
+                             result.unit, result.limit_text)
+        hf = result.headroom_fraction
+        # gauge: +++ >= 50 %, ++ >= 20 %, + >= 0, - short < 20 %, -- short more
+        gauge = f" [{_headroom_bar(hf)}]" if hf is not None and math.isfinite(hf) else ""
+        t.append(f"  headroom {head}{gauge}")
+    if result.worst_variant:
+        t.append(f"  worst {result.worst_variant}")
+    if result.pass_fraction is not None and result.variants:
+        t.append(f"  {result.pass_fraction:.0%} of {result.variants} variants pass")
+    if result.reason:
+        t.append(f"  {result.reason}", style="dim")
     return t
 
 
