@@ -41,7 +41,7 @@ from .timegrid import balance_scales
 from .types import FreqBatch, PlantFamily, SSBatch
 
 __all__ = ["LoopSpec", "Block", "ClosedLoopResponse", "LoopGroup", "Assembly", "PATHS",
-           "make_block", "make_blocks", "assemble"]
+           "make_block", "make_blocks", "assemble", "plan", "Plan", "GroupPlan"]
 
 #: Closed-loop signal paths: input -> output.
 PATHS = ("r->y", "r->e", "r->u", "d->y", "n->u")
@@ -670,6 +670,148 @@ def _group_matrices(F, K, Gs, H, tau: float, *, algebraic_tol: float):
     return N, nf, X, sig, z
 
 
+#: Frequency points a grid gains per lightly damped plant pole or zero pair of one variant
+#: (41 across the resonance width plus 2 x 11 approaching its damped frequency, see
+#: :func:`~ledger.engine.freqresp.frequency_grid`).
+_POINTS_PER_RESONANCE = 63
+#: Most resonance points a group's shared grid may carry: groups of resonant variants hold at
+#: most ``_RESONANCE_BUDGET // (_POINTS_PER_RESONANCE * pairs)`` variants, so the grid of a
+#: group (the union over its variants) stays a few thousand points whatever the family size.
+_RESONANCE_BUDGET = 1500
+#: Damping ratio below which a plant pole or zero counts as a resonance (the grid's
+#: ``resonance_zeta``).
+_RESONANCE_ZETA = 0.3
+
+
+def _resonances(G: Block, ts) -> np.ndarray:
+    """Sorted damped frequencies (rad/s) of the lightly damped plant poles and zeros of one
+    block (one entry per conjugate pair; discrete roots mapped by ``log(z)/ts``)."""
+    r = np.concatenate([G.poles, G.zeros]).astype(complex)
+    if ts:
+        r = r[np.abs(r) > 1e-12]
+        r = np.log(r) / ts
+    mag = np.abs(r)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        zeta = np.where(mag > 0, -r.real / np.where(mag > 0, mag, 1.0), 1.0)
+    light = (mag > 0) & (np.abs(zeta) > 0) & (np.abs(zeta) < _RESONANCE_ZETA) & (r.imag > 0)
+    return np.sort(r.imag[light])
+
+
+@dataclass(frozen=True, eq=False)
+class GroupPlan:
+    """Which variants form one group, before its matrices are built (see :func:`plan`)."""
+
+    index: np.ndarray
+    tau: float
+    d_in: float
+    d_plant: float
+
+
+@dataclass(frozen=True, eq=False)
+class Plan:
+    """The grouping of a family's variants and the shared blocks; groups are built one at a
+    time by :meth:`build` (see :func:`plan`)."""
+
+    family: PlantFamily
+    loop: LoopSpec
+    blocks: tuple            # (prefilter F, controller K, sensor H)
+    groups: tuple            # of GroupPlan
+    algebraic_tol: float
+    plants: dict = field(repr=False, default_factory=dict)   # family index -> plant Block
+
+    @property
+    def variants(self) -> tuple:
+        return self.family.names
+
+    @property
+    def dt(self):
+        return self.loop.sample_time
+
+    def build(self, gp: GroupPlan) -> LoopGroup:
+        """The :class:`LoopGroup` of one planned group (plant blocks made again when the plan
+        did not keep them; :func:`make_blocks` gives every variant the same block in any
+        batch)."""
+        F, K, H = self.blocks
+        idx = gp.index
+        if all(int(i) in self.plants for i in idx):
+            Gs = [self.plants[int(i)] for i in idx]
+        else:
+            vs = [self.family.variants[int(i)] for i in idx]
+            bl = make_blocks([v.system for v in vs], [f"plant variant {v.name!r}" for v in vs])
+            Gs = [_plant_block(v, self.loop, b)[0] for v, b in zip(vs, bl)]
+        return _build_group(np.asarray(idx), Gs, F, K, H, gp.tau, gp.d_in, gp.d_plant,
+                            self.dt, self.algebraic_tol)
+
+    def assembly(self) -> "Assembly":
+        """Every group built: the :class:`Assembly` of the whole family."""
+        return Assembly(variants=self.variants, dt=self.dt, loop=self.loop,
+                        groups=tuple(self.build(gp) for gp in self.groups))
+
+
+def plan(family: PlantFamily, controller, loop: LoopSpec | None = None, *,
+         algebraic_tol: float = 1e-12, batch_size: int = 1024, keep_blocks: int = 20_000,
+         chunk: int = 4096) -> Plan:
+    """Check every block and decide the groups of :func:`assemble` without building them.
+
+    Variants are grouped by plant order and loop delays.  Within that, variants without a
+    lightly damped plant pole or zero (damping below 0.3) form groups of up to
+    ``batch_size`` in family order; resonant variants are sorted by their damped resonance
+    frequencies and cut into clusters of at most ``1500 // (63 * pairs)`` variants (``pairs``:
+    the most lightly damped pairs of one variant), because a group's frequency grid carries
+    every member's resonance points and would otherwise grow with the family.  The grouping
+    depends only on the family, never on how its groups are later processed (one by one,
+    streamed, or in worker processes), so every way gives the same numbers.
+
+    ``keep_blocks``: families up to this size keep their plant blocks for :meth:`Plan.build`;
+    larger ones are checked in chunks of ``chunk`` variants and rebuilt group by group, so
+    memory stays bounded.
+    """
+    loop = loop or LoopSpec()
+    if not isinstance(family, PlantFamily):
+        family = PlantFamily.single(family)
+    ts = loop.sample_time
+    K = _prepare_controller(controller, loop)
+    F = _aux_block(loop.prefilter, "prefilter", ts)
+    H = _aux_block(loop.sensor, "sensor", ts)
+    V = len(family)
+    keep = V <= keep_blocks
+    step = V if keep else max(1, int(chunk))
+    keys: dict = {}
+    feats: list = [None] * V
+    kept: dict = {}
+    for s0 in range(0, V, step):
+        vs = family.variants[s0:s0 + step]
+        blocks = make_blocks([v.system for v in vs], [f"plant variant {v.name!r}" for v in vs])
+        for j, (v, b) in enumerate(zip(vs, blocks)):
+            G, tau, delays = _plant_block(v, loop, b)
+            i = s0 + j
+            keys.setdefault((G.order, tau, delays), []).append(i)
+            feats[i] = _resonances(G, ts)
+            if keep:
+                kept[i] = G
+    size = max(1, int(batch_size))
+    groups = []
+    for (ng, tau, (d_in, d_plant)), idx_all in keys.items():
+        plain = [i for i in idx_all if feats[i].size == 0]
+        res = [i for i in idx_all if feats[i].size]
+        for s0 in range(0, len(plain), size):
+            groups.append(GroupPlan(np.asarray(plain[s0:s0 + size]), tau, d_in, d_plant))
+        if res:
+            pairs = max(feats[i].size for i in res)
+            c = max(1, min(size, _RESONANCE_BUDGET // (_POINTS_PER_RESONANCE * pairs)))
+            F_ = np.full((len(res), pairs), np.inf)
+            for r, i in enumerate(res):
+                F_[r, :feats[i].size] = feats[i]
+            # lexicographic by resonance frequencies, family order on ties
+            order = np.lexsort((np.asarray(res),) + tuple(F_[:, k] for k in
+                                                          range(pairs - 1, -1, -1)))
+            srt = np.asarray(res)[order]
+            for s0 in range(0, srt.size, c):
+                groups.append(GroupPlan(np.sort(srt[s0:s0 + c]), tau, d_in, d_plant))
+    return Plan(family=family, loop=loop, blocks=(F, K, H), groups=tuple(groups),
+                algebraic_tol=algebraic_tol, plants=kept)
+
+
 def assemble(family: PlantFamily, controller, loop: LoopSpec | None = None, *,
              algebraic_tol: float = 1e-12, batch_size: int = 1024) -> Assembly:
     """Close ``controller`` round every variant of ``family``.
@@ -685,9 +827,8 @@ def assemble(family: PlantFamily, controller, loop: LoopSpec | None = None, *,
         ``|1 + D_C D_G D_H|`` below this is an algebraic loop (default 1e-12, dimensionless).
     batch_size : int, optional
         Most variants per group (default 1024).  Frequency grids are shared within a group
-        (their union over the variants), so a group of widely different variants costs more
-        points per variant; the fixed per-group cost of the vectorised kernels dominates for
-        tolerance families, whose variants sit close together.
+        (their union over the variants); resonant variants are grouped in small clusters of
+        close resonances (see :func:`plan`), the others share a group up to this size.
 
     Returns
     -------
@@ -698,26 +839,22 @@ def assemble(family: PlantFamily, controller, loop: LoopSpec | None = None, *,
     ModelError
         An unacceptable block or loop (improper, mismatched sample times, algebraic loop...).
     """
-    loop = loop or LoopSpec()
-    if not isinstance(family, PlantFamily):
-        family = PlantFamily.single(family)
-    ts = loop.sample_time
-    K = _prepare_controller(controller, loop)
-    F = _aux_block(loop.prefilter, "prefilter", ts)
-    H = _aux_block(loop.sensor, "sensor", ts)
-    blocks = make_blocks([v.system for v in family.variants],
-                         [f"plant variant {v.name!r}" for v in family.variants])
-    plants = [_plant_block(v, loop, b) for v, b in zip(family.variants, blocks)]
-    keys: dict = {}
-    for i, (G, tau, _) in enumerate(plants):
-        keys.setdefault((G.order, tau, plants[i][2]), []).append(i)
-    groups = []
-    for (ng, tau, (d_in, d_plant)), idx_all in keys.items():
-        for start in range(0, len(idx_all), max(1, int(batch_size))):
-            idx = idx_all[start:start + max(1, int(batch_size))]
-            groups.append(_build_group(np.asarray(idx), [plants[i][0] for i in idx], F, K, H,
-                                       tau, d_in, d_plant, ts, algebraic_tol))
-    return Assembly(variants=family.names, dt=ts, loop=loop, groups=tuple(groups))
+    return plan(family, controller, loop, algebraic_tol=algebraic_tol,
+                batch_size=batch_size).assembly()
+
+
+def _root_product(x: np.ndarray, R: np.ndarray) -> np.ndarray:
+    """``prod_k (x - R[:, k])`` for every row of ``R`` (V, m) at every point of ``x``: (V, len(x)).
+
+    Multiplied factor by factor in the order of the roots, the same operations and order as
+    ``numpy.prod(x - R[:, :, None], axis=1)`` without its (V, m, len(x)) temporary."""
+    V, m = R.shape
+    if m == 0:
+        return np.ones((V, x.size), complex)
+    out = x[None, :] - R[:, :1]
+    for k in range(1, m):
+        out *= x[None, :] - R[:, k:k + 1]
+    return out
 
 
 def _build_group(idx, Gs, F, K, H, tau, d_in, d_plant, ts, algebraic_tol) -> LoopGroup:
@@ -778,14 +915,26 @@ def _build_group(idx, Gs, F, K, H, tau, d_in, d_plant, ts, algebraic_tol) -> Loo
         if not same_shape:
             ng, dg = zip(*(G.parts(x) for G in Gs))
             return np.stack(ng), np.stack(dg)
-        ng = np.prod(x[None, None, :] - Zs[:, :, None], axis=1) if Zs.shape[1] else \
-            np.ones((len(Gs), x.size), complex)
-        dg = np.prod(x[None, None, :] - Ps[:, :, None], axis=1) if Ps.shape[1] else \
-            np.ones((len(Gs), x.size), complex)
-        return gains[:, None] * ng, dg
+        return gains[:, None] * _root_product(x, Zs), _root_product(x, Ps)
+
+
+    memo: dict = {}
 
     def parts(w):
-        """Numerator and denominator of L per variant, block by block, delay in the numerator."""
+        """Numerator and denominator of L per variant, block by block, delay in the numerator
+        (the last few grids are remembered: L, S, T and the refinements of each start from
+        the same grid)."""
+        w = np.asarray(w, dtype=float)
+        key = w.tobytes()
+        hit = memo.get(key)
+        if hit is None:
+            hit = _parts(w)
+            if len(memo) >= 4:
+                memo.pop(next(iter(memo)))
+            memo[key] = hit
+        return hit
+
+    def _parts(w):
         x = point(w)
         nk, dk = K.parts(x)
         nh, dh = H.parts(x)
