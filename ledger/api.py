@@ -921,8 +921,10 @@ class Ledger:
         Parameters
         ----------
         workers : int
-            Processes computing in parallel (``0`` = one per core).  Writing stays in this
-            process, one transaction per revision.
+            Processes computing in parallel (``0`` = one per core): revisions are split
+            between them, or, with one revision to compute, the variants of its family
+            (``measure_family(..., workers=)``).  Writing stays in this process, one
+            transaction per revision.
 
         Returns
         -------
@@ -967,7 +969,7 @@ class Ledger:
         workers = (os.cpu_count() or 1) if workers == 0 else max(1, int(workers))
         if workers == 1 or total < 2:
             for i, (plan, cached) in enumerate(plans):
-                payloads, n = V.compute_plan(plan, cached)
+                payloads, n = V.compute_plan(plan, cached, workers=workers if total == 1 else 1)
                 record(i, plan, cached, payloads, n)
         else:
             import multiprocessing as mp

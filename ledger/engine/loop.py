@@ -717,7 +717,6 @@ class Plan:
     blocks: tuple            # (prefilter F, controller K, sensor H)
     groups: tuple            # of GroupPlan
     algebraic_tol: float
-    plants: dict = field(repr=False, default_factory=dict)   # family index -> plant Block
 
     @property
     def variants(self) -> tuple:
@@ -728,17 +727,14 @@ class Plan:
         return self.loop.sample_time
 
     def build(self, gp: GroupPlan) -> LoopGroup:
-        """The :class:`LoopGroup` of one planned group (plant blocks made again when the plan
-        did not keep them; :func:`make_blocks` gives every variant the same block in any
-        batch)."""
+        """The :class:`LoopGroup` of one planned group.  Its plant blocks are made here from
+        the group's variants alone (:func:`make_blocks` balances realisations per batch), so a
+        group is the same whether built in one call, streamed or in a worker process."""
         F, K, H = self.blocks
         idx = gp.index
-        if all(int(i) in self.plants for i in idx):
-            Gs = [self.plants[int(i)] for i in idx]
-        else:
-            vs = [self.family.variants[int(i)] for i in idx]
-            bl = make_blocks([v.system for v in vs], [f"plant variant {v.name!r}" for v in vs])
-            Gs = [_plant_block(v, self.loop, b)[0] for v, b in zip(vs, bl)]
+        vs = [self.family.variants[int(i)] for i in idx]
+        bl = make_blocks([v.system for v in vs], [f"plant variant {v.name!r}" for v in vs])
+        Gs = [_plant_block(v, self.loop, b)[0] for v, b in zip(vs, bl)]
         return _build_group(np.asarray(idx), Gs, F, K, H, gp.tau, gp.d_in, gp.d_plant,
                             self.dt, self.algebraic_tol)
 
@@ -749,8 +745,7 @@ class Plan:
 
 
 def plan(family: PlantFamily, controller, loop: LoopSpec | None = None, *,
-         algebraic_tol: float = 1e-12, batch_size: int = 1024, keep_blocks: int = 20_000,
-         chunk: int = 4096) -> Plan:
+         algebraic_tol: float = 1e-12, batch_size: int = 1024, chunk: int = 4096) -> Plan:
     """Check every block and decide the groups of :func:`assemble` without building them.
 
     Variants are grouped by plant order and loop delays.  Within that, variants without a
@@ -762,9 +757,8 @@ def plan(family: PlantFamily, controller, loop: LoopSpec | None = None, *,
     depends only on the family, never on how its groups are later processed (one by one,
     streamed, or in worker processes), so every way gives the same numbers.
 
-    ``keep_blocks``: families up to this size keep their plant blocks for :meth:`Plan.build`;
-    larger ones are checked in chunks of ``chunk`` variants and rebuilt group by group, so
-    memory stays bounded.
+    The plant blocks are checked (and their resonances read) in chunks of ``chunk`` variants
+    and dropped; :meth:`Plan.build` makes them again group by group, so memory stays bounded.
     """
     loop = loop or LoopSpec()
     if not isinstance(family, PlantFamily):
@@ -774,11 +768,9 @@ def plan(family: PlantFamily, controller, loop: LoopSpec | None = None, *,
     F = _aux_block(loop.prefilter, "prefilter", ts)
     H = _aux_block(loop.sensor, "sensor", ts)
     V = len(family)
-    keep = V <= keep_blocks
-    step = V if keep else max(1, int(chunk))
+    step = max(1, int(chunk))
     keys: dict = {}
     feats: list = [None] * V
-    kept: dict = {}
     for s0 in range(0, V, step):
         vs = family.variants[s0:s0 + step]
         blocks = make_blocks([v.system for v in vs], [f"plant variant {v.name!r}" for v in vs])
@@ -787,8 +779,6 @@ def plan(family: PlantFamily, controller, loop: LoopSpec | None = None, *,
             i = s0 + j
             keys.setdefault((G.order, tau, delays), []).append(i)
             feats[i] = _resonances(G, ts)
-            if keep:
-                kept[i] = G
     size = max(1, int(batch_size))
     groups = []
     for (ng, tau, (d_in, d_plant)), idx_all in keys.items():
@@ -809,7 +799,7 @@ def plan(family: PlantFamily, controller, loop: LoopSpec | None = None, *,
             for s0 in range(0, srt.size, c):
                 groups.append(GroupPlan(np.sort(srt[s0:s0 + c]), tau, d_in, d_plant))
     return Plan(family=family, loop=loop, blocks=(F, K, H), groups=tuple(groups),
-                algebraic_tol=algebraic_tol, plants=kept)
+                algebraic_tol=algebraic_tol)
 
 
 def assemble(family: PlantFamily, controller, loop: LoopSpec | None = None, *,
