@@ -17,7 +17,7 @@ import math
 
 import numpy as np
 
-__all__ = ["NOMINAL", "CONTROLLER_TEXT", "controller", "family", "modes"]
+__all__ = ["NOMINAL", "CONTROLLER_TEXT", "controller", "family", "lazy_family", "modes"]
 
 NOMINAL = {"K": 20.0, "tau_m": 0.01}
 #: lead + integrator: kp (1 + 1/(Ti s)) (Td s + 1)/(a Td s + 1)
@@ -44,28 +44,68 @@ def controller():
     return g["kp"] * (1 + 1 / (g["Ti"] * s)) * (g["Td"] * s + 1) / (g["a"] * g["Td"] * s + 1)
 
 
-def family(n_variants: int, *, order: int = 4, seed: int = 7):
-    """``n_variants`` variants: the nominal plant first, then seeded draws within +-20 %."""
+def _factors(n_variants: int, order: int, seed: int) -> np.ndarray:
+    """(n, p) parameter factors: ones for the nominal, then the seeded draws."""
+    rng = np.random.default_rng(seed)
+    p = 2 + 2 * len(modes(order))
+    out = np.ones((n_variants, p))
+    for i in range(1, n_variants):
+        out[i] = rng.uniform(1 - TOL, 1 + TOL, p)
+    return out
+
+
+def _variant(i: int, f: np.ndarray, order: int):
     import control
 
-    from ledger.engine.types import PlantFamily, Variant
+    from ledger.engine.types import Variant
 
-    rng = np.random.default_rng(seed)
-    nom_modes = modes(order)
-    out = []
-    for i in range(n_variants):
-        f = np.ones(2 + 2 * len(nom_modes)) if i == 0 else \
-            rng.uniform(1 - TOL, 1 + TOL, 2 + 2 * len(nom_modes))
-        K, tm = NOMINAL["K"] * f[0], NOMINAL["tau_m"] * f[1]
-        num = np.array([K])
-        den = np.polymul([1.0, 0.0], [tm, 1.0])
-        params = {"K": float(K), "tau_m": float(tm)}
-        for k, (wk, zk) in enumerate(nom_modes):
-            w, z = wk * f[2 + 2 * k], zk * f[3 + 2 * k]
-            num = num * w * w
-            den = np.polymul(den, [1.0, 2 * z * w, w * w])
-            params[f"w{k + 1}"], params[f"z{k + 1}"] = float(w), float(z)
-        out.append(Variant(name="nominal" if i == 0 else f"sample:{i:06d}",
-                           kind="nominal" if i == 0 else "sample",
-                           system=control.tf(num, den), params=params))
-    return PlantFamily(tuple(out))
+    K, tm = NOMINAL["K"] * f[0], NOMINAL["tau_m"] * f[1]
+    num = np.array([K])
+    den = np.polymul([1.0, 0.0], [tm, 1.0])
+    params = {"K": float(K), "tau_m": float(tm)}
+    for k, (wk, zk) in enumerate(modes(order)):
+        w, z = wk * f[2 + 2 * k], zk * f[3 + 2 * k]
+        num = num * w * w
+        den = np.polymul(den, [1.0, 2 * z * w, w * w])
+        params[f"w{k + 1}"], params[f"z{k + 1}"] = float(w), float(z)
+    return Variant(name="nominal" if i == 0 else f"sample:{i:06d}",
+                   kind="nominal" if i == 0 else "sample", system=control.tf(num, den),
+                   params=params)
+
+
+def family(n_variants: int, *, order: int = 4, seed: int = 7):
+    """``n_variants`` variants: the nominal plant first, then seeded draws within +-20 %."""
+    from ledger.engine.types import PlantFamily
+
+    F = _factors(n_variants, order, seed)
+    return PlantFamily(tuple(_variant(i, F[i], order) for i in range(n_variants)))
+
+
+class _LazyVariants(tuple):
+    """A read-only sequence of the family's variants made on access from the stored parameter
+    factors (a python-control transfer function costs several kB, so 100,000 of them held at
+    once would dominate the memory of a streamed measurement)."""
+
+    def __new__(cls, F, order):
+        obj = super().__new__(cls)
+        obj._F, obj._order = F, order
+        return obj
+
+    def __len__(self):
+        return self._F.shape[0]
+
+    def __getitem__(self, k):
+        if isinstance(k, slice):
+            return tuple(_variant(i, self._F[i], self._order) for i in range(len(self))[k])
+        k = range(len(self))[k]
+        return _variant(k, self._F[k], self._order)
+
+    def __iter__(self):
+        return (self[i] for i in range(len(self)))
+
+
+def lazy_family(n_variants: int, *, order: int = 4, seed: int = 7):
+    """:func:`family` with its variants made on access (the same variants, in the same order)."""
+    from ledger.engine.types import PlantFamily
+
+    return PlantFamily(_LazyVariants(_factors(n_variants, order, seed), order))

@@ -61,8 +61,8 @@ def test_resonant_variants_form_small_clusters():
     fam = servo_family(120, modes=2)
     pl = plan(fam, lead_integrator())
     sizes = [gp.index.size for gp in pl.groups]
-    # two lightly damped pairs per variant: 1500 // (63 * 2) = 11 variants per cluster
-    assert max(sizes) == 1500 // (63 * 2) and sum(sizes) == 120
+    # two lightly damped pairs per variant: 3000 // (63 * 2) = 23 variants per cluster
+    assert max(sizes) == 3000 // (63 * 2) and sum(sizes) == 120
     assert sorted(np.concatenate([gp.index for gp in pl.groups]).tolist()) == list(range(120))
 
 
@@ -88,7 +88,7 @@ def test_clustered_values_match_one_shared_grid(monkeypatch):
 def test_streamed_groups_equal_materialised_assembly():
     """measure_family builds and drops one group at a time: exactly the numbers of the whole
     assembly built at once (and of a plan checked in other chunk sizes)."""
-    fam = servo_family(50)
+    fam = servo_family(100)
     C = lead_integrator()
     one = M.measure_family(fam, C, LoopSpec(), list(SUITE))
     pl = plan(fam, C, chunk=7)
@@ -120,9 +120,9 @@ def test_unstable_variants_keep_their_reasons_in_family_order():
 
 
 def test_workers_give_identical_results():
-    fam = servo_family(60)
+    fam = servo_family(100)
     C = lead_integrator()
-    assert len(plan(fam, C).groups) > 2
+    assert len(plan(fam, C).groups) >= 2
     one = M.measure_family(fam, C, LoopSpec(), list(SUITE))
     two = M.measure_family(fam, C, LoopSpec(), list(SUITE), workers=2)
     assert_identical(two, one)

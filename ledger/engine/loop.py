@@ -677,7 +677,7 @@ _POINTS_PER_RESONANCE = 63
 #: Most resonance points a group's shared grid may carry: groups of resonant variants hold at
 #: most ``_RESONANCE_BUDGET // (_POINTS_PER_RESONANCE * pairs)`` variants, so the grid of a
 #: group (the union over its variants) stays a few thousand points whatever the family size.
-_RESONANCE_BUDGET = 1500
+_RESONANCE_BUDGET = 3000
 #: Damping ratio below which a plant pole or zero counts as a resonance (the grid's
 #: ``resonance_zeta``).
 _RESONANCE_ZETA = 0.3
@@ -717,10 +717,7 @@ class Plan:
     blocks: tuple            # (prefilter F, controller K, sensor H)
     groups: tuple            # of GroupPlan
     algebraic_tol: float
-
-    @property
-    def variants(self) -> tuple:
-        return self.family.names
+    variants: tuple = ()     # variant names in family order
 
     @property
     def dt(self):
@@ -751,7 +748,7 @@ def plan(family: PlantFamily, controller, loop: LoopSpec | None = None, *,
     Variants are grouped by plant order and loop delays.  Within that, variants without a
     lightly damped plant pole or zero (damping below 0.3) form groups of up to
     ``batch_size`` in family order; resonant variants are sorted by their damped resonance
-    frequencies and cut into clusters of at most ``1500 // (63 * pairs)`` variants (``pairs``:
+    frequencies and cut into clusters of at most ``3000 // (63 * pairs)`` variants (``pairs``:
     the most lightly damped pairs of one variant), because a group's frequency grid carries
     every member's resonance points and would otherwise grow with the family.  The grouping
     depends only on the family, never on how its groups are later processed (one by one,
@@ -799,7 +796,7 @@ def plan(family: PlantFamily, controller, loop: LoopSpec | None = None, *,
             for s0 in range(0, srt.size, c):
                 groups.append(GroupPlan(np.sort(srt[s0:s0 + c]), tau, d_in, d_plant))
     return Plan(family=family, loop=loop, blocks=(F, K, H), groups=tuple(groups),
-                algebraic_tol=algebraic_tol)
+                algebraic_tol=algebraic_tol, variants=family.names)
 
 
 def assemble(family: PlantFamily, controller, loop: LoopSpec | None = None, *,
