@@ -482,9 +482,12 @@ def _grid(evaluate, dt, poles, zeros, *, points_per_decade: int, w_min, w_max,
     if res.any():
         wn, zeta = feat_w[res], feat_z[res]
         wd = wn * np.sqrt(np.maximum(1.0 - zeta * zeta, 0.0))
-        parts.append(((az[res] * wn)[:, None] * t[None, :] + wd[:, None]).ravel())
-        parts.append((wd[:, None] * (1 + np.logspace(-6, -1, 11))[None, :]).ravel())
-        parts.append((wd[:, None] * (1 - np.logspace(-6, -1, 11))[None, :]).ravel())
+        parts.append(_resonance_windows(wd, az[res] * wn, t))
+        # approach points down to a hundredth of the resonance half-width |zeta| (relative)
+        off = np.logspace(-6, -1, 11)
+        use = off[None, :] >= 0.01 * az[res][:, None]
+        parts.append((wd[:, None] * (1 + off)[None, :])[use])
+        parts.append((wd[:, None] * (1 - off)[None, :])[use])
     # boundary poles (integrators, undamped modes): approach them geometrically from both sides
     offsets = np.logspace(-7, -1, 13)
     for ar in axis:
@@ -510,6 +513,36 @@ def _grid(evaluate, dt, poles, zeros, *, points_per_decade: int, w_min, w_max,
     w = _thin(w)
     return _refine_adaptively(evaluate, w, nvar, axis_w, phase_step=phase_step,
                               passes=refine_passes, max_points=max_points)
+
+
+def _resonance_windows(wd: np.ndarray, width: np.ndarray, t: np.ndarray) -> np.ndarray:
+    """Points across ``wd +- 10 width`` of every resonance, spaced ``width / 2`` (``t``: the
+    41 offsets -10 .. 10 in units of ``width``).  Windows that overlap (the same mode of close
+    variants of one group) share one run of points at the smallest spacing among them instead
+    of one run each, so a group's grid does not grow with its variants beyond the union of
+    the windows; a window alone gets exactly its 41 points."""
+    half = 10.0 * width
+    lo, hi = wd - half, wd + half
+    order = np.argsort(lo, kind="stable")
+    lo, hi, width, wd = lo[order], hi[order], width[order], wd[order]
+    # merged runs: a window starts a new run when it begins beyond every earlier end
+    start = np.r_[True, lo[1:] > np.maximum.accumulate(hi)[:-1]]
+    run = np.cumsum(start) - 1
+    out = []
+    for r in range(int(run[-1]) + 1):
+        m = run == r
+        if m.sum() == 1:
+            k = int(np.flatnonzero(m)[0])
+            out.append(width[k] * t + wd[k])
+            continue
+        a, b = float(lo[m].min()), float(hi[m].max())
+        h = 0.5 * float(width[m].min())
+        n = int(math.ceil((b - a) / h))
+        if n + 1 >= t.size * int(m.sum()):       # no saving: every window's own points
+            out.append((width[m][:, None] * t[None, :] + wd[m][:, None]).ravel())
+        else:
+            out.append(np.linspace(a, b, n + 1))
+    return np.concatenate(out)
 
 
 def _thin(w: np.ndarray, rel: float = 1e-12) -> np.ndarray:
@@ -631,7 +664,9 @@ def frequency_grid(fb: FreqBatch, *, points_per_decade: int = 40, w_min: float |
     * ``w = 0`` always (a variant with a pole there is infinite at that point, and its first
       interval is then handled as the small indentation round the pole);
     * 41 points across ``+-10 zeta wn`` of every pole or zero with damping below
-      ``resonance_zeta`` plus geometric points approaching its damped frequency;
+      ``resonance_zeta`` (overlapping windows of several variants share one run of points at
+      the smallest of their spacings ``zeta wn / 2``) plus geometric points approaching its
+      damped frequency, relative offsets 1e-1 down to 1e-6 but not below ``|zeta| / 100``;
     * geometric points approaching every pole on the imaginary axis (unit circle) from both
       sides, the pole frequency itself excluded;
     * for loops with a delay (estimated by :func:`estimate_delay`), a uniform grid whose delay
