@@ -23,7 +23,7 @@ from . import resonant as R
 from . import scenario as S
 
 __all__ = ["child_family", "run_point", "baseline_per_variant", "floor", "accuracy",
-           "growth_exponent", "verify_workers"]
+           "growth_exponent", "verify_workers", "profile"]
 
 RUN = Path(__file__).resolve().parent / "run.py"
 
@@ -295,3 +295,34 @@ def verify_workers(tmp: Path, samples: int, repeats: int = 1) -> dict:
                 lg.verify(workers=w)
                 best[w] = min(best[w], time.perf_counter() - t0)
     return {"samples": samples, "seconds": best, "speedup": best[1] / best[2]}
+
+
+def profile(n: int, order: int = 4, top: int = 14) -> dict:
+    """cProfile of one ``measure_family`` call on ``n`` resonant variants: the engine
+    functions with the largest cumulative and own times."""
+    import cProfile
+    import pstats
+
+    from ledger.engine.loop import LoopSpec
+    from ledger.engine.measure import measure_family
+
+    fam = R.family(n, order=order)
+    C = R.controller()
+    measure_family(R.family(3, order=order, seed=99), C, LoopSpec(), list(S.SUITE))
+    prof = cProfile.Profile()
+    prof.enable()
+    measure_family(fam, C, LoopSpec(), list(S.SUITE))
+    prof.disable()
+    st = pstats.Stats(prof)
+    cum, own = [], []
+    for (fn, _line, name), (_cc, _nc, tt, ct, _callers) in st.stats.items():
+        norm = fn.replace("\\", "/")
+        if "/ledger/engine/" in norm:
+            key = f"{norm.rsplit('/', 1)[-1]}:{name}"
+            if name not in ("<lambda>", "<genexpr>", "cached", "_collect", "measure_family",
+                            "_measure_group"):
+                cum.append((key, ct))
+            own.append((key, tt))
+    cum.sort(key=lambda kv: -kv[1])
+    own.sort(key=lambda kv: -kv[1])
+    return {"n": n, "total": st.total_tt, "cumulative": cum[:top], "own": own[:top]}

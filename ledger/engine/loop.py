@@ -683,18 +683,35 @@ _RESONANCE_BUDGET = 3000
 _RESONANCE_ZETA = 0.3
 
 
-def _resonances(G: Block, ts) -> np.ndarray:
-    """Sorted damped frequencies (rad/s) of the lightly damped plant poles and zeros of one
-    block (one entry per conjugate pair; discrete roots mapped by ``log(z)/ts``)."""
-    r = np.concatenate([G.poles, G.zeros]).astype(complex)
-    if ts:
-        r = r[np.abs(r) > 1e-12]
-        r = np.log(r) / ts
-    mag = np.abs(r)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        zeta = np.where(mag > 0, -r.real / np.where(mag > 0, mag, 1.0), 1.0)
-    light = (mag > 0) & (np.abs(zeta) > 0) & (np.abs(zeta) < _RESONANCE_ZETA) & (r.imag > 0)
-    return np.sort(r.imag[light])
+def _resonances(Gs: list, ts) -> list:
+    """Per block: sorted damped frequencies (rad/s) of its lightly damped poles and zeros (one
+    entry per conjugate pair; discrete roots mapped by ``log(z)/ts``).  Blocks with equally
+    many poles and zeros are handled together."""
+    out: list = [None] * len(Gs)
+    shapes: dict = {}
+    for j, G in enumerate(Gs):
+        shapes.setdefault((G.poles.size, G.zeros.size), []).append(j)
+    for idx in shapes.values():
+        r = np.array([np.concatenate([Gs[j].poles, Gs[j].zeros]) for j in idx], dtype=complex)
+        r = r.reshape(len(idx), -1)
+        keep = np.ones(r.shape, bool)
+        if ts:
+            keep = np.abs(r) > 1e-12
+            with np.errstate(divide="ignore", invalid="ignore"):
+                r = np.log(np.where(keep, r, 1.0)) / ts
+        mag = np.abs(r)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            zeta = np.where(mag > 0, -r.real / np.where(mag > 0, mag, 1.0), 1.0)
+        light = (keep & (mag > 0) & (np.abs(zeta) > 0) & (np.abs(zeta) < _RESONANCE_ZETA)
+                 & (r.imag > 0))
+        if not light.any():
+            empty = np.zeros(0)
+            for j in idx:
+                out[j] = empty
+            continue
+        for row, j in enumerate(idx):
+            out[j] = np.sort(r.imag[row][light[row]])
+    return out
 
 
 @dataclass(frozen=True, eq=False)
@@ -771,11 +788,12 @@ def plan(family: PlantFamily, controller, loop: LoopSpec | None = None, *,
     for s0 in range(0, V, step):
         vs = family.variants[s0:s0 + step]
         blocks = make_blocks([v.system for v in vs], [f"plant variant {v.name!r}" for v in vs])
+        Gs = []
         for j, (v, b) in enumerate(zip(vs, blocks)):
             G, tau, delays = _plant_block(v, loop, b)
-            i = s0 + j
-            keys.setdefault((G.order, tau, delays), []).append(i)
-            feats[i] = _resonances(G, ts)
+            keys.setdefault((G.order, tau, delays), []).append(s0 + j)
+            Gs.append(G)
+        feats[s0:s0 + len(Gs)] = _resonances(Gs, ts)
     size = max(1, int(batch_size))
     groups = []
     for (ng, tau, (d_in, d_plant)), idx_all in keys.items():
