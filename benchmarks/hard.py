@@ -29,6 +29,14 @@ RUN = Path(__file__).resolve().parent / "run.py"
 
 
 def _rss_mb() -> float:
+    """Peak resident memory of this process image (``VmHWM``: reset by exec, unlike
+    ``ru_maxrss``, which a child started by fork + exec inherits from a large parent)."""
+    try:
+        for line in Path("/proc/self/status").read_text().splitlines():
+            if line.startswith("VmHWM:"):
+                return int(line.split()[1]) / 1024
+    except OSError:
+        pass
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
 
 

@@ -473,7 +473,7 @@ def markdown(info, rows, notes, quick: bool, elapsed: float) -> str:
             f"`{_resonant_controller()}`; the 14-metric benchmark suite.  Each timed point "
             "(1,000 and 10,000 variants, the variant-count and plant-order sweeps, streaming, "
             "workers) runs in a fresh subprocess: time of one `measure_family` call after a "
-            "3-variant warm-up, peak RSS from `ru_maxrss` of that process (its figure includes "
+            "3-variant warm-up, peak RSS from `VmHWM` of that process (its figure includes "
             "the interpreter, the libraries and the family itself).",
             "- Per-variant python-control loop on the resonant family: the same loop as the "
             "family sweep (`benchmarks/sweep.py`), timed on the first 50 variants and scaled to "
