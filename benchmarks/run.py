@@ -423,7 +423,8 @@ def markdown(info, rows, notes, quick: bool, elapsed: float) -> str:
         out += ["", "## Where the time of one revision goes (cProfile)", "",
                 f"Profiled total {sp['profiled_total']:.3f} s, in numeric kernels "
                 f"{sp['kernel']:.3f} s (outside: {sp['outside_share'] * 100:.1f} %).  Kernel = "
-                "functions of `ledger/engine/{loop,stability,freqresp,margins,timeresp,timegrid,"
+                "functions of `ledger/engine/{loop,blocks,closedloop,stability,freqresp,freqeval,"
+                "freqsolve,freqgrid,crossings,margins,timeresp,timegrid,"
                 "discretize}.py` with everything they call.", "",
                 "| kernel entry (cumulative, from outside the kernels) | s |", "|---|---|"]
         out += [f"| `{k}` | {v:.3f} |" for k, v in sp["kernel_entries"]]
