@@ -424,7 +424,7 @@ def markdown(info, rows, notes, quick: bool, elapsed: float) -> str:
                 f"Profiled total {sp['profiled_total']:.3f} s, in numeric kernels "
                 f"{sp['kernel']:.3f} s (outside: {sp['outside_share'] * 100:.1f} %).  Kernel = "
                 "functions of `ledger/engine/{loop,blocks,closedloop,stability,freqresp,freqeval,"
-                "freqsolve,freqgrid,crossings,margins,timeresp,timegrid,"
+                "freqsolve,freqgrid,crossings,margins,timeresp,timegrid,ssbatch,simulation,"
                 "discretize}.py` with everything they call.", "",
                 "| kernel entry (cumulative, from outside the kernels) | s |", "|---|---|"]
         out += [f"| `{k}` | {v:.3f} |" for k, v in sp["kernel_entries"]]
