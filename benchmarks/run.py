@@ -434,6 +434,12 @@ def markdown(info, rows, notes, quick: bool, elapsed: float) -> str:
                 "judging, hashing, SQLAlchemy, standard library (numpy, scipy, python-control "
                 "and built-ins left out: they are mostly called by kernels) | s |", "|---|---|"]
         out += [f"| `{k}` | {v:.3f} |" for k, v in sp["outside_tottime_top"]]
+    missed = [r for r in rows if r.met == "MISSED"]
+    if missed:
+        out += ["", "## Goals missed in this run", "",
+                "| workload | figure | value | goal |", "|---|---|---|---|"]
+        out += [f"| {r.workload} | {r.what} | {r.value} | {r.goal} |" for r in missed]
+        out += ["", NEXT_CUTS]
     if "hard" in notes and notes["hard"].get("profile"):
         pr = notes["hard"]["profile"]
         out += ["", f"## Where the time of the resonant family goes ({pr['n']} variants, cProfile)",
@@ -508,6 +514,30 @@ def markdown(info, rows, notes, quick: bool, elapsed: float) -> str:
             "family (1,000 variants), plant orders 2, 4, 8, 16 (100 variants) and the easy "
             "family (1,000 variants).", ""]
     return "\n".join(out)
+
+
+#: Where the resonant family's time goes and what to cut next (kept true by whoever changes
+#: the engine; the profile tables below are measured).
+NEXT_CUTS = (
+    "Where the time goes on the resonant families (profile below): the engine's cost is now "
+    "linear in the variants (grouping in clusters of close resonances), about 1.4 ms per "
+    "variant for one mode, spread over many vectorised kernels rather than one hot spot: the "
+    "step metrics (simulation of r->y, refinement of crossings and extrema, about a third), "
+    "the peak effort (a second simulation of the same closed loop for r->u, about a fifth), the "
+    "peaks of |S| and |T| (golden-section search on pairwise evaluations, about a quarter), the "
+    "margins and the adaptive grid refinement.  Next cuts, largest first: (1) one time "
+    "simulation shared by r->y and r->u (same A and B, only C and D differ), today two "
+    "simulations and two refinements; (2) per-variant time grids: a group's grid follows the "
+    "slowest and the fastest mode of all its members, so each variant is simulated over the "
+    "longest horizon at the finest step of its cluster; (3) the peaks of S and T and the disk "
+    "function from one pairwise evaluation of L per point, and a parabolic (Brent) step in the "
+    "maximisation to reach the same tolerance in fewer rounds; (4) one adaptive refinement of "
+    "the grid on L serving S, T and the disk function (today each refines its own).  Higher "
+    "plant orders multiply the resonance count and the time-grid span (order 16 has modes up "
+    "to 12,000 rad/s), which is where (2) matters most.  The two-worker figures are limited by "
+    "the serial parts (planning, the family build of a ledger revision, writing results) and "
+    "by the shared machine: other sessions kept the load average near 2 on its two cores "
+    "during this run.")
 
 
 def _resonant_controller() -> str:
