@@ -293,6 +293,7 @@ def run_hard(cfg, rows, notes):
     rows.append(Row(wk, f"per-variant python-control loop, first {nslice} variants of the "
                     "order-4 family (two BLAS threads: the machine's default), wall / CPU",
                     f"{_s(base['seconds'])} / {_s(base['cpu'])}"))
+    notes["hard_load"] = " ".join(f"{x:.2f}" for x in os.getloadavg())
     points = {}
     for n in sorted(set(cfg["resonant"]) | set(cfg["count_sweep"])):
         points[n] = Hd.run_point(n, 4)
@@ -301,7 +302,8 @@ def run_hard(cfg, rows, notes):
         p = points[n]
         tg, mg = goals.get(n, (math.inf, math.inf))
         rows.append(Row(wk, f"measure_family, {len(S.SUITE)} metrics x {n} variants, 1 mode "
-                        "(fresh process), wall / CPU", f"{_s(p['seconds'])} / {_s(p['cpu'])}",
+                        f"(fresh process; load average before the sizes: {notes['hard_load']}), "
+                        "wall / CPU", f"{_s(p['seconds'])} / {_s(p['cpu'])}",
                         f"< {tg:g} s", p["seconds"] < tg))
         rows.append(Row(wk, f"peak RSS, {n} variants (process with the family, before measuring: "
                         f"{p['family_rss_mb']:.0f} MB)", f"{p['rss_mb']:.0f} MB", f"< {mg} MB",
@@ -380,15 +382,19 @@ def run_cores(cfg, rows, notes, tmp):
     from benchmarks import hard as Hd
 
     n = cfg["cores"]
+    load = " ".join(f"{x:.2f}" for x in os.getloadavg())
     one, two = Hd.run_point(n, 4, 1), Hd.run_point(n, 4, 2)
     sp = one["seconds"] / two["seconds"]
     rows.append(Row("cores", f"measure_family on {n} resonant variants, workers=1 / workers=2 "
-                    "(fresh processes)", f"{_s(one['seconds'])} / {_s(two['seconds'])}"))
+                    f"(fresh processes; load average before: {load})",
+                    f"{_s(one['seconds'])} / {_s(two['seconds'])}"))
     rows.append(Row("cores", "speed-up workers=2 vs 1, measure_family", f"{sp:.2f}x", ">= 1.7x",
                     sp >= 1.7))
+    load = " ".join(f"{x:.2f}" for x in os.getloadavg())
     v = Hd.verify_workers(tmp, cfg["verify_samples"])
     rows.append(Row("cores", f"verify one revision, {v['samples']} sampled variants, "
-                    f"{len(S.REQUIREMENTS)} requirements, workers=1 / workers=2",
+                    f"{len(S.REQUIREMENTS)} requirements, workers=1 / workers=2 (load average "
+                    f"before: {load})",
                     f"{_s(v['seconds'][1])} / {_s(v['seconds'][2])}"))
     rows.append(Row("cores", "speed-up workers=2 vs 1, verify", f"{v['speedup']:.2f}x",
                     ">= 1.7x", v["speedup"] >= 1.7))
@@ -608,6 +614,7 @@ def main(argv=None) -> int:
                 print(table(rows[n_before:]) if rows[n_before:] else "", file=sys.stderr,
                       flush=True)
     notes.pop("_small", None)
+    notes.pop("hard_load", None)
     elapsed = time.perf_counter() - t_start
     print(table(rows))
     print(f"\n(total {elapsed:.0f} s; {info['cores']} cores, {info['cpu']}; "
