@@ -264,8 +264,9 @@ def _dense_step_checks(fam, eng: SweepFigures, *, points: int = 400_001,
 
 # -- where the time goes ----------------------------------------------------------------------
 
-KERNEL_FILES = ("loop.py", "stability.py", "freqresp.py", "margins.py", "timeresp.py",
-                "timegrid.py", "discretize.py")
+KERNEL_FILES = ("loop.py", "blocks.py", "closedloop.py", "stability.py", "freqresp.py",
+                "freqeval.py", "freqsolve.py", "freqgrid.py", "crossings.py", "margins.py",
+                "timeresp.py", "timegrid.py", "ssbatch.py", "simulation.py", "discretize.py")
 
 
 def _is_kernel(func, adapter_lines) -> bool:
@@ -282,7 +283,8 @@ def _is_kernel(func, adapter_lines) -> bool:
 
 def profile_split(fn, *, top: int = 12) -> dict:
     """Run ``fn()`` under cProfile; attribute time to numeric kernels (functions in
-    ``ledger/engine/{loop,stability,freqresp,margins,timeresp,timegrid,discretize}.py``,
+    ``ledger/engine/{loop,blocks,closedloop,stability,freqresp,freqeval,freqsolve,freqgrid,
+    crossings,margins,timeresp,timegrid,ssbatch,simulation,discretize}.py``,
     everything they call included) versus the rest (driver, judging, hashing, JSON,
     database, parsing).
 

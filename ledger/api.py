@@ -315,8 +315,10 @@ class Ledger:
         Parameters
         ----------
         workers : int
-            Processes computing in parallel (``0`` = one per core).  Writing stays in this
-            process, one transaction per revision.
+            Processes computing in parallel (``0`` = one per core): revisions are split
+            between them, or, with one revision to compute, the variants of its family
+            (``measure_family(..., workers=)``).  Writing stays in this process, one
+            transaction per revision.
 
         Returns
         -------

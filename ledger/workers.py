@@ -18,7 +18,7 @@ import signal
 import sys
 import threading
 
-__all__ = ["die_with_parent", "POLL_SECONDS"]
+__all__ = ["die_with_parent", "one_blas_thread", "POLL_SECONDS"]
 
 #: how often the fallback watcher looks at the parent process id, in seconds
 POLL_SECONDS = 0.5
@@ -62,3 +62,17 @@ def die_with_parent(parent: int | None = None, poll: float = POLL_SECONDS) -> No
         os._exit(1)
     threading.Thread(target=_watch, args=(parent, poll), name="die-with-parent",
                      daemon=True).start()
+
+
+def one_blas_thread() -> None:
+    """Limit this worker's BLAS to one thread (threadpoolctl, when installed): the workers
+    already fill the cores, and a forked worker whose parent had started a BLAS thread pool
+    otherwise competes with its siblings' threads."""
+    try:
+        from threadpoolctl import threadpool_limits
+    except ImportError:
+        return
+    _LIMITS.append(threadpool_limits(limits=1, user_api="blas"))
+
+
+_LIMITS: list = []  # kept alive for the worker's lifetime

@@ -34,11 +34,21 @@ MODULES = {_modname(p): p for p in sorted(ROOT.rglob("*.py"))}
 
 def _imports(name: str) -> list[tuple[str, int]]:
     """(imported module, line) for every import statement of module ``name``; relative
-    imports resolved; ``from pkg import sub`` names ``pkg.sub`` when that is a module."""
+    imports resolved; ``from pkg import sub`` names ``pkg.sub`` when that is a module.
+    Imports under ``if TYPE_CHECKING:`` never run (type annotations only) and are left out."""
     path = MODULES[name]
     is_pkg = path.name == "__init__.py"
     out = []
-    for node in ast.walk(ast.parse(path.read_text(encoding="utf-8"))):
+    tree = ast.parse(path.read_text(encoding="utf-8"))
+    typing_only = set()
+    for node in ast.walk(tree):
+        if isinstance(node, ast.If) and (
+                (isinstance(node.test, ast.Name) and node.test.id == "TYPE_CHECKING")
+                or (isinstance(node.test, ast.Attribute) and node.test.attr == "TYPE_CHECKING")):
+            typing_only.update(id(n) for stmt in node.body for n in ast.walk(stmt))
+    for node in ast.walk(tree):
+        if id(node) in typing_only:
+            continue
         if isinstance(node, ast.Import):
             out.extend((a.name, node.lineno) for a in node.names)
         elif isinstance(node, ast.ImportFrom):

@@ -27,7 +27,7 @@ import numpy as np
 from ..errors import ComputeError
 from .loop import Assembly, LoopGroup
 
-__all__ = ["StabilityReport", "stability", "nyquist_unstable_count", "min_damping",
+__all__ = ["StabilityReport", "stability", "group_stability", "nyquist_unstable_count", "min_damping",
            "decay_rate", "min_damping_rows", "decay_rate_rows", "rightmost_delayed_root"]
 
 
@@ -85,23 +85,40 @@ def stability(assembly: Assembly, *, tol: float = 1e-12, nyquist_points: int = 4
     reasons = [""] * V
     method = "poles"
     for g in assembly.groups:
-        pre = _count_unstable(g.prefilter_poles, assembly.dt, tol)
-        if g.poles is not None:
-            cnt = [_count_unstable(p, assembly.dt, tol) for p in g.poles]
-        else:
-            method = "nyquist"
-            cnt = list(nyquist_unstable_count(g, points=nyquist_points, max_refine=max_refine))
+        cnt, why, how = group_stability(g, assembly.dt, assembly.variants, tol=tol,
+                                        nyquist_points=nyquist_points, max_refine=max_refine)
+        counts[g.index] = cnt
         for j, i in enumerate(g.index):
-            counts[i] = cnt[j] + pre
-            if cnt[j]:
-                where = "in the closed right half plane" if assembly.dt is None \
-                    else "on or outside the unit circle"
-                reasons[i] = (f"closed loop unstable for variant {assembly.variants[i]!r}: "
-                              f"{cnt[j]} pole(s) {where}")
-            elif pre:
-                reasons[i] = "the prefilter is unstable; give a stable prefilter"
+            reasons[i] = why[j]
+        if how == "nyquist":
+            method = how
     return StabilityReport(stable=counts == 0, unstable_poles=counts, method=method,
                            reasons=tuple(reasons))
+
+
+def group_stability(g: LoopGroup, dt, names, *, tol: float = 1e-12, nyquist_points: int = 400,
+                    max_refine: int = 30) -> tuple[np.ndarray, list, str]:
+    """:func:`stability` of one group: (unstable pole counts (V_g,), reasons (V_g,), method);
+    ``names`` are the family's variant names (indexed by ``g.index``)."""
+    pre = _count_unstable(g.prefilter_poles, dt, tol)
+    if g.poles is not None:
+        method = "poles"
+        cnt = [_count_unstable(p, dt, tol) for p in g.poles]
+    else:
+        method = "nyquist"
+        cnt = list(nyquist_unstable_count(g, points=nyquist_points, max_refine=max_refine))
+    counts = np.zeros(len(g.index), dtype=int)
+    reasons = [""] * len(g.index)
+    for j, i in enumerate(g.index):
+        counts[j] = cnt[j] + pre
+        if cnt[j]:
+            where = "in the closed right half plane" if dt is None \
+                else "on or outside the unit circle"
+            reasons[j] = (f"closed loop unstable for variant {names[i]!r}: "
+                          f"{cnt[j]} pole(s) {where}")
+        elif pre:
+            reasons[j] = "the prefilter is unstable; give a stable prefilter"
+    return counts, reasons, method
 
 
 def _F(group: LoopGroup, j: int, s: np.ndarray) -> np.ndarray:

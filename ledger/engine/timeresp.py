@@ -34,8 +34,9 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.linalg
 
-from ledger.engine.timegrid import (Pieces, balance, check_stable, equilibrium, expm_batch,
-                                    has_delay, mats, simulate)
+from ledger.engine.simulation import Pieces, simulate
+from ledger.engine.ssbatch import balance, equilibrium, expm_batch, has_delay, mats
+from ledger.engine.timegrid import check_stable
 from ledger.engine.types import SSBatch
 from ledger.errors import ComputeError
 

@@ -1,8 +1,8 @@
 """Shared data types of the numeric engine.
 
 These are the contracts between the loop assembly (``engine/loop.py``), the time-domain
-kernels (``engine/timeresp.py``), the frequency-domain kernels (``engine/freqresp.py``) and
-the plant-family builder (``systems/family.py``).  Nothing here imports SQLAlchemy or Textual.
+kernels (``engine/timeresp.py``), the frequency-domain kernels (``engine/freqresp.py`` and the
+modules it gathers) and the plant-family builder (``systems/family.py``).  Nothing here imports SQLAlchemy or Textual.
 
 Conventions
 -----------

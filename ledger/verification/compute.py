@@ -93,9 +93,11 @@ def _decode(values: list) -> np.ndarray:
     return np.array([float(v) for v in values], dtype=float)
 
 
-def compute_plan(plan: RevisionPlan, cached: dict[str, dict]) -> tuple[dict[str, dict], int]:
+def compute_plan(plan: RevisionPlan, cached: dict[str, dict], *,
+                 workers: int = 1) -> tuple[dict[str, dict], int]:
     """Payloads for every check's metric key: cached ones as given, the rest computed in one
-    batched call.  Returns (payloads by key, number of (metric, settings) requests computed)."""
+    batched call (its family split over ``workers`` processes when > 1).  Returns (payloads by
+    key, number of (metric, settings) requests computed)."""
     payloads: dict[str, dict] = {}
     todo: dict[str, tuple[str, dict]] = {}
     for c in plan.checks:
@@ -110,7 +112,8 @@ def compute_plan(plan: RevisionPlan, cached: dict[str, dict]) -> tuple[dict[str,
 
     fam = family_for(plan)
     try:
-        res = measure_family(fam, controller_for(plan), loop_spec_for(plan), list(todo.values()))
+        res = measure_family(fam, controller_for(plan), loop_spec_for(plan), list(todo.values()),
+                             workers=workers)
     except LedgerError as e:
         for k, (metric, _) in todo.items():
             payloads[k] = {"metric": metric, "variants": list(fam.names), "values": [],

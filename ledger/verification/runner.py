@@ -27,9 +27,10 @@ __all__ = ["verify", "add_revision", "numeric_setup", "after_requirement_change"
 def init_worker() -> None:
     """Run once in every worker process of :func:`worker_pool` before its first task: the
     worker ends when its parent dies (ledger/workers.py)."""
-    from ..workers import die_with_parent
+    from ..workers import die_with_parent, one_blas_thread
 
     die_with_parent()
+    one_blas_thread()
 
 
 def worker_pool(n_workers: int):
@@ -71,7 +72,7 @@ def verify(lg, loop: str | None = None, *, label: str | None = None, tips_only: 
     workers = (os.cpu_count() or 1) if workers == 0 else max(1, int(workers))
     if workers == 1 or total < 2:
         for i, (plan, cached) in enumerate(plans):
-            payloads, n = compute_plan(plan, cached)
+            payloads, n = compute_plan(plan, cached, workers=workers if total == 1 else 1)
             record(i, plan, cached, payloads, n)
         return report
 
