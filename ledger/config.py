@@ -13,6 +13,9 @@ Environment variables (read when asked, never at import, so a test or a caller m
 ``LOOPLEDGER_CONFIG_DIR``
     Folder of the per-user display preferences file ``prefs.json`` (default
     ``$XDG_CONFIG_HOME/loopledger``, else ``~/.config/loopledger``).
+``COLUMNS``
+    The terminal width the command line fits its tables and lines to (the shell's own
+    variable; unset, empty or not a positive whole number: the terminal's width).
 
 Tunables are module constants; change them here, not where they are used.
 """
@@ -23,7 +26,7 @@ import getpass
 import os
 
 __all__ = ["DEFAULT_PATH", "BUSY_TIMEOUT_MS", "WRITE_RETRIES", "IN_CHUNK", "FAMILY_CACHE_SIZE",
-           "db_target", "author", "debug", "digits_setting", "prefs_dir"]
+           "db_target", "author", "debug", "digits_setting", "prefs_dir", "columns"]
 
 #: the ledger file used when none is named and ``$LOOPLEDGER_DB`` is unset
 DEFAULT_PATH = "loopledger.db"
@@ -70,3 +73,12 @@ def prefs_dir() -> str:
 def debug() -> bool:
     """True when ``$LOOPLEDGER_DEBUG`` is set to anything but empty."""
     return bool(os.environ.get("LOOPLEDGER_DEBUG"))
+
+
+def columns() -> int:
+    """``$COLUMNS`` as a positive whole number, else 0 (then the terminal's width is used)."""
+    try:
+        n = int(os.environ.get("COLUMNS", "") or 0)
+    except ValueError:
+        return 0
+    return max(n, 0)

@@ -355,13 +355,12 @@ def test_cli_since_and_print_regressions(cli, kloop, capsys):
     data = cli.json("since", "ax", "PM", "r4", "--json")
     assert data["first"] == "r3" and data["run"] == ["r3", "r4"] and data["certain"] is True
 
-    from ledger.cli import _Tools
-    from ledger.cli_history import print_regressions
+    from ledger.cli.history import print_regressions
 
-    d = print_regressions(kloop, "ax", "r3", _Tools)
+    d = print_regressions(kloop, "ax", "r3")
     out = capsys.readouterr().out
     assert d.of("broke") and "BROKE" in out and "against parent r2" in out
-    print_regressions(kloop, "ax", "r1", _Tools)
+    print_regressions(kloop, "ax", "r1")
     assert "root revision" in capsys.readouterr().out
 
 
@@ -442,7 +441,7 @@ def test_boolean_metric_never_gets_a_threshold_note():
 def test_cli_rows_show_moved_with_its_change():
     # the CLI table row of a moved failure names the class and the headroom change
     # (193 / 202 = +96 %, arithmetic)
-    from ledger.cli_history import diff_rows
+    from ledger.cli.history import diff_rows
 
     c = classify_pair(_res(verdict="fail", value=-157.0), _res(verdict="fail", value=36.0))
     row = diff_rows([c])[0]

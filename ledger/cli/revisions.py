@@ -1,0 +1,165 @@
+"""``loopledger revision add/list/show`` (controller revisions: lineage, rationale),
+``loopledger verify`` (bring verification up to date) and ``loopledger results`` (the verdicts
+of one revision)."""
+
+from __future__ import annotations
+
+from typing import Optional
+
+import typer
+
+from ..errors import UsageError
+from .common import (CAUTION, JSON_OPTION, WIDE_OPTION, emit_json, errors_to_exit, open_ledger,
+                     set_wide)
+from .history import ExitOn, exit_status, print_regressions
+from .output import say, short, short_variant, table
+
+__all__ = ["group", "commands", "rev_add", "rev_list", "rev_show", "verify_cmd", "results_cmd",
+           "print_results"]
+
+#: mounted as ``loopledger revision`` by ``ledger/cli/__init__.py``
+group = typer.Typer(help="Controller revisions: lineage, rationale.", no_args_is_help=True)
+#: top-level commands (``verify``, ``results``), added to the root by ``ledger/cli/__init__.py``
+commands = typer.Typer()
+
+# the verdict word, failing ones in capitals (a cue that survives without colour)
+_MARK = {"pass": "pass", "fail": "FAIL", "error": "ERROR", "stale": "stale", "n/a": "n/a"}
+
+
+def print_results(results, title: str) -> None:
+    """The verdict table of one revision's results, then the verdict counts."""
+    if not results:
+        typer.echo("  no applicable requirements with a metric")
+        return
+    from ..display import headroom_text, value_text
+
+    rows = []
+    for r in results:
+        head = headroom_text(r.value, r.headroom, r.headroom_fraction, r.unit, r.limit_text)
+        head = head.replace(" of the limit)", ")")
+        rows.append([r.requirement, _MARK.get(r.verdict, r.verdict),
+                     value_text(r.value, r.unit, r.limit_text), r.limit_text,
+                     head, r.worst_variant or "-",
+                     "-" if r.pass_fraction is None else f"{r.pass_fraction:.0%}",
+                     short(r.reason, 50) or ""])
+    table(["ID", "verdict", "worst value", "limit", "headroom", "worst variant", "pass", "note"],
+          rows, title=title, drop=("note", "pass", "worst variant"),
+          shorten={"worst variant": short_variant}, quiet={"pass": lambda v: v == "100%"})
+    counts = {}
+    for r in results:
+        counts[r.verdict] = counts.get(r.verdict, 0) + 1
+    typer.echo("  " + ", ".join(f"{v} {k}" for k, v in sorted(counts.items())))
+
+
+@group.command("add")
+@errors_to_exit
+def rev_add(loop: str = typer.Argument(..., help="Loop name."),
+            controller: str = typer.Argument(..., help="Controller model text."),
+            why: str = typer.Option(..., "--why", help="Rationale: why this change (required)."),
+            parent: Optional[str] = typer.Option(None, "--parent", help="Parent revision label (default: the loop's tip)."),
+            root: bool = typer.Option(False, "--root", help="Start a new root (no parent)."),
+            label: Optional[str] = typer.Option(None, "--label", help="Label (default r<N>)."),
+            no_verify: bool = typer.Option(False, "--no-verify", help="Record only; verify later with 'loopledger verify'."),
+            exit_on: Optional[str] = typer.Option(None, "--exit-on", help="Exit with status 3 (the revision is still recorded) when a requirement broke against the parent ('broke'), an approved one broke ('approved-broke'), or anything broke or eroded ('any')."),
+):
+    """Record a controller revision and verify every applicable requirement on it at once."""
+    try:
+        exit_choice = ExitOn(exit_on) if exit_on else None
+    except ValueError as e:
+        raise UsageError(f"--exit-on must be one of {', '.join(c.value for c in ExitOn)}") from e
+    code = 0
+    with open_ledger() as lg:
+        r = lg.add_revision(loop, controller, rationale=why,
+                            parent=None if root else (parent or "tip"), label=label,
+                            verify=not no_verify)
+        typer.echo(f"revision {r.loop}/{r.label} recorded (parent {r.parent or 'none'})")
+        if not no_verify:
+            d = print_regressions(lg, r.loop, r.label)
+            print_results(lg.results(r.loop, r.label), f"verdicts for {r.loop}/{r.label}")
+            say(CAUTION)
+            code = exit_status(d, exit_choice) if d.old is not None else 0
+    if code:
+        raise typer.Exit(code)
+
+
+def _tree_lines(nodes, prefix: str = "") -> list[str]:
+    out = []
+    for i, n in enumerate(nodes):
+        last = i == len(nodes) - 1
+        r = n.revision
+        out.append(f"{prefix}{'└─ ' if last else '├─ '}{r.label}  {r.created_at:%Y-%m-%d %H:%M}  "
+                   f"{r.author}  {short(r.rationale, 60)}")
+        out.extend(_tree_lines(n.children, prefix + ("   " if last else "│  ")))
+    return out
+
+
+@group.command("list")
+@errors_to_exit
+def rev_list(loop: str = typer.Argument(..., help="Loop name."), as_json: bool = JSON_OPTION):
+    """Show a loop's revisions as a lineage tree."""
+    with open_ledger() as lg:
+        if as_json:
+            return emit_json(lg.revisions(loop))
+        tree = lg.lineage(loop)
+    typer.echo(f"loop {loop}")
+    for line in _tree_lines(tree):
+        typer.echo(line)
+
+
+@group.command("show")
+@errors_to_exit
+def rev_show(loop: str, label: Optional[str] = typer.Argument(None, help="Revision label (default: tip)."),
+             as_json: bool = JSON_OPTION):
+    """Show one revision: controller, rationale, lineage."""
+    with open_ledger() as lg:
+        r = lg.revision(loop, label)
+    if as_json:
+        return emit_json(r)
+    typer.echo(f"revision {r.loop}/{r.label}  by {r.author}  {r.created_at:%Y-%m-%d %H:%M}")
+    typer.echo(f"  parent      {r.parent or 'none (root)'}")
+    if r.children:
+        typer.echo(f"  children    {', '.join(r.children)}")
+    typer.echo(f"  controller  {r.controller}")
+    typer.echo(f"  hash        {r.content_hash[:16]}")
+    typer.echo("  rationale")
+    for line in r.rationale.splitlines():
+        typer.echo(f"    {line}")
+
+
+@commands.command("verify")
+@errors_to_exit
+def verify_cmd(loop: Optional[str] = typer.Option(None, "--loop", help="Only this loop."),
+               tips: bool = typer.Option(False, "--tips", help="Only the latest revision of each loop."),
+               workers: int = typer.Option(0, "--workers", help="Parallel processes (0 = one per core).")):
+    """Bring verification up to date: compute every missing result (new requirement or plant
+    versions, interrupted runs), reusing cached metric values."""
+    from rich.progress import Progress
+
+    with open_ledger() as lg, Progress(transient=True) as bar:
+        task = bar.add_task("verifying", total=None)
+
+        def progress(i, n, what):
+            bar.update(task, total=n, completed=i, description=f"verifying {what}")
+
+        rep = lg.verify(loop, tips_only=tips, progress=progress, workers=workers)
+    n_res = sum(r["results"] for r in rep)
+    n_cmp = sum(r["computed"] for r in rep)
+    typer.echo(f"verified {len(rep)} revision(s): {n_res} result(s) written, "
+               f"{n_cmp} metric request(s) computed, the rest from the cache")
+
+
+@commands.command("results")
+@errors_to_exit
+def results_cmd(loop: str = typer.Argument(..., help="Loop name."),
+                label: Optional[str] = typer.Argument(None, help="Revision label (default: tip)."),
+                as_json: bool = JSON_OPTION, wide: bool = WIDE_OPTION):
+    """Show the verdicts of one revision: worst value over the plant family, headroom,
+    the variant that produced it and the fraction of variants that pass."""
+    set_wide(wide)
+    with open_ledger() as lg:
+        res = lg.results(loop, label)
+        rev = lg.revision(loop, label)
+    if as_json:
+        return emit_json(res)
+    print_results(res, f"verdicts for {rev.loop}/{rev.label}")
+    say(CAUTION)
