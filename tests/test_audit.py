@@ -8,6 +8,7 @@ database file could; each case runs on SQLite and PostgreSQL (the ``lg`` fixture
 from __future__ import annotations
 
 import hashlib
+import math
 import json
 import threading
 from datetime import datetime, timezone
@@ -529,3 +530,43 @@ def test_result_row_hash_is_the_compact_json_of_its_fields(value, text_):
         {**row, "value": None})  # SQLite stores NaN as NULL
     with pytest.raises(ValueError, match="infinite"):
         result_row_hash({**row, "value": float("inf")})
+
+
+def test_revision_recorded_unverified_then_verified_stays_intact(lg):
+    """A boolean requirement (``stable``) has headroom exactly zero; computed as -0.0 it came
+    back from SQLite as 0.0 (SQLite stores an integral REAL as an integer), so the row hash
+    written did not match the stored row and the audit named an untouched result.  Zero is
+    stored and hashed with one sign (common practice, no source: IEEE 754 -0.0 == 0.0)."""
+    lg.add_plant("p", "1/(s*(s+1))")
+    lg.add_loop("x", "p")
+    lg.add_requirement("X-0", title="Stable", statement="The loop is stable.",
+                       metric="stable", limit="true", loops=["x"])
+    lg.add_requirement("X-1", title="Phase margin", statement="PM at least 20 deg.",
+                       metric="phase_margin", limit=">= 20 deg", loops=["x"])
+    lg.add_revision("x", "4", rationale="recorded first, verified later", verify=False)
+    lg.verify(workers=1)
+    rep = audit(lg)
+    assert rep.ok, [(f.problem, f.kind, f.record_id) for f in rep.findings]
+    signs = rows(lg, "SELECT headroom, headroom_fraction FROM result")
+    assert all(math.copysign(1.0, v) > 0 for r in signs for v in r if v == 0.0)
+
+
+
+def test_row_hashed_with_negative_zero_before_the_fix_still_reads_intact(lg):
+    """A ledger written before zeros were stored with one sign holds rows hashed with -0.0 that
+    SQLite gives back as 0.0: the audit's row check accepts that sign of zero, and only that."""
+    from types import SimpleNamespace
+
+    from ledger.store.audit import _signed_zero_match
+
+    test_revision_recorded_unverified_then_verified_stays_intact(lg)
+    engine = make_engine(lg.url)
+    with engine.connect() as conn:
+        row = dict(conn.execute(text("SELECT * FROM result WHERE headroom = 0")).mappings()
+                   .first())
+    engine.dispose()
+    legacy = result_row_hash(dict(row, headroom=-0.0, headroom_fraction=-0.0))
+    assert legacy != row["row_hash"] == result_row_hash(row)
+    assert _signed_zero_match(SimpleNamespace(_mapping=row, row_hash=legacy))
+    assert not _signed_zero_match(SimpleNamespace(_mapping=dict(row, headroom=1.0),
+                                                  row_hash=legacy))

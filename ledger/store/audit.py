@@ -3,6 +3,8 @@ audit are :mod:`ledger.audit`, which documents every finding."""
 
 from __future__ import annotations
 
+import math
+
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from typing import Iterable
@@ -287,7 +289,7 @@ class Checker:
                 batches[bid] = batch
         seen.add(bid)
         for m in members:
-            if result_row_hash(m._mapping) != m.row_hash:
+            if result_row_hash(m._mapping) != m.row_hash and not _signed_zero_match(m):
                 self.add("record altered", "result", m.id, "content differs from its row hash",
                          self.result_label(m.revision_id, m.requirement_version_id,
                                            m.plant_version_id))
@@ -505,3 +507,18 @@ class Checker:
         self.content_hashes(rev_ids, rv_ids, pv_ids, parse=True)
 
 
+def _signed_zero_match(m) -> bool:
+    """True when the row hash matches once zero fields are read as -0.0: ledgers written
+    before zeros were stored with one sign hashed a computed -0.0 that SQLite hands back as 0.0
+    (the sign of a zero carries no result; ``ledger.store.results.cap``)."""
+    from itertools import product
+
+    row = dict(m._mapping)
+    zeros = [k for k in ("value", "headroom", "headroom_fraction", "pass_fraction")
+             if row.get(k) is not None and row[k] == 0]
+    for signs in product((0.0, -0.0), repeat=len(zeros)):
+        if any(math.copysign(1.0, z) < 0 for z in signs):
+            trial = dict(row, **dict(zip(zeros, signs)))
+            if result_row_hash(trial) == m.row_hash:
+                return True
+    return False

@@ -39,8 +39,13 @@ INF_SENTINEL = 1e308
 
 
 def cap(x: float | None) -> float | None:
-    """``x`` as stored: +-inf as +-:data:`INF_SENTINEL`."""
-    if x is None or math.isfinite(x):
+    """``x`` as stored: +-inf as +-:data:`INF_SENTINEL`; zero as +0.0 (SQLite gives -0.0 back
+    as 0.0, so a row hashed with -0.0 would no longer match its stored row)."""
+    if x is None:
+        return x
+    if x == 0:
+        return 0.0
+    if math.isfinite(x):
         return x
     return INF_SENTINEL if x > 0 else -INF_SENTINEL
 
