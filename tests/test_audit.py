@@ -570,3 +570,21 @@ def test_row_hashed_with_negative_zero_before_the_fix_still_reads_intact(lg):
     assert _signed_zero_match(SimpleNamespace(_mapping=row, row_hash=legacy))
     assert not _signed_zero_match(SimpleNamespace(_mapping=dict(row, headroom=1.0),
                                                   row_hash=legacy))
+
+
+def test_plant_with_parameters_out_of_alphabetical_order_audits_clean(lg):
+    """Parameters are kept in the order given and hashed in canonical (sorted) order
+    (docs/models.md); the audit and sign-off recompute the same hash, so a plant whose
+    parameters are not given alphabetically is intact, and an edited parameter is still named."""
+    lg.add_plant("p", "K/(s*(tau*s+1))", params={"tau": {"nominal": 0.02, "tol": "20 %"},
+                                                   "K": {"nominal": 120.0, "tol": "10 %"}})
+    lg.add_loop("x", "p")
+    lg.add_requirement("X-1", title="Phase margin", statement="PM at least 20 deg.",
+                       metric="phase_margin", limit=">= 20 deg", loops=["x"])
+    lg.add_revision("x", "0.5", rationale="proportional")
+    rep = audit(lg)
+    assert rep.ok, [(f.problem, f.kind, f.record_id, f.detail) for f in rep.findings]
+    create_baseline(lg, "B1")
+    sign_baseline(lg, "B1", signer="A. Reviewer", role="lead", statement="approved")
+    sql(lg, "UPDATE plant_version SET parameters_json = REPLACE(parameters_json, '120.0', '130.0')")
+    assert ("plant_version", 1) in found(audit(lg), "record altered", "plant_version")

@@ -24,7 +24,7 @@ from .chain import (
     result_row_hash,
 )
 from ..hashing import sha256_of
-from ..validate import model_canonical, requirement_hash
+from ..validate import model_canonical, plant_content_hash, requirement_hash
 from .baselines import frozen_matrix_hash
 from .queries import chunks
 from .models import (
@@ -410,9 +410,7 @@ class Checker:
                 yield from s.scalars(select(model).where(model.id.in_(ch)))
 
         for pv in rows(PlantVersion, pv_ids):
-            h = sha256_of({k: getattr(pv, k) for k in (
-                "canonical", "parameters_json", "fidelity_json", "samples", "seed",
-                "sample_time", "input_unit", "output_unit")})
+            h = plant_content_hash(pv)  # the one rule (parameters read in canonical order)
             if self._altered("plant_version", pv.id):
                 continue
             if h != pv.content_hash:
