@@ -352,15 +352,15 @@ def _step(ctx: _GroupContext, s: dict):
 
 
 def _margins(ctx):
-    from . import freqresp
-    return ctx.cached("margins", lambda: freqresp.margins(ctx.fb(), grid=ctx.grid()))
+    from . import margins
+    return ctx.cached("margins", lambda: margins.margins(ctx.fb(), grid=ctx.grid()))
 
 
 def _disk(ctx):
-    from . import freqresp
+    from . import margins
     # the stability of these variants is already decided (disk metrics need a stable loop):
     # the disk margin does not count encirclements again
-    return ctx.cached("disk", lambda: freqresp.disk_margin(
+    return ctx.cached("disk", lambda: margins.disk_margin(
         ctx.fb(), grid=ctx.grid(), check_stability=not ctx.all_stable))
 
 
