@@ -266,7 +266,8 @@ def _dense_step_checks(fam, eng: SweepFigures, *, points: int = 400_001,
 
 KERNEL_FILES = ("loop.py", "blocks.py", "closedloop.py", "stability.py", "freqresp.py",
                 "freqeval.py", "freqsolve.py", "freqgrid.py", "crossings.py", "margins.py",
-                "peaks.py", "timeresp.py", "timegrid.py", "ssbatch.py", "simulation.py", "discretize.py")
+                "peaks.py", "timeresp.py", "steprefine.py", "timegrid.py", "ssbatch.py",
+                "simulation.py", "discretize.py")
 
 
 def _is_kernel(func, adapter_lines) -> bool:
@@ -284,7 +285,7 @@ def _is_kernel(func, adapter_lines) -> bool:
 def profile_split(fn, *, top: int = 12) -> dict:
     """Run ``fn()`` under cProfile; attribute time to numeric kernels (functions in
     ``ledger/engine/{loop,blocks,closedloop,stability,freqresp,freqeval,freqsolve,freqgrid,
-    crossings,margins,peaks,timeresp,timegrid,ssbatch,simulation,discretize}.py``,
+    crossings,margins,peaks,timeresp,steprefine,timegrid,ssbatch,simulation,discretize}.py``,
     everything they call included) versus the rest (driver, judging, hashing, JSON,
     database, parsing).
 
