@@ -247,3 +247,24 @@ def test_engine_and_systems_modules_stay_under_600_lines(package):
     long = {m: n for m in MODULES if _under(m, package)
             and (n := len(MODULES[m].read_text(encoding="utf-8").splitlines())) > 600}
     assert not long, long
+
+
+def test_freqresp_front_gives_the_margin_functions_of_their_home():
+    # the public path ledger.engine.freqresp.<margin name> stays, without a cycle
+    from ledger.engine import freqresp, margins, peaks
+    for name in ("Margins", "DiskMargin", "margins", "encirclements",
+                 "closed_loop_unstable_count", "disk_margin"):
+        assert getattr(freqresp, name) is getattr(margins, name)
+    assert freqresp.peak_gain is peaks.peak_gain and freqresp.bandwidth is peaks.bandwidth
+    assert not hasattr(freqresp, "__getattr__")
+
+
+def test_every_engine_module_exports_what_its_all_lists():
+    # a name in __all__ that a module does not hold breaks ``from module import *``
+    import importlib
+    bad = []
+    for m in MODULES:
+        if _under(m, "engine") or _under(m, "systems"):
+            mod = importlib.import_module(m)
+            bad += [f"{m}.{n}" for n in getattr(mod, "__all__", ()) if not hasattr(mod, n)]
+    assert not bad, bad

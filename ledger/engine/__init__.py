@@ -1,7 +1,10 @@
 """Numeric engine: loop assembly, stability, kernels, metric catalogue and ``measure``.
 
-Importing this package is cheap: python-control is only imported when one of the names
-below that needs it is first used (``from ledger.engine import measure`` triggers it).
+Importing this package is cheap: python-control is only imported when a name below that
+needs it is first used, or when a measurement runs.  The package imports the family driver
+(:mod:`ledger.engine.measuring`, whose top level imports only numpy, the catalogue, the
+result types and ``ledger.systems.variants``) to register it under its public name
+``ledger.engine.measure``; see the comment below.
 """
 
 from __future__ import annotations
