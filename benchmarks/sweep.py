@@ -266,7 +266,8 @@ def _dense_step_checks(fam, eng: SweepFigures, *, points: int = 400_001,
 
 KERNEL_FILES = ("loop.py", "blocks.py", "closedloop.py", "stability.py", "freqresp.py",
                 "freqeval.py", "freqsolve.py", "freqgrid.py", "crossings.py", "margins.py",
-                "timeresp.py", "timegrid.py", "ssbatch.py", "simulation.py", "discretize.py")
+                "peaks.py", "timeresp.py", "steprefine.py", "timegrid.py", "ssbatch.py",
+                "simulation.py", "discretize.py")
 
 
 def _is_kernel(func, adapter_lines) -> bool:
@@ -277,14 +278,14 @@ def _is_kernel(func, adapter_lines) -> bool:
     base = norm.rsplit("/", 1)[-1]
     if base in KERNEL_FILES:
         return True
-    # measure.py's per-variant adapter lambdas are called by kernels with kernels below them
-    return base == "measure.py" and name == "<lambda>" and line in adapter_lines
+    # kernels.py's per-variant adapter lambdas are called by kernels with kernels below them
+    return base == "kernels.py" and name == "<lambda>" and line in adapter_lines
 
 
 def profile_split(fn, *, top: int = 12) -> dict:
     """Run ``fn()`` under cProfile; attribute time to numeric kernels (functions in
     ``ledger/engine/{loop,blocks,closedloop,stability,freqresp,freqeval,freqsolve,freqgrid,
-    crossings,margins,timeresp,timegrid,ssbatch,simulation,discretize}.py``,
+    crossings,margins,peaks,timeresp,steprefine,timegrid,ssbatch,simulation,discretize}.py``,
     everything they call included) versus the rest (driver, judging, hashing, JSON,
     database, parsing).
 
@@ -292,7 +293,7 @@ def profile_split(fn, *, top: int = 12) -> dict:
     non-kernel callers (so nested kernel calls are not counted twice)."""
     import importlib
 
-    M = importlib.import_module("ledger.engine.measure")
+    M = importlib.import_module("ledger.engine.kernels")
     adapter_lines = {M._sub_eval.__code__.co_firstlineno + 1}
     prof = cProfile.Profile()
     t0 = time.perf_counter()

@@ -39,7 +39,7 @@ _LAZY = {
     "open_ledger": "ledger.api", "Ledger": "ledger.api",
     "measure": "ledger.engine.measure", "measure_family": "ledger.engine.measure",
     "Measurement": "ledger.engine.measure", "LoopSpec": "ledger.engine.loop",
-    "PlantFamily": "ledger.engine.types", "Variant": "ledger.engine.types",
+    "PlantFamily": "ledger.systems.variants", "Variant": "ledger.systems.variants",
     "parse_model": "ledger.systems", "build_family": "ledger.systems",
     "build_matrix": "ledger.history.matrix", "diff": "ledger.history.diff",
     "first_failing": "ledger.history.since", "build_trace": "ledger.history.trace",

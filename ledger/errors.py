@@ -16,6 +16,7 @@ __all__ = [
     "NotFoundError",
     "DuplicateError",
     "IntegrityViolation",
+    "UnknownMetricError",
     "SchemaError",
     "ComputeError",
     "UnstableLoopError",
@@ -76,6 +77,14 @@ class DuplicateError(LedgerError, ValueError):
 
 class IntegrityViolation(LedgerError, ValueError):
     """An operation would break a ledger invariant (cycle, append-only, missing rationale...)."""
+
+
+class UnknownMetricError(SpecError, IntegrityViolation):
+    """A metric name the catalogue does not have (``ledger.engine.metrics.get_metric``).
+
+    Raised by the one catalogue whether the name comes from a spec file or ``measure``
+    (a :class:`SpecError`) or from a requirement record (an :class:`IntegrityViolation`), so
+    either ``except`` clause catches it; the message lists the valid names."""
 
 
 class SchemaError(LedgerError, RuntimeError):

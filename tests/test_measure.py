@@ -382,9 +382,19 @@ def test_package_exports_and_cheap_catalogue_import():
     import subprocess
     import sys
 
-    code = ("import sys, ledger.engine.metrics as m; assert 'control' not in sys.modules; "
+    # Both paths, in a fresh interpreter: the module under its public dotted name (the file
+    # is measuring.py, registered by the package), the function from the package, before and
+    # after the module was imported, with the package's class untouched.
+    code = ("import sys, types, ledger.engine.metrics as m; assert 'control' not in sys.modules; "
+            "import ledger.engine as E; assert type(E) is types.ModuleType; "
+            "from ledger.engine import measure as f0; assert callable(f0); "
             "import ledger.engine.measure; from ledger.engine import measure; "
-            "assert callable(measure) and measure.__module__ == 'ledger.engine.measure'; "
+            "from ledger.engine.measure import measure_family, measure as f1; "
+            "mod = sys.modules['ledger.engine.measure']; "
+            "assert isinstance(mod, types.ModuleType) and mod.measure_family is measure_family; "
+            "assert callable(measure) and measure is f0 is f1 is mod.measure; "
+            "assert ledger.engine.measure is measure and type(E) is types.ModuleType; "
+            "assert 'control' not in sys.modules; "
             "print(len(m.METRICS))")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
                          check=True)

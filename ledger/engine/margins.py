@@ -27,7 +27,11 @@ import numpy as np
 
 from ledger.errors import ComputeError
 from ledger.engine.types import FreqBatch
-from ledger.engine import freqresp as _fr
+from ledger.engine.crossings import (_crossing_setup, _gain_crossings, _phase_crossings_all,
+                                     _phase_crossovers_from, _split_by_variant)
+from ledger.engine.freqeval import _axis_roots, _call, estimate_delay
+from ledger.engine.freqgrid import frequency_grid
+from ledger.engine.peaks import peak_gain
 
 __all__ = [
     "Margins",
@@ -152,9 +156,9 @@ def margins(fb: FreqBatch, *, grid: np.ndarray | None = None, xrtol: float = 1e-
     xrtol : float
         Relative frequency tolerance of the crossover refinement.
     """
-    w, mask, L, smp = _fr._crossing_setup(fb, grid)
-    pcs = _fr._phase_crossovers_from(fb, smp, w, mask, L, xrtol)
-    gcs = _fr._gain_crossings(smp, w, mask, L, xrtol)
+    w, mask, L, smp = _crossing_setup(fb, grid)
+    pcs = _phase_crossovers_from(fb, smp, w, mask, L, xrtol)
+    gcs = _gain_crossings(smp, w, mask, L, xrtol)
     V = fb.nvar
     gm, gml = np.full(V, math.inf), np.full(V, -math.inf)
     wpc, wpcl = np.full(V, math.inf), np.full(V, math.inf)
@@ -165,14 +169,14 @@ def margins(fb: FreqBatch, *, grid: np.ndarray | None = None, xrtol: float = 1e-
     lpf = smp.at(pv, pw)
     lgf = smp.at(gv, gw)
     g = -20.0 * np.log10(np.abs(lpf))
-    gms = _fr._split_by_variant(g, pv, V)
+    gms = _split_by_variant(g, pv, V)
     i = _first_best(g, pv, g > 0, V, largest=False)
     gm[pv[i]], wpc[pv[i]] = g[i], pw[i]
     i = _first_best(g, pv, g < 0, V, largest=True)
     gml[pv[i]], wpcl[pv[i]] = g[i], pw[i]
     p = np.degrees(np.angle(-lgf))
     p = np.where(p <= -180.0, p + 360.0, p)
-    pms = _fr._split_by_variant(p, gv, V)
+    pms = _split_by_variant(p, gv, V)
     i = _first_best(p, gv, np.ones(p.size, bool), V, largest=False)
     pm[gv[i]], wgc[gv[i]] = p[i], gw[i]
     has = np.bincount(gv, minlength=V) > 0
@@ -230,9 +234,9 @@ def encirclements(fb: FreqBatch, *, grid: np.ndarray | None = None, marginal_tol
     ndarray (V,) of int
     """
     V, dt = fb.nvar, fb.dt
-    axis = _fr._axis_roots(fb.poles, dt, axis_tol=1e-9)
-    w0, mask0, L0, smp = _fr._crossing_setup(fb, grid)
-    roots = _fr._phase_crossings_all(smp, dt, w0, mask0, L0, xrtol)
+    axis = _axis_roots(fb.poles, dt, axis_tol=1e-9)
+    w0, mask0, L0, smp = _crossing_setup(fb, grid)
+    roots = _phase_crossings_all(smp, dt, w0, mask0, L0, xrtol)
     w, mask, L = w0, mask0, L0
     n = w.size
     F = 1.0 + L
@@ -321,7 +325,7 @@ def encirclements(fb: FreqBatch, *, grid: np.ndarray | None = None, marginal_tol
             if r < 0:
                 raise ComputeError(f"variant {v}: the loop gain is improper; add roll-off")
             if r == 0 and abs(L[v, -1]) >= 1.0 - 1e-9:
-                tau = _fr.estimate_delay(fb) if tau is None else tau
+                tau = estimate_delay(fb) if tau is None else tau
                 if tau[v] * w[-1] > 1e-3:
                     raise ComputeError(f"variant {v}: |L| >= 1 at high frequency with a delay; "
                                        "the closed loop is not of retarded type, reduce the "
@@ -369,7 +373,7 @@ def disk_margin(fb: FreqBatch, *, grid: np.ndarray | None = None, xrtol: float =
     The gain interval is unbounded (``+-inf`` dB) once ``alpha/2 >= 1 - unbounded_tol``.
     """
     V = fb.nvar
-    w = _fr.frequency_grid(fb) if grid is None else np.asarray(grid, float)
+    w = frequency_grid(fb) if grid is None else np.asarray(grid, float)
 
     def half_diff(L):
         with np.errstate(divide="ignore", invalid="ignore"):
@@ -378,11 +382,11 @@ def disk_margin(fb: FreqBatch, *, grid: np.ndarray | None = None, xrtol: float =
         return np.where(np.isfinite(L), h, -0.5)
 
     def ev(x):
-        return half_diff(_fr._call(fb.evaluate, x, V))
+        return half_diff(_call(fb.evaluate, x, V))
 
-    smp = _fr._crossing_setup(fb, w)[3]
+    smp = _crossing_setup(fb, w)[3]
     feats = [np.concatenate([np.ravel(p), np.ravel(z)]) for p, z in zip(fb.poles, fb.zeros)]
-    peak, wpk = _fr.peak_gain(ev, fb.dt, [np.empty(0)] * V, feats, grid=w, xrtol=xrtol,
+    peak, wpk = peak_gain(ev, fb.dt, [np.empty(0)] * V, feats, grid=w, xrtol=xrtol,
                               pairwise=lambda vi, x: half_diff(smp.at(vi, x)))
     with np.errstate(divide="ignore"):
         alpha = np.where(np.isfinite(peak), 1.0 / peak, 0.0)

@@ -11,7 +11,7 @@ import math
 from dataclasses import dataclass
 from types import MappingProxyType
 
-from ..errors import SpecError
+from ..errors import SpecError, UnknownMetricError
 
 __all__ = ["MetricDef", "METRICS", "STANDARD_SUITE", "get_metric", "metric_names",
            "resolve_settings", "SETTING_DOCS"]
@@ -164,13 +164,15 @@ def get_metric(name: str) -> MetricDef:
 
     Raises
     ------
-    SpecError
-        Unknown name; the message lists the valid ones.
+    UnknownMetricError
+        Unknown name (a :class:`~ledger.errors.SpecError` and an
+        :class:`~ledger.errors.IntegrityViolation`); the message lists the valid ones.
     """
     try:
         return METRICS[name]
     except (KeyError, TypeError) as e:
-        raise SpecError(f"unknown metric {name!r}; valid metrics: {', '.join(METRICS)}") from e
+        raise UnknownMetricError(f"unknown metric {name!r}; valid metrics: "
+                                 f"{', '.join(METRICS)}") from e
 
 
 def resolve_settings(name: str, settings: dict | None = None) -> dict:

@@ -51,8 +51,9 @@ from ledger.engine.ssbatch import (_PADE13, _THETA13, _channel, balance,  # noqa
 from ledger.engine.types import SSBatch
 from ledger.errors import ComputeError, UnstableLoopError
 
-__all__ = ["TimeGrid", "Pieces", "modes", "check_stable", "horizon", "equilibrium", "simulate",
-           "has_delay", "mats", "expm_batch", "balance", "balance_scales"]
+# ``Pieces`` and ``simulate`` live in ledger.engine.simulation (which imports this module)
+__all__ = ["TimeGrid", "modes", "check_stable", "horizon", "equilibrium", "has_delay", "mats",
+           "expm_batch", "balance", "balance_scales"]
 
 
 @dataclass(frozen=True)

@@ -1,8 +1,11 @@
 """Shared data types of the numeric engine.
 
 These are the contracts between the loop assembly (``engine/loop.py``), the time-domain
-kernels (``engine/timeresp.py``), the frequency-domain kernels (``engine/freqresp.py`` and the
-modules it gathers) and the plant-family builder (``systems/family.py``).  Nothing here imports SQLAlchemy or Textual.
+kernels (``engine/timeresp.py``) and the frequency-domain kernels (``engine/freqresp.py`` and the
+modules it gathers).  ``Variant`` and ``PlantFamily`` live in the systems layer
+(``ledger/systems/variants.py``, used by the plant-family builder) and are re-exported here,
+so the engine imports systems and never the other way round.  Nothing here imports SQLAlchemy
+or Textual.
 
 Conventions
 -----------
@@ -13,68 +16,14 @@ Conventions
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
-from typing import Any, Callable
+from dataclasses import dataclass
+from typing import Callable
 
 import numpy as np
 
+from ledger.systems.variants import VARIANT_KINDS, PlantFamily, Variant  # noqa: F401 (public names)
+
 __all__ = ["Variant", "PlantFamily", "SSBatch", "FreqBatch"]
-
-VARIANT_KINDS = ("nominal", "corner", "sample", "fidelity", "measured")
-
-
-@dataclass(frozen=True)
-class Variant:
-    """One member of a plant family.
-
-    Parameters
-    ----------
-    name : str
-        Short unique label, e.g. ``"nominal"``, ``"corner:J+,b-"``, ``"sample:017"``,
-        ``"fidelity:full-order"``.
-    kind : str
-        One of ``nominal``, ``corner``, ``sample``, ``fidelity``, ``measured``.
-    system : control.LTI
-        A SISO python-control ``TransferFunction`` or ``StateSpace``.
-    params : dict
-        Parameter values that produced this variant (empty for non-parametric ones).
-    delay : float
-        Plant input (transport) delay in seconds that belongs to this variant, >= 0.
-    """
-
-    name: str
-    kind: str
-    system: Any
-    params: dict = field(default_factory=dict)
-    delay: float = 0.0
-
-
-@dataclass(frozen=True)
-class PlantFamily:
-    """A nominal plant plus its tolerance corners, Monte Carlo samples and fidelity models.
-
-    ``variants[0]`` is always the nominal design model.
-    """
-
-    variants: tuple[Variant, ...]
-
-    def __post_init__(self):
-        if not self.variants:
-            raise ValueError("a plant family needs at least one variant")
-        names = [v.name for v in self.variants]
-        if len(set(names)) != len(names):
-            raise ValueError("variant names in a family must be unique")
-
-    @property
-    def names(self) -> tuple[str, ...]:
-        return tuple(v.name for v in self.variants)
-
-    def __len__(self) -> int:
-        return len(self.variants)
-
-    @classmethod
-    def single(cls, system, name: str = "nominal", delay: float = 0.0) -> "PlantFamily":
-        return cls((Variant(name=name, kind="nominal", system=system, delay=delay),))
 
 
 @dataclass(frozen=True, eq=False)

@@ -15,10 +15,10 @@ from typing import Any, Mapping
 
 import numpy as np
 
-from ledger.engine.types import PlantFamily, Variant
 from ledger.errors import ModelError
 from ledger.systems.bounds import check_number, check_seed
 from ledger.systems.model import Model, compile_model
+from ledger.systems.variants import PlantFamily, Variant
 
 __all__ = ["ParamSpec", "build_family", "DISTRIBUTIONS"]
 

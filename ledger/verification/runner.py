@@ -42,7 +42,7 @@ def worker_pool(n_workers: int):
     import multiprocessing as mp
     from concurrent.futures import ProcessPoolExecutor
 
-    from ..engine import measure as _engine_loaded  # noqa: F401 - forked workers inherit it
+    from ..engine import kernels as _engine_loaded  # noqa: F401 - forked workers inherit it
 
     ctx = mp.get_context("fork" if "fork" in mp.get_all_start_methods() else "spawn")
     return ProcessPoolExecutor(max_workers=n_workers, mp_context=ctx, initializer=init_worker)
