@@ -336,8 +336,8 @@ def verify_workers(tmp: Path, samples: int, repeats: int = 1) -> dict:
         for w in (1, 2):
             dst = tmp / f"resonant-{w}-{r}.db"
             shutil.copy(src, dst)
-            from ledger import verify as V
-            V._FAMILIES.clear()
+            from ledger.verification.compute import clear_family_cache
+            clear_family_cache()
             with open_ledger(dst, author="bench") as lg:
                 t0 = time.perf_counter()
                 lg.verify(workers=w)
