@@ -30,14 +30,14 @@ the order of those two tuples.
 
 from __future__ import annotations
 
-from . import exports, history, loops, plants, requirements, revisions, signoff, spec, ui
+from . import exports, gate, history, loops, plants, requirements, revisions, signoff, spec, ui
 from .common import CAUTION, app, run
 from .output import short_variant
 
 __all__ = ["app", "main", "CAUTION", "run", "short_variant"]
 
 #: modules whose ``commands`` are top-level commands, in the order ``--help`` lists them
-_TOP_LEVEL = (spec, requirements, loops, revisions, history, exports, signoff, ui)
+_TOP_LEVEL = (spec, requirements, loops, revisions, history, exports, gate, signoff, ui)
 #: ``(name, module)``: ``loopledger <name> ...`` is ``module.group``
 _GROUPS = (("plant", plants), ("loop", loops), ("requirement", requirements),
            ("revision", revisions), ("baseline", signoff))

@@ -18,7 +18,7 @@ __all__ = ["commands", "export_matrix_cmd"]
 commands = typer.Typer()
 
 
-def _selection(loop: str | None, revision: list[str] | None, every: bool):
+def revision_selection(loop: str | None, revision: list[str] | None, every: bool):
     if revision:
         if every:
             raise UsageError("give either --revision or --all, not both")
@@ -60,7 +60,7 @@ def export_matrix_cmd(
     f = format_for(path, fmt)
     if stale_as_skipped and f != "junit":
         raise UsageError(f"--stale-as-skipped applies to the JUnit export only, not {f}")
-    sel = _selection(loop, revision, every)
+    sel = revision_selection(loop, revision, every)
     with open_ledger() as lg:
         m = build_matrix(lg, sel, loop=loop, title=title)
         if not m.columns:
