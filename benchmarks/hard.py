@@ -21,6 +21,7 @@ import numpy as np
 
 from . import resonant as R
 from . import scenario as S
+from .sweep import baseline_one
 
 __all__ = ["child_family", "run_point", "baseline_per_variant", "floor", "accuracy",
            "growth_exponent", "verify_workers", "profile"]
@@ -96,45 +97,6 @@ def growth_exponent(points: list[dict], lo: int, hi: int) -> float:
 
 # -- the per-variant python-control loop ----------------------------------------------------
 
-def _baseline_one(C, G, w_grid, t):
-    """The per-variant python-control loop of ``benchmarks/sweep.py`` for one variant, with the
-    time vector ``t`` given to ``step_info`` and ``step_response`` (python-control's automatic
-    one fails in ``step_info`` on the order-16 loops)."""
-    import control
-
-    L = C * G
-    T = control.feedback(L, 1)
-    Sy = control.feedback(control.tf([1], [1]), L)
-    U = control.feedback(C, G)
-    poles = T.poles()
-    zeta = np.where(np.abs(poles) > 0, -poles.real / np.abs(poles), 1.0)
-    try:
-        info = control.step_info(T, T=t)
-    except (IndexError, ValueError):   # python-control fails on ill-conditioned high orders
-        info = {"RiseTime": math.nan, "SettlingTime": math.nan, "Overshoot": math.nan}
-    _, yu = control.step_response(U, T=t)
-    gm, pm, _sm, _wpc, wgc, _wms = control.stability_margins(L)
-    fr_S = control.frequency_response(Sy, w_grid)
-    fr_T = control.frequency_response(T, w_grid)
-    st_diff = np.abs(Sy(1j * w_grid) - T(1j * w_grid))
-    return {
-        "stable": float(np.all(poles.real < 0)),
-        "min_damping": float(np.min(zeta)),
-        "rise_time": float(info["RiseTime"]),
-        "settling_time": float(info["SettlingTime"]),
-        "overshoot": float(info["Overshoot"]),
-        "peak_effort": float(np.max(np.abs(yu))),
-        "gain_margin": 20 * math.log10(gm) if np.isfinite(gm) else math.inf,
-        "phase_margin": float(pm),
-        "delay_margin": math.radians(pm) / wgc if np.isfinite(wgc) and wgc > 0 else math.inf,
-        "gain_crossover": float(wgc),
-        "bandwidth": float(control.bandwidth(T)),
-        "peak_sensitivity": float(np.max(np.abs(np.squeeze(fr_S.magnitude)))),
-        "peak_complementary_sensitivity": float(np.max(np.abs(np.squeeze(fr_T.magnitude)))),
-        "disk_margin": 2.0 / float(np.max(st_diff)),
-    }
-
-
 def baseline_per_variant(n_slice: int, order: int = 4) -> dict:
     """The per-variant python-control loop (as in ``benchmarks/sweep.py``, with a 4 s,
     4,001-point time vector for the step metrics) on the first ``n_slice`` variants of the
@@ -146,10 +108,10 @@ def baseline_per_variant(n_slice: int, order: int = 4) -> dict:
     rows = []
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        _baseline_one(C, fam.variants[0].system, w, t)       # imports and first-call set-up
+        baseline_one(C, fam.variants[0].system, w, t, grid_check=False)  # imports, first call
         t0, c0 = time.perf_counter(), time.process_time()
         for v in fam.variants:
-            rows.append(_baseline_one(C, v.system, w, t))
+            rows.append(baseline_one(C, v.system, w, t, grid_check=False))
         dt, cpu = time.perf_counter() - t0, time.process_time() - c0
     values = {k: np.array([r[k] for r in rows], float) for k in rows[0] if not k.startswith("_")}
     failed = int(np.sum(np.isnan(values["rise_time"])))
