@@ -233,3 +233,27 @@ def test_revision_add_exit_on_broke(cli):
     assert res.exit_code == 3 and "BROKE" in res.output and "p/r2 recorded" in res.output
     res = cli("revision", "add", "p", "gain(0.9)", "--why", "less", "--exit-on", "broke")
     assert res.exit_code == 0
+
+
+def test_output_closed_by_its_reader_stops_quietly(tmp_path):
+    """``loopledger ... | head``: when the reader closes the pipe the command stops quietly
+    (no 'internal error', no traceback) with a non-zero status (common practice, no source).
+    Both the output of a small table (written at exit) and of a long one (written while the
+    command runs) are covered."""
+    import os
+    import subprocess
+    import sys
+
+    from ledger.api import open_ledger
+
+    db = tmp_path / "p.db"
+    with open_ledger(db, create=True, author="tester") as lg:
+        lg.add_plant("p", "1/(s*(s+1))")
+    for args in (["plant", "list"], ["metrics", "--json"]):
+        read_end, write_end = os.pipe()
+        os.close(read_end)  # the reader is gone before anything is written
+        proc = subprocess.run([sys.executable, "-m", "ledger", "--db", str(db), *args],
+                              stdout=write_end, stderr=subprocess.PIPE, text=True, timeout=120)
+        os.close(write_end)
+        assert proc.returncode == 1, (args, proc.stderr)
+        assert proc.stderr.strip() == "", (args, proc.stderr)

@@ -11,6 +11,8 @@ from __future__ import annotations
 
 import functools
 import json
+import os
+import sys
 from dataclasses import dataclass
 from typing import Optional
 
@@ -153,6 +155,11 @@ def fail(msg: str) -> None:
     raise typer.Exit(1)
 
 
+#: exit status when standard output is closed by its reader (``... | head``); the same status
+#: click gives when the pipe breaks while it flushes at the end
+EXIT_BROKEN_PIPE = 1
+
+
 def errors_to_exit(fn):
     """Decorate a command: a :class:`~ledger.errors.LedgerError` becomes one line
     ``error: ...`` and exit status 1, an interrupt too; any other exception is an internal
@@ -171,6 +178,12 @@ def errors_to_exit(fn):
             fail("interrupted; nothing was written by the unfinished command")
         except (typer.Exit, typer.Abort, SystemExit):
             raise
+        except BrokenPipeError:
+            # the reader went away (``... | head``): stop quietly, as command-line tools do;
+            # what was recorded stays recorded
+            devnull = os.open(os.devnull, os.O_WRONLY)
+            os.dup2(devnull, sys.stdout.fileno())
+            raise typer.Exit(EXIT_BROKEN_PIPE) from None
         except Exception as e:  # noqa: BLE001 - last resort: one line, not a traceback
             if config.debug():
                 raise
