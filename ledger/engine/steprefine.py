@@ -68,24 +68,6 @@ _TAYLOR_DEGREE = 24
 _TAYLOR_RHO = 2.0
 
 
-def _osborne(M: np.ndarray, sweeps: int = 6) -> np.ndarray:
-    """Diagonal balancing ``D^-1 M D`` of every matrix of a stack (Osborne's iteration with
-    power-of-two factors, so the rescaling is exact): the scale vectors ``d`` (V, m).  The
-    moments ``Cy M^i Z0`` do not change; the norm that bounds the series remainder shrinks."""
-    V, m = M.shape[0], M.shape[-1]
-    d = np.ones((V, m))
-    A = np.abs(M) * (1.0 - np.eye(m))
-    for _ in range(sweeps):
-        for i in range(m):
-            c = np.sum(A[:, :, i] / d, axis=1) * d[:, i]
-            r = np.sum(A[:, i, :] * d, axis=1) / d[:, i]
-            ok = (c > 0) & (r > 0)
-            with np.errstate(divide="ignore", invalid="ignore"):
-                f = np.where(ok, np.exp2(np.round(0.5 * np.log2(np.where(ok, r / c, 1.0)))), 1.0)
-            d[:, i] *= f
-    return d
-
-
 @dataclass(frozen=True)
 class _Problems:
     """Refinement problems ``(variant v, step k)``: ``y(t_k + s) = Cy expm(M s) Z0[k]``.
@@ -109,12 +91,11 @@ class _Problems:
         """(coefficients (5, P, K+1) in powers of s of y, y', y'' and of the rounding
         scales of y and y'; ||M||_1 per problem)."""
         K = _TAYLOR_DEGREE
-        d = _osborne(self.M)[self.v]            # powers of two: exact rescaling
-        Mv = self.M[self.v] * d[:, None, :] / d[:, :, None]
+        Mv = self.M[self.v]
         aM = np.abs(Mv)
-        z = self.Z0[self.v, self.k] / d
+        z = self.Z0[self.v, self.k]
         az = np.abs(z)
-        Cy = self.Cy[self.v] * d
+        Cy = self.Cy[self.v]
         aC = np.abs(Cy)
         mom = np.empty((self.v.size, K + 3))
         amom = np.empty((self.v.size, K + 2))
