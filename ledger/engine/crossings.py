@@ -107,7 +107,12 @@ def loop_pairwise(fb: FreqBatch, kind: str = "L"):
     """
     if kind not in ("L", "S", "T", "S-1/2"):
         raise ValueError(f"unknown loop function {kind!r}; use 'L', 'S', 'T' or 'S-1/2'")
-    smp = _crossing_setup(fb, None)[3]
+    return pairwise_from(_crossing_setup(fb, None)[3], kind)
+
+
+def pairwise_from(smp, kind: str):
+    """The pairwise evaluator of :func:`loop_pairwise` on a given sampler of L; it carries
+    ``dlog(vi, w)``, the frequency derivative of the function's logarithm."""
 
     def at(vi, x):
         lv = smp.at(vi, x)
@@ -120,6 +125,23 @@ def loop_pairwise(fb: FreqBatch, kind: str = "L"):
             if kind == "T":
                 return np.where(fin, lv / (1.0 + lv), 1.0)
             return np.where(fin, (1.0 - lv) / (2.0 * (1.0 + lv)), -0.5)
+
+    def dlog(vi, x):
+        """``d ln F / dw`` of the function from ``d ln L / dw`` (NaN where unknown)."""
+        dl = smp.dlog(vi, x)
+        if kind == "L":
+            return dl
+        lv = smp.at(vi, x)
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            if kind == "S":
+                out = -lv * dl / (1.0 + lv)
+            elif kind == "T":
+                out = dl / (1.0 + lv)
+            else:
+                out = -2.0 * lv * dl / (1.0 - lv * lv)
+        return np.where(np.isfinite(lv), out, np.nan)
+
+    at.dlog = dlog
     return at
 
 

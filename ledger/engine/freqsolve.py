@@ -94,6 +94,27 @@ class _Sampler:
                 r = r * np.exp(-1j * w[None, :] * self.tau[v0:v1, None])
         return r
 
+    def dlog(self, vi, w) -> np.ndarray:
+        """``d ln H / dw`` of variant ``vi[k]`` at ``w[k]`` from its poles, zeros and delay
+        (complex; its real part is ``d ln|H| / dw``); NaN for variants without a verified
+        model."""
+        vi = np.asarray(vi, int)
+        w = np.asarray(w, float)
+        out = np.full(w.size, np.nan + 0j)
+        m = self.ok[vi]
+        if not m.any():
+            return out
+        v, ww = vi[m], w[m]
+        x = (1j * ww if self.dt is None else np.exp(1j * ww * self.dt))[:, None]
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            r = (np.sum(np.where(self.Zq[v], 1.0 / (x - self.Zp[v]), 0.0), axis=1)
+                 - np.sum(np.where(self.Pq[v], 1.0 / (x - self.Pp[v]), 0.0), axis=1))
+            if self.dt is None:
+                out[m] = 1j * r - 1j * self.tau[v]
+            else:
+                out[m] = 1j * self.dt * x[:, 0] * r
+        return out
+
     def at(self, vi, w) -> np.ndarray:
         """Complex values H_{vi[k]}(w[k])."""
         vi = np.asarray(vi, int)
@@ -151,7 +172,44 @@ def _vsolve(fun, vi, a, b, fa, fb, *, xrtol: float, maxiter: int = 200) -> np.nd
     return root
 
 
-def _vmaximize(fun, vi, a, b, *, xrtol: float, maxiter: int = 300) -> tuple[np.ndarray, np.ndarray]:
+def _vmaximize(fun, vi, a, b, *, xrtol: float, maxiter: int = 300,
+               slope=None) -> tuple[np.ndarray, np.ndarray]:
+    """Maximum of ``fun(vi, x)`` on every ``[a, b]`` at once.
+
+    With ``slope(vi, x)`` (the derivative of ``fun`` or of an increasing function of it, NaN
+    where unknown), brackets whose ends have slopes of opposite sign (+ then -) are solved as
+    the root of the slope (Illinois false position, superlinear); the others, and all of them
+    without ``slope``, by golden-section search.  Both stop at the relative frequency width
+    ``xrtol``."""
+    a, b = np.array(a, float), np.array(b, float)
+    vi = np.asarray(vi, int)
+    if slope is None or a.size == 0:
+        return _golden(fun, vi, a, b, xrtol=xrtol, maxiter=maxiter)
+    with np.errstate(invalid="ignore"):
+        sa, sb = np.asarray(slope(vi, a), float), np.asarray(slope(vi, b), float)
+        root = np.isfinite(sa) & np.isfinite(sb) & (sa > 0) & (sb < 0)
+    x = np.empty(a.size)
+    f = np.empty(a.size)
+    if root.any():
+        r = np.flatnonzero(root)
+        try:
+            x[r] = _vsolve(slope, vi[r], a[r], b[r], sa[r], sb[r], xrtol=xrtol)
+        except ComputeError:
+            root[:] = False
+        else:
+            f[r] = fun(vi[r], x[r])
+            # the root of the slope is the maximum only if it beats both bracket ends
+            fa, fb = fun(vi[r], a[r]), fun(vi[r], b[r])
+            bad = ~(np.isfinite(f[r]) & (f[r] >= fa) & (f[r] >= fb))
+            root[r[bad]] = False
+    rest = np.flatnonzero(~root)
+    if rest.size:
+        x[rest], f[rest] = _golden(fun, vi[rest], a[rest], b[rest], xrtol=xrtol,
+                                   maxiter=maxiter)
+    return x, f
+
+
+def _golden(fun, vi, a, b, *, xrtol: float, maxiter: int = 300) -> tuple[np.ndarray, np.ndarray]:
     """Golden-section search for the maximum of ``fun(vi, x)`` on every ``[a, b]`` at once."""
     g = (math.sqrt(5.0) - 1.0) / 2.0
     a, b = np.array(a, float), np.array(b, float)

@@ -27,7 +27,7 @@ import numpy as np
 
 from ledger.errors import ComputeError
 from ledger.engine.types import FreqBatch
-from ledger.engine.crossings import (_crossing_setup, _gain_crossings, _phase_crossings_all,
+from ledger.engine.crossings import (_crossing_setup, pairwise_from, _gain_crossings, _phase_crossings_all,
                                      _phase_crossovers_from, _split_by_variant)
 from ledger.engine.freqeval import _axis_roots, _call, estimate_delay
 from ledger.engine.freqgrid import frequency_grid
@@ -387,7 +387,7 @@ def disk_margin(fb: FreqBatch, *, grid: np.ndarray | None = None, xrtol: float =
     smp = _crossing_setup(fb, w)[3]
     feats = [np.concatenate([np.ravel(p), np.ravel(z)]) for p, z in zip(fb.poles, fb.zeros)]
     peak, wpk = peak_gain(ev, fb.dt, [np.empty(0)] * V, feats, grid=w, xrtol=xrtol,
-                              pairwise=lambda vi, x: half_diff(smp.at(vi, x)))
+                              pairwise=pairwise_from(smp, "S-1/2"))
     with np.errstate(divide="ignore"):
         alpha = np.where(np.isfinite(peak), 1.0 / peak, 0.0)
     if check_stability:

@@ -166,7 +166,21 @@ def peak_gain(evaluate, dt, poles, zeros, *, w_range: tuple[float, float] = (0.0
             val = np.abs(at(vv, x))
             return np.where(np.isfinite(val), val, -math.inf)
 
-        x, f = _vmaximize(fun, vi, a, b, xrtol=xrtol)
+        # the slope of ln|H| where the evaluator knows it (rational-and-delay models)
+        dlog = getattr(at, "dlog", None) or getattr(getattr(at, "__self__", None), "dlog", None)
+        slope = None if dlog is None else (lambda vv, x: np.real(dlog(vv, x)))
+        if slope is not None:
+            # a grid maximum between two slopes of one sign that beats its higher neighbour
+            # only by rounding (a plateau, e.g. |S| -> 1 at high frequency) is no peak: the
+            # function is monotone there and its grid value stands
+            with np.errstate(invalid="ignore"):
+                sa, sb = slope(vi, a), slope(vi, b)
+                hk = hm[vi, k]
+                hn = np.maximum(hm[vi, np.maximum(k - 1, 0)], hm[vi, np.minimum(k + 1, w.size - 1)])
+                mono = (np.isfinite(sa) & np.isfinite(sb) & (sa * sb > 0)
+                        & (hk - hn <= 1e-9 * np.abs(hk)))
+            vi, a, b = vi[~mono], a[~mono], b[~mono]
+        x, f = _vmaximize(fun, vi, a, b, xrtol=xrtol, slope=slope)
         # the largest refined value of each variant (the first one on ties) where it beats
         # the grid maximum
         fv = np.where(np.isfinite(f), f, -math.inf)
