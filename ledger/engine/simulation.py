@@ -61,7 +61,7 @@ def _propagate(E: np.ndarray, out: np.ndarray) -> None:
         k += j
 
 
-#: the last delay-free propagation: ((dt, u, grid segments, A, B), states); read-only states
+#: the last delay-free propagation: (((dt, u, A shape, A, B), grid segments), states), read-only
 _LAST_PROPAGATION: list = [None]
 
 
@@ -73,17 +73,31 @@ def _sim_nodelay(sys: SSBatch, u: float, grid: TimeGrid):
     M[:, :n, n] = B
     Cy = np.concatenate([C, D[:, None]], axis=1)
     # the states depend on (A, B, u, grid) only: paths that share them (r->y and r->u of one
-    # loop) share one propagation
-    key = (sys.dt, u, tuple(grid.segments), A.shape, A.tobytes(), B.tobytes())
+    # loop) share one propagation.  A grid whose segments begin with those of the last one
+    # (a horizon extended by :meth:`TimeGrid.extended`) continues it from its last state, and
+    # a grid that is a prefix of the last one reads its first samples: the same operations in
+    # the same order, so the states are bitwise those of a propagation from t = 0.
+    key = (sys.dt, u, A.shape, A.tobytes(), B.tobytes())
+    segs = tuple(grid.segments)
     last = _LAST_PROPAGATION[0]
-    if last is not None and last[0] == key:
-        Z = last[1]
-    else:
+    Z = None
+    start, k = 0, 0
+    prev = None
+    if last is not None and last[0][0] == key:
+        lsegs, Zl = last[0][1], last[1]
+        if segs[:len(lsegs)] == lsegs:
+            prev, start = Zl, len(lsegs)
+        elif lsegs[:len(segs)] == segs:
+            Z = Zl[:, :grid.nsamples]
+    if Z is None:
         Z = np.empty((V, grid.nsamples, n + 1))             # augmented states at the samples
-        Z[:, 0, :n] = 0.0
-        Z[:, 0, n] = u
-        k = 0
-        for h, count in grid.segments:
+        if prev is None:
+            Z[:, 0, :n] = 0.0
+            Z[:, 0, n] = u
+        else:
+            Z[:, :prev.shape[1]] = prev
+            k = prev.shape[1] - 1
+        for h, count in segs[start:]:
             if sys.dt is not None:
                 E = np.zeros_like(M)
                 E[:, :n, :n] = A
@@ -94,7 +108,7 @@ def _sim_nodelay(sys: SSBatch, u: float, grid: TimeGrid):
             _propagate(E, Z[:, k:k + count + 1])
             k += count
         Z.flags.writeable = False
-        _LAST_PROPAGATION[0] = (key, Z)
+        _LAST_PROPAGATION[0] = ((key, segs), Z)
     if sys.dt is not None:
         y = (Z @ Cy[:, :, None])[..., 0]
         return M, Cy, Z[:, :-1], y[:, :-1], y[:, 1:], None, None, Z[:, -1, :n]
