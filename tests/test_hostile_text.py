@@ -281,6 +281,59 @@ def test_terminal_tables_escape_control_characters(hostile):
     assert "\x1b" not in res.output and "\\u001b" in res.output
 
 
+#: what may drive a terminal: C0 controls but tab and line breaks, DEL, C1 controls
+TERMINAL_CONTROL = re.compile("[\x00-\x08\x0b\x0c\x0e-\x1f\x7f-\x9f]")
+
+
+@pytest.fixture
+def hostile_free_text(db_url):
+    """A ledger whose free-text fields (not its names and keys) were edited by SQL to hold
+    control characters and ESC sequences."""
+    h = _hostile(db_url)
+    with open_ledger(db_url, create=True, author="tester") as lg:
+        _base(lg)
+        lg.add_requirement("R-1", title="PM", statement="PM", metric="phase_margin",
+                           limit=">= 30 deg", loops=["lp"])
+        lg.add_revision("lp", "pi(1, 1)", rationale="first")
+    url = db_url if "://" in db_url else f"sqlite:///{db_url}"
+    eng = create_engine(url)
+    with eng.begin() as c:
+        for table, cols in {"requirement_version": ["title", "statement", "rationale", "note"],
+                            "loop": ["description"], "revision": ["rationale", "author"],
+                            "plant": ["description"], "plant_version": ["note", "author"]
+                            }.items():
+            for col in cols:
+                c.execute(text(f"UPDATE {table} SET {col} = {col} || :h"), {"h": h})
+    eng.dispose()
+    return db_url
+
+
+@pytest.mark.parametrize("args", [("plant", "show", "p"), ("loop", "show", "lp"),
+                                  ("requirement", "show", "R-1"), ("revision", "show", "lp"),
+                                  ("revision", "list", "lp"), ("trace",)],
+                         ids=lambda a: " ".join(a))
+def test_single_record_views_escape_control_characters(hostile_free_text, args):
+    # stored text echoed line by line (not through a table) is escaped the same way
+    res = _cli(f"--db={hostile_free_text}", *args)
+    assert res.exit_code == 0, res.output
+    m = TERMINAL_CONTROL.search(res.output)
+    assert m is None, f"U+{ord(m.group()):04X} reached the terminal: {res.output!r}"
+    assert "\\u001b" in res.output, res.output
+
+
+@pytest.mark.parametrize("args", [("plant", "show", "p", "--json"),
+                                  ("requirement", "show", "R-1", "--json")],
+                         ids=lambda a: " ".join(a))
+def test_json_views_keep_the_stored_text(hostile_free_text, args):
+    # the escaping keeps JSON's meaning: the parsed text is the stored text (NUL aside,
+    # which PostgreSQL cannot store)
+    res = _cli(f"--db={hostile_free_text}", *args)
+    assert res.exit_code == 0, res.output
+    assert TERMINAL_CONTROL.search(res.output) is None
+    stored = [v for v in json.loads(res.output).values() if isinstance(v, str)]
+    assert any("\x1b[31m\x7f\x85\ufffe" in v for v in stored), res.output
+
+
 # -- the escaping helpers against the readers themselves ---------------------------------
 from hypothesis import given, settings  # noqa: E402
 from hypothesis import strategies as st  # noqa: E402

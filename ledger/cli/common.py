@@ -20,6 +20,7 @@ import typer
 import typer.core
 
 from ..errors import LedgerError, UsageError
+from ..text import printable
 
 __all__ = ["CAUTION", "WIDE_HELP", "JSON_OPTION", "WIDE_OPTION", "app", "state",
            "errors_to_exit", "run", "fail", "open_ledger", "emit_json", "set_wide",
@@ -29,6 +30,25 @@ CAUTION = (
     "Caution: model-based verification does not replace hardware testing, applicable safety "
     "standards and qualified review."
 )
+
+
+def _terminal_safe_echo(message=None, file=None, nl: bool = True, err: bool = False,
+                        color=None) -> None:
+    """``typer.echo`` for every command: stored text is echoed with its control characters
+    (ESC sequences, C1 controls, DEL...) escaped as ``\\uXXXX``, so text written into the
+    database behind the ledger's back cannot drive the terminal.  Tab and line breaks stay;
+    JSON output keeps its meaning (``\\uXXXX`` is a JSON escape of the same character)."""
+    if isinstance(message, str):
+        message = printable(message)
+    _click_echo(message, file=file, nl=nl, err=err, color=color)
+
+
+#: the echo underneath (click's); kept when this module is imported again
+_click_echo = getattr(typer.echo, "wrapped", typer.echo)
+_terminal_safe_echo.wrapped = _click_echo
+# the command modules call typer.echo: one rule for all of them (tables escape their cells
+# themselves, ledger/cli/output.py)
+typer.echo = _terminal_safe_echo
 
 WIDE_HELP = "Every table column whatever the terminal width (also a global option)."
 
