@@ -80,12 +80,18 @@ class LoopSpec:
     sample_time : float or None
         ``None``: continuous controller.  Otherwise the controller is discrete with this
         sample time, s (> 0).
-    computation_delay : int
-        Whole samples of computation delay, ``z^-d`` (digital loops only; >= 0).
+    computation_delay : int or float
+        Computation delay in samples (digital loops only; >= 0).  Whole samples are ``z^-d``;
+        a fractional part (processor latency, e.g. 0.3 samples) is exact: it joins the loop's
+        transport delay that the zero-order-hold discretisation of the plant carries through
+        the modified z-transform (:mod:`ledger.engine.discretize`).
     actuator_limit : float or None
         Actuator limit in plant-input units, for the effort metric; ``None`` means none.
     controller_discretization : str or None
-        ``None`` refuses a continuous controller in a digital loop; ``"tustin"`` converts it.
+        ``None`` refuses a continuous controller in a digital loop; a method text
+        (``"zoh"``, ``"tustin"``, ``"tustin@W"`` pre-warped at W rad/s or ``"tustin@FHz"``,
+        ``"matched"``; :mod:`ledger.engine.c2d`) converts it.  A discrete controller is used
+        as given whatever the method.
     """
 
     sensor: Any = None
@@ -102,8 +108,9 @@ class LoopSpec:
         _check_time(self.output_delay, "output_delay")
         _check_time(self.sample_time, "sample_time", allow_zero=False)
         d = self.computation_delay
-        if isinstance(d, bool) or not isinstance(d, (int, np.integer)) or d < 0:
-            raise ModelError(f"computation_delay {d!r} is not a whole number of samples >= 0")
+        if isinstance(d, bool) or not isinstance(d, (int, np.integer, float, np.floating)) \
+                or not math.isfinite(d) or d < 0:
+            raise ModelError(f"computation_delay {d!r} is not a number of samples >= 0")
         if d and self.sample_time is None:
             raise ModelError("computation_delay needs a digital loop; give sample_time too")
         if self.actuator_limit is not None:
@@ -111,9 +118,9 @@ class LoopSpec:
             if not (math.isfinite(a) and a > 0):
                 raise ModelError(f"actuator_limit {self.actuator_limit!r} is not positive and "
                                  "finite; give a limit > 0 or None")
-        if self.controller_discretization not in (None, "tustin"):
-            raise ModelError(f"controller_discretization {self.controller_discretization!r} "
-                             "is unknown; use None or 'tustin'")
+        from .c2d import parse_discretization
+
+        parse_discretization(self.controller_discretization)  # a one-line error if unknown
 
 
 def _prepare_controller(controller, loop: LoopSpec) -> Block:
@@ -121,13 +128,16 @@ def _prepare_controller(controller, loop: LoopSpec) -> Block:
     if isinstance(controller, (control.TransferFunction, control.StateSpace)):
         cdt = controller.dt
         if ts is not None and (cdt is None or cdt == 0) and _order(controller) > 0:
-            if loop.controller_discretization == "tustin":
+            if loop.controller_discretization:
+                from .c2d import discretize
+
                 _ = make_block(controller, "controller")  # properness check first
-                controller = control.sample_system(controller, ts, method="tustin")
+                controller = discretize(controller, ts, loop.controller_discretization)
             else:
                 raise ModelError("controller is continuous but the loop is digital "
-                                 f"(sample_time={ts} s); give it in z with that dt or set "
-                                 "controller_discretization='tustin'")
+                                 f"(sample_time={ts} s); give it in z with that dt or a "
+                                 "discretisation method (discretization='zoh', 'tustin', "
+                                 "'tustin@W' or 'matched')")
         elif ts is None and cdt not in (None, 0):
             raise ModelError(f"controller is discrete (dt={cdt} s) but the loop is continuous; "
                              "set sample_time to the controller's dt")

@@ -41,7 +41,8 @@ LOOP_SETTINGS = MappingProxyType({
     "delay": "input_delay", "input_delay": "input_delay", "output_delay": "output_delay",
     "sample_time": "sample_time", "computation_delay": "computation_delay",
     "sensor": "sensor", "prefilter": "prefilter", "actuator_limit": "actuator_limit",
-    "controller_discretization": "controller_discretization"})
+    "controller_discretization": "controller_discretization",
+    "discretization": "controller_discretization"})
 
 #: ``measure`` keyword -> metric setting.
 METRIC_SETTINGS = MappingProxyType({
@@ -270,7 +271,8 @@ def measure(plant, controller, names: Iterable[str] | None = None, **settings) -
     **settings
         Loop settings (``delay`` = ``input_delay``, ``output_delay``, ``sample_time``,
         ``computation_delay``, ``sensor``, ``prefilter``, ``actuator_limit``,
-        ``controller_discretization``) and metric settings (``amplitude`` or
+        ``discretization`` = ``controller_discretization``: ``"zoh"``, ``"tustin"``,
+        ``"tustin@W"``, ``"matched"``) and metric settings (``amplitude`` or
         ``step_amplitude``, ``settling_band``, ``settling_basis``, ``rise_limits``,
         ``frequency``, ``band``), applied to every requested metric that takes them.
 
