@@ -20,6 +20,7 @@ from sqlalchemy import (
     MetaData,
     String,
     Text,
+    text,
     UniqueConstraint,
 )
 from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column, relationship
@@ -132,9 +133,11 @@ class Revision(Base):
     # digital controllers (docs/digital.md): how a continuous design was discretised, the
     # number format of the coefficients, and the discrete controller verified (z text) when
     # it differs from the text entered; all empty for a controller verified as written
-    discretization: Mapped[str] = mapped_column(String(80), default="", server_default="")
-    number_format: Mapped[str] = mapped_column(String(40), default="", server_default="")
-    verified_text: Mapped[str] = mapped_column(Text, default="", server_default="")
+    discretization: Mapped[str] = mapped_column(String(80), default="",
+                                                server_default=text("''"))
+    number_format: Mapped[str] = mapped_column(String(40), default="",
+                                               server_default=text("''"))
+    verified_text: Mapped[str] = mapped_column(Text, default="", server_default=text("''"))
 
     loop: Mapped[Loop] = relationship()
 

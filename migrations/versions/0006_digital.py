@@ -22,11 +22,11 @@ depends_on = None
 def upgrade() -> None:
     with op.batch_alter_table('revision', schema=None) as batch_op:
         batch_op.add_column(sa.Column('discretization', sa.String(length=80), nullable=False,
-                                      server_default=''))
+                                      server_default=sa.text("''")))
         batch_op.add_column(sa.Column('number_format', sa.String(length=40), nullable=False,
-                                      server_default=''))
+                                      server_default=sa.text("''")))
         batch_op.add_column(sa.Column('verified_text', sa.Text(), nullable=False,
-                                      server_default=''))
+                                      server_default=sa.text("''")))
 
 
 def downgrade() -> None:
