@@ -256,7 +256,33 @@ _COMPUTE = {
     "disk_phase_margin": lambda c, s: _disk_phase(c),
     "min_damping": lambda c, s: _poles(c, min_damping),
     "decay_rate": lambda c, s: _poles(c, decay_rate),
+    "quantization_pole_shift": lambda c, s: _pole_shift(c),
 }
+
+
+def _pole_shift(ctx) -> np.ndarray:
+    """Per variant under the mask: the largest closed-loop pole movement caused by the
+    controller's quantisation (:func:`ledger.engine.quantize.pole_shift`)."""
+    from dataclasses import replace
+
+    from .loop import assemble
+    from .quantize import pole_shift
+    from .types import PlantFamily
+
+    pl = ctx.asm
+    idx = ctx.g.index[ctx.m]
+    if pl.reference is None:
+        return np.zeros(idx.size)
+    if ctx.g.poles is None:
+        raise ComputeError("quantization_pole_shift needs a digital loop")
+    ref_loop = replace(pl.loop, number_format=None, reference_controller=None,
+                       controller_discretization=None)
+    rows = [ctx.g.poles[j] for j in np.flatnonzero(ctx.m)]
+    out = []
+    for i, moved in zip(idx, rows):
+        ref = assemble(PlantFamily((pl.family.variants[int(i)],)), pl.reference, ref_loop)
+        out.append(pole_shift(ref.groups[0].poles[0], moved))
+    return np.array(out, dtype=float)
 
 
 def _delay_margin(ctx):

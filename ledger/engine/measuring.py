@@ -42,7 +42,8 @@ LOOP_SETTINGS = MappingProxyType({
     "sample_time": "sample_time", "computation_delay": "computation_delay",
     "sensor": "sensor", "prefilter": "prefilter", "actuator_limit": "actuator_limit",
     "controller_discretization": "controller_discretization",
-    "discretization": "controller_discretization"})
+    "discretization": "controller_discretization", "number_format": "number_format",
+    "reference_controller": "reference_controller"})
 
 #: ``measure`` keyword -> metric setting.
 METRIC_SETTINGS = MappingProxyType({

@@ -142,6 +142,10 @@ _DEFS = [
     _m("decay_rate", "1/s", "higher", False, "poles", (),
        "min over closed-loop poles of -Re(s) (discrete: s = ln z / Ts; with a delay: the "
        "rightmost root of the delay equation's characteristic equation)"),
+    _m("quantization_pole_shift", "", "lower", False, "poles", (),
+       "digital loops: largest distance in the z plane between the closed-loop poles with "
+       "the coefficients as stored (number format) and with the unquantised controller, "
+       "poles matched one to one; 0 without a number format"),
 ]
 
 #: name -> MetricDef, in catalogue order.

@@ -25,7 +25,8 @@ import numpy as np
 
 from ..errors import ModelError
 
-__all__ = ["NumberFormat", "parse_number_format", "quantize_values", "quantize_text"]
+__all__ = ["NumberFormat", "parse_number_format", "quantize_values", "quantize_text",
+           "quantize_system", "pole_shift"]
 
 _FIXED = re.compile(r"^\s*fixed\s*:\s*([0-9]+)\s*/\s*([0-9]+)\s*$", re.IGNORECASE)
 
@@ -102,6 +103,12 @@ def quantize_values(values, fmt: NumberFormat, what: str = "coefficient") -> np.
     return ints / scale
 
 
+def _nonzero(b, fmt: NumberFormat) -> None:
+    if not np.any(np.asarray(b) != 0.0):
+        raise ModelError(f"every numerator coefficient rounds to 0 in {fmt.text}: the "
+                         "controller output would be 0; give more fractional bits")
+
+
 def _num(node) -> float:
     from ..systems.evaluator import evaluate_tree
 
@@ -128,6 +135,7 @@ def quantize_text(text: str, fmt, sample_time: float) -> str:
     if isinstance(tree, Coeffs) and tree.kind == "diffeq":
         b = quantize_values([_num(x) for x in tree.rows[0]], fmt, "coefficient b")
         a = quantize_values([_num(x) for x in tree.rows[1]], fmt, "coefficient a")
+        _nonzero(b, fmt)
         return f"diffeq({_fmt_list(b)}, {_fmt_list(a)})"
     if isinstance(tree, Coeffs):
         rows = [quantize_values([_num(x) for x in r], fmt, "section coefficient")
@@ -154,6 +162,45 @@ def quantize_text(text: str, fmt, sample_time: float) -> str:
     b = np.concatenate([np.zeros(max(0, n + 1 - num.size)), num])
     b = quantize_values(b, fmt, "coefficient b")
     a = quantize_values(den[1:], fmt, "coefficient a")
+    _nonzero(b, fmt)
     if not math.isfinite(float(np.sum(np.abs(b)))):  # pragma: no cover - guarded above
         raise ModelError("a quantised coefficient is not finite")
     return f"diffeq({_fmt_list(b)}, {_fmt_list(a)})"
+
+
+def quantize_system(system, fmt):
+    """A discrete SISO system with its difference-equation coefficients (``b0..bn``,
+    ``a1..an`` of the transfer function with ``a0 = 1``) as stored in ``fmt``."""
+    import control
+
+    fmt = parse_number_format(fmt)
+    if isinstance(system, (int, float, np.integer, np.floating)):
+        return float(quantize_values([float(system)], fmt, "gain")[0])
+    if isinstance(system, control.StateSpace):
+        system = control.ss2tf(system)
+    num = np.trim_zeros(np.asarray(system.num[0][0], dtype=float), "f")
+    den = np.trim_zeros(np.asarray(system.den[0][0], dtype=float), "f")
+    if num.size == 0:
+        num = np.zeros(1)
+    num, den = num / den[0], den / den[0]
+    b = quantize_values(num, fmt, "coefficient b")
+    _nonzero(b, fmt)
+    a = np.concatenate([[1.0], quantize_values(den[1:], fmt, "coefficient a")])
+    return control.tf(b, a, system.dt)
+
+
+def pole_shift(reference, moved) -> float:
+    """Largest distance between the poles of two sets matched one to one so that the sum of
+    distances is least (scipy.optimize.linear_sum_assignment); ``inf`` when the counts
+    differ."""
+    from scipy.optimize import linear_sum_assignment
+
+    p = np.asarray(reference, dtype=complex).reshape(-1)
+    q = np.asarray(moved, dtype=complex).reshape(-1)
+    if p.size != q.size:
+        return math.inf
+    if p.size == 0:
+        return 0.0
+    cost = np.abs(p[:, None] - q[None, :])
+    r, c = linear_sum_assignment(cost)
+    return float(np.max(cost[r, c]))
