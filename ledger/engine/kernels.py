@@ -257,7 +257,23 @@ _COMPUTE = {
     "min_damping": lambda c, s: _poles(c, min_damping),
     "decay_rate": lambda c, s: _poles(c, decay_rate),
     "quantization_pole_shift": lambda c, s: _pole_shift(c),
+    "intersample_ripple": lambda c, s: _ripple(c, s),
 }
+
+
+def _ripple(ctx, s) -> np.ndarray:
+    """``intersample_ripple`` per variant under the mask (:mod:`ledger.engine.intersample`)."""
+    from .intersample import ripple, step_between_samples
+
+    tr = _timeresp()
+    dt = ctx.asm.dt
+    if dt is None:
+        raise ComputeError("intersample_ripple needs a digital loop (one with a sample time)")
+    u = tr.step_response(ctx.batch("r->u"), amplitude=s["amplitude"])
+    final = tr.final_value(ctx.batch("r->y"), s["amplitude"])
+    steps = step_between_samples(ctx.asm, ctx.g.index[ctx.m], u.y, dt)
+    return np.array([ripple(st.t, st.y, dt, float(f), settling_band=s["settling_band"])
+                     for st, f in zip(steps, final)], dtype=float)
 
 
 def _pole_shift(ctx) -> np.ndarray:

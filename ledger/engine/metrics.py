@@ -146,6 +146,11 @@ _DEFS = [
        "digital loops: largest distance in the z plane between the closed-loop poles with "
        "the coefficients as stored (number format) and with the unquantised controller, "
        "poles matched one to one; 0 without a number format"),
+    _m("intersample_ripple", "%", "lower", True, "r->y",
+       (("amplitude", 1.0), ("settling_band", 0.02)),
+       "digital loops: after settling on the samples, the largest distance between the "
+       "continuous plant output and the line through its neighbouring sample values, "
+       "100 x / |y_final| (step on r)"),
 ]
 
 #: name -> MetricDef, in catalogue order.
