@@ -11,6 +11,10 @@ Grammar (``^`` and ``**`` are the same operator)::
     arguments:= argument ("," argument)*      argument := [NAME "="] sum | list
     list     := "[" [item ("," item)*] "]"    item := sum | list
 
+``diffeq([b...], [a...])``, ``sos([[b0, b1, b2, a1, a2], ...], gain)`` and ``zss(A, B, C, D)``
+hold a discrete controller as firmware does; a model using one is in ``z``
+(docs/digital.md).
+
 Checks made here, each reported with the 0-based position of the offending character:
 implicit multiplication, unknown calls and arguments, mixing ``s`` and ``z``, blocks or
 ``delay`` in a ``z`` model, ``delay`` anywhere but as a factor of the whole model, ``ss``
