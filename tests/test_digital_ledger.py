@@ -163,3 +163,26 @@ def test_cli_revision_add_and_show_digital(cli):
     assert k == pytest.approx(4.5, rel=1e-3) and z == pytest.approx(4.5 * 2 * math.pi * 2,
                                                                       rel=1e-3)
     assert p == pytest.approx(2 * math.pi * 30, rel=1e-3)
+
+
+def test_digital_loops_get_the_quantisation_starter(lg):
+    lg.add_plant("g", PLANT)
+    lg.add_loop("ax", "g", sample_time=TS)
+    lg.add_loop("c", "g")
+    keys = {r.key: r for r in lg.add_starter_requirements("ax")}
+    assert keys["AX-D01"].metric == "quantization_pole_shift"
+    assert not any(k.endswith("-D01") for k in (r.key for r in lg.add_starter_requirements("c")))
+    r = lg.add_revision("ax", "diffeq([0.3, -0.29], [-0.95])", rationale="q",
+                        number_format="fixed:12/8")
+    got = {x.requirement: x for x in lg.results("ax", r.label)}
+    # 0.3 -> 77/256, -0.29 -> -74/256, -0.95 -> -243/256 (stored as quantised text) ...
+    assert r.verified == "diffeq([0.30078125, -0.2890625], [-0.94921875])"
+    # ... and the ledger's value is the engine's on the same coefficients (the closed-loop
+    # pole shift itself is checked against python-control in test_digital.py)
+    from ledger.engine import measure
+
+    ref = measure(PLANT, "diffeq([0.3, -0.29], [-0.95])", ["quantization_pole_shift"],
+                  sample_time=TS, number_format="fixed:12/8")["quantization_pole_shift"]
+    assert ref > 0.002 / 10
+    assert got["AX-D01"].value == pytest.approx(ref, rel=1e-9)
+    assert got["AX-D01"].verdict == ("pass" if ref <= 0.002 else "fail")
