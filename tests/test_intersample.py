@@ -101,3 +101,31 @@ def test_ripple_the_sample_instants_hide():
 def test_ripple_needs_a_digital_loop():
     with pytest.raises(ComputeError, match="digital"):
         measure("5/(s+5)", "pi(1, 3)", ["intersample_ripple"])["intersample_ripple"]
+
+
+def test_time_basis_continuous_against_the_hybrid_simulation():
+    # Overshoot and settling read on the solve_ivp reference of the hybrid loop (same fine
+    # grid, crossings by linear interpolation) against time_basis="continuous"
+    plant = "5/(s+5)"
+    ctl = CTL
+    Ts = T
+    m = measure(plant, ctl, ["overshoot", "settling_time", "rise_time"], sample_time=Ts,
+                time_basis="continuous")
+    t, y = _hybrid_reference(plant, 300)
+    final = 1.0                                  # integral action, unit DC plant gain
+    over = 100 * (np.max(y) - final)
+    assert m["overshoot"] == pytest.approx(over, rel=1e-6)
+    out = np.flatnonzero(np.abs(y - final) > 0.02)
+    i = out[-1]
+    d0, d1 = abs(y[i] - final) - 0.02, abs(y[i + 1] - final) - 0.02
+    assert m["settling_time"] == pytest.approx(t[i] + (t[i + 1] - t[i]) * d0 / (d0 - d1),
+                                               rel=1e-6)
+    # the default stays on the samples, and its settings are what they were
+    from ledger.engine.metrics import resolve_settings
+
+    assert "time_basis" not in resolve_settings("overshoot")
+    d = measure(plant, ctl, ["overshoot"], sample_time=Ts)
+    assert d["overshoot"] == measure(plant, ctl, ["overshoot"], sample_time=Ts,
+                                     time_basis="samples")["overshoot"]
+    with pytest.raises(Exception, match="time_basis"):
+        resolve_settings("overshoot", {"time_basis": "between"})

@@ -30,7 +30,8 @@ import scipy.linalg
 
 from ..errors import ComputeError
 
-__all__ = ["ContinuousStep", "continuous_output", "continuous_step", "ripple", "SUBSTEPS"]
+__all__ = ["ContinuousStep", "continuous_output", "continuous_step", "ripple", "step_values",
+           "SUBSTEPS"]
 
 #: fine-grid points per sample interval
 SUBSTEPS = 32
@@ -180,3 +181,41 @@ def continuous_step(family, controller, loop, *, amplitude: float = 1.0) -> list
             out[int(g.index[j])] = ContinuousStep(st.t, st.y, st.t_samples, st.y_samples,
                                                   float(fin[j]))
     return out
+
+
+def _crossing(t, y, level, sgn) -> float:
+    """First time ``sgn * y`` reaches ``sgn * level`` (linear between grid points)."""
+    hit = np.flatnonzero(sgn * y >= sgn * level)
+    if hit.size == 0:
+        return math.inf
+    i = int(hit[0])
+    if i == 0:
+        return float(t[0])
+    y0, y1 = y[i - 1], y[i]
+    return float(t[i - 1] + (t[i] - t[i - 1]) * (level - y0) / (y1 - y0))
+
+
+def step_values(t, y, final: float, *, amplitude: float = 1.0, rise_limits=(0.1, 0.9),
+                settling_band: float = 0.02, settling_basis: str = "final") -> dict:
+    """Rise time, settling time and overshoot of one continuous step response on its fine
+    grid (``time_basis = "continuous"``): the same definitions as at the samples
+    (docs/metrics.md), with crossings placed by linear interpolation between the fine
+    points (T / SUBSTEPS apart) and the overshoot the largest fine-grid value."""
+    if not (math.isfinite(final) and final != 0.0):
+        raise ComputeError("the final value is zero or not finite; rise, settling and "
+                           "overshoot are undefined")
+    sgn = 1.0 if final > 0 else -1.0
+    lo, hi = rise_limits
+    rise = _crossing(t, y, hi * final, sgn) - _crossing(t, y, lo * final, sgn)
+    over = max(0.0, 100.0 * (float(np.max(sgn * y)) - abs(final)) / abs(final))
+    band = settling_band * (abs(final) if settling_basis == "final" else abs(amplitude))
+    out = np.flatnonzero(np.abs(y - final) > band)
+    if out.size == 0:
+        settle = 0.0
+    elif out[-1] >= y.size - 1:
+        raise ComputeError("the response has not settled within the horizon")
+    else:
+        i = int(out[-1])
+        d0, d1 = abs(y[i] - final) - band, abs(y[i + 1] - final) - band
+        settle = float(t[i] + (t[i + 1] - t[i]) * d0 / (d0 - d1))
+    return {"rise_time": rise, "settling_time": settle, "overshoot": over}

@@ -224,9 +224,9 @@ def _disturbance(ctx, s, part: int):
 _POLE_BATCH = {min_damping: min_damping_rows, decay_rate: decay_rate_rows}
 
 _COMPUTE = {
-    "rise_time": lambda c, s: _step(c, s).rise_time,
-    "settling_time": lambda c, s: _step(c, s).settling_time,
-    "overshoot": lambda c, s: _step(c, s).overshoot,
+    "rise_time": lambda c, s: _timed(c, s, "rise_time"),
+    "settling_time": lambda c, s: _timed(c, s, "settling_time"),
+    "overshoot": lambda c, s: _timed(c, s, "overshoot"),
     "undershoot": lambda c, s: _step(c, s).undershoot,
     "peak_time": lambda c, s: _step(c, s).peak_time,
     "steady_state_error": lambda c, s: _error(c, 0, s),
@@ -259,6 +259,30 @@ _COMPUTE = {
     "quantization_pole_shift": lambda c, s: _pole_shift(c),
     "intersample_ripple": lambda c, s: _ripple(c, s),
 }
+
+
+def _timed(ctx, s, which: str) -> np.ndarray:
+    """rise, settling or overshoot: at the samples (default) or, ``time_basis="continuous"``
+    on a digital loop, on the continuous output (:func:`ledger.engine.intersample.step_values`)."""
+    if s.get("time_basis", "samples") == "samples" or ctx.asm.dt is None:
+        return getattr(_step(ctx, s), which)
+    from .intersample import step_between_samples, step_values
+
+    def compute():
+        tr = _timeresp()
+        u = tr.step_response(ctx.batch("r->u"), amplitude=s["amplitude"])
+        final = tr.final_value(ctx.batch("r->y"), s["amplitude"])
+        steps = step_between_samples(ctx.asm, ctx.g.index[ctx.m], u.y, ctx.asm.dt)
+        rows = [step_values(st.t, st.y, float(f), amplitude=s["amplitude"],
+                            rise_limits=s["rise_limits"], settling_band=s["settling_band"],
+                            settling_basis=s["settling_basis"])
+                for st, f in zip(steps, final)]
+        return {k: np.array([r[k] for r in rows], dtype=float)
+                for k in ("rise_time", "settling_time", "overshoot")}
+
+    key = ("continuous", s["amplitude"], s["settling_band"], s["settling_basis"],
+           s["rise_limits"])
+    return ctx.cached(key, compute)[which]
 
 
 def _ripple(ctx, s) -> np.ndarray:

@@ -49,7 +49,7 @@ LOOP_SETTINGS = MappingProxyType({
 METRIC_SETTINGS = MappingProxyType({
     "amplitude": "amplitude", "step_amplitude": "amplitude", "settling_band": "settling_band",
     "settling_basis": "settling_basis", "rise_limits": "rise_limits",
-    "frequency": "frequency", "band": "band"})
+    "frequency": "frequency", "band": "band", "time_basis": "time_basis"})
 
 
 # --------------------------------------------------------------------------- drivers
@@ -275,7 +275,8 @@ def measure(plant, controller, names: Iterable[str] | None = None, **settings) -
         ``discretization`` = ``controller_discretization``: ``"zoh"``, ``"tustin"``,
         ``"tustin@W"``, ``"matched"``) and metric settings (``amplitude`` or
         ``step_amplitude``, ``settling_band``, ``settling_basis``, ``rise_limits``,
-        ``frequency``, ``band``), applied to every requested metric that takes them.
+        ``frequency``, ``band``, ``time_basis``), applied to every requested metric that
+        takes them.
 
     Returns
     -------
