@@ -20,13 +20,14 @@ depends_on = None
 
 
 def upgrade() -> None:
-    with op.batch_alter_table('revision', schema=None) as batch_op:
-        batch_op.add_column(sa.Column('discretization', sa.String(length=80), nullable=False,
-                                      server_default=sa.text("''")))
-        batch_op.add_column(sa.Column('number_format', sa.String(length=40), nullable=False,
-                                      server_default=sa.text("''")))
-        batch_op.add_column(sa.Column('verified_text', sa.Text(), nullable=False,
-                                      server_default=sa.text("''")))
+    # plain ADD COLUMN (valid on SQLite and PostgreSQL with a constant default): the table is
+    # not rebuilt, existing rows and pages stay where they are
+    op.add_column('revision', sa.Column('discretization', sa.String(length=80), nullable=False,
+                                        server_default=sa.text("''")))
+    op.add_column('revision', sa.Column('number_format', sa.String(length=40), nullable=False,
+                                        server_default=sa.text("''")))
+    op.add_column('revision', sa.Column('verified_text', sa.Text(), nullable=False,
+                                        server_default=sa.text("''")))
 
 
 def downgrade() -> None:
