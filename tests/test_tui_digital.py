@@ -8,9 +8,14 @@ from ledger.api import open_ledger
 
 
 async def _settle(pilot, rounds: int = 4):
+    from textual.worker import WorkerCancelled
+
     for _ in range(rounds):
         await pilot.pause()
-        await pilot.app.workers.wait_for_complete()
+        try:
+            await pilot.app.workers.wait_for_complete()
+        except WorkerCancelled:  # a view's loader replaced by a newer one
+            pass
         await pilot.pause()
 
 

@@ -306,7 +306,7 @@ def measure(plant, controller, names: Iterable[str] | None = None, **settings) -
             valid = sorted(set(LOOP_SETTINGS) | set(METRIC_SETTINGS))
             raise SpecError(f"unknown setting {key!r}; valid settings: {', '.join(valid)}")
     for key in metric_kw:
-        if not any(key in METRICS[n].defaults for n in names):
+        if not any(key in METRICS[n].accepts for n in names):
             raise SpecError(f"setting {key!r} ({SETTING_DOCS[key]}) is used by none of the "
                             f"requested metrics: {', '.join(names)}")
     from .loop import LoopSpec
@@ -314,7 +314,7 @@ def measure(plant, controller, names: Iterable[str] | None = None, **settings) -
     loop = LoopSpec(**loop_kw)
     family = _as_family(plant, loop.sample_time)
     controller = _as_controller(controller, loop.sample_time)
-    requests = [(n, {k: v for k, v in metric_kw.items() if k in METRICS[n].defaults})
+    requests = [(n, {k: v for k, v in metric_kw.items() if k in METRICS[n].accepts})
                 for n in names]
     result = measure_family(family, controller, loop, requests)
     keys = {n: request_key(n, resolve_settings(n, s)) for n, s in requests}

@@ -70,8 +70,17 @@ class MetricDef:
 
     @property
     def defaults(self) -> dict:
-        """Settings with their defaults, as a new dict."""
-        return dict(self.settings)
+        """Settings with their defaults, as a new dict (``time_basis`` at its default
+        ``"samples"`` is left out, as in resolved settings; :attr:`accepts` names it)."""
+        d = dict(self.settings)
+        if d.get("time_basis") == "samples":
+            del d["time_basis"]
+        return d
+
+    @property
+    def accepts(self) -> frozenset:
+        """Names of every setting the metric takes."""
+        return frozenset(k for k, _ in self.settings)
 
     def worst_sign(self) -> float:
         """+1 when larger values are worse (``better == 'lower'``), else -1."""
@@ -213,8 +222,8 @@ def resolve_settings(name: str, settings: dict | None = None) -> dict:
     mdef = get_metric(name)
     out = mdef.defaults
     for key, value in (settings or {}).items():
-        if key not in out:
-            valid = ", ".join(out) or "none"
+        if key not in mdef.accepts:
+            valid = ", ".join(dict(mdef.settings)) or "none"
             raise SpecError(f"metric {name!r} takes no setting {key!r}; valid: {valid}")
         out[key] = value
     for key, value in out.items():
