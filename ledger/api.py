@@ -248,7 +248,9 @@ class Ledger:
     # -- revisions ------------------------------------------------------------------------
     def add_revision(self, loop: str, controller: str, *, rationale: str,
                      parent: str | None = "tip", author: str | None = None,
-                     label: str | None = None, verify: bool = True) -> RevisionInfo:
+                     label: str | None = None, verify: bool = True,
+                     discretization: str | None = None,
+                     number_format: str | None = None) -> RevisionInfo:
         """Record a new controller revision of ``loop`` and verify it.
 
         Parameters
@@ -266,6 +268,14 @@ class Ledger:
             Judge every applicable requirement on the new revision over the whole plant
             family (default).  The metric values are computed before the write, and the
             revision and all its results are recorded in one transaction.
+        discretization : str, optional
+            Digital loops: how a continuous design becomes the controller that runs
+            (``"zoh"``, ``"tustin"``, ``"tustin@W"`` with W in rad/s or ``"tustin@30Hz"``,
+            ``"matched"``; docs/digital.md).  Required for a controller in s on a digital
+            loop; on a controller in z it records the method for review.
+        number_format : str, optional
+            Digital loops: the number format of the stored coefficients (``"fixed:W/F"``,
+            ``"single"``); verification then uses the quantised coefficients.
 
         Raises
         ------
@@ -274,7 +284,9 @@ class Ledger:
             a continuous controller in a digital loop); nothing is recorded.
         """
         return runner.add_revision(self, loop, controller, rationale=rationale, parent=parent,
-                                   author=author, label=label, verify=verify)
+                                   author=author, label=label, verify=verify,
+                                   discretization=discretization or "",
+                                   number_format=number_format or "")
 
     def revisions(self, loop: str) -> list[RevisionInfo]:
         """Every revision of ``loop`` in the order recorded (two queries, any length)."""

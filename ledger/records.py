@@ -97,6 +97,11 @@ class RevisionInfo:
     content_hash: str
     created_at: datetime
     children: tuple[str, ...] = ()
+    #: digital controllers (docs/digital.md): method, number format, and the discrete
+    #: controller verified when it differs from ``controller`` (all "" otherwise)
+    discretization: str = ""
+    number_format: str = ""
+    verified: str = ""
 
 
 @dataclass(frozen=True)

@@ -42,7 +42,8 @@ _FIELDS = {
     },
     "revision": {
         "required": {"loop": str, "controller": str, "rationale": str},
-        "optional": {"label": str, "parent": str, "author": str},
+        "optional": {"label": str, "parent": str, "author": str, "discretize": str,
+                     "number_format": str},
     },
 }
 _TOP = {"format", "title", "plant", "loop", "requirement", "revision"}
@@ -248,7 +249,8 @@ def import_spec(ledger, path: str | os.PathLike) -> ImportReport:
             info, changed = guard("revision", rec, lambda: rev_db.add(
                 s, rec["loop"], rec["controller"], rationale=rec["rationale"],
                 parent=parent if parent else None, author=rec.get("author") or author,
-                label=rec.get("label")))
+                label=rec.get("label"), discretization=rec.get("discretize", ""),
+                number_format=rec.get("number_format", "")))
             if changed:
                 report.revisions_added.append((info.loop, info.label))
             else:
@@ -298,6 +300,7 @@ def dump_spec(ledger) -> dict:
             revs.append(_drop_empty({
                 "loop": r.loop, "label": r.label, "parent": r.parent, "author": r.author,
                 "rationale": r.rationale, "controller": r.controller,
+                "discretize": r.discretization, "number_format": r.number_format,
             }))
     out["revision"] = revs
     return {k: v for k, v in out.items() if v != []}

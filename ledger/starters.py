@@ -93,3 +93,17 @@ def starter_set(kind: str) -> tuple[Starter, ...]:
     if kind not in STARTERS:
         raise KeyError(kind)
     return STARTERS[kind]
+
+
+#: added to the kind's set on a digital loop (one with a sample time); docs/digital.md
+DIGITAL_STARTERS: tuple[Starter, ...] = (
+    Starter("D01", "Coefficients as stored keep the poles", "quantization_pole_shift",
+            "<= 0.002",
+            "With the controller coefficients in the number format stored in firmware, no "
+            "closed-loop pole shall move by more than 0.002 in the z plane on any plant "
+            "variant.",
+            "Common practice, no source: near z = 1 a pole moved by more than about 0.002 "
+            "shifts a mode's frequency or damping noticeably at usual sample rates; together "
+            "with S01 (stable, judged on the quantised coefficients) it is the quantisation "
+            "stability check."),
+)

@@ -239,10 +239,18 @@ def requirement_hash(fields: Mapping) -> str:
 
 
 def revision_hash(*, loop: str, label: str, controller_canonical: str, parent_hash: str | None,
-                  rationale: str, author: str, created_at_iso: str) -> str:
-    """Content hash of a revision (``created_at_iso``: ``datetime.isoformat`` in UTC)."""
-    return sha256_of({
+                  rationale: str, author: str, created_at_iso: str, discretization: str = "",
+                  number_format: str = "", verified_text: str = "") -> str:
+    """Content hash of a revision (``created_at_iso``: ``datetime.isoformat`` in UTC).  The
+    digital fields (docs/digital.md) enter only when set, so revisions without them keep the
+    hash they had before those fields existed."""
+    payload = {
         "loop": loop, "label": label, "controller": controller_canonical,
         "parent": parent_hash, "rationale": rationale, "author": author,
         "created_at": created_at_iso,
-    })
+    }
+    for key, value in (("discretization", discretization), ("number_format", number_format),
+                       ("verified", verified_text)):
+        if value:
+            payload[key] = value
+    return sha256_of(payload)

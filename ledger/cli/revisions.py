@@ -60,6 +60,8 @@ def rev_add(loop: str = typer.Argument(..., help="Loop name."),
             root: bool = typer.Option(False, "--root", help="Start a new root (no parent)."),
             label: Optional[str] = typer.Option(None, "--label", help="Label (default r<N>)."),
             no_verify: bool = typer.Option(False, "--no-verify", help="Record only; verify later with 'loopledger verify'."),
+            discretize: Optional[str] = typer.Option(None, "--discretize", help="Digital loops: how a controller in s becomes the one that runs: zoh, tustin, tustin@FREQ (rad/s, or e.g. 30Hz) or matched."),
+            number_format: Optional[str] = typer.Option(None, "--number-format", help="Digital loops: number format of the stored coefficients, fixed:W/F or single; verification uses the quantised coefficients."),
             exit_on: Optional[str] = typer.Option(None, "--exit-on", help="Exit with status 3 (the revision is still recorded) when a requirement broke against the parent ('broke'), an approved one broke ('approved-broke'), or anything broke or eroded ('any')."),
 ):
     """Record a controller revision and verify every applicable requirement on it at once."""
@@ -71,8 +73,11 @@ def rev_add(loop: str = typer.Argument(..., help="Loop name."),
     with open_ledger() as lg:
         r = lg.add_revision(loop, controller, rationale=why,
                             parent=None if root else (parent or "tip"), label=label,
-                            verify=not no_verify)
+                            verify=not no_verify, discretization=discretize,
+                            number_format=number_format)
         typer.echo(f"revision {r.loop}/{r.label} recorded (parent {r.parent or 'none'})")
+        if r.verified:
+            typer.echo(f"  verified as {short(r.verified, 100)}")
         if not no_verify:
             d = print_regressions(lg, r.loop, r.label)
             print_results(lg.results(r.loop, r.label), f"verdicts for {r.loop}/{r.label}")
@@ -113,6 +118,7 @@ def rev_show(loop: str, label: Optional[str] = typer.Argument(None, help="Revisi
     """Show one revision: controller, rationale, lineage."""
     with open_ledger() as lg:
         r = lg.revision(loop, label)
+        lg_sample_time = lg.loop(r.loop).sample_time
     if as_json:
         return emit_json(r)
     typer.echo(f"revision {r.loop}/{r.label}  by {r.author}  {r.created_at:%Y-%m-%d %H:%M}")
@@ -120,6 +126,18 @@ def rev_show(loop: str, label: Optional[str] = typer.Argument(None, help="Revisi
     if r.children:
         typer.echo(f"  children    {', '.join(r.children)}")
     typer.echo(f"  controller  {r.controller}")
+    if r.discretization or r.number_format:
+        from ..digital import continuous_review, method_description
+
+        if r.discretization:
+            typer.echo(f"  method      {r.discretization} ({method_description(r.discretization)})")
+        if r.number_format:
+            typer.echo(f"  format      {r.number_format} (coefficients as stored)")
+        typer.echo(f"  verified    {r.verified or r.controller}")
+        ts = lg_sample_time
+        review = continuous_review(r.verified or r.controller, ts, r.discretization)
+        if review:
+            typer.echo(f"  in s        {review}  (inverse of the method, for review)")
     typer.echo(f"  hash        {r.content_hash[:16]}")
     typer.echo("  rationale")
     for line in r.rationale.splitlines():

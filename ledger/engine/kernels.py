@@ -224,9 +224,9 @@ def _disturbance(ctx, s, part: int):
 _POLE_BATCH = {min_damping: min_damping_rows, decay_rate: decay_rate_rows}
 
 _COMPUTE = {
-    "rise_time": lambda c, s: _step(c, s).rise_time,
-    "settling_time": lambda c, s: _step(c, s).settling_time,
-    "overshoot": lambda c, s: _step(c, s).overshoot,
+    "rise_time": lambda c, s: _timed(c, s, "rise_time"),
+    "settling_time": lambda c, s: _timed(c, s, "settling_time"),
+    "overshoot": lambda c, s: _timed(c, s, "overshoot"),
     "undershoot": lambda c, s: _step(c, s).undershoot,
     "peak_time": lambda c, s: _step(c, s).peak_time,
     "steady_state_error": lambda c, s: _error(c, 0, s),
@@ -256,7 +256,73 @@ _COMPUTE = {
     "disk_phase_margin": lambda c, s: _disk_phase(c),
     "min_damping": lambda c, s: _poles(c, min_damping),
     "decay_rate": lambda c, s: _poles(c, decay_rate),
+    "quantization_pole_shift": lambda c, s: _pole_shift(c),
+    "intersample_ripple": lambda c, s: _ripple(c, s),
 }
+
+
+def _timed(ctx, s, which: str) -> np.ndarray:
+    """rise, settling or overshoot: at the samples (default) or, ``time_basis="continuous"``
+    on a digital loop, on the continuous output (:func:`ledger.engine.intersample.step_values`)."""
+    if s.get("time_basis", "samples") == "samples" or ctx.asm.dt is None:
+        return getattr(_step(ctx, s), which)
+    from .intersample import step_between_samples, step_values
+
+    def compute():
+        tr = _timeresp()
+        u = tr.step_response(ctx.batch("r->u"), amplitude=s["amplitude"])
+        final = tr.final_value(ctx.batch("r->y"), s["amplitude"])
+        steps = step_between_samples(ctx.asm, ctx.g.index[ctx.m], u.y, ctx.asm.dt)
+        rows = [step_values(st.t, st.y, float(f), amplitude=s["amplitude"],
+                            rise_limits=s["rise_limits"], settling_band=s["settling_band"],
+                            settling_basis=s["settling_basis"])
+                for st, f in zip(steps, final)]
+        return {k: np.array([r[k] for r in rows], dtype=float)
+                for k in ("rise_time", "settling_time", "overshoot")}
+
+    key = ("continuous", s["amplitude"], s["settling_band"], s["settling_basis"],
+           s["rise_limits"])
+    return ctx.cached(key, compute)[which]
+
+
+def _ripple(ctx, s) -> np.ndarray:
+    """``intersample_ripple`` per variant under the mask (:mod:`ledger.engine.intersample`)."""
+    from .intersample import ripple, step_between_samples
+
+    tr = _timeresp()
+    dt = ctx.asm.dt
+    if dt is None:
+        raise ComputeError("intersample_ripple needs a digital loop (one with a sample time)")
+    u = tr.step_response(ctx.batch("r->u"), amplitude=s["amplitude"])
+    final = tr.final_value(ctx.batch("r->y"), s["amplitude"])
+    steps = step_between_samples(ctx.asm, ctx.g.index[ctx.m], u.y, dt)
+    return np.array([ripple(st.t, st.y, dt, float(f), settling_band=s["settling_band"])
+                     for st, f in zip(steps, final)], dtype=float)
+
+
+def _pole_shift(ctx) -> np.ndarray:
+    """Per variant under the mask: the largest closed-loop pole movement caused by the
+    controller's quantisation (:func:`ledger.engine.quantize.pole_shift`)."""
+    from dataclasses import replace
+
+    from .loop import assemble
+    from .quantize import pole_shift
+    from .types import PlantFamily
+
+    pl = ctx.asm
+    idx = ctx.g.index[ctx.m]
+    if pl.reference is None:
+        return np.zeros(idx.size)
+    if ctx.g.poles is None:
+        raise ComputeError("quantization_pole_shift needs a digital loop")
+    ref_loop = replace(pl.loop, number_format=None, reference_controller=None,
+                       controller_discretization=None)
+    rows = [ctx.g.poles[j] for j in np.flatnonzero(ctx.m)]
+    out = []
+    for i, moved in zip(idx, rows):
+        ref = assemble(PlantFamily((pl.family.variants[int(i)],)), pl.reference, ref_loop)
+        out.append(pole_shift(ref.groups[0].poles[0], moved))
+    return np.array(out, dtype=float)
 
 
 def _delay_margin(ctx):

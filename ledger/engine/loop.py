@@ -80,12 +80,27 @@ class LoopSpec:
     sample_time : float or None
         ``None``: continuous controller.  Otherwise the controller is discrete with this
         sample time, s (> 0).
-    computation_delay : int
-        Whole samples of computation delay, ``z^-d`` (digital loops only; >= 0).
+    computation_delay : int or float
+        Computation delay in samples (digital loops only; >= 0).  Whole samples are ``z^-d``;
+        a fractional part (processor latency, e.g. 0.3 samples) is exact: it joins the loop's
+        transport delay that the zero-order-hold discretisation of the plant carries through
+        the modified z-transform (:mod:`ledger.engine.discretize`).
     actuator_limit : float or None
         Actuator limit in plant-input units, for the effort metric; ``None`` means none.
     controller_discretization : str or None
-        ``None`` refuses a continuous controller in a digital loop; ``"tustin"`` converts it.
+        ``None`` refuses a continuous controller in a digital loop; a method text
+        (``"zoh"``, ``"tustin"``, ``"tustin@W"`` pre-warped at W rad/s or ``"tustin@FHz"``,
+        ``"matched"``; :mod:`ledger.engine.c2d`) converts it.  A discrete controller is used
+        as given whatever the method.
+    number_format : str or None
+        Digital loops: the number format of the controller's coefficients (``"fixed:W/F"``,
+        ``"single"``; :mod:`ledger.engine.quantize`).  The controller (after its
+        discretisation) is verified with its difference-equation coefficients quantised; the
+        unquantised one is the reference of ``quantization_pole_shift``.
+    reference_controller : control.LTI or None
+        Digital loops: the controller before quantisation, when the controller given is
+        already quantised (the ledger quantises firmware forms itself); the reference of
+        ``quantization_pole_shift``.  Neither set: the shift is 0.
     """
 
     sensor: Any = None
@@ -96,14 +111,17 @@ class LoopSpec:
     computation_delay: int = 0
     actuator_limit: float | None = None
     controller_discretization: str | None = None
+    number_format: str | None = None
+    reference_controller: Any = None
 
     def __post_init__(self):
         _check_time(self.input_delay, "input_delay")
         _check_time(self.output_delay, "output_delay")
         _check_time(self.sample_time, "sample_time", allow_zero=False)
         d = self.computation_delay
-        if isinstance(d, bool) or not isinstance(d, (int, np.integer)) or d < 0:
-            raise ModelError(f"computation_delay {d!r} is not a whole number of samples >= 0")
+        if isinstance(d, bool) or not isinstance(d, (int, np.integer, float, np.floating)) \
+                or not math.isfinite(d) or d < 0:
+            raise ModelError(f"computation_delay {d!r} is not a number of samples >= 0")
         if d and self.sample_time is None:
             raise ModelError("computation_delay needs a digital loop; give sample_time too")
         if self.actuator_limit is not None:
@@ -111,31 +129,58 @@ class LoopSpec:
             if not (math.isfinite(a) and a > 0):
                 raise ModelError(f"actuator_limit {self.actuator_limit!r} is not positive and "
                                  "finite; give a limit > 0 or None")
-        if self.controller_discretization not in (None, "tustin"):
-            raise ModelError(f"controller_discretization {self.controller_discretization!r} "
-                             "is unknown; use None or 'tustin'")
+        from .c2d import parse_discretization
+
+        parse_discretization(self.controller_discretization)  # a one-line error if unknown
+        if (self.number_format or self.reference_controller is not None) \
+                and self.sample_time is None:
+            raise ModelError("number_format and reference_controller need a digital loop; "
+                             "give sample_time too")
+        if self.number_format:
+            from .quantize import parse_number_format
+
+            parse_number_format(self.number_format)
 
 
 def _prepare_controller(controller, loop: LoopSpec) -> Block:
+    return make_block(_discrete_controller(controller, loop), "controller")
+
+
+def _quantized(controller, loop: LoopSpec):
+    """(controller as verified, reference before quantisation or None)."""
+    controller = _discrete_controller(controller, loop)
+    if loop.number_format:
+        from .quantize import quantize_system
+
+        return quantize_system(controller, loop.number_format), controller
+    if loop.reference_controller is not None:
+        return controller, _discrete_controller(loop.reference_controller, loop)
+    return controller, None
+
+
+def _discrete_controller(controller, loop: LoopSpec):
+    """The controller in the loop's time domain (discretised by the loop's method)."""
     ts = loop.sample_time
     if isinstance(controller, (control.TransferFunction, control.StateSpace)):
         cdt = controller.dt
         if ts is not None and (cdt is None or cdt == 0) and _order(controller) > 0:
-            if loop.controller_discretization == "tustin":
+            if loop.controller_discretization:
+                from .c2d import discretize
+
                 _ = make_block(controller, "controller")  # properness check first
-                controller = control.sample_system(controller, ts, method="tustin")
+                controller = discretize(controller, ts, loop.controller_discretization)
             else:
                 raise ModelError("controller is continuous but the loop is digital "
-                                 f"(sample_time={ts} s); give it in z with that dt or set "
-                                 "controller_discretization='tustin'")
+                                 f"(sample_time={ts} s); give it in z with that dt or a "
+                                 "discretisation method (discretization='zoh', 'tustin', "
+                                 "'tustin@W' or 'matched')")
         elif ts is None and cdt not in (None, 0):
             raise ModelError(f"controller is discrete (dt={cdt} s) but the loop is continuous; "
                              "set sample_time to the controller's dt")
         elif ts is not None and cdt not in (None, 0, True) and not math.isclose(cdt, ts):
             raise ModelError(f"controller dt={cdt} s differs from the loop sample_time={ts} s; "
                              "use one sample time")
-    blk = make_block(controller, "controller")
-    return blk
+    return controller
 
 
 def _order(sys) -> int:
@@ -252,6 +297,7 @@ class Plan:
     groups: tuple            # of GroupPlan
     algebraic_tol: float
     variants: tuple = ()     # variant names in family order
+    reference: Any = None    # the controller before quantisation (quantization_pole_shift)
 
     @property
     def dt(self):
@@ -295,6 +341,7 @@ def plan(family: PlantFamily, controller, loop: LoopSpec | None = None, *,
     if not isinstance(family, PlantFamily):
         family = PlantFamily.single(family)
     ts = loop.sample_time
+    controller, reference = _quantized(controller, loop)
     K = _prepare_controller(controller, loop)
     F = _aux_block(loop.prefilter, "prefilter", ts)
     H = _aux_block(loop.sensor, "sensor", ts)
@@ -331,7 +378,7 @@ def plan(family: PlantFamily, controller, loop: LoopSpec | None = None, *,
             for s0 in range(0, srt.size, c):
                 groups.append(GroupPlan(np.sort(srt[s0:s0 + c]), tau, d_in, d_plant))
     return Plan(family=family, loop=loop, blocks=(F, K, H), groups=tuple(groups),
-                algebraic_tol=algebraic_tol, variants=family.names)
+                algebraic_tol=algebraic_tol, variants=family.names, reference=reference)
 
 
 def assemble(family: PlantFamily, controller, loop: LoopSpec | None = None, *,

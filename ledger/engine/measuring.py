@@ -41,13 +41,15 @@ LOOP_SETTINGS = MappingProxyType({
     "delay": "input_delay", "input_delay": "input_delay", "output_delay": "output_delay",
     "sample_time": "sample_time", "computation_delay": "computation_delay",
     "sensor": "sensor", "prefilter": "prefilter", "actuator_limit": "actuator_limit",
-    "controller_discretization": "controller_discretization"})
+    "controller_discretization": "controller_discretization",
+    "discretization": "controller_discretization", "number_format": "number_format",
+    "reference_controller": "reference_controller"})
 
 #: ``measure`` keyword -> metric setting.
 METRIC_SETTINGS = MappingProxyType({
     "amplitude": "amplitude", "step_amplitude": "amplitude", "settling_band": "settling_band",
     "settling_basis": "settling_basis", "rise_limits": "rise_limits",
-    "frequency": "frequency", "band": "band"})
+    "frequency": "frequency", "band": "band", "time_basis": "time_basis"})
 
 
 # --------------------------------------------------------------------------- drivers
@@ -270,9 +272,11 @@ def measure(plant, controller, names: Iterable[str] | None = None, **settings) -
     **settings
         Loop settings (``delay`` = ``input_delay``, ``output_delay``, ``sample_time``,
         ``computation_delay``, ``sensor``, ``prefilter``, ``actuator_limit``,
-        ``controller_discretization``) and metric settings (``amplitude`` or
+        ``discretization`` = ``controller_discretization``: ``"zoh"``, ``"tustin"``,
+        ``"tustin@W"``, ``"matched"``) and metric settings (``amplitude`` or
         ``step_amplitude``, ``settling_band``, ``settling_basis``, ``rise_limits``,
-        ``frequency``, ``band``), applied to every requested metric that takes them.
+        ``frequency``, ``band``, ``time_basis``), applied to every requested metric that
+        takes them.
 
     Returns
     -------
@@ -302,7 +306,7 @@ def measure(plant, controller, names: Iterable[str] | None = None, **settings) -
             valid = sorted(set(LOOP_SETTINGS) | set(METRIC_SETTINGS))
             raise SpecError(f"unknown setting {key!r}; valid settings: {', '.join(valid)}")
     for key in metric_kw:
-        if not any(key in METRICS[n].defaults for n in names):
+        if not any(key in METRICS[n].accepts for n in names):
             raise SpecError(f"setting {key!r} ({SETTING_DOCS[key]}) is used by none of the "
                             f"requested metrics: {', '.join(names)}")
     from .loop import LoopSpec
@@ -310,7 +314,7 @@ def measure(plant, controller, names: Iterable[str] | None = None, **settings) -
     loop = LoopSpec(**loop_kw)
     family = _as_family(plant, loop.sample_time)
     controller = _as_controller(controller, loop.sample_time)
-    requests = [(n, {k: v for k, v in metric_kw.items() if k in METRICS[n].defaults})
+    requests = [(n, {k: v for k, v in metric_kw.items() if k in METRICS[n].accepts})
                 for n in names]
     result = measure_family(family, controller, loop, requests)
     keys = {n: request_key(n, resolve_settings(n, s)) for n, s in requests}

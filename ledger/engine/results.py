@@ -233,7 +233,10 @@ def fingerprint(variant, controller, loop: LoopSpec, metric: str, settings: Mapp
     str
         64 hex characters; includes :data:`ENGINE_VERSION`.
     """
-    loop_form = {f.name: _canon(getattr(loop, f.name)) for f in fields(loop)}
+    # fields added for digital controllers enter only when set, so older fingerprints hold
+    loop_form = {f.name: _canon(getattr(loop, f.name)) for f in fields(loop)
+                 if not (f.name in ("number_format", "reference_controller")
+                         and getattr(loop, f.name) is None)}
     payload = json.dumps({"engine": ENGINE_VERSION,
                           "plant": _digest(variant.system, variant.delay),
                           "controller": _digest(controller) if not isinstance(

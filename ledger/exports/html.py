@@ -101,11 +101,19 @@ def _summary(matrix, rows) -> list[str]:
                + "".join(f'<th class="num">{c[v]}</th>' for v in VERDICT_ORDER)
                + f'<th class="num">{sum(c.values())}</th></tr></table>')
     out.append("<h2>Revisions</h2><table><tr><th>Loop</th><th>Revision</th><th>Parent</th>"
-               "<th>Author</th><th>Recorded (UTC)</th><th>Rationale</th><th>Content hash</th></tr>")
+               "<th>Author</th><th>Recorded (UTC)</th><th>Rationale</th><th>Controller</th>"
+               "<th>Content hash</th></tr>")
     for col in matrix.columns:
+        ctl = f"<code>{_e(col.controller)}</code>"
+        if col.discretization:
+            ctl += f"<br>discretised: {_e(col.discretization)}"
+        if col.number_format:
+            ctl += f"<br>coefficients: {_e(col.number_format)}"
+        if col.verified:
+            ctl += f"<br>verified as <code>{_e(col.verified)}</code>"
         out.append(f"<tr><td>{_e(col.loop)}</td><td>{_e(col.label)}</td><td>{_e(col.parent or '')}"
                    f"</td><td>{_e(col.author)}</td><td>{_e(col.created_at.strftime('%Y-%m-%d %H:%M'))}"
-                   f"</td><td>{_e(_first_line(col.rationale))}</td>"
+                   f"</td><td>{_e(_first_line(col.rationale))}</td><td>{ctl}</td>"
                    f"<td><code>{_e(col.content_hash[:12])}</code></td></tr>")
     out.append("</table>")
     return out

@@ -71,6 +71,19 @@ def _json_value(value):
     return value
 
 
+def _revision_entry(c) -> dict:
+    """A revision of the document: who, when, hash, the controller and, on digital loops,
+    its method, number format and the discrete controller verified (docs/digital.md)."""
+    out = {"loop": c.loop, "revision": c.label, "author": c.author,
+           "created_at": c.created_at.isoformat(), "content_hash": c.content_hash,
+           "controller": c.controller}
+    for key, value in (("discretization", c.discretization), ("number_format", c.number_format),
+                       ("verified_controller", c.verified)):
+        if value:
+            out[key] = value
+    return out
+
+
 def matrix_document(matrix) -> dict:
     """The JSON document of a matrix as plain Python data (what :func:`export_json` writes)."""
     rows = matrix_rows(matrix)
@@ -80,9 +93,7 @@ def matrix_document(matrix) -> dict:
         "title": matrix.title,
         "generated_at": matrix.generated_at.isoformat(),
         "caution": matrix.caution,
-        "revisions": [{"loop": c.loop, "revision": c.label, "author": c.author,
-                       "created_at": c.created_at.isoformat(), "content_hash": c.content_hash}
-                      for c in matrix.columns],
+        "revisions": [_revision_entry(c) for c in matrix.columns],
         "counts": verdict_counts(rows),
         "rows": [{k: _json_value(v) for k, v in asdict(r).items()} for r in rows],
     }

@@ -443,12 +443,19 @@ class Checker:
         if parse:
             loop_dt = dict(s.execute(select(Loop.id, Loop.sample_time)).all())
         for rv in revs:
-            h = sha256_of({
+            payload = {
                 "loop": lab["loop"].get(rv.loop_id, "?"), "label": rv.label,
                 "controller": rv.controller_canonical,
                 "parent": parents.get(rv.parent_id) if rv.parent_id else None,
                 "rationale": rv.rationale, "author": rv.author,
-                "created_at": _aware_iso(rv.created_at)})
+                "created_at": _aware_iso(rv.created_at)}
+            # the digital form enters only when set (validate.revision_hash)
+            for key, value in (("discretization", rv.discretization),
+                               ("number_format", rv.number_format),
+                               ("verified", rv.verified_text)):
+                if value:
+                    payload[key] = value
+            h = sha256_of(payload)
             if self._altered("revision", rv.id):
                 continue
             if h != rv.content_hash:

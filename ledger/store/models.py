@@ -20,6 +20,7 @@ from sqlalchemy import (
     MetaData,
     String,
     Text,
+    text,
     UniqueConstraint,
 )
 from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column, relationship
@@ -129,6 +130,14 @@ class Revision(Base):
     controller_canonical: Mapped[str] = mapped_column(Text)
     content_hash: Mapped[str] = mapped_column(String(64))
     created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True))
+    # digital controllers (docs/digital.md): how a continuous design was discretised, the
+    # number format of the coefficients, and the discrete controller verified (z text) when
+    # it differs from the text entered; all empty for a controller verified as written
+    discretization: Mapped[str] = mapped_column(String(80), default="",
+                                                server_default=text("''"))
+    number_format: Mapped[str] = mapped_column(String(40), default="",
+                                               server_default=text("''"))
+    verified_text: Mapped[str] = mapped_column(Text, default="", server_default=text("''"))
 
     loop: Mapped[Loop] = relationship()
 

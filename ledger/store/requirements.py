@@ -290,11 +290,12 @@ def add_starters(s: Session, loop: str, kind: str | None, *, author: str
                  ) -> list[RequirementInfo]:
     """Record the starter set of ``loop``'s kind (``ledger.starters``) as draft requirements
     ``<LOOP>-S01``...; IDs that exist already are left as they are."""
-    from ..starters import starter_set
+    from ..starters import DIGITAL_STARTERS, starter_set
 
     lp = loop_row(s, loop)
     out = []
-    for st in starter_set(kind or lp.kind):
+    extra = DIGITAL_STARTERS if lp.sample_time is not None else ()
+    for st in (*starter_set(kind or lp.kind), *extra):
         key = f"{lp.name.upper()}-{st.suffix}"[:40]
         if exists(s, key):
             continue

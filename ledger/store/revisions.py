@@ -5,6 +5,7 @@ from __future__ import annotations
 from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
+from ..digital import digital_form
 from ..errors import DuplicateError, IntegrityViolation, NotFoundError
 from ..records import RevisionInfo
 from ..validate import KEY_RE, check_name, model_canonical, revision_hash
@@ -60,6 +61,8 @@ def make_info(row: Revision, loop: str, parent: str | None,
         loop=loop, label=row.label, seq=row.seq, parent=parent, author=row.author,
         rationale=row.rationale, controller=row.controller_text,
         content_hash=row.content_hash, created_at=utc(row.created_at), children=children,
+        discretization=row.discretization or "", number_format=row.number_format or "",
+        verified=row.verified_text or "",
     )
 
 
@@ -72,9 +75,11 @@ def info(s: Session, row: Revision, loop: Loop | None = None) -> RevisionInfo:
 
 
 def add(s: Session, loop: str, controller: str, *, rationale: str, author: str,
-        parent: str | None = "tip", label: str | None = None) -> tuple[RevisionInfo, bool]:
+        parent: str | None = "tip", label: str | None = None, discretization: str = "",
+        number_format: str = "") -> tuple[RevisionInfo, bool]:
     """Record a revision (an identical one with the same label is left as it is);
-    ``(info, created)``.  ``parent="tip"``: the loop's latest revision; ``None``: a root."""
+    ``(info, created)``.  ``parent="tip"``: the loop's latest revision; ``None``: a root.
+    ``discretization``/``number_format``: the digital form (:mod:`ledger.digital`)."""
     lp = loop_row(s, loop)
     lock_row(s, Loop, lp.id)  # serialise label/seq allocation per loop (PostgreSQL)
     what = f"revision of loop {loop!r}"
@@ -82,6 +87,8 @@ def add(s: Session, loop: str, controller: str, *, rationale: str, author: str,
         raise IntegrityViolation(f"{what}: a rationale is required (why this change?)")
     canonical = model_canonical(controller, what=f"{what}: controller",
                                 sample_time=lp.sample_time)
+    form = digital_form(controller, lp.sample_time, discretization=discretization,
+                        number_format=number_format, what=f"{what}: controller")
     if parent == "tip":
         prow = tip_row(s, lp)
     elif parent in (None, ""):
@@ -94,6 +101,8 @@ def add(s: Session, loop: str, controller: str, *, rationale: str, author: str,
                                                    Revision.label == label))
         if existing is not None:
             same = (existing.controller_canonical == canonical
+                    and (existing.discretization or "") == form.discretization
+                    and (existing.number_format or "") == form.number_format
                     and existing.rationale == rationale.strip()
                     and existing.parent_id == (prow.id if prow else None))
             if same:
@@ -108,11 +117,13 @@ def add(s: Session, loop: str, controller: str, *, rationale: str, author: str,
     content_hash = revision_hash(
         loop=lp.name, label=label, controller_canonical=canonical,
         parent_hash=prow.content_hash if prow else None, rationale=rationale.strip(),
-        author=author, created_at_iso=created.isoformat())
+        author=author, created_at_iso=created.isoformat(), discretization=form.discretization,
+        number_format=form.number_format, verified_text=form.verified_text)
     row = Revision(loop_id=lp.id, label=label, seq=seq, parent_id=prow.id if prow else None,
                    author=author, rationale=rationale.strip(), controller_text=controller,
                    controller_canonical=canonical, content_hash=content_hash,
-                   created_at=created)
+                   created_at=created, discretization=form.discretization,
+                   number_format=form.number_format, verified_text=form.verified_text)
     s.add(row)
     s.flush()
     append_link(s, "revision", row)

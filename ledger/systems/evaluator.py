@@ -12,7 +12,8 @@ import numpy as np
 
 from ledger.errors import ModelError
 from ledger.systems.blocks import block_coefficients
-from ledger.systems.nodes import SS, Block, Delay, Neg, Num, Param, Pow, Prod, Sum, Var, Zpk
+from ledger.systems.nodes import (SS, Block, Coeffs, Delay, Neg, Num, Param, Pow, Prod, Sum,
+                                  Var, Zpk)
 
 __all__ = ["evaluate_tree", "polymul", "polyadd", "CONJUGATE_RTOL"]
 
@@ -120,6 +121,8 @@ class _Eval:
             return np.ones((v, 1)), np.ones((v, 1))
         if isinstance(node, Zpk):
             return self.zpk(node)
+        if isinstance(node, Coeffs):
+            return self.coeffs(node)
         if isinstance(node, SS):
             raise ModelError("an ss(...) model has no parametric coefficient form here; "
                              "evaluate it one variant at a time")
@@ -137,6 +140,31 @@ class _Eval:
             raise ModelError(f"complex {what}s must come in conjugate pairs (a+bj with a-bj)"
                              f"{self.where(pos)}")
         return p.real.copy()
+
+    def coeffs(self, node: Coeffs):
+        """Numerator and denominator in powers of z (highest first) of a firmware form."""
+        v = self.v
+
+        def row(items, what):
+            return np.stack([self.real_const(x, what) for x in items], axis=1) if items \
+                else np.zeros((v, 0))
+
+        if node.kind == "diffeq":
+            b = row(node.rows[0], "a b coefficient")
+            a = row(node.rows[1], "an a coefficient")
+            n = node.info.nlen - 1
+            num = np.pad(b, ((0, 0), (0, n + 1 - b.shape[1])))
+            den = np.pad(np.concatenate([np.ones((v, 1)), a], axis=1),
+                         ((0, 0), (0, n - a.shape[1])))
+            return num, den
+        num, den = np.ones((v, 1)), np.ones((v, 1))
+        for r in node.rows:
+            c = row(r, "a section coefficient")
+            num = polymul(num, c[:, :3])
+            den = polymul(den, np.concatenate([np.ones((v, 1)), c[:, 3:]], axis=1))
+        if node.gain is not None:
+            num = num * self.real_const(node.gain, "the sos gain")[:, None]
+        return num, den
 
     def zpk(self, node: Zpk):
         k = self.real_const(node.gain, "the zpk gain")

@@ -8,7 +8,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 __all__ = ["Info", "Num", "Var", "Param", "Sum", "Prod", "Neg", "Pow", "Block", "Delay",
-           "Zpk", "SS"]
+           "Zpk", "SS", "Coeffs"]
 
 
 @dataclass(frozen=True)
@@ -110,5 +110,21 @@ class SS:
     b: tuple
     c: tuple
     d: tuple
+    pos: int
+    info: Info
+
+
+@dataclass(frozen=True)
+class Coeffs:
+    """A controller as firmware holds it (always in ``z``).
+
+    ``kind`` is ``"diffeq"`` (``rows = (b, a)``: ``b0..bn`` and ``a1..am`` of
+    ``y[k] = sum b_i u[k-i] - sum a_j y[k-j]``) or ``"sos"`` (``rows``: one
+    ``(b0, b1, b2, a1, a2)`` per second-order section; ``gain`` multiplies the cascade).
+    """
+
+    kind: str
+    rows: tuple  # tuples of nodes
+    gain: object  # node or None
     pos: int
     info: Info

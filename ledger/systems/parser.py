@@ -11,6 +11,10 @@ Grammar (``^`` and ``**`` are the same operator)::
     arguments:= argument ("," argument)*      argument := [NAME "="] sum | list
     list     := "[" [item ("," item)*] "]"    item := sum | list
 
+``diffeq([b...], [a...])``, ``sos([[b0, b1, b2, a1, a2], ...], gain)`` and ``zss(A, B, C, D)``
+hold a discrete controller as firmware does; a model using one is in ``z``
+(docs/digital.md).
+
 Checks made here, each reported with the 0-based position of the offending character:
 implicit multiplication, unknown calls and arguments, mixing ``s`` and ``z``, blocks or
 ``delay`` in a ``z`` model, ``delay`` anywhere but as a factor of the whole model, ``ss``
@@ -29,10 +33,10 @@ from dataclasses import dataclass
 from ledger.errors import ModelSyntaxError
 from ledger.systems.blocks import BLOCKS
 from ledger.systems.lexer import Token, tokenize
-from ledger.systems.nodes import (SS, Block, Delay, Info, Neg, Num, Param, Pow, Prod, Sum,
-                                  Var, Zpk)
+from ledger.systems.nodes import (SS, Block, Coeffs, Delay, Info, Neg, Num, Param, Pow, Prod,
+                                  Sum, Var, Zpk)
 
-__all__ = ["ParseResult", "parse", "MAX_DEGREE", "MAX_DEPTH", "RESERVED"]
+__all__ = ["ParseResult", "parse", "MAX_DEGREE", "MAX_DEPTH", "RESERVED", "Z_CALLS"]
 
 MAX_DEGREE = 60
 """Highest polynomial degree a model may reach anywhere in its evaluation."""
@@ -40,7 +44,9 @@ MAX_DEPTH = 60
 """Deepest nesting of parentheses, unary signs, calls and lists."""
 
 _CALLS = ("delay", "zpk", "ss")
-RESERVED = frozenset({"s", "z", "pi", "j", *_CALLS, *BLOCKS})
+#: calls that hold a discrete controller as firmware does; a model using one is in z
+Z_CALLS = ("diffeq", "sos", "zss")
+RESERVED = frozenset({"s", "z", "pi", "j", *_CALLS, *Z_CALLS, *BLOCKS})
 """Names that cannot be parameters."""
 
 
@@ -278,10 +284,14 @@ class _Parser:
                 return self.delay(t)
             if name == "zpk":
                 return self.zpk(t)
-            if name == "ss":
+            if name in ("ss", "zss"):
                 return self.ss(t)
+            if name == "diffeq":
+                return self.diffeq(t)
+            if name == "sos":
+                return self.sos(t)
             raise self.error(f"unknown block {name!r}; known: "
-                             f"{', '.join(sorted([*BLOCKS, *_CALLS]))}", t.pos)
+                             f"{', '.join(sorted([*BLOCKS, *_CALLS, *Z_CALLS]))}", t.pos)
         if name in ("s", "z"):
             if name != self.variable:
                 raise self.error("a model cannot use both s and z", t.pos)
@@ -395,8 +405,48 @@ class _Parser:
         self.check_degree(info, t.pos)
         return Zpk(zeros, poles, gain, t.pos, info)
 
+    def diffeq(self, t: Token):
+        """``diffeq([b0, ..., bn], [a1, ..., am])``: ``y[k] = sum b_i u[k-i] - sum a_j y[k-j]``,
+        i.e. ``(b0 + b1 z^-1 + ...)/(1 + a1 z^-1 + ...)``, written over ``z^N``."""
+        open_tok = self.expect("(", "'(' after diffeq")
+        self.enter(open_tok.pos)
+        b, pb = self.list_("list of b coefficients", False)
+        self.expect(",", "',' and the list of a coefficients (a1..an, a0 = 1 is implied)")
+        a, _ = self.list_("list of a coefficients", False)
+        self.expect(")", "')' after the list of a coefficients")
+        self.leave()
+        if not b:
+            raise self.error("diffeq needs at least b0 (the list of b coefficients is empty)",
+                             pb)
+        n = max(len(b) - 1, len(a))
+        info = Info(n + 1, n + 1, True)
+        self.check_degree(info, t.pos)
+        return Coeffs("diffeq", (b, a), None, t.pos, info)
+
+    def sos(self, t: Token):
+        """``sos([[b0, b1, b2, a1, a2], ...], gain)``: a cascade of second-order sections
+        ``gain * prod (b0 + b1 z^-1 + b2 z^-2)/(1 + a1 z^-1 + a2 z^-2)``."""
+        open_tok = self.expect("(", "'(' after sos")
+        self.enter(open_tok.pos)
+        rows, pr = self.list_("list of sections", True)
+        gain = None
+        if self.tok.kind == ",":
+            self.advance()
+            gain = self.constant_arg("the sos gain")
+        self.expect(")", "')' after the sections (and the gain)")
+        self.leave()
+        if not rows:
+            raise self.error("sos needs at least one section [b0, b1, b2, a1, a2]", pr)
+        for r in rows:
+            if len(r) != 5:
+                raise self.error(f"each section has 5 entries [b0, b1, b2, a1, a2] (a0 = 1 is "
+                                 f"implied); this one has {len(r)}", pr)
+        info = Info(2 * len(rows) + 1, 2 * len(rows) + 1, True)
+        self.check_degree(info, t.pos)
+        return Coeffs("sos", rows, gain, t.pos, info)
+
     def ss(self, t: Token):
-        open_tok = self.expect("(", "'(' after ss")
+        open_tok = self.expect("(", f"'(' after {t.text}")
         self.enter(open_tok.pos)
         mats = []
         for k, label in enumerate("ABCD"):
@@ -428,6 +478,8 @@ def _variable(text: str, tokens: list[Token]) -> str:
     for t in tokens:
         if t.kind == "name" and t.text in ("s", "z") and t.text not in seen:
             seen[t.text] = t.pos
+        elif t.kind == "name" and t.text in Z_CALLS and "z" not in seen:
+            seen["z"] = t.pos  # a firmware form is discrete
     if len(seen) == 2:
         later = max(seen, key=seen.get)
         raise ModelSyntaxError("a model cannot use both s and z", text, seen[later])

@@ -99,9 +99,11 @@ class LedgerApp(App):
         if loop is None:
             self.notify("add a loop first (loopledger loop add ...)", severity="error")
             return
-        tip = self.lg.loop(loop).tip
+        info = self.lg.loop(loop)
+        tip = info.tip
         # the parent offered is the selected revision of the selected loop, else that loop's tip
-        self.push_screen(RevisionForm(loop, label or tip, tip=tip), self._recorded)
+        self.push_screen(RevisionForm(loop, label or tip, tip=tip,
+                                      sample_time=info.sample_time), self._recorded)
 
     def _recorded(self, rec: Recorded | None) -> None:
         if rec is None:

@@ -60,10 +60,18 @@ def loop_spec_for(plan: RevisionPlan):
             raise ModelError(f"the loop's {what} has a delay; give it as a loop delay instead")
         return ev.system
 
+    reference = None
+    if plan.number_format and ts is not None:
+        # the controller before quantisation: the design, discretised by its method
+        from ..digital import digital_form
+
+        text = digital_form(plan.design_text, ts,
+                            discretization=plan.discretization).verified_text or plan.design_text
+        reference = parse_model(text, sample_time=ts).system
     return LoopSpec(sensor=block(f["sensor"], "sensor"), prefilter=block(f["prefilter"], "prefilter"),
                     input_delay=f["input_delay"], output_delay=f["output_delay"],
                     sample_time=ts, computation_delay=f["computation_delay"],
-                    actuator_limit=f["actuator_limit"])
+                    actuator_limit=f["actuator_limit"], reference_controller=reference)
 
 
 def controller_for(plan: RevisionPlan):

@@ -61,14 +61,23 @@ class RevisionPlan:
     plant_hash: str
     plant_spec: dict
     checks: list[Check] = field(default_factory=list)
+    #: the digital form (docs/digital.md): the design as entered, its method and number
+    #: format; ``controller_text`` is then the discrete controller verified
+    design_text: str = ""
+    discretization: str = ""
+    number_format: str = ""
 
     def metric_key(self, metric: str, settings: dict) -> str:
         """Content hash of everything a family's metric values depend on."""
-        return sha256_of({
+        payload = {
             "engine": engine_version(), "plant": self.plant_hash,
             "controller": self.controller_canonical, "loop": self.loop_form,
             "metric": metric, "settings": _jsonable_settings(settings),
-        })
+        }
+        if self.discretization or self.number_format:  # absent before digital forms existed
+            payload["digital"] = {"design": self.design_text, "method": self.discretization,
+                                  "format": self.number_format}
+        return sha256_of(payload)
 
     def keys(self) -> list[str]:
         """The metric key of every check, in order."""
@@ -110,13 +119,28 @@ def applicable_checks(s: Session, loop_id: int, keys: Iterable[str] | None = Non
 
 def plan_head(loop: Loop, pv: PlantVersion, revision: Revision | None,
               controller_text: str | None = None,
-              controller_canonical: str | None = None) -> RevisionPlan:
-    """A plan without checks for ``revision`` (or a controller) against plant version ``pv``."""
+              controller_canonical: str | None = None, form=None) -> RevisionPlan:
+    """A plan without checks for ``revision`` (or a controller with its digital ``form``,
+    :class:`ledger.digital.DigitalForm`) against plant version ``pv``."""
+    if revision is not None:
+        design, canonical = revision.controller_text, revision.controller_canonical
+        method, fmt = revision.discretization or "", revision.number_format or ""
+        verified = revision.verified_text or ""
+    else:
+        design, canonical = controller_text, controller_canonical
+        method = form.discretization if form else ""
+        fmt = form.number_format if form else ""
+        verified = form.verified_text if form else ""
+    if verified:
+        from ..validate import model_canonical
+
+        canonical = model_canonical(verified, what="verified controller",
+                                    sample_time=loop.sample_time)
     return RevisionPlan(
         loop=loop.name, loop_id=loop.id, label=revision.label if revision else None,
         revision_id=revision.id if revision else None,
-        controller_text=revision.controller_text if revision else controller_text,
-        controller_canonical=revision.controller_canonical if revision else controller_canonical,
+        controller_text=verified or design, controller_canonical=canonical,
+        design_text=design, discretization=method, number_format=fmt,
         loop_form=loops_db.loop_form(loop), plant_version_id=pv.id, plant_version=pv.number,
         plant_hash=pv.content_hash,
         plant_spec={"model": pv.model_text, "params": json.loads(pv.parameters_json),
@@ -127,11 +151,12 @@ def plan_head(loop: Loop, pv: PlantVersion, revision: Revision | None,
 
 def plan_revision(s: Session, loop: Loop, *, revision: Revision | None = None,
                   controller_text: str | None = None, controller_canonical: str | None = None,
-                  keys: Iterable[str] | None = None, missing_only: bool = True) -> RevisionPlan:
+                  keys: Iterable[str] | None = None, missing_only: bool = True,
+                  form=None) -> RevisionPlan:
     """What must be computed to bring ``revision`` (or a not-yet-recorded controller) up to
     date against the latest requirement and plant versions."""
     pv = plants_db.latest_version(s, loop.plant_id)
-    plan = plan_head(loop, pv, revision, controller_text, controller_canonical)
+    plan = plan_head(loop, pv, revision, controller_text, controller_canonical, form)
     checks = applicable_checks(s, loop.id, keys)
     if revision is not None and missing_only:
         done = results_db.judged_version_ids(s, revision.id, pv.id)
@@ -161,12 +186,18 @@ def plan_loops(s: Session, loop: str | None = None, *, label: str | None = None,
     return plans
 
 
-def plan_controller(s: Session, loop: str, controller: str) -> tuple[RevisionPlan, dict]:
-    """(plan, cached payloads) for a controller not recorded yet on ``loop``."""
+def plan_controller(s: Session, loop: str, controller: str, *, discretization: str = "",
+                    number_format: str = "") -> tuple[RevisionPlan, dict]:
+    """(plan, cached payloads) for a controller not recorded yet on ``loop`` (with its
+    digital form: method and number format, docs/digital.md)."""
+    from ..digital import digital_form
     from ..validate import model_canonical
 
     lp = loops_db.loop_row(s, loop)
-    canonical = model_canonical(controller, what=f"revision of loop {loop!r}: controller",
-                                sample_time=lp.sample_time)
-    plan = plan_revision(s, lp, controller_text=controller, controller_canonical=canonical)
+    what = f"revision of loop {loop!r}: controller"
+    canonical = model_canonical(controller, what=what, sample_time=lp.sample_time)
+    form = digital_form(controller, lp.sample_time, discretization=discretization,
+                        number_format=number_format, what=what)
+    plan = plan_revision(s, lp, controller_text=controller, controller_canonical=canonical,
+                         form=form)
     return plan, results_db.load_cached(s, plan.keys())

@@ -99,13 +99,15 @@ def verify(lg, loop: str | None = None, *, label: str | None = None, tips_only: 
 
 def add_revision(lg, loop: str, controller: str, *, rationale: str, parent: str | None = "tip",
                  author: str | None = None, label: str | None = None,
-                 verify: bool = True) -> RevisionInfo:
+                 verify: bool = True, discretization: str = "",
+                 number_format: str = "") -> RevisionInfo:
     """:meth:`ledger.api.Ledger.add_revision` (see there): the metric values are computed
     before the write; the revision and all its results are recorded in one transaction."""
     payloads, fresh, plan = {}, set(), None
     if verify:
         with lg.store.reading() as s:
-            plan, cached = plan_controller(s, loop, controller)
+            plan, cached = plan_controller(s, loop, controller, discretization=discretization,
+                                           number_format=number_format)
         try:
             validate_controller(plan)
         except LedgerError as e:
@@ -116,7 +118,9 @@ def add_revision(lg, loop: str, controller: str, *, rationale: str, parent: str 
 
     def op(s):
         info, created = rev_db.add(s, loop, controller, rationale=rationale, parent=parent,
-                                   author=author or lg.author, label=label)
+                                   author=author or lg.author, label=label,
+                                   discretization=discretization or "",
+                                   number_format=number_format or "")
         if created and plan is not None and plan.checks:
             row = rev_db.revision_row(s, loops_db.loop_row(s, loop), info.label)
             write_results(s, plan, row.id, payloads, fresh)

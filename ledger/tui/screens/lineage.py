@@ -105,7 +105,14 @@ class LineageScreen(ViewScreen):
         t.append_text(counts_text(row.counts))
         t.append("(pass, fail, error, stale)\n\n")
         t.append("controller\n", style="bold underline")
-        t.append(f"{r.controller}\n\n")
+        t.append(f"{r.controller}\n")
+        if r.discretization:
+            t.append(f"discretised: {r.discretization}\n")
+        if r.number_format:
+            t.append(f"coefficients: {r.number_format}\n")
+        if r.verified:
+            t.append(f"verified as: {r.verified}\n")
+        t.append("\n")
         t.append("rationale\n", style="bold underline")
         t.append(r.rationale + "\n")
         box.update(t)

@@ -44,12 +44,17 @@ class RevisionForm(ModalScreen[Recorded | None]):
         Parent offered in the form (the selected revision, else the loop's tip).
     tip : str or None
         The loop's tip, so that the form says when the parent starts a branch.
+    sample_time : float or None
+        The loop's sample time; a digital loop also offers the discretisation method and the
+        number format of the coefficients (docs/digital.md).
     """
 
     BINDINGS = bindings.FORM
 
-    def __init__(self, loop: str, parent: str | None, *, tip: str | None = None):
+    def __init__(self, loop: str, parent: str | None, *, tip: str | None = None,
+                 sample_time: float | None = None):
         super().__init__()
+        self.sample_time = sample_time
         self.loop = loop
         self.parent_label = parent
         self.tip = tip
@@ -66,6 +71,13 @@ class RevisionForm(ModalScreen[Recorded | None]):
             yield Static(parent_note(self.loop, self.parent_label, self.tip), id="form-parent-note")
             yield Label("rationale: why this change")
             yield Input(placeholder="required", id="form-rationale")
+            with Vertical(id="form-digital"):
+                yield Label(f"digital loop, Ts = {self.sample_time} s: discretisation of a "
+                            "controller in s (zoh, tustin, tustin@FREQ, matched)")
+                yield Input(placeholder="e.g. tustin@30Hz (empty: the controller is in z)",
+                            id="form-discretize")
+                yield Label("number format of the stored coefficients (fixed:W/F or single)")
+                yield Input(placeholder="empty: double precision", id="form-format")
             yield Static("", id="form-error")
             yield ProgressBar(total=None, show_eta=False, id="form-progress")
             with Horizontal(id="form-buttons"):
@@ -74,6 +86,7 @@ class RevisionForm(ModalScreen[Recorded | None]):
 
     def on_mount(self) -> None:
         self.query_one("#form-progress").display = False
+        self.query_one("#form-digital").display = self.sample_time is not None
         self.query_one("#form-controller", Input).focus()
 
     def on_button_pressed(self, event: Button.Pressed) -> None:
@@ -103,13 +116,17 @@ class RevisionForm(ModalScreen[Recorded | None]):
         self.query_one("#form-ok", Button).disabled = True
         self._record(self.query_one("#form-controller", Input).value,
                      self.query_one("#form-parent", Input).value.strip() or None,
-                     self.query_one("#form-rationale", Input).value)
+                     self.query_one("#form-rationale", Input).value,
+                     self.query_one("#form-discretize", Input).value.strip(),
+                     self.query_one("#form-format", Input).value.strip())
 
     @work(thread=True, exclusive=True, group="record")
-    def _record(self, controller: str, parent: str | None, rationale: str) -> None:
+    def _record(self, controller: str, parent: str | None, rationale: str,
+                discretization: str = "", number_format: str = "") -> None:
         try:
             info = self.app.lg.add_revision(self.loop, controller, rationale=rationale,
-                                            parent=parent)
+                                            parent=parent, discretization=discretization,
+                                            number_format=number_format)
         except LedgerError as e:
             self.app.call_from_thread(self._failed, str(e))
             return
