@@ -288,6 +288,36 @@ class Ledger:
                                    discretization=discretization or "",
                                    number_format=number_format or "")
 
+    def try_revision(self, loop: str, controllers: str | Sequence[str], *,
+                     against: str | None = None, threshold: float = 0.25):
+        """Dry run: verify candidate controller(s) over the whole plant family and compare each
+        with a recorded revision, recording nothing (no row in any table, no chain link).
+
+        Parameters
+        ----------
+        controllers : str or sequence of str
+            One controller text, or several (named ``A``, ``B``... in the report).
+        against : str, optional
+            Label of the revision to compare with (default: the loop's tip; none when the
+            loop has no revision yet, so every result is ``new``).
+        threshold : float
+            As for :func:`ledger.history.diff.diff`.
+
+        Returns
+        -------
+        TryReport
+            ``candidates``: per candidate its results (as ``results`` would show them), its
+            changes against the reference (regression classes of docs/history.md), and
+            whether it breaks nothing; ``safe``: the names of those that break nothing.
+
+        The values computed are kept outside the ledger, keyed by content hash
+        (:mod:`ledger.verification.tried`): recording a tried candidate afterwards with
+        :meth:`add_revision` computes nothing.
+        """
+        from .verification.tryout import try_revision
+
+        return try_revision(self, loop, controllers, against=against, threshold=threshold)
+
     def revisions(self, loop: str) -> list[RevisionInfo]:
         """Every revision of ``loop`` in the order recorded (two queries, any length)."""
         with self.reading() as s:

@@ -13,6 +13,11 @@ Environment variables (read when asked, never at import, so a test or a caller m
 ``LOOPLEDGER_CONFIG_DIR``
     Folder of the per-user display preferences file ``prefs.json`` (default
     ``$XDG_CONFIG_HOME/loopledger``, else ``~/.config/loopledger``).
+``LOOPLEDGER_CACHE_DIR``
+    Folder of the values computed by dry runs (``loopledger try``), kept outside the ledger so
+    a dry run records nothing in it; keyed by content hash, so any ledger may reuse them
+    (default ``$LOOPLEDGER_CONFIG_DIR/cache`` when that is set, else ``$XDG_CACHE_HOME/loopledger``,
+    else ``~/.cache/loopledger``).
 ``COLUMNS``
     The terminal width the command line fits its tables and lines to (the shell's own
     variable; unset, empty or not a positive whole number: the terminal's width).
@@ -26,7 +31,8 @@ import getpass
 import os
 
 __all__ = ["DEFAULT_PATH", "BUSY_TIMEOUT_MS", "WRITE_RETRIES", "IN_CHUNK", "FAMILY_CACHE_SIZE",
-           "db_target", "author", "debug", "digits_setting", "prefs_dir", "columns"]
+           "db_target", "author", "debug", "digits_setting", "prefs_dir", "columns",
+           "cache_dir", "TRIED_CACHE_FILES"]
 
 #: the ledger file used when none is named and ``$LOOPLEDGER_DB`` is unset
 DEFAULT_PATH = "loopledger.db"
@@ -38,6 +44,8 @@ WRITE_RETRIES = 5
 IN_CHUNK = 500
 #: plant families kept built in one process (keyed by content hash and parameter order)
 FAMILY_CACHE_SIZE = 32
+#: files of dry-run values kept on disk; the oldest are removed beyond this
+TRIED_CACHE_FILES = 2000
 
 
 def db_target() -> str:
@@ -67,6 +75,18 @@ def prefs_dir() -> str:
     if base:
         return base
     xdg = os.environ.get("XDG_CONFIG_HOME") or os.path.join(os.path.expanduser("~"), ".config")
+    return os.path.join(xdg, "loopledger")
+
+
+def cache_dir() -> str:
+    """Folder of the dry-run value cache (see ``LOOPLEDGER_CACHE_DIR`` above)."""
+    base = os.environ.get("LOOPLEDGER_CACHE_DIR")
+    if base:
+        return base
+    conf = os.environ.get("LOOPLEDGER_CONFIG_DIR")
+    if conf:
+        return os.path.join(conf, "cache")
+    xdg = os.environ.get("XDG_CACHE_HOME") or os.path.join(os.path.expanduser("~"), ".cache")
     return os.path.join(xdg, "loopledger")
 
 

@@ -666,3 +666,32 @@ async def test_plots_frequency_unit_remembered_and_step_horizon(ledger):
         await settle(pilot)
         await press(pilot, "5")
         assert app2.screen.freq_unit == "rad/s"  # remembered for this ledger
+
+
+async def test_add_revision_form_previews_the_regression_table_before_saving(ledger):
+    """The preview key runs a dry run against the parent (r2, K = 4): K = 1 fixes PM-1 and
+    OS-1 and breaks WC-1 (closed forms of the module docstring: PM 28.02 -> 51.83 deg,
+    overshoot 44.4 -> 16.3 %, wc 1.879 -> 0.786 rad/s); nothing is recorded until ctrl+s,
+    and recording then computes nothing."""
+    from textual.widgets import Static
+
+    before = ledger.counts()
+    app = make_app(ledger)
+    app.current_loop, app.current_label = "pos", "r2"
+    async with app.run_test(size=(120, 40)) as pilot:
+        await settle(pilot)
+        await press(pilot, "a", "1", "ctrl+t")
+        await settle(pilot, rounds=6)
+        text = str(app.screen.query_one("#form-preview", Static).render())
+        assert "preview against r2" in text, text
+        assert re.search(r"PM-1\s+fixed", text) and re.search(r"WC-1\s+BROKE", text), text
+        assert "breaks WC-1" in text
+        assert ledger.counts() == before
+        assert type(app.screen).__name__ == "RevisionForm"
+        n = ledger.kernel_requests
+        await press(pilot, "tab", "tab", "x", "ctrl+s")
+        await settle(pilot, rounds=6)
+        assert type(app.screen).__name__ == "MatrixScreen"
+        assert ledger.kernel_requests == n
+        res = {r.requirement: r for r in ledger.results("pos", "r3")}
+        np.testing.assert_allclose(res["PM-1"].value, pm_of(1), rtol=1e-6)

@@ -18,6 +18,7 @@ One module per command group, each command a plain Typer function::
     exports.py       export-matrix
     signoff.py       baseline create/list/show; sign, audit
     ui.py            ui
+    tryout.py        try (dry run of candidate controllers)
 
 Adding a command group (docs/architecture.md, "Where a change goes"): write
 ``ledger/cli/<group>.py`` with ``group = typer.Typer(help=..., no_args_is_help=True)`` for
@@ -31,13 +32,15 @@ the order of those two tuples.
 from __future__ import annotations
 
 from . import exports, gate, history, loops, plants, requirements, revisions, signoff, spec, ui
+from . import tryout
 from .common import CAUTION, app, run
 from .output import short_variant
 
 __all__ = ["app", "main", "CAUTION", "run", "short_variant"]
 
 #: modules whose ``commands`` are top-level commands, in the order ``--help`` lists them
-_TOP_LEVEL = (spec, requirements, loops, revisions, history, exports, gate, signoff, ui)
+_TOP_LEVEL = (spec, requirements, loops, revisions, history, exports, gate, signoff, ui,
+              tryout)
 #: ``(name, module)``: ``loopledger <name> ...`` is ``module.group``
 _GROUPS = (("plant", plants), ("loop", loops), ("requirement", requirements),
            ("revision", revisions), ("baseline", signoff))

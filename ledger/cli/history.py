@@ -16,7 +16,7 @@ from .common import (CAUTION, JSON_OPTION, WIDE_OPTION, emit_json, errors_to_exi
 from .output import say, short, short_variant, table
 
 __all__ = ["commands", "diff_cmd", "since_cmd", "trace_cmd", "print_regressions",
-           "EXIT_REGRESSION", "ExitOn", "exit_status", "diff_rows", "trace_lines"]
+           "EXIT_REGRESSION", "ExitOn", "exit_status", "diff_rows", "trace_lines", "print_changes"]
 
 #: top-level commands (``diff``, ``since``, ``trace``), added to the root by
 #: ``ledger/cli/__init__.py``
@@ -125,15 +125,20 @@ def print_regressions(lg, loop: str, label: str) -> object:
     if d.old is None:
         typer.echo(f"{loop}/{d.new.label} is a root revision: no parent to compare against")
         return d
+    print_changes(d, f"{loop}/{d.new.label}", f"parent {d.old.label}")
+    return d
+
+
+def print_changes(d, new_name: str, old_name: str) -> None:
+    """The regression table of ``d`` (anything with ``changes``, ``threshold`` and
+    ``counts()``: a Diff, or a dry-run candidate): only what is not ``unchanged``."""
     moved = [c for c in d.changes if c.kind != "unchanged"]
     if not moved:
-        typer.echo(f"against parent {d.old.label}: no change beyond {d.threshold:.0%} of headroom "
+        typer.echo(f"against {old_name}: no change beyond {d.threshold:.0%} of headroom "
                    f"({_counts_line(d)})")
-        return d
-    _diff_table(diff_rows(moved),
-                title=f"changes of {loop}/{d.new.label} against parent {d.old.label}")
+        return
+    _diff_table(diff_rows(moved), title=f"changes of {new_name} against {old_name}")
     typer.echo("  " + _counts_line(d))
-    return d
 
 
 def exit_status(d, exit_on: Optional[ExitOn]) -> int:

@@ -57,6 +57,7 @@ PLOTS = [
 FORM = [
     Binding("escape", "cancel", "Cancel"),
     Binding("ctrl+s", "submit", "Record"),
+    Binding("ctrl+t", "preview", "Preview regressions (records nothing)"),
 ]
 
 HELP = [

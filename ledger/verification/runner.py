@@ -18,6 +18,7 @@ from ..store import revisions as rev_db
 from .compute import compute_plan, compute_plans, controller_for, family_for, loop_spec_for
 from .compute import validate_controller
 from .plan import plan_controller, plan_loops, plan_revision
+from . import tried
 from .record import rejudge_cached, write_results
 
 __all__ = ["verify", "add_revision", "numeric_setup", "after_requirement_change",
@@ -102,7 +103,8 @@ def add_revision(lg, loop: str, controller: str, *, rationale: str, parent: str 
                  verify: bool = True, discretization: str = "",
                  number_format: str = "") -> RevisionInfo:
     """:meth:`ledger.api.Ledger.add_revision` (see there): the metric values are computed
-    before the write; the revision and all its results are recorded in one transaction."""
+    before the write (values a dry run kept in :mod:`.tried` are reused); the revision and all
+    its results are recorded in one transaction."""
     payloads, fresh, plan = {}, set(), None
     if verify:
         with lg.store.reading() as s:
@@ -112,7 +114,9 @@ def add_revision(lg, loop: str, controller: str, *, rationale: str, parent: str 
             validate_controller(plan)
         except LedgerError as e:
             raise with_context(e, f"revision of loop {loop!r}") from e
-        payloads, n = compute_plan(plan, cached)
+        # values a dry run (try_revision) computed for this very controller are reused
+        kept = tried.recall(k for k in plan.keys() if k not in cached)
+        payloads, n = compute_plan(plan, {**cached, **kept})
         fresh = set(payloads) - set(cached)
         lg.kernel_requests += n
 

@@ -1,4 +1,9 @@
-"""Modal form that records a controller revision; verification runs in a worker."""
+"""Modal form that records a controller revision; verification runs in a worker.
+
+The preview key (ctrl+t) runs a dry run (``Ledger.try_revision``) of the controller typed
+against the parent typed (the loop's tip when empty) and shows the regression table in the
+form before anything is saved; recording it afterwards reuses the values computed.
+"""
 
 from __future__ import annotations
 
@@ -12,7 +17,7 @@ from textual.widgets import Button, Input, Label, ProgressBar, Static
 from ...errors import LedgerError
 from .. import bindings
 
-__all__ = ["RevisionForm", "Recorded"]
+__all__ = ["RevisionForm", "Recorded", "preview_text"]
 
 
 @dataclass(frozen=True)
@@ -31,6 +36,35 @@ def parent_note(loop: str, parent: str | None, tip: str | None) -> str:
     if parent == tip:
         return f"parent {loop}/{parent}: the tip of loop {loop}"
     return f"parent {loop}/{parent} is not the tip ({tip or 'none'}): this starts a branch"
+
+
+def preview_text(rep) -> str:
+    """The regression table of a one-candidate dry run as lines of text (what the form's
+    preview shows): every requirement whose class is not ``unchanged``, then the verdict."""
+    from ...display import value_text
+
+    c = rep.candidates[0]
+    ref = rep.against.label if rep.against is not None else None
+    lines = [f"preview against {ref}: nothing recorded" if ref else
+             "preview (no revision to compare against): nothing recorded"]
+    moved = [ch for ch in c.changes if ch.kind != "unchanged"]
+    for ch in moved:
+        kind = ch.kind.upper() if ch.is_regression else ch.kind
+        lines.append(f"  {ch.requirement:<10} {kind:<12} {ch.old_verdict or '-'} -> "
+                     f"{ch.new_verdict or '-'}  {value_text(ch.old_value, ch.unit, ch.limit_text)}"
+                     f" -> {value_text(ch.new_value, ch.unit, ch.limit_text)}"
+                     f"  (limit {ch.limit_text or '-'})")
+    if not moved:
+        lines.append(f"  no change beyond {c.threshold:.0%} of headroom")
+    verdicts: dict[str, int] = {}
+    for r in c.results:
+        verdicts[r.verdict] = verdicts.get(r.verdict, 0) + 1
+    tail = ", ".join(f"{v} {k}" for k, v in sorted(verdicts.items())) or "nothing to judge"
+    if ref:
+        tail += ("; breaks nothing" if c.breaks_nothing
+                 else "; breaks " + ", ".join(x.requirement for x in c.broken))
+    lines.append("  " + tail)
+    return "\n".join(lines)
 
 
 class RevisionForm(ModalScreen[Recorded | None]):
@@ -79,9 +113,11 @@ class RevisionForm(ModalScreen[Recorded | None]):
                 yield Label("number format of the stored coefficients (fixed:W/F or single)")
                 yield Input(placeholder="empty: double precision", id="form-format")
             yield Static("", id="form-error")
+            yield Static("", id="form-preview")
             yield ProgressBar(total=None, show_eta=False, id="form-progress")
             with Horizontal(id="form-buttons"):
                 yield Button("Record and verify (ctrl+s)", variant="primary", id="form-ok")
+                yield Button("Preview (ctrl+t)", id="form-try")
                 yield Button("Cancel (esc)", id="form-cancel")
 
     def on_mount(self) -> None:
@@ -92,6 +128,8 @@ class RevisionForm(ModalScreen[Recorded | None]):
     def on_button_pressed(self, event: Button.Pressed) -> None:
         if event.button.id == "form-ok":
             self.action_submit()
+        elif event.button.id == "form-try":
+            self.action_preview()
         else:
             self.action_cancel()
 
@@ -120,6 +158,30 @@ class RevisionForm(ModalScreen[Recorded | None]):
                      self.query_one("#form-discretize", Input).value.strip(),
                      self.query_one("#form-format", Input).value.strip())
 
+    def action_preview(self) -> None:
+        if self.busy:
+            return
+        self.busy = True
+        self.query_one("#form-error", Static).update("")
+        self.query_one("#form-preview", Static).update("computing the preview...")
+        self.query_one("#form-progress").display = True
+        self._try(self.query_one("#form-controller", Input).value,
+                  self.query_one("#form-parent", Input).value.strip() or None)
+
+    @work(thread=True, exclusive=True, group="record")
+    def _try(self, controller: str, parent: str | None) -> None:
+        try:
+            rep = self.app.lg.try_revision(self.loop, controller, against=parent)
+        except LedgerError as e:
+            self.app.call_from_thread(self._failed, str(e))
+            return
+        self.app.call_from_thread(self._previewed, preview_text(rep))
+
+    def _previewed(self, text: str) -> None:
+        self.busy = False
+        self.query_one("#form-progress").display = False
+        self.query_one("#form-preview", Static).update(text)
+
     @work(thread=True, exclusive=True, group="record")
     def _record(self, controller: str, parent: str | None, rationale: str,
                 discretization: str = "", number_format: str = "") -> None:
@@ -136,4 +198,5 @@ class RevisionForm(ModalScreen[Recorded | None]):
         self.busy = False
         self.query_one("#form-progress").display = False
         self.query_one("#form-ok", Button).disabled = False
+        self.query_one("#form-preview", Static).update("")
         self.query_one("#form-error", Static).update(f"✗ {message}")
