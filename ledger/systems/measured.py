@@ -236,5 +236,5 @@ def from_frd(frd, **kwargs) -> MeasuredResponse:
         raise ModelError(f"expected a control.FrequencyResponseData, got {type(frd).__name__}")
     if frd.ninputs != 1 or frd.noutputs != 1:
         raise ModelError("a measured plant must be SISO (one input, one output)")
-    resp = np.asarray(frd.fresp)[0, 0, :]
+    resp = np.asarray(getattr(frd, "frdata", None) if hasattr(frd, "frdata") else frd.fresp)[0, 0, :]
     return measured_response(np.asarray(frd.omega, float), resp, **kwargs)
