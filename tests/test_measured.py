@@ -175,3 +175,20 @@ def test_ledger_records_measurement_and_verifies_it(tmp_path):
     lg.add_revision("L", "(2*s+1)/(0.05*s+1)", rationale="first")
     res = lg.results("L")
     assert res[0].worst_variant == "measured:unit-1" and res[0].variants == 2
+
+
+def test_model_fit_against_closed_form():
+    # closed form: a measurement equal to the model times 1.12 e^{-j 0.2} deviates by
+    # 20 log10 1.12 dB and 0.2 rad at every point
+    from ledger.systems import build_family
+
+    fam = build_family("10/(s*(s+1)*(s+10))", {})
+    w = np.logspace(-1, 2, 40)
+    m = measured_response(w, G(1j * w) * 1.12 * np.exp(-0.2j))
+    mixed = PlantFamily(fam.variants + (Variant("measured:u1", "measured", m),))
+    r = measure(mixed, C, ["model_fit", "model_fit_phase"], frequency=50.0)
+    assert r["model_fit"] == pytest.approx(20 * math.log10(1.12), rel=1e-12)
+    assert r["model_fit_phase"] == pytest.approx(math.degrees(0.2), rel=1e-12)
+    assert r.worst_variant("model_fit") == "measured:u1"
+    with pytest.raises(LedgerError, match="needs a measured member"):
+        measure(fam, C, ["model_fit"], frequency=50.0)["model_fit"]

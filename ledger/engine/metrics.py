@@ -142,6 +142,13 @@ _DEFS = [
     _m("decay_rate", "1/s", "higher", False, "poles", (),
        "min over closed-loop poles of -Re(s) (discrete: s = ln z / Ts; with a delay: the "
        "rightmost root of the delay equation's characteristic equation)"),
+    # measured plants (docs/measured.md)
+    _m("model_fit", "dB", "lower", False, "G", (("frequency", None),),
+       "on a measured member: max over its kept points w <= frequency of "
+       "|20 log10 |G_meas / G_nominal||, the design model's delay included; 0 on model members"),
+    _m("model_fit_phase", "deg", "lower", False, "G", (("frequency", None),),
+       "on a measured member: max over its kept points w <= frequency of "
+       "|arg(G_meas / G_nominal)| wrapped to [0, 180]; 0 on model members"),
 ]
 
 #: name -> MetricDef, in catalogue order.
