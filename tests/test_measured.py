@@ -192,3 +192,32 @@ def test_model_fit_against_closed_form():
     assert r.worst_variant("model_fit") == "measured:u1"
     with pytest.raises(LedgerError, match="needs a measured member"):
         measure(fam, C, ["model_fit"], frequency=50.0)["model_fit"]
+
+
+def test_spec_file_measurement_relative_path_and_hash(tmp_path):
+    # common practice, no source: same file -> same version; changed file -> new version;
+    # a malformed file -> one-line error naming it, nothing written
+    from ledger.api import open_ledger
+    from ledger.spec import import_spec
+
+    (tmp_path / "bench").mkdir()
+    data = tmp_path / "bench" / "u1.csv"
+    data.write_text(GOOD)
+    spec = tmp_path / "s.toml"
+    spec.write_text('format = 1\n[[plant]]\nname = "p"\nmodel = "1/(s*(s+1))"\n'
+                    '[plant.measured.u1]\nfile = "bench/u1.csv"\nintegrators = 1\n'
+                    'measured_by = "ann"\n')
+    lg = open_ledger(tmp_path / "l.db", create=True, author="t")
+    import_spec(lg, spec)
+    p = lg.plant("p")
+    assert p.measured["u1"]["meta"]["source"] == "bench/u1.csv" and p.version == 1
+    import_spec(lg, spec)
+    assert lg.plant("p").version == 1
+    data.write_text(GOOD.replace("-32", "-33"))
+    import_spec(lg, spec)
+    assert lg.plant("p").version == 2
+    data.write_text(GOOD.replace("2, -32", "1, -32"))
+    with pytest.raises(LedgerError) as e:
+        import_spec(lg, spec)
+    assert "line 4: frequency 1 repeats" in str(e.value) and "\n" not in str(e.value)
+    assert lg.plant("p").version == 2
