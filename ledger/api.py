@@ -98,7 +98,8 @@ class Ledger:
     def add_plant(self, name: str, model: str, *, params: Mapping | None = None,
                   fidelity: Mapping[str, str] | None = None, samples: int = 0, seed: int = 0,
                   sample_time: float | None = None, input_unit: str = "", output_unit: str = "",
-                  description: str = "", note: str = "") -> PlantInfo:
+                  description: str = "", note: str = "",
+                  measured: Mapping | None = None) -> PlantInfo:
         """Add a plant, or a new version of an existing one if anything changed.
 
         Parameters
@@ -115,12 +116,48 @@ class Ledger:
             Seeded Monte Carlo samples drawn from the tolerances.
         sample_time : float, optional
             Seconds, for a plant given in ``z``.
+        measured : mapping, optional
+            Bench measurements by name (:class:`~ledger.systems.measured.MeasuredResponse`),
+            members ``measured:<name>`` of the family (``docs/measured.md``).
         """
         info, _ = self.store.write(
             plants_db.add, name, model, author=self.author, params=params, fidelity=fidelity,
             samples=samples, seed=seed, sample_time=sample_time, input_unit=input_unit,
-            output_unit=output_unit, description=description, note=note)
+            output_unit=output_unit, description=description, note=note, measured=measured)
         return info
+
+    def add_measurement(self, plant: str, name: str, measurement, *, note: str = "",
+                        replace: bool = False) -> PlantInfo:
+        """Record a bench measurement as member ``measured:<name>`` of a plant's family: a new
+        plant version with everything else as in the latest one.
+
+        Parameters
+        ----------
+        plant : str
+        name : str
+            Measurement name, e.g. ``"unit-1"`` (letters, digits, ``.``, ``_``, ``-``).
+        measurement : MeasuredResponse or control.FrequencyResponseData
+            A ``FrequencyResponseData`` is taken with the defaults of
+            :func:`~ledger.systems.measured.from_frd` (no RHP poles, no integrators).
+        replace : bool
+            Allow replacing a measurement of the same name (else refused).
+        """
+        from .errors import IntegrityViolation
+        from .systems.measured import MeasuredResponse, from_frd
+
+        if not isinstance(measurement, MeasuredResponse):
+            measurement = from_frd(measurement)
+        p = self.plant(plant)
+        if name in p.measured and not replace:
+            raise IntegrityViolation(f"plant {plant!r} already has a measurement {name!r}; "
+                                     f"choose another name or replace it")
+        measured = dict(p.measured)
+        measured[name] = measurement
+        return self.add_plant(p.name, p.model, params=p.params, fidelity=p.fidelity,
+                              samples=p.samples, seed=p.seed, sample_time=p.sample_time,
+                              input_unit=p.input_unit, output_unit=p.output_unit,
+                              description=p.description,
+                              note=note or f"measurement {name} recorded", measured=measured)
 
     def plants(self) -> list[PlantInfo]:
         """Every plant at its latest version, by name."""

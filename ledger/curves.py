@@ -194,8 +194,10 @@ def revision_curves(lg, loop: str, label: str, variants=(), *, include_nominal: 
 
     fam, controller, loop_spec = lg.numeric_setup(loop, label)
     wanted = set(variants)
+    # measured members have no model to rebuild a loop round: the curves show model members
+    # (docs/measured.md); their values still enter the verdicts
     picked = [v for k, v in enumerate(fam.variants)
-              if v.name in wanted or (include_nominal and k == 0)]
+              if v.kind != "measured" and (v.name in wanted or (include_nominal and k == 0))]
     if not picked:
         raise NotFoundError(f"plant family of loop {loop!r} has no variant "
                             f"{sorted(wanted)[0] if wanted else 'nominal'!r}")

@@ -41,6 +41,8 @@ class PlantInfo:
     content_hash: str
     created_at: datetime
     versions: int = 1
+    #: measurement name -> stored measurement (``MeasuredResponse.to_json`` form)
+    measured: dict = field(default_factory=dict)
 
 
 @dataclass(frozen=True)

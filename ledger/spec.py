@@ -26,7 +26,7 @@ _FIELDS = {
         "required": {"name": str, "model": str},
         "optional": {"description": str, "input_unit": str, "output_unit": str,
                      "sample_time": (int, float, str), "samples": int, "seed": int, "note": str,
-                     "params": dict, "fidelity": dict},
+                     "params": dict, "fidelity": dict, "measured": dict},
     },
     "loop": {
         "required": {"name": str, "plant": str},
@@ -214,12 +214,13 @@ def import_spec(ledger, path: str | os.PathLike) -> ImportReport:
         for rec in data.get("plant", []):
             where = f"plant {rec['name']!r}"
             st = _seconds(p, where, "sample_time", rec.get("sample_time"))
+            measured = _measurements(p, where, rec.get("measured") or {})
             info, changed = guard("plant", rec, lambda: plants_db.add(
                 s, rec["name"], rec["model"], author=author, params=rec.get("params"),
                 fidelity=rec.get("fidelity"), samples=rec.get("samples", 0),
                 seed=rec.get("seed", 0), sample_time=st, input_unit=rec.get("input_unit", ""),
                 output_unit=rec.get("output_unit", ""), description=rec.get("description", ""),
-                note=rec.get("note", "")))
+                note=rec.get("note", ""), measured=measured))
             _tally(report, f"plant {info.name}", changed, info.version)
 
         for rec in data.get("loop", []):
@@ -267,6 +268,47 @@ def _tally(report: ImportReport, name: str, changed: bool, version: int) -> None
         report.created.append(name)
     else:
         report.new_versions.append(f"{name} v{version}")
+
+
+_MEASURED_KEYS = ("file", "rhp_poles", "integrators", "min_coherence", "measured_by",
+                  "measured_at", "excitation", "note")
+
+
+def _measurements(path, where, table: dict) -> dict:
+    """``[plant.measured.<name>]`` tables: ``file`` (relative to the spec file) read and
+    hashed, the declarations and metadata beside it (docs/measured.md)."""
+    import hashlib
+
+    from .systems.measfile import parse_measurement
+
+    out = {}
+    for name, rec in table.items():
+        fld = f"measured.{name}"
+        if not isinstance(rec, dict):
+            raise _err(path, where, fld, "must be a table with at least 'file'")
+        unknown = [k for k in rec if k not in _MEASURED_KEYS]
+        if unknown:
+            raise _err(path, where, f"{fld}.{unknown[0]}",
+                       f"unknown field; known fields: {', '.join(_MEASURED_KEYS)}")
+        if not isinstance(rec.get("file"), str) or not rec["file"]:
+            raise _err(path, where, f"{fld}.file", "is required (a path relative to the spec)")
+        f = Path(path).parent / rec["file"]
+        try:
+            text = f.read_text(encoding="utf-8")
+        except (OSError, UnicodeDecodeError) as e:
+            raise _err(path, where, f"{fld}.file", f"cannot read {rec['file']}: "
+                       f"{e.__class__.__name__}") from None
+        meta = {k: str(rec[k]) for k in ("measured_by", "measured_at", "excitation", "note")
+                if k in rec}
+        try:
+            out[name] = parse_measurement(
+                text, rhp_poles=rec.get("rhp_poles", 0), integrators=rec.get("integrators", 0),
+                min_coherence=float(rec.get("min_coherence", 0.8)), where=rec["file"],
+                source=rec["file"], source_hash=hashlib.sha256(text.encode()).hexdigest(),
+                **meta)
+        except LedgerError as e:
+            raise _err(path, where, fld, str(e)) from e
+    return out
 
 
 def _drop_empty(d: dict) -> dict:

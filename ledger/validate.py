@@ -101,11 +101,34 @@ def plant_content_hash(fields: Mapping[str, Any]) -> str:
     get = fields.get if hasattr(fields, "get") else (lambda k: getattr(fields, k))
     f = {k: get(k) for k in PLANT_HASH_FIELDS}
     f["parameters_json"] = json.dumps(json.loads(f["parameters_json"] or "{}"), sort_keys=True)
+    measured = get("measured_json") if _has(fields, "measured_json") else "{}"
+    if measured and measured != "{}":
+        # only a version with measurements hashes them: every earlier hash stays as it was
+        f["measured_json"] = measured
     return sha256_of(f)
 
 
+def _has(fields, key) -> bool:
+    return key in fields if hasattr(fields, "keys") else hasattr(fields, key)
+
+
+def measured_json(measured, what: str) -> str:
+    """Canonical JSON of a plant's measurements (name -> MeasuredResponse or its JSON form)."""
+    from .systems.measured import MeasuredResponse
+
+    out = {}
+    for name, m in (measured or {}).items():
+        check_name("measurement", str(name))
+        try:
+            m = m if isinstance(m, MeasuredResponse) else MeasuredResponse.from_json(m)
+        except LedgerError as e:
+            raise with_context(e, f"{what}: measurement {name!r}") from e
+        out[str(name)] = m.to_json()
+    return json.dumps(out, sort_keys=True, separators=(",", ":"))
+
+
 def plant_fields(name, model, params, fidelity, samples, seed, sample_time, input_unit,
-                 output_unit) -> dict:
+                 output_unit, measured=None) -> dict:
     """The stored fields of a plant version (content hash included), checked: the model and
     every fidelity model parse, and the family builds."""
     from .systems.bounds import check_seed
@@ -134,6 +157,7 @@ def plant_fields(name, model, params, fidelity, samples, seed, sample_time, inpu
         sample_time=sample_time,
         input_unit=check_plant_unit(input_unit, f"{what}: input unit"),
         output_unit=check_plant_unit(output_unit, f"{what}: output unit"),
+        measured_json=measured_json(measured, what),
     )
     # the family must build (parameters present, tolerances sane); fails fast with the reason
     from .systems import build_family

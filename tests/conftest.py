@@ -32,6 +32,7 @@ NUMERIC_MODULES = {"test_blocks", "test_family", "test_family_scale", "test_freq
                    "test_measure", "test_parser", "test_stability", "test_timeresp", "test_units",
                    "test_plant_units", "test_display", "test_plot_axes", "test_yieldbound",
                    "test_digital", "test_intersample"}
+NUMERIC_MODULES |= {"test_measured"}
 
 
 def pytest_configure(config):

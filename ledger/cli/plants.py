@@ -90,5 +90,55 @@ def plant_show(name: str, version: Optional[int] = typer.Option(None, "--version
         typer.echo(f"  sample time {p.sample_time} s")
     if p.input_unit or p.output_unit:
         typer.echo(f"  units      in {p.input_unit or '-'}, out {p.output_unit or '-'}")
+    for k, m in p.measured.items():
+        w = m["omega"]
+        meta = m.get("meta", {})
+        who = ", ".join(f"{f} {meta[f]}" for f in ("measured_by", "measured_at", "excitation")
+                        if meta.get(f))
+        typer.echo(f"  measured   {k}: {len(w)} points {w[0]:.4g}..{w[-1]:.4g} rad/s, "
+                   f"{m['rhp_poles']} RHP pole(s), {m['integrators']} integrator(s)"
+                   + (f"; {who}" if who else ""))
     if p.note:
         typer.echo(f"  note       {p.note}")
+
+
+@group.command("measured")
+@errors_to_exit
+def plant_measured(
+    name: str = typer.Argument(..., help="Plant name."),
+    file: str = typer.Argument(..., help="Measurement file: CSV or whitespace columns with a header such as 'freq[Hz], mag[dB], phase[deg], coh' (docs/measured.md)."),
+    label: str = typer.Option("", "--name", help="Measurement name (default: the file name without extension)."),
+    rhp_poles: int = typer.Option(0, "--rhp-poles", help="Open-loop right-half-plane poles of the plant (data cannot show them)."),
+    integrators: int = typer.Option(0, "--integrators", help="Poles of the plant at s = 0."),
+    min_coherence: float = typer.Option(0.8, "--min-coherence", help="Points with lower coherence are excluded."),
+    by: str = typer.Option("", "--by", help="Who measured."),
+    at: str = typer.Option("", "--at", help="When it was measured (free text, e.g. 2026-11-30)."),
+    excitation: str = typer.Option("", "--excitation", help="Excitation level, e.g. '0.2 A swept sine'."),
+    note: str = typer.Option("", "--note", help="Free text kept with the measurement."),
+    replace: bool = typer.Option(False, "--replace", help="Replace a measurement of the same name."),
+):
+    """Record a bench frequency response as a measured member of the plant's family."""
+    import os
+
+    import hashlib
+
+    from ..errors import SpecError
+    from ..systems.measfile import parse_measurement
+
+    try:
+        with open(file, encoding="utf-8") as fh:
+            text = fh.read()
+    except (OSError, UnicodeDecodeError) as e:
+        raise SpecError(f"cannot read {file}: {e.__class__.__name__}") from None
+    label = label or os.path.splitext(os.path.basename(file))[0]
+    meta = {k: v for k, v in (("measured_by", by), ("measured_at", at),
+                              ("excitation", excitation), ("note", note)) if v}
+    meas = parse_measurement(text, rhp_poles=rhp_poles, integrators=integrators,
+                             min_coherence=min_coherence, where=os.path.basename(file),
+                             source=os.path.basename(file), source_hash=hashlib.sha256(text.encode()).hexdigest(), **meta)
+    with open_ledger() as lg:
+        p = lg.add_measurement(name, label, meas, replace=replace)
+    lo, hi = meas.band
+    typer.echo(f"plant {p.name} version {p.version}: measured:{label}, {meas.omega.size} "
+               f"points, {lo:.4g}..{hi:.4g} rad/s, {meas.excluded} excluded (coherence "
+               f"< {meas.min_coherence:g})")

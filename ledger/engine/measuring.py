@@ -101,6 +101,12 @@ def measure_family(family: PlantFamily, controller, loop: LoopSpec | None,
         if key not in seen:
             seen.add(key)
             reqs.append((name, full, key))
+    if any(v.kind == "measured" for v in family.variants) or any(
+            name in ("model_fit", "model_fit_phase") for name, _, _ in reqs):
+        from .measuredfamily import measure_mixed
+
+        return measure_mixed(family, controller, loop, reqs, lambda sub, rs: measure_family(
+            sub, controller, loop, [(n, f) for n, f, _ in rs], workers=workers))
     pl = plan(family, controller, loop)
     workers = (os.cpu_count() or 1) if workers == 0 else max(1, int(workers))
     if workers > 1 and len(pl.groups) > 1:

@@ -166,6 +166,13 @@ _DEFS = [
        "digital loops: after settling on the samples, the largest distance between the "
        "continuous plant output and the line through its neighbouring sample values, "
        "100 x / |y_final| (step on r)"),
+    # measured plants (docs/measured.md)
+    _m("model_fit", "dB", "lower", False, "G", (("frequency", None),),
+       "on a measured member: max over its kept points w <= frequency of "
+       "|20 log10 |G_meas / G_nominal||, the design model's delay included; 0 on model members"),
+    _m("model_fit_phase", "deg", "lower", False, "G", (("frequency", None),),
+       "on a measured member: max over its kept points w <= frequency of "
+       "|arg(G_meas / G_nominal)| wrapped to [0, 180]; 0 on model members"),
 ]
 
 #: name -> MetricDef, in catalogue order.

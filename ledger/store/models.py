@@ -77,6 +77,7 @@ class PlantVersion(Base):
     sample_time: Mapped[float | None] = mapped_column(Float, nullable=True)
     parameters_json: Mapped[str] = mapped_column(Text, default="{}")
     fidelity_json: Mapped[str] = mapped_column(Text, default="{}")
+    measured_json: Mapped[str] = mapped_column(Text, default="{}", server_default="{}")
     samples: Mapped[int] = mapped_column(Integer, default=0)
     seed: Mapped[int] = mapped_column(Integer, default=0)
     input_unit: Mapped[str] = mapped_column(String(40), default="")

@@ -45,16 +45,17 @@ def info(s: Session, plant: Plant, pv: PlantVersion) -> PlantInfo:
         input_unit=pv.input_unit, output_unit=pv.output_unit, description=plant.description,
         note=pv.note, author=pv.author, content_hash=pv.content_hash,
         created_at=utc(pv.created_at), versions=nver,
+        measured=json.loads(pv.measured_json or "{}"),
     )
 
 
 def add(s: Session, name: str, model: str, *, author: str, params=None, fidelity=None,
         samples=0, seed=0, sample_time=None, input_unit="", output_unit="", description="",
-        note="") -> tuple[PlantInfo, bool]:
+        note="", measured=None) -> tuple[PlantInfo, bool]:
     """Add a plant, or a new version when anything changed; ``(info, created)``."""
     check_name("plant", name)
     fields = plant_fields(name, model, params, fidelity, samples, seed, sample_time,
-                          input_unit, output_unit)
+                          input_unit, output_unit, measured)
     row = s.scalar(select(Plant).where(Plant.name == name))
     if row is None:
         row = Plant(name=name, description=description or "", created_at=now())
@@ -64,7 +65,8 @@ def add(s: Session, name: str, model: str, *, author: str, params=None, fidelity
         number = 1
     else:
         latest = latest_version(s, row.id)
-        if latest.content_hash == fields["content_hash"] and latest.model_text == model:
+        if latest.content_hash == fields["content_hash"] and latest.model_text == model \
+                and (latest.measured_json or "{}") == fields["measured_json"]:
             return info(s, row, latest), False
         number = latest.number + 1
     pv = PlantVersion(plant_id=row.id, number=number, note=note or "", author=author,

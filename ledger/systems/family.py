@@ -165,7 +165,8 @@ def _tf_variants(model: Model, rows: list[tuple[str, str, dict]], dt: float) -> 
 
 def build_family(model: str | Model, params: Mapping[str, Any], *, corners: bool = True,
                  samples: int = 0, seed: int = 0, fidelity: Mapping[str, str] | None = None,
-                 sample_time: float | None = None, max_corners: int = 1024) -> PlantFamily:
+                 sample_time: float | None = None, max_corners: int = 1024,
+                 measured: Mapping[str, Any] | None = None) -> PlantFamily:
     """Build a plant family from a model and its parameter tolerances.
 
     Parameters
@@ -190,6 +191,9 @@ def build_family(model: str | Model, params: Mapping[str, Any], *, corners: bool
         Sample time in seconds for ``z`` models.
     max_corners : int
         Largest number of corners allowed (default 1024).
+    measured : mapping of str to MeasuredResponse (or its JSON form), optional
+        Bench measurements by name, members ``measured:<name>`` of kind ``measured``
+        (frequency metrics only; ``docs/measured.md``).
 
     Returns
     -------
@@ -274,6 +278,13 @@ def build_family(model: str | Model, params: Mapping[str, Any], *, corners: bool
         ev = fmodel.evaluate(nominal, sample_time=sample_time)
         variants.append(Variant(name=f"fidelity:{fname}", kind="fidelity", system=ev.system,
                                 params=dict(nominal), delay=ev.delay))
+    from ledger.systems.measured import MeasuredResponse
+
+    for mname, m in (measured or {}).items():
+        if not isinstance(m, MeasuredResponse):
+            m = MeasuredResponse.from_json(m)
+        variants.append(Variant(name=f"measured:{mname}", kind="measured", system=m,
+                                params={}))
     try:
         return PlantFamily(tuple(variants))
     except ValueError as e:

@@ -33,7 +33,8 @@ def family_for(plan: RevisionPlan):
 
         p = plan.plant_spec
         fam = build_family(p["model"], p["params"], corners=True, samples=p["samples"],
-                           seed=p["seed"], fidelity=p["fidelity"], sample_time=p["sample_time"])
+                           seed=p["seed"], fidelity=p["fidelity"], sample_time=p["sample_time"],
+                           measured=p.get("measured"))
         if len(_FAMILIES) > FAMILY_CACHE_SIZE:
             _FAMILIES.clear()
         _FAMILIES[memo] = fam

@@ -145,6 +145,7 @@ def plan_head(loop: Loop, pv: PlantVersion, revision: Revision | None,
         plant_hash=pv.content_hash,
         plant_spec={"model": pv.model_text, "params": json.loads(pv.parameters_json),
                     "fidelity": json.loads(pv.fidelity_json), "samples": pv.samples,
+                    "measured": json.loads(pv.measured_json or "{}"),
                     "seed": pv.seed, "sample_time": pv.sample_time},
     )
 
