@@ -13,6 +13,11 @@ Environment variables (read when asked, never at import, so a test or a caller m
 ``LOOPLEDGER_CONFIG_DIR``
     Folder of the per-user display preferences file ``prefs.json`` (default
     ``$XDG_CONFIG_HOME/loopledger``, else ``~/.config/loopledger``).
+``LOOPLEDGER_CLUSTER``
+    Where ``loopledger verify`` computes when ``--cluster`` is not given: the address of a
+    running Dask scheduler (``tcp://host:8786``, ``tls://host:8786``) or ``local:N`` (a cluster
+    of N worker processes on this machine); unset or empty: this machine without a cluster
+    (docs/operations.md, "Verification on a Dask cluster").
 ``COLUMNS``
     The terminal width the command line fits its tables and lines to (the shell's own
     variable; unset, empty or not a positive whole number: the terminal's width).
@@ -26,7 +31,7 @@ import getpass
 import os
 
 __all__ = ["DEFAULT_PATH", "BUSY_TIMEOUT_MS", "WRITE_RETRIES", "IN_CHUNK", "FAMILY_CACHE_SIZE",
-           "db_target", "author", "debug", "digits_setting", "prefs_dir", "columns"]
+           "CLUSTER_TASK_WORK", "CLUSTER_CONNECT_TIMEOUT", "cluster_address", "db_target", "author", "debug", "digits_setting", "prefs_dir", "columns"]
 
 #: the ledger file used when none is named and ``$LOOPLEDGER_DB`` is unset
 DEFAULT_PATH = "loopledger.db"
@@ -38,6 +43,12 @@ WRITE_RETRIES = 5
 IN_CHUNK = 500
 #: plant families kept built in one process (keyed by content hash and parameter order)
 FAMILY_CACHE_SIZE = 32
+#: least variant x metric-request evaluations one cluster task carries (when the run has that
+#: much): at about 30-100 us per evaluation a task then computes for 60 ms or more, against
+#: a per-task cost of a few ms measured on a local Dask cluster (docs/performance.md)
+CLUSTER_TASK_WORK = 2000
+#: seconds to wait for a Dask scheduler to answer and for its first worker to join
+CLUSTER_CONNECT_TIMEOUT = 60.0
 
 
 def db_target() -> str:
@@ -54,6 +65,11 @@ def author() -> str:
         return getpass.getuser()
     except (KeyError, OSError):
         return "unknown"
+
+
+def cluster_address() -> str:
+    """``$LOOPLEDGER_CLUSTER`` stripped (``""`` when unset: no cluster)."""
+    return os.environ.get("LOOPLEDGER_CLUSTER", "").strip()
 
 
 def digits_setting() -> str:
