@@ -1,0 +1,196 @@
+"""Re-verify every revision of a synthetic ledger in-process, with the process pool and on a
+local Dask cluster of two workers; per-task cost, serial fraction, speed-ups.
+
+Usage::
+
+    python benchmarks/cluster.py            # 200 revisions x a 1,000-variant family
+    python benchmarks/cluster.py --quick    # 20 revisions x 200 variants
+    python benchmarks/cluster.py --revisions 60 --variants 1000
+
+Also the ``cluster`` workload of ``benchmarks/run.py``.  Work: the ledger of
+``benchmarks.ledgers.build_small_ledger`` (the pipette scenario, 14 requirements), then a new
+plant version (next sample seed) in a fresh copy per run, so each run re-verifies every
+revision from nothing.  Figures only, never an assertion on time.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import logging
+import shutil
+import sys
+import time
+from pathlib import Path
+
+if __package__ in (None, ""):          # run as a script: make ``benchmarks`` importable
+    sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
+    __package__ = "benchmarks"
+
+from benchmarks import scenario as S  # noqa: E402
+
+__all__ = ["measure", "noop"]
+
+
+def noop(unit):
+    """A task that computes nothing: its round trip is the executor's per-task cost."""
+    return len(unit.parts)
+
+
+def _fresh(src: Path, dst: Path) -> Path:
+    from ledger.api import open_ledger
+
+    shutil.copyfile(src, dst)
+    with open_ledger(dst, author="bench") as lg:
+        lg.auto_verify = False
+        info = lg.plant("pipette")
+        lg.add_plant("pipette", S.PLANT_TEXT, params=S.PARAMS,
+                     fidelity={"full-order": S.FULL_TEXT}, samples=info.samples, seed=2,
+                     note="new sample seed")
+    return dst
+
+
+def _timed_verify(path: Path, **kw) -> dict:
+    """One verify(): wall time, planning time (until the first progress call), time spent in
+    the ledger's write transactions, tasks."""
+    from ledger.api import open_ledger
+
+    out = {"tasks": 0, "planning": 0.0, "writing": 0.0}
+    with open_ledger(path, author="bench") as lg:
+        write = lg.store.write
+
+        def timed_write(fn, *a, **k):
+            t = time.perf_counter()
+            try:
+                return write(fn, *a, **k)
+            finally:
+                out["writing"] += time.perf_counter() - t
+
+        lg.store.write = timed_write
+        t0 = time.perf_counter()
+
+        def progress(done, total, what):
+            out["tasks"] = total
+            if done == 0:
+                out["planning"] = time.perf_counter() - t0
+
+        rep = lg.verify(progress=progress, **kw)
+        out["seconds"] = time.perf_counter() - t0
+    out["revisions"] = len(rep)
+    out["requests"] = sum(r["computed"] for r in rep)
+    return out
+
+
+def measure(tmp: Path, *, revisions: int, variants: int, workers: int = 2) -> dict:
+    """Every figure of the workload (see the module docstring)."""
+    import distributed
+
+    from benchmarks import ledgers as Lg
+    from ledger.verification.plan import plan_loops
+    from ledger.verification.units import make_units
+    from ledger.api import open_ledger
+
+    src = tmp / "cluster-src.db"
+    Lg.build_small_ledger(src, revisions=revisions, samples=max(0, variants - 6))
+    res: dict = {"revisions": revisions, "variants": variants, "workers": workers}
+    res["in_process"] = _timed_verify(_fresh(src, tmp / "c-in.db"))
+    res["pool"] = _timed_verify(_fresh(src, tmp / "c-pool.db"), workers=workers)
+    t0 = time.perf_counter()
+    cluster = distributed.LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
+                                       host="127.0.0.1", dashboard_address=None,
+                                       silence_logs=logging.ERROR)
+    client = distributed.Client(cluster, set_as_default=False)
+    client.wait_for_workers(workers, timeout=600)
+    client.run(lambda: __import__("ledger.verification.units"))  # imports, as a warm worker
+    res["cluster_start_s"] = time.perf_counter() - t0
+    try:
+        res["dask"] = _timed_verify(_fresh(src, tmp / "c-dask.db"), cluster=client)
+        # per-task cost: the same tasks (same plans carried), computing nothing
+        path = _fresh(src, tmp / "c-noop.db")
+        with open_ledger(path) as lg, lg.store.reading() as s:
+            plans = plan_loops(s)
+        from ledger.config import CLUSTER_TASK_WORK
+
+        units, _ = make_units(plans, workers, least_work=CLUSTER_TASK_WORK)
+        t0 = time.perf_counter()
+        futs = [client.submit(noop, u, pure=False) for u in units]
+        client.gather(futs)
+        res["noop_tasks"] = len(units)
+        res["noop_s"] = time.perf_counter() - t0
+    finally:
+        client.close()
+        cluster.close()
+    a, p, d = res["in_process"], res["pool"], res["dask"]
+    res["same_results"] = _results(tmp / "c-in.db") == _results(tmp / "c-dask.db") \
+        == _results(tmp / "c-pool.db")
+    # per-task cost with both workers busy: wall x slots / tasks
+    res["per_task_s"] = res["noop_s"] * workers / max(1, res["noop_tasks"])
+    compute = a["seconds"] - a["planning"] - a["writing"]
+    res["compute_per_task_s"] = compute / max(1, d["tasks"])
+    res["overhead_share"] = res["per_task_s"] / (res["per_task_s"] + res["compute_per_task_s"])
+    res["serial_s"] = a["planning"] + a["writing"]
+    res["serial_fraction"] = res["serial_s"] / a["seconds"]
+    res["speedup_pool"] = a["seconds"] / p["seconds"]
+    res["speedup_dask"] = a["seconds"] / d["seconds"]
+    return res
+
+
+def _results(path: Path) -> list:
+    import sqlite3
+
+    db = sqlite3.connect(path)
+    try:
+        return db.execute("SELECT revision_id, requirement_version_id, plant_version_id, "
+                          "verdict, value, headroom, worst_variant, pass_fraction, metric_key "
+                          "FROM result ORDER BY 1, 2, 3").fetchall()
+    finally:
+        db.close()
+
+
+def rows(res: dict) -> list[tuple[str, str]]:
+    """(figure, value) lines for printing and for benchmarks/run.py."""
+    a, p, d = res["in_process"], res["pool"], res["dask"]
+    n, w = f"{res['revisions']} revisions x {res['variants']} variants", res["workers"]
+    return [
+        (f"re-verify {n}, 14 requirements: in-process / process pool of {w} / local Dask "
+         f"cluster of {w}", f"{a['seconds']:.2f} s / {p['seconds']:.2f} s / {d['seconds']:.2f} s"),
+        ("tasks: in-process / pool / Dask", f"{a['tasks']} / {p['tasks']} / {d['tasks']}"),
+        ("speed-up vs in-process: pool / Dask", f"{res['speedup_pool']:.2f}x / "
+         f"{res['speedup_dask']:.2f}x"),
+        ("results identical (every column) in the three runs", str(res["same_results"])),
+        (f"Dask per-task cost ({res['noop_tasks']} tasks carrying the same plans, computing "
+         "nothing; wall x workers / tasks)", f"{res['per_task_s'] * 1e3:.1f} ms"),
+        ("compute per Dask task (in-process compute time / tasks)",
+         f"{res['compute_per_task_s'] * 1e3:.0f} ms"),
+        ("per-task cost as a share of a task", f"{res['overhead_share'] * 100:.1f} %"),
+        ("serial part in the submitting process (planning + writing), in-process run",
+         f"{res['serial_s']:.2f} s = {res['serial_fraction'] * 100:.1f} % "
+         f"(planning {a['planning']:.2f} s, writing {a['writing']:.2f} s)"),
+        ("writing in the Dask run / pool run", f"{d['writing']:.2f} s / {p['writing']:.2f} s"),
+        (f"local cluster of {w} up (workers joined, imports done)",
+         f"{res['cluster_start_s']:.2f} s (not in the Dask time)"),
+    ]
+
+
+def main(argv=None) -> int:
+    import tempfile
+
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--quick", action="store_true", help="20 revisions x 200 variants")
+    ap.add_argument("--revisions", type=int, default=None)
+    ap.add_argument("--variants", type=int, default=None)
+    ap.add_argument("--json", action="store_true", help="also print the raw figures as JSON")
+    args = ap.parse_args(argv)
+    revs = args.revisions or (20 if args.quick else 200)
+    var = args.variants or (200 if args.quick else 1000)
+    with tempfile.TemporaryDirectory(prefix="loopledger-cluster-") as d:
+        res = measure(Path(d), revisions=revs, variants=var)
+    for what, value in rows(res):
+        print(f"{what}: {value}")
+    if args.json:
+        print(json.dumps(res))
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
