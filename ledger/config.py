@@ -31,7 +31,8 @@ import getpass
 import os
 
 __all__ = ["DEFAULT_PATH", "BUSY_TIMEOUT_MS", "WRITE_RETRIES", "IN_CHUNK", "FAMILY_CACHE_SIZE",
-           "CLUSTER_TASK_WORK", "CLUSTER_CONNECT_TIMEOUT", "cluster_address", "db_target", "author", "debug", "digits_setting", "prefs_dir", "columns"]
+           "CLUSTER_TASK_WORK", "CLUSTER_CONNECT_TIMEOUT", "CLUSTER_MALLOC_TRIM",
+           "cluster_address", "db_target", "author", "debug", "digits_setting", "prefs_dir", "columns"]
 
 #: the ledger file used when none is named and ``$LOOPLEDGER_DB`` is unset
 DEFAULT_PATH = "loopledger.db"
@@ -47,6 +48,11 @@ FAMILY_CACHE_SIZE = 32
 #: much): at about 30-100 us per evaluation a task then computes for 60 ms or more, against
 #: a per-task cost of a few ms measured on a local Dask cluster (docs/performance.md)
 CLUSTER_TASK_WORK = 2000
+#: ``MALLOC_TRIM_THRESHOLD_`` (bytes) of the worker processes of a ``local:N`` cluster.  Dask's
+#: nanny sets 64 KiB so that workers hand memory back at once; the engine makes and drops
+#: large numpy temporaries, and at 64 KiB a task took 1.5-2x the CPU time it takes
+#: in-process (measured, docs/performance.md); 128 MiB keeps the in-process speed.
+CLUSTER_MALLOC_TRIM = 128 * 2 ** 20
 #: seconds to wait for a Dask scheduler to answer and for its first worker to join
 CLUSTER_CONNECT_TIMEOUT = 60.0
 

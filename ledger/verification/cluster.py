@@ -17,7 +17,7 @@ import logging
 import os
 import uuid
 
-from ..config import CLUSTER_CONNECT_TIMEOUT, CLUSTER_TASK_WORK
+from ..config import CLUSTER_CONNECT_TIMEOUT, CLUSTER_MALLOC_TRIM, CLUSTER_TASK_WORK
 from ..errors import ClusterError, UsageError
 from .executors import Executor
 
@@ -86,11 +86,19 @@ class DaskCluster(Executor):
         d = self._d
         try:
             if self._local:
-                # processes on loopback only, no dashboard: nothing is exposed beyond this host
-                self._cluster = d.LocalCluster(n_workers=self._local, threads_per_worker=1,
-                                               processes=True, host="127.0.0.1",
-                                               dashboard_address=None,
-                                               silence_logs=logging.ERROR)
+                import dask
+
+                # processes on loopback only, no dashboard: nothing is exposed beyond this
+                # host; no statistical profiler and no eager memory trimming in the workers
+                # (both slow the engine's numpy work down; config.CLUSTER_MALLOC_TRIM)
+                with dask.config.set({
+                        "distributed.worker.profile.enabled": False,
+                        "distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_":
+                            CLUSTER_MALLOC_TRIM}):
+                    self._cluster = d.LocalCluster(n_workers=self._local, threads_per_worker=1,
+                                                   processes=True, host="127.0.0.1",
+                                                   dashboard_address=None,
+                                                   silence_logs=logging.ERROR)
                 self.client = d.Client(self._cluster, set_as_default=False)
             else:
                 self.client = d.Client(self.spec, timeout=self.timeout, set_as_default=False)
