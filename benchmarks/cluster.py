@@ -28,7 +28,7 @@ if __package__ in (None, ""):          # run as a script: make ``benchmarks`` im
 
 from benchmarks import scenario as S  # noqa: E402
 
-__all__ = ["measure", "noop"]
+__all__ = ["measure", "noop", "rows", "extrapolation"]
 
 
 def noop(unit):
@@ -175,6 +175,42 @@ def rows(res: dict) -> list[tuple[str, str]]:
     ]
 
 
+def extrapolation(res: dict, workers: int = 64) -> str:
+    """The 64-worker estimate on paper from the measured per-task cost, compute per task and
+    serial part (a paragraph for docs/performance.md)."""
+    import math
+
+    a, d = res["in_process"], res["dask"]
+    k, c, o = d["tasks"], res["compute_per_task_s"], res["per_task_s"]
+    plan, write = a["planning"], max(a["writing"], d["writing"])
+    # the engine's task cut for that many workers: whole revisions (enough of them) of the
+    # same work each; rounds = tasks per worker, rounded up
+    rounds = math.ceil(k / workers) if k >= 2 * workers else None
+    t1 = a["seconds"]
+    lines = [f"Measured: {res['revisions']} revisions x {res['variants']} variants, "
+             f"{k} Dask tasks of {c * 1e3:.0f} ms compute each, per-task cost {o * 1e3:.1f} ms "
+             f"({res['overhead_share'] * 100:.1f} % of a task), planning {plan:.2f} s and "
+             f"writing {write:.2f} s in the submitting process (serial fraction "
+             f"{res['serial_fraction'] * 100:.1f} % of the in-process {t1:.1f} s)."]
+    if rounds is None:
+        lines.append(f"With {workers} workers this ledger has fewer than two revisions per "
+                     "worker, so its families are cut into group chunks; the estimate treats "
+                     "the compute as divisible.")
+        compute = k * (c + o) / workers
+    else:
+        compute = rounds * (c + o)
+    t = plan + max(write, compute)
+    lines.append(f"On paper, {workers} workers: planning {plan:.2f} s + max(writing "
+                 f"{write:.2f} s, compute {compute:.2f} s) = {t:.2f} s, a speed-up of "
+                 f"{t1 / t:.0f}x over in-process (writing overlaps the computing: results are "
+                 f"recorded while workers compute); the serial part alone bounds it at "
+                 f"{t1 / max(plan + write, 1e-9):.0f}x.  Scaled to the issue's case (50 loops x 200 "
+                 "revisions, 10,000 variants each, 10x the compute per revision and 50x the "
+                 "revisions) the compute term grows 500x while the writing grows 50x, so the "
+                 "cluster stays compute-bound and the estimate scales with the worker count.")
+    return "  ".join(lines)
+
+
 def main(argv=None) -> int:
     import tempfile
 
@@ -190,6 +226,8 @@ def main(argv=None) -> int:
         res = measure(Path(d), revisions=revs, variants=var)
     for what, value in rows(res):
         print(f"{what}: {value}")
+    print()
+    print(extrapolation(res))
     if args.json:
         print(json.dumps(res))
     return 0

@@ -45,9 +45,10 @@ IN_CHUNK = 500
 #: plant families kept built in one process (keyed by content hash and parameter order)
 FAMILY_CACHE_SIZE = 32
 #: least variant x metric-request evaluations one cluster task carries (when the run has that
-#: much): at about 30-100 us per evaluation a task then computes for 60 ms or more, against
-#: a per-task cost of a few ms measured on a local Dask cluster (docs/performance.md)
-CLUSTER_TASK_WORK = 2000
+#: much): at 30-100 us per evaluation a task then computes for 150 ms or more, against a
+#: per-task cost of 10-15 ms measured on a local Dask cluster (benchmarks/cluster.py), so the
+#: per-task cost stays under 10 % of a task
+CLUSTER_TASK_WORK = 5000
 #: ``MALLOC_TRIM_THRESHOLD_`` (bytes) of the worker processes of a ``local:N`` cluster.  Dask's
 #: nanny sets 64 KiB so that workers hand memory back at once; the engine makes and drops
 #: large numpy temporaries, and at 64 KiB a task took 1.5-2x the CPU time it takes
