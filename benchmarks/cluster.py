@@ -40,7 +40,7 @@ def _warm() -> None:
     import control  # noqa: F401
 
     import ledger.engine.kernels  # noqa: F401
-    import ledger.verification.units  # noqa: F401
+    import ledger.verification.units  # noqa: F401 - what a first task would import
 
 
 def _fresh(src: Path, dst: Path) -> Path:

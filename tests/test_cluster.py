@@ -100,7 +100,10 @@ def _new_plant_versions(path) -> None:
                          output_unit=i.output_unit, note="next sample seed")
 
 
-def test_demo_ledger_on_a_local_cluster_matches_in_process(tmp_path, client):
+def test_demo_ledger_on_a_local_cluster_matches_in_process(tmp_path, client, monkeypatch):
+    from ledger.verification.cluster import DaskCluster
+
+    monkeypatch.setattr(DaskCluster, "least_work", 500)   # tasks for both workers
     a = _copy(ROOT / "sample_db" / "demo.db", tmp_path / "a.db")
     b = _copy(a, tmp_path / "b.db")
     for p in (a, b):

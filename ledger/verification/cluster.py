@@ -19,7 +19,7 @@ import uuid
 
 from ..config import CLUSTER_CONNECT_TIMEOUT, CLUSTER_MALLOC_TRIM, CLUSTER_TASK_WORK
 from ..errors import ClusterError, UsageError
-from .executors import Executor
+from .seam import Executor
 
 __all__ = ["DaskCluster", "parse_local", "import_distributed", "EXTRA_HINT"]
 

@@ -1,4 +1,4 @@
-"""The executor seam: where a verification run's tasks (:mod:`.units`) are computed.
+"""The executor seam (the interface in :mod:`.seam`): where a verification run's tasks (:mod:`.units`) are computed.
 
 One interface, three implementations:
 
@@ -15,49 +15,36 @@ revision, whatever the executor.
 from __future__ import annotations
 
 import os
-from typing import Callable, Iterator
 
 from ..errors import UsageError
+from .seam import Executor
 
-__all__ = ["Executor", "InProcess", "ProcessPool", "open_executor"]
+__all__ = ["Executor", "InProcess", "ProcessPool", "open_executor", "worker_pool",
+           "init_worker"]
 
 
-class Executor:
-    """Where tasks run.
+def init_worker() -> None:
+    """Run once in every worker process of :func:`worker_pool` before its first task: the
+    worker ends when its parent dies (ledger/workers.py)."""
+    from ..workers import die_with_parent, one_blas_thread
 
-    Attributes
-    ----------
-    name : str
-        Shown in messages (``"in-process"``, ``"process pool of 2"``, ``"Dask cluster at ..."``).
-    least_work : int
-        Least variant x request evaluations worth one task here (the per-task cost of this
-        executor; :func:`.units.make_units`).
-    chunk_families : bool
-        Whether one revision's family may be split into group chunks over several tasks.
+    die_with_parent()
+    one_blas_thread()
+
+
+def worker_pool(n_workers: int):
+    """The process pool verification computes in (the one place worker processes are made).
+
+    Forked workers inherit the engine already imported and the plant families already built
+    by the parent; where fork is not available, workers are spawned.
     """
+    import multiprocessing as mp
+    from concurrent.futures import ProcessPoolExecutor
 
-    name = "in-process"
-    least_work = 1
-    chunk_families = False
+    from ..engine import kernels as _engine_loaded  # noqa: F401 - forked workers inherit it
 
-    @property
-    def slots(self) -> int:
-        """Tasks computed at the same time."""
-        return 1
-
-    def run(self, fn: Callable, tasks: list) -> Iterator[tuple[int, object]]:
-        """``(position, fn(task))`` for every task, in the order they complete."""
-        for i, t in enumerate(tasks):
-            yield i, fn(t)
-
-    def close(self) -> None:
-        """Release workers and connections (idempotent)."""
-
-    def __enter__(self):
-        return self
-
-    def __exit__(self, *exc) -> None:
-        self.close()
+    ctx = mp.get_context("fork" if "fork" in mp.get_all_start_methods() else "spawn")
+    return ProcessPoolExecutor(max_workers=n_workers, mp_context=ctx, initializer=init_worker)
 
 
 class InProcess(Executor):
@@ -81,8 +68,6 @@ class ProcessPool(Executor):
 
     def run(self, fn, tasks):
         from concurrent.futures import as_completed
-
-        from .runner import worker_pool
 
         if not tasks:
             return

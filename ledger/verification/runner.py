@@ -17,37 +17,13 @@ from ..store import loops as loops_db
 from ..store import revisions as rev_db
 from .compute import compute_plan, controller_for, family_for, loop_spec_for
 from .compute import validate_controller
-from .executors import open_executor
+from .executors import init_worker, open_executor, worker_pool
 from .plan import plan_controller, plan_loops, plan_revision
 from .record import rejudge_cached, write_results
 from .units import Assembly, make_units, run_unit
 
 __all__ = ["verify", "add_revision", "numeric_setup", "after_requirement_change",
            "worker_pool", "init_worker"]
-
-
-def init_worker() -> None:
-    """Run once in every worker process of :func:`worker_pool` before its first task: the
-    worker ends when its parent dies (ledger/workers.py)."""
-    from ..workers import die_with_parent, one_blas_thread
-
-    die_with_parent()
-    one_blas_thread()
-
-
-def worker_pool(n_workers: int):
-    """The process pool verification computes in (the one place worker processes are made).
-
-    Forked workers inherit the engine already imported and the plant families already built
-    by the parent; where fork is not available, workers are spawned.
-    """
-    import multiprocessing as mp
-    from concurrent.futures import ProcessPoolExecutor
-
-    from ..engine import kernels as _engine_loaded  # noqa: F401 - forked workers inherit it
-
-    ctx = mp.get_context("fork" if "fork" in mp.get_all_start_methods() else "spawn")
-    return ProcessPoolExecutor(max_workers=n_workers, mp_context=ctx, initializer=init_worker)
 
 
 def verify(lg, loop: str | None = None, *, label: str | None = None, tips_only: bool = False,
