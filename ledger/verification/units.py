@@ -13,8 +13,9 @@ A run's plans (one per revision, :mod:`.plan`) become tasks of one of two shapes
 
 Either way a task carries at least ``least_work`` variant x request evaluations when that much
 exists (``config.CLUSTER_TASK_WORK`` for a cluster), so the per-task cost of the executor
-(scheduling, transfer) stays a small share of the task, and there are still about four tasks
-per worker to balance uneven ones.
+(scheduling, transfer) stays a small share of the task, but never so much that there are fewer
+than two tasks per worker slot (an idle worker costs more than a task's overhead); with
+plenty of work there are about four tasks per slot to balance uneven ones.
 
 :func:`run_unit` is what a worker runs: plain data in (the plans are texts and numbers), plain
 data out, no database.  :class:`Assembly` puts the parts of a revision back together in the
@@ -118,7 +119,10 @@ def make_units(plans: list[tuple[RevisionPlan, dict]], workers: int, *,
         avg = sum(work_of(i) for i in busy) / len(busy)
         # one revision per task in this process; in parallel, about four tasks per slot
         balance = len(busy) // (4 * workers) if workers > 1 else 1
-        per = max(1, math.ceil(least_work / max(avg, 1.0)), balance)
+        # enough work per task for its cost, but never fewer than two tasks per slot
+        enough = min(math.ceil(least_work / max(avg, 1.0)),
+                     math.ceil(len(busy) / (2 * workers)))
+        per = max(1, enough, balance)
         for k in range(0, len(busy), per):
             idx = busy[k:k + per]
             units.append(Unit(tuple(Part(i, plans[i][0], tuple(todos[i].values())) for i in idx),
@@ -137,7 +141,8 @@ def make_units(plans: list[tuple[RevisionPlan, dict]], workers: int, *,
             units.append(Unit((Part(i, plan, reqs),), work_of(i)))
             continue
         size = sum(g.index.size for g in groups) / len(groups)
-        least = math.ceil(least_work / max(size * len(reqs), 1.0))
+        least = min(math.ceil(least_work / max(size * len(reqs), 1.0)),
+                    math.ceil(len(groups) / (2 * workers)))
         for pos in task_groups(len(groups), workers, least=least):
             units.append(Unit((Part(i, plan, reqs, tuple(pos)),),
                               int(sum(groups[k].index.size for k in pos)) * len(reqs)))
