@@ -78,7 +78,8 @@ class DaskCluster(Executor):
                          else f"Dask cluster at {self.spec}")
         else:
             self.spec, self._local, self.client = "", None, cluster
-            self.name = f"Dask cluster at {getattr(cluster, 'scheduler', None) and cluster.scheduler.address}"
+            info = getattr(cluster, "scheduler", None)
+            self.name = f"Dask cluster at {getattr(info, 'address', 'its client')}"
 
     def _connect(self):
         if self.client is not None:

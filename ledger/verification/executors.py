@@ -1,4 +1,5 @@
-"""The executor seam (the interface in :mod:`.seam`): where a verification run's tasks (:mod:`.units`) are computed.
+"""The executor seam (the interface in :mod:`.seam`): where a verification run's tasks
+(:mod:`.units`) are computed.
 
 One interface, three implementations:
 
