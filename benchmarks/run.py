@@ -37,13 +37,15 @@ FULL = dict(variants=1000, baseline=200, small_revisions=200, small_samples=10,
             scale_revisions=10_000, scale_requirements=100,
             resonant=(1000, 10_000), count_sweep=(10, 100, 1000, 10_000), orders=(2, 4, 8, 16),
             order_sizes=(100, 1000), order_baselines=True, baseline_slice=50,
-            stream=100_000, cores=10_000, verify_samples=10_000, accuracy_subset=8)
+            stream=100_000, cores=10_000, verify_samples=10_000, accuracy_subset=8,
+            cluster=(200, 1000))
 QUICK = dict(variants=100, baseline=30, small_revisions=12, small_samples=4,
              parallel_revisions=12, parallel_repeats=1, slow_repeats=3, ui_timeout=15.0,
              scale_revisions=100, scale_requirements=100,
              resonant=(1000,), count_sweep=(10, 100, 1000), orders=(2, 4, 8, 16),
              order_sizes=(100,), order_baselines=False, baseline_slice=50,
-             stream=5000, cores=1000, verify_samples=1000, accuracy_subset=3)
+             stream=5000, cores=1000, verify_samples=1000, accuracy_subset=3,
+            cluster=(20, 200))
 
 
 class Row:
@@ -458,6 +460,11 @@ def markdown(info, rows, notes, quick: bool, elapsed: float) -> str:
     if "sweep" in notes and notes["sweep"]["engine_errors"]:
         out += ["", "Engine errors during the sweep:", ""]
         out += [f"- {k}: {v}" for k, v in notes["sweep"]["engine_errors"].items()]
+    if "cluster" in notes:
+        from benchmarks import cluster as C
+
+        out += ["", "## Verification on a Dask cluster: 64 workers on paper", "",
+                C.extrapolation(notes["cluster"])]
     out += ["", "## How the workloads are built", "",
             "- Scenario: invented pipette axis K/(s (tau_m s + 1)), K = 180 +-10 %, "
             "tau_m = 30 ms +-20 %, full-order model with tau_e = 0.4 ms; controller "
@@ -557,7 +564,7 @@ def main(argv=None) -> int:
     ap.add_argument("--quick", action="store_true", help="reduced sizes, about two minutes")
     ap.add_argument("--write-docs", action="store_true", help="rewrite docs/performance.md")
     ap.add_argument("--only", default="", help="comma-separated workloads: memory,sweep,"
-                    "resonant,streaming,cores,split,incremental,parallel,scale")
+                    "resonant,streaming,cores,split,incremental,parallel,scale,cluster")
     ap.add_argument("--child-family", nargs=4, type=int, default=None, help=argparse.SUPPRESS)
     ap.add_argument("--child-sweep", type=int, default=0, help=argparse.SUPPRESS)
     ap.add_argument("--child-parallel", nargs=3, default=None, help=argparse.SUPPRESS)
@@ -601,7 +608,8 @@ def main(argv=None) -> int:
                      "_small", run_incremental(cfg, rows, notes, tmp))),
                  ("parallel", lambda: run_parallel(cfg, rows, notes, tmp, notes.get("_small")
                                                    or _fresh_small(cfg, tmp))),
-                 ("scale", lambda: run_scale(cfg, rows, notes, tmp))]
+                 ("scale", lambda: run_scale(cfg, rows, notes, tmp)),
+                 ("cluster", lambda: _run_cluster(cfg, rows, notes, tmp))]
         for name, step in steps:
             if want(name):
                 t0 = time.perf_counter()
@@ -625,6 +633,16 @@ def main(argv=None) -> int:
         doc.write_text(markdown(info, rows, notes, args.quick, elapsed))
         print(f"wrote {doc}")
     return 0
+
+
+def _run_cluster(cfg, rows, notes, tmp):
+    """benchmarks/cluster.py: in-process, process pool, local Dask cluster of 2."""
+    from benchmarks import cluster as C
+
+    revisions, variants = cfg["cluster"]
+    res = C.measure(tmp, revisions=revisions, variants=variants)
+    rows.extend(Row("cluster", what, value) for what, value in C.rows(res))
+    notes["cluster"] = res
 
 
 def _fresh_small(cfg, tmp):

@@ -384,7 +384,7 @@ class Ledger:
     def verify(self, loop: str | None = None, *, label: str | None = None,
                tips_only: bool = False, keys: Iterable[str] | None = None,
                progress: Callable[[int, int, str], None] | None = None,
-               workers: int = 1) -> list[dict]:
+               workers: int = 1, cluster=None) -> list[dict]:
         """Bring results up to date: judge the latest version of every applicable requirement
         on revisions (all of them, the tips only, or one) against the latest plant version.
 
@@ -398,6 +398,16 @@ class Ledger:
             between them, or, with one revision to compute, the variants of its family
             (``measure_family(..., workers=)``).  Writing stays in this process, one
             transaction per revision.
+        cluster : str or distributed.Client, optional
+            Compute on a Dask cluster instead (the ``cluster`` extra): a scheduler address
+            (``tcp://host:8786``, ``tls://host:8786``), ``"local:N"`` (a cluster of N worker
+            processes on this machine, started and stopped by this call) or a connected
+            ``distributed.Client``.  Tasks are whole revisions when there are many, chunks of
+            one family's variant groups when there are few; the values, verdicts and cache
+            keys are the same as in-process.  Not combined with ``workers`` > 1.
+        progress : callable, optional
+            Called as ``progress(tasks done, tasks in all, what)``: with ``(0, n, ...)`` once
+            planning is done, then after each task (in this process a task is one revision).
 
         Returns
         -------
@@ -406,7 +416,7 @@ class Ledger:
             ``computed`` (metric requests evaluated by the engine).
         """
         return runner.verify(self, loop, label=label, tips_only=tips_only, keys=keys,
-                             progress=progress, workers=workers)
+                             progress=progress, workers=workers, cluster=cluster)
 
     def numeric_setup(self, loop: str, label: str | None = None):
         """The numeric objects a revision is verified with: ``(family, controller, loop_spec)``

@@ -18,6 +18,11 @@ Environment variables (read when asked, never at import, so a test or a caller m
     a dry run records nothing in it; keyed by content hash, so any ledger may reuse them
     (default ``$LOOPLEDGER_CONFIG_DIR/cache`` when that is set, else ``$XDG_CACHE_HOME/loopledger``,
     else ``~/.cache/loopledger``).
+``LOOPLEDGER_CLUSTER``
+    Where ``loopledger verify`` computes when ``--cluster`` is not given: the address of a
+    running Dask scheduler (``tcp://host:8786``, ``tls://host:8786``) or ``local:N`` (a cluster
+    of N worker processes on this machine); unset or empty: this machine without a cluster
+    (docs/operations.md, "Verification on a Dask cluster").
 ``COLUMNS``
     The terminal width the command line fits its tables and lines to (the shell's own
     variable; unset, empty or not a positive whole number: the terminal's width).
@@ -32,7 +37,8 @@ import os
 
 __all__ = ["DEFAULT_PATH", "BUSY_TIMEOUT_MS", "WRITE_RETRIES", "IN_CHUNK", "FAMILY_CACHE_SIZE",
            "db_target", "author", "debug", "digits_setting", "prefs_dir", "columns",
-           "cache_dir", "TRIED_CACHE_FILES"]
+           "cache_dir", "TRIED_CACHE_FILES", "CLUSTER_TASK_WORK", "CLUSTER_CONNECT_TIMEOUT",
+           "CLUSTER_MALLOC_TRIM", "cluster_address"]
 
 #: the ledger file used when none is named and ``$LOOPLEDGER_DB`` is unset
 DEFAULT_PATH = "loopledger.db"
@@ -46,6 +52,18 @@ IN_CHUNK = 500
 FAMILY_CACHE_SIZE = 32
 #: files of dry-run values kept on disk; the oldest are removed beyond this
 TRIED_CACHE_FILES = 2000
+#: least variant x metric-request evaluations one cluster task carries (when the run has that
+#: much): at 30-100 us per evaluation a task then computes for 150 ms or more, against a
+#: per-task cost of 10-15 ms measured on a local Dask cluster (benchmarks/cluster.py), so the
+#: per-task cost stays under 10 % of a task
+CLUSTER_TASK_WORK = 5000
+#: ``MALLOC_TRIM_THRESHOLD_`` (bytes) of the worker processes of a ``local:N`` cluster.  Dask's
+#: nanny sets 64 KiB so that workers hand memory back at once; the engine makes and drops
+#: large numpy temporaries, and at 64 KiB a task took 1.5-2x the CPU time it takes
+#: in-process (measured, docs/performance.md); 128 MiB keeps the in-process speed.
+CLUSTER_MALLOC_TRIM = 128 * 2 ** 20
+#: seconds to wait for a Dask scheduler to answer and for its first worker to join
+CLUSTER_CONNECT_TIMEOUT = 60.0
 
 
 def db_target() -> str:
@@ -62,6 +80,11 @@ def author() -> str:
         return getpass.getuser()
     except (KeyError, OSError):
         return "unknown"
+
+
+def cluster_address() -> str:
+    """``$LOOPLEDGER_CLUSTER`` stripped (``""`` when unset: no cluster)."""
+    return os.environ.get("LOOPLEDGER_CLUSTER", "").strip()
 
 
 def digits_setting() -> str:

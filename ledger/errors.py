@@ -22,6 +22,7 @@ __all__ = [
     "UnstableLoopError",
     "UsageError",
     "OutputError",
+    "ClusterError",
     "with_context",
 ]
 
@@ -106,6 +107,11 @@ class UsageError(LedgerError, ValueError):
 
 class OutputError(LedgerError, OSError):
     """A file could not be written (nothing is left half-written)."""
+
+
+class ClusterError(LedgerError, RuntimeError):
+    """The compute cluster could not be reached, lost the worker of a task, or computes with
+    another engine version; results recorded before it stay, none half-written."""
 
 
 def with_context(e: LedgerError, prefix: str) -> LedgerError:

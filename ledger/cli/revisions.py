@@ -148,18 +148,25 @@ def rev_show(loop: str, label: Optional[str] = typer.Argument(None, help="Revisi
 @errors_to_exit
 def verify_cmd(loop: Optional[str] = typer.Option(None, "--loop", help="Only this loop."),
                tips: bool = typer.Option(False, "--tips", help="Only the latest revision of each loop."),
-               workers: int = typer.Option(0, "--workers", help="Parallel processes (0 = one per core).")):
+               workers: Optional[int] = typer.Option(None, "--workers", help="Parallel processes on this machine (0 = one per core, the default without a cluster)."),
+               cluster: Optional[str] = typer.Option(None, "--cluster", metavar="ADDRESS", help="Compute on a Dask cluster: a scheduler address (tcp://host:8786) or local:N for N worker processes here (default $LOOPLEDGER_CLUSTER; needs loopledger[cluster]).")):
     """Bring verification up to date: compute every missing result (new requirement or plant
-    versions, interrupted runs), reusing cached metric values."""
-    from rich.progress import Progress
+    versions, interrupted runs), reusing cached metric values.  Progress (tasks done, tasks
+    per second, time left) goes to standard error."""
+    from ..config import cluster_address
+    from .progress import TaskProgress
 
-    with open_ledger() as lg, Progress(transient=True) as bar:
-        task = bar.add_task("verifying", total=None)
-
-        def progress(i, n, what):
-            bar.update(task, total=n, completed=i, description=f"verifying {what}")
-
-        rep = lg.verify(loop, tips_only=tips, progress=progress, workers=workers)
+    if cluster is None and workers is None:
+        cluster = cluster_address() or None
+    if cluster is not None and not cluster.strip():
+        raise UsageError("--cluster needs an address (tcp://host:8786) or local:N")
+    if cluster is not None and workers not in (None, 0, 1):
+        raise UsageError("give --workers or --cluster, not both: a cluster's workers are its "
+                         "own processes")
+    with open_ledger() as lg, TaskProgress("verifying") as bar:
+        rep = lg.verify(loop, tips_only=tips, progress=bar.update,
+                        workers=1 if cluster is not None else (0 if workers is None else workers),
+                        cluster=cluster)
     n_res = sum(r["results"] for r in rep)
     n_cmp = sum(r["computed"] for r in rep)
     typer.echo(f"verified {len(rep)} revision(s): {n_res} result(s) written, "

@@ -46,7 +46,7 @@ def import_cmd(spec: Path = typer.Argument(..., help="Spec file (TOML) to import
             typer.echo(f"recorded  revision {loop}/{label}")
         typer.echo(f"unchanged {len(rep.unchanged)} record(s)")
     if not no_verify:
-        verify_cmd(loop=None, tips=False, workers=0)
+        verify_cmd(loop=None, tips=False, workers=0, cluster=None)
 
 
 @commands.command("export")

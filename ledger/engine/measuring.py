@@ -34,7 +34,8 @@ if TYPE_CHECKING:
 
 __all__ = ["ENGINE_VERSION", "MetricResult", "FamilyResult", "Measurement", "measure",
            "measure_family", "request_key", "fingerprint", "LOOP_SETTINGS",
-           "METRIC_SETTINGS"]
+           "METRIC_SETTINGS", "resolve_requests", "task_groups", "measure_groups",
+           "collect_groups"]
 
 #: ``measure`` keyword -> LoopSpec field.
 LOOP_SETTINGS = MappingProxyType({
@@ -92,15 +93,7 @@ def measure_family(family: PlantFamily, controller, loop: LoopSpec | None,
     from .loop import LoopSpec, plan
 
     loop = loop or LoopSpec()
-    reqs = []
-    seen = set()
-    for item in requests:
-        name, settings = (item, None) if isinstance(item, str) else item
-        full = resolve_settings(name, settings)
-        key = request_key(name, full)
-        if key not in seen:
-            seen.add(key)
-            reqs.append((name, full, key))
+    reqs = resolve_requests(requests)
     if any(v.kind == "measured" for v in family.variants) or any(
             name in ("model_fit", "model_fit_phase") for name, _, _ in reqs):
         from .measuredfamily import measure_mixed
@@ -113,6 +106,47 @@ def measure_family(family: PlantFamily, controller, loop: LoopSpec | None,
         outs = _measure_parallel(pl, reqs, workers)
     else:
         outs = (_measure_group(pl, gp, reqs) for gp in pl.groups)
+    return _collect(pl, reqs, outs)
+
+
+def resolve_requests(requests: Iterable) -> list[tuple[str, dict, str]]:
+    """(name, complete settings, :func:`request_key`) of each distinct request, in order.
+
+    Raises
+    ------
+    SpecError
+        Unknown metric or setting.
+    """
+    reqs = []
+    seen = set()
+    for item in requests:
+        name, settings = (item, None) if isinstance(item, str) else item
+        full = resolve_settings(name, settings)
+        key = request_key(name, full)
+        if key not in seen:
+            seen.add(key)
+            reqs.append((name, full, key))
+    return reqs
+
+
+def task_groups(n_groups: int, workers: int, *, least: int = 1) -> list[list[int]]:
+    """Positions of a plan's groups cut into tasks of consecutive groups: about four tasks per
+    worker (uneven groups balance), and at least ``least`` groups per task (so a task carries
+    enough work to be worth its round trip).  How groups are cut never changes a number."""
+    per = max(1, int(least), n_groups // (4 * max(1, int(workers))))
+    return [list(range(k, min(n_groups, k + per))) for k in range(0, n_groups, per)]
+
+
+def measure_groups(pl: Plan, reqs, positions: Iterable[int]) -> list:
+    """Measure the groups at ``positions`` of plan ``pl`` (one task of a worker): a list of
+    per-group outputs for :func:`collect_groups`.  ``reqs`` as :func:`resolve_requests`
+    gives them."""
+    return [_measure_group(pl, pl.groups[k], reqs) for k in positions]
+
+
+def collect_groups(pl: Plan, reqs, outs) -> FamilyResult:
+    """The :class:`FamilyResult` of per-group outputs (:func:`measure_groups`) given in plan
+    order: the same object ``measure_family`` returns for the whole family."""
     return _collect(pl, reqs, outs)
 
 
@@ -219,8 +253,7 @@ def _worker_init(pl, reqs) -> None:
 
 
 def _worker_run(positions) -> list:
-    pl, reqs = _WORKER["plan"], _WORKER["reqs"]
-    return [_measure_group(pl, pl.groups[k], reqs) for k in positions]
+    return measure_groups(_WORKER["plan"], _WORKER["reqs"], positions)
 
 
 def _measure_parallel(pl: Plan, reqs, workers: int) -> list:
@@ -233,8 +266,7 @@ def _measure_parallel(pl: Plan, reqs, workers: int) -> list:
     workers = min(workers, n)
     # several tasks per worker balance uneven groups; each task carries a few groups so the
     # round trips stay few
-    per = max(1, n // (4 * workers))
-    tasks = [list(range(k, min(n, k + per))) for k in range(0, n, per)]
+    tasks = task_groups(n, workers)
     ctx = mp.get_context("fork" if "fork" in mp.get_all_start_methods() else "spawn")
     with ProcessPoolExecutor(max_workers=workers, mp_context=ctx, initializer=_worker_init,
                              initargs=(pl, reqs)) as pool:

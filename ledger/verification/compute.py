@@ -18,7 +18,9 @@ from ..units import Limit
 from .plan import Check, RevisionPlan
 
 __all__ = ["family_for", "clear_family_cache", "loop_spec_for", "controller_for",
-           "validate_controller", "compute_plan", "compute_plans", "Judged", "judge_payload"]
+           "validate_controller", "compute_plan", "compute_plans", "Judged", "judge_payload",
+           "compute_requests", "missing_requests", "engine_plan_for", "error_payload",
+           "result_payload"]
 
 _FAMILIES: dict[tuple, object] = {}
 
@@ -42,8 +44,9 @@ def family_for(plan: RevisionPlan):
 
 
 def clear_family_cache() -> None:
-    """Forget the plant families built in this process."""
+    """Forget the plant families (and their group plans) built in this process."""
     _FAMILIES.clear()
+    _ENGINE_PLANS.clear()
 
 
 def loop_spec_for(plan: RevisionPlan):
@@ -102,37 +105,82 @@ def _decode(values: list) -> np.ndarray:
     return np.array([float(v) for v in values], dtype=float)
 
 
+def error_payload(metric: str, variants, reason: str) -> dict:
+    """The payload of a request that could not be computed for the whole family."""
+    return {"metric": metric, "variants": list(variants), "values": [],
+            "errors": {"*": reason}, "unstable": False}
+
+
+def result_payload(r) -> dict:
+    """The payload (JSON-able) of one engine ``MetricResult``."""
+    return {"metric": r.name, "variants": list(r.variants), "values": _encode(r.values),
+            "errors": dict(r.variant_errors), "unstable": bool(r.unstable)}
+
+
+def compute_requests(plan: RevisionPlan, requests: list[tuple[str, dict]], *,
+                     workers: int = 1) -> list[dict]:
+    """Payloads of (metric, settings) ``requests`` over the plan's whole family, in order, from
+    one batched ``measure_family`` call (its family split over ``workers`` processes when
+    > 1).  A loop the engine refuses gives every request an error payload with the reason."""
+    from ..engine.measure import measure_family
+
+    fam = family_for(plan)
+    try:
+        res = measure_family(fam, controller_for(plan), loop_spec_for(plan), requests,
+                             workers=workers)
+    except LedgerError as e:
+        return [error_payload(metric, fam.names, str(e)) for metric, _ in requests]
+    return [result_payload(res.get(metric, settings)) for metric, settings in requests]
+
+
+def missing_requests(plan: RevisionPlan, cached: dict[str, dict]) -> dict[str, tuple[str, dict]]:
+    """(metric, settings) by metric key of every check whose values are not in ``cached``."""
+    todo: dict[str, tuple[str, dict]] = {}
+    for c in plan.checks:
+        k = plan.metric_key(c.metric, c.settings)
+        if k not in cached:
+            todo[k] = (c.metric, c.settings)
+    return todo
+
+
 def compute_plan(plan: RevisionPlan, cached: dict[str, dict], *,
                  workers: int = 1) -> tuple[dict[str, dict], int]:
     """Payloads for every check's metric key: cached ones as given, the rest computed in one
     batched call (its family split over ``workers`` processes when > 1).  Returns (payloads by
     key, number of (metric, settings) requests computed)."""
-    payloads: dict[str, dict] = {}
-    todo: dict[str, tuple[str, dict]] = {}
-    for c in plan.checks:
-        k = plan.metric_key(c.metric, c.settings)
-        if k in cached:
-            payloads[k] = cached[k]
-        else:
-            todo[k] = (c.metric, c.settings)
+    payloads = {k: cached[k] for k in plan.keys() if k in cached}
+    todo = missing_requests(plan, cached)
     if not todo:
         return payloads, 0
-    from ..engine.measure import measure_family
-
-    fam = family_for(plan)
-    try:
-        res = measure_family(fam, controller_for(plan), loop_spec_for(plan), list(todo.values()),
-                             workers=workers)
-    except LedgerError as e:
-        for k, (metric, _) in todo.items():
-            payloads[k] = {"metric": metric, "variants": list(fam.names), "values": [],
-                           "errors": {"*": str(e)}, "unstable": False}
-        return payloads, len(todo)
-    for k, (metric, settings) in todo.items():
-        r = res.get(metric, settings)
-        payloads[k] = {"metric": metric, "variants": list(r.variants), "values": _encode(r.values),
-                       "errors": dict(r.variant_errors), "unstable": bool(r.unstable)}
+    payloads.update(zip(todo, compute_requests(plan, list(todo.values()), workers=workers)))
     return payloads, len(todo)
+
+
+_ENGINE_PLANS: dict[tuple, object] = {}
+
+
+def engine_plan_for(plan: RevisionPlan):
+    """The engine's group plan (``ledger.engine.loop.plan``) of the plan's family, controller
+    and loop, memoised in this process (a worker measuring chunks of one family plans it once).
+
+    Raises
+    ------
+    LedgerError
+        The loop cannot be assembled (the caller records it as every request's error).
+    """
+    import json
+
+    memo = (plan.plant_hash, tuple(plan.plant_spec["params"]), plan.controller_canonical,
+            json.dumps(plan.loop_form, sort_keys=True))
+    pl = _ENGINE_PLANS.get(memo)
+    if pl is None:
+        from ..engine.loop import plan as group_plan
+
+        pl = group_plan(family_for(plan), controller_for(plan), loop_spec_for(plan))
+        if len(_ENGINE_PLANS) >= 4:
+            _ENGINE_PLANS.clear()
+        _ENGINE_PLANS[memo] = pl
+    return pl
 
 
 def compute_plans(batch: list[tuple[RevisionPlan, dict]]) -> list[tuple[dict, int]]:

@@ -1,5 +1,6 @@
-"""The verification runner: plan (one read snapshot), compute (no lock held; in a process
-pool when asked), record (one write transaction per revision).
+"""The verification runner: plan (one read snapshot), compute (no lock held; in this process,
+a process pool or a Dask cluster: :mod:`.executors`), record (one write transaction per
+revision, always in this process).
 
 Every function takes the open :class:`~ledger.api.Ledger` (``lg``): its unit of work
 ``lg.store``, its author and the counter ``lg.kernel_requests`` of (metric, settings)
@@ -8,94 +9,81 @@ requests the engine evaluated.  See docs/architecture.md.
 
 from __future__ import annotations
 
-import os
 from typing import Callable, Iterable
 
-from ..errors import LedgerError, with_context
+from ..errors import ClusterError, LedgerError, with_context
 from ..records import RequirementInfo, RevisionInfo
 from ..store import loops as loops_db
 from ..store import revisions as rev_db
-from .compute import compute_plan, compute_plans, controller_for, family_for, loop_spec_for
+from .compute import compute_plan, controller_for, family_for, loop_spec_for
 from .compute import validate_controller
+from .executors import init_worker, open_executor, worker_pool
 from .plan import plan_controller, plan_loops, plan_revision
 from . import tried
 from .record import rejudge_cached, write_results
+from .units import Assembly, make_units, run_unit
 
 __all__ = ["verify", "add_revision", "numeric_setup", "after_requirement_change",
            "worker_pool", "init_worker"]
 
 
-def init_worker() -> None:
-    """Run once in every worker process of :func:`worker_pool` before its first task: the
-    worker ends when its parent dies (ledger/workers.py)."""
-    from ..workers import die_with_parent, one_blas_thread
-
-    die_with_parent()
-    one_blas_thread()
-
-
-def worker_pool(n_workers: int):
-    """The process pool verification computes in (the one place worker processes are made).
-
-    Forked workers inherit the engine already imported and the plant families already built
-    by the parent; where fork is not available, workers are spawned.
-    """
-    import multiprocessing as mp
-    from concurrent.futures import ProcessPoolExecutor
-
-    from ..engine import kernels as _engine_loaded  # noqa: F401 - forked workers inherit it
-
-    ctx = mp.get_context("fork" if "fork" in mp.get_all_start_methods() else "spawn")
-    return ProcessPoolExecutor(max_workers=n_workers, mp_context=ctx, initializer=init_worker)
-
-
 def verify(lg, loop: str | None = None, *, label: str | None = None, tips_only: bool = False,
            keys: Iterable[str] | None = None,
            progress: Callable[[int, int, str], None] | None = None,
-           workers: int = 1) -> list[dict]:
+           workers: int = 1, cluster=None) -> list[dict]:
     """:meth:`ledger.api.Ledger.verify` (see there)."""
+    executor = open_executor(workers, cluster)  # refuses bad options before any work
     with lg.store.reading() as s:
         plans = plan_loops(s, loop, label=label, tips_only=tips_only, keys=keys)
     report: list[dict] = []
-    total = len(plans)
 
-    def record(i: int, plan, cached, payloads, n):
+    def record(i: int, payloads: dict, n: int) -> None:
+        plan, cached = plans[i]
         lg.kernel_requests += n
         fresh = set(payloads) - set(cached)
+        # this process alone writes: one transaction per revision, skipping subjects already
+        # recorded (a task computed twice writes nothing twice)
         lg.store.write(lambda s: write_results(s, plan, plan.revision_id, payloads, fresh))
         report.append({"loop": plan.loop, "revision": plan.label,
                        "results": len(plan.checks), "computed": n})
+
+    with executor:
+        if plans:
+            units, todos = make_units(plans, executor.slots, least_work=executor.least_work,
+                                      chunk_families=executor.chunk_families)
+        else:
+            units, todos = [], {}
+        asm = Assembly(plans, units, todos)
+        total = len(units)
         if progress:
-            progress(i + 1, total, f"{plan.loop}/{plan.label}")
-
-    if progress:
-        progress(0, total, "planning done")
-    workers = (os.cpu_count() or 1) if workers == 0 else max(1, int(workers))
-    if workers == 1 or total < 2:
-        for i, (plan, cached) in enumerate(plans):
-            payloads, n = compute_plan(plan, cached, workers=workers if total == 1 else 1)
-            record(i, plan, cached, payloads, n)
-        return report
-
-    from concurrent.futures import as_completed
-
-    for plan, _ in plans[:1]:
-        family_for(plan)  # and the family cache, for the common one-plant case
-    n_workers = min(workers, total)
-    # a few plans per task: fewer round trips than one task per revision, while every
-    # worker still gets several tasks to balance uneven revisions
-    chunk = max(1, total // (4 * n_workers))
-    batches = [plans[k:k + chunk] for k in range(0, total, chunk)]
-    with worker_pool(n_workers) as pool:
-        futures = {pool.submit(compute_plans, batch): batch for batch in batches}
-        done = 0
-        for fut in as_completed(futures):
-            for (plan, cached), (payloads, n) in zip(futures[fut], fut.result()):
-                record(done, plan, cached, payloads, n)
-                done += 1
+            progress(0, total, "planning done")
+        for i in asm.ready_without_work():
+            record(i, *asm.payloads(i))
+        mine = _engine_version()
+        try:
+            for done, (u, (version, result)) in enumerate(executor.run(run_unit, units), 1):
+                if version != mine:
+                    raise ClusterError(f"a worker of the {executor.name} computes with engine "
+                                       f"{version}, this process with {mine}: install the "
+                                       "same loopledger version on the workers")
+                last = ""
+                for i in asm.add(units[u], result):
+                    record(i, *asm.payloads(i))
+                    last = f"{plans[i][0].loop}/{plans[i][0].label}"
+                if progress:
+                    progress(done, total, last or f"task {done}")
+        except ClusterError as e:
+            raise ClusterError(f"{e}; {len(report)} of {len(plans)} revision(s) recorded, "
+                               "none half-written: run verify again to compute the rest") from e
     order = {(p.loop, p.label): k for k, (p, _) in enumerate(plans)}
     report.sort(key=lambda r: order[(r["loop"], r["revision"])])
     return report
+
+
+def _engine_version() -> str:
+    from ..engine.measure import ENGINE_VERSION
+
+    return ENGINE_VERSION
 
 
 def add_revision(lg, loop: str, controller: str, *, rationale: str, parent: str | None = "tip",
