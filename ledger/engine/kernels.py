@@ -256,7 +256,14 @@ _COMPUTE = {
     "disk_phase_margin": lambda c, s: _disk_phase(c),
     "min_damping": lambda c, s: _poles(c, min_damping),
     "decay_rate": lambda c, s: _poles(c, decay_rate),
+    "rms_error": lambda c, s: _rms().kernel(c, s, "y"),
+    "rms_effort": lambda c, s: _rms().kernel(c, s, "u"),
 }
+
+
+def _rms():
+    from . import rms
+    return rms
 
 
 def _delay_margin(ctx):

@@ -86,6 +86,9 @@ class LoopSpec:
         Actuator limit in plant-input units, for the effort metric; ``None`` means none.
     controller_discretization : str or None
         ``None`` refuses a continuous controller in a digital loop; ``"tustin"`` converts it.
+    spectra : tuple of Spectrum
+        Noise and disturbance spectra, at most one per source
+        (:class:`~ledger.engine.spectra.Spectrum`), for the rms metrics; ``()`` is none.
     """
 
     sensor: Any = None
@@ -96,6 +99,7 @@ class LoopSpec:
     computation_delay: int = 0
     actuator_limit: float | None = None
     controller_discretization: str | None = None
+    spectra: tuple = ()
 
     def __post_init__(self):
         _check_time(self.input_delay, "input_delay")
@@ -111,9 +115,23 @@ class LoopSpec:
             if not (math.isfinite(a) and a > 0):
                 raise ModelError(f"actuator_limit {self.actuator_limit!r} is not positive and "
                                  "finite; give a limit > 0 or None")
+        object.__setattr__(self, "spectra", tuple(self.spectra or ()))
+        _check_spectra(self.spectra)
         if self.controller_discretization not in (None, "tustin"):
             raise ModelError(f"controller_discretization {self.controller_discretization!r} "
                              "is unknown; use None or 'tustin'")
+
+
+def _check_spectra(spectra) -> None:
+    from .spectra import Spectrum
+
+    seen = set()
+    for sp in spectra:
+        if not isinstance(sp, Spectrum):
+            raise ModelError(f"spectra must be Spectrum objects, got {type(sp).__name__}")
+        if sp.source in seen:
+            raise ModelError(f"two spectra for {sp.source}; give one per source")
+        seen.add(sp.source)
 
 
 def _prepare_controller(controller, loop: LoopSpec) -> Block:

@@ -41,13 +41,14 @@ LOOP_SETTINGS = MappingProxyType({
     "delay": "input_delay", "input_delay": "input_delay", "output_delay": "output_delay",
     "sample_time": "sample_time", "computation_delay": "computation_delay",
     "sensor": "sensor", "prefilter": "prefilter", "actuator_limit": "actuator_limit",
-    "controller_discretization": "controller_discretization"})
+    "controller_discretization": "controller_discretization", "spectra": "spectra"})
 
 #: ``measure`` keyword -> metric setting.
 METRIC_SETTINGS = MappingProxyType({
     "amplitude": "amplitude", "step_amplitude": "amplitude", "settling_band": "settling_band",
     "settling_basis": "settling_basis", "rise_limits": "rise_limits",
-    "frequency": "frequency", "band": "band"})
+    "frequency": "frequency", "band": "band", "source": "source", "error": "error",
+    "sigmas": "sigmas"})
 
 
 # --------------------------------------------------------------------------- drivers

@@ -28,7 +28,19 @@ SETTING_DOCS = MappingProxyType({
     "rise_limits": "rise-time limits as fractions of the final value (low, high)",
     "frequency": "frequency bound in rad/s",
     "band": "recovery band as a fraction of the disturbance peak |y|, dimensionless",
+    "source": "which recorded spectrum drives an rms metric: 'all' (independent sources, "
+              "powers add), 'sensor_noise', 'input_disturbance' or 'output_disturbance'",
+    "error": "which error rms_error reads: 'output' (the output about its set point, the "
+             "tracking error for a reference at rest) or 'measured' (the actuating error "
+             "the controller sees, sensor noise included)",
+    "sigmas": "multiple of the rms value reported (1: rms, 3: the 3-sigma value), "
+              "dimensionless",
 })
+
+
+#: Settings of the rms metrics that take one of a few words.
+_RMS_CHOICES = {"source": ("all", "sensor_noise", "input_disturbance", "output_disturbance"),
+                "error": ("output", "measured")}
 
 
 @dataclass(frozen=True)
@@ -142,6 +154,14 @@ _DEFS = [
     _m("decay_rate", "1/s", "higher", False, "poles", (),
        "min over closed-loop poles of -Re(s) (discrete: s = ln z / Ts; with a delay: the "
        "rightmost root of the delay equation's characteristic equation)"),
+    # rms budgets from the loop's recorded spectra (ledger/engine/rms.py)
+    _m("rms_error", "", "lower", True, "spectra->y",
+       (("source", "all"), ("error", "output"), ("sigmas", 1.0)),
+       "sigmas x rms of the output (or measured error) driven by the loop's noise and "
+       "disturbance spectra, sources independent (plant-output units)"),
+    _m("rms_effort", "", "lower", True, "spectra->u", (("source", "all"), ("sigmas", 1.0)),
+       "sigmas x rms of the control effort u driven by the loop's noise and disturbance "
+       "spectra, sources independent (plant-input units)"),
 ]
 
 #: name -> MetricDef, in catalogue order.
@@ -230,4 +250,18 @@ def resolve_settings(name: str, settings: dict | None = None) -> dict:
         elif key == "settling_basis":
             if value not in ("final", "step"):
                 raise SpecError(f"settling_basis {value!r} is unknown; use 'final' or 'step'")
+        elif key in _RMS_CHOICES:
+            if value not in _RMS_CHOICES[key]:
+                raise SpecError(f"setting {key!r} of {name!r} is {value!r}; use one of "
+                                f"{', '.join(_RMS_CHOICES[key])}")
+        elif key == "sigmas":
+            try:
+                x = float(value)
+            except (TypeError, ValueError) as e:
+                raise SpecError(f"setting 'sigmas' of {name!r} must be a number, "
+                                f"got {value!r}") from e
+            if not (math.isfinite(x) and x > 0):
+                raise SpecError(f"setting 'sigmas' of {name!r} is {value!r}; give a positive "
+                                "multiple, e.g. 3 for the 3-sigma value")
+            out[key] = x
     return out

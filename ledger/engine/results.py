@@ -233,7 +233,10 @@ def fingerprint(variant, controller, loop: LoopSpec, metric: str, settings: Mapp
     str
         64 hex characters; includes :data:`ENGINE_VERSION`.
     """
-    loop_form = {f.name: _canon(getattr(loop, f.name)) for f in fields(loop)}
+    loop_form = {f.name: _canon(getattr(loop, f.name)) for f in fields(loop)
+                 if f.name != "spectra"}
+    if getattr(loop, "spectra", ()):  # only then: fingerprints of loops without stay the same
+        loop_form["spectra"] = [sp.canonical() for sp in loop.spectra]
     payload = json.dumps({"engine": ENGINE_VERSION,
                           "plant": _digest(variant.system, variant.delay),
                           "controller": _digest(controller) if not isinstance(
