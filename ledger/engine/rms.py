@@ -28,7 +28,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..errors import ComputeError, ModelError
+from ..errors import ComputeError, ModelError, UnstableLoopError
 from .spectra import SOURCES, Spectrum, psd_at
 
 __all__ = ["OUTPUTS", "NoiseLoop", "noise_loop", "source_variance", "path_gain2",
@@ -295,7 +295,20 @@ def _plans(family, controller, loop):
     F, K, H = pl.blocks
     for gp in pl.groups:
         g = pl.build(gp)
-        yield g.index, noise_loop(F, K, g.blocks[1], H, g.tau, pl.dt)
+        nl = noise_loop(F, K, g.blocks[1], H, g.tau, pl.dt)
+        _check_stable(nl, [pl.variants[i] for i in g.index])
+        yield g.index, nl
+
+
+def _check_stable(nl: NoiseLoop, names) -> None:
+    """A stationary variance needs a stable closed loop."""
+    if nl.A.shape[1] == 0:
+        return
+    ev = np.linalg.eigvals(nl.A)
+    bad = np.any(np.abs(ev) >= 1.0, axis=1) if nl.dt else np.any(ev.real >= 0.0, axis=1)
+    if np.any(bad):
+        raise UnstableLoopError(f"the closed loop of variant {names[int(np.argmax(bad))]!r} "
+                                "is unstable: no stationary rms exists")
 
 
 def rms_budget(family, controller, loop, *, output: str = "y") -> RmsBudget:
@@ -381,6 +394,7 @@ def rms_curve(family, controller, loop, *, output: str = "y", variant: int = 0,
     F, K, H = pl.blocks
     g = pl.build(pl.groups[0])
     nl = noise_loop(F, K, g.blocks[1], H, g.tau, pl.dt)
+    _check_stable(nl, sub.names)
     specs = tuple(loop.spectra)
     f = _display_grid(nl, specs, bands)
     o = OUTPUTS.index(output)
