@@ -60,10 +60,15 @@ def loop_spec_for(plan: RevisionPlan):
             raise ModelError(f"the loop's {what} has a delay; give it as a loop delay instead")
         return ev.system
 
+    spectra = ()
+    if f.get("spectra"):
+        from ..spectra_io import engine_spectrum
+
+        spectra = tuple(engine_spectrum(sp, ts) for sp in f["spectra"])
     return LoopSpec(sensor=block(f["sensor"], "sensor"), prefilter=block(f["prefilter"], "prefilter"),
                     input_delay=f["input_delay"], output_delay=f["output_delay"],
                     sample_time=ts, computation_delay=f["computation_delay"],
-                    actuator_limit=f["actuator_limit"])
+                    actuator_limit=f["actuator_limit"], spectra=spectra)
 
 
 def controller_for(plan: RevisionPlan):
