@@ -375,7 +375,14 @@ def _display_grid(nl: NoiseLoop, specs, bands=(), ppd: float = 200.0) -> np.ndar
         hi = min(hi, 0.5 / nl.dt)
         lo = min(lo, hi / 1e4)
     n = max(50, int(ppd * math.log10(hi / lo)))
-    return np.concatenate([[0.0], np.logspace(math.log10(lo), math.log10(hi), n)])
+    f = np.concatenate([[0.0], np.logspace(math.log10(lo), math.log10(hi), n)])
+    # a table's rows are nodes, its ends with a node just outside: nothing spills past them
+    for sp in specs:
+        if sp.kind == "table":
+            fr = np.asarray(sp.frequencies, float)
+            f = np.concatenate([f, fr, [fr[0] * (1 - 1e-9), fr[-1] * (1 + 1e-9)]])
+    f = np.unique(f[(f >= 0) & (f <= hi)])
+    return f
 
 
 def rms_curve(family, controller, loop, *, output: str = "y", variant: int = 0,

@@ -12,7 +12,7 @@ from sqlalchemy.orm import Session
 from ..errors import DuplicateError
 from .chain import append_link
 from .loops import loop_row, spectrum_forms as forms_of_row
-from .models import Loop, LoopSpectrum
+from .models import LoopSpectrum, RequirementVersion, Result, Revision
 from .plants import latest_version
 from .queries import now
 
@@ -41,6 +41,15 @@ def add(s: Session, loop: str, source: str, *, author: str, **kw) -> tuple[dict,
             return dict(form, content_hash=h), False
         raise DuplicateError(f"loop {loop!r} has a {source} spectrum already; spectra are fixed "
                              "once results may depend on them: create a loop with a new name")
+    judged = s.scalar(select(Result.id).join(
+        RequirementVersion, Result.requirement_version_id == RequirementVersion.id)
+        .join(Revision, Result.revision_id == Revision.id)
+        .where(Revision.loop_id == lp.id,
+               RequirementVersion.metric.in_(("rms_error", "rms_effort"))).limit(1))
+    if judged is not None:
+        raise DuplicateError(f"loop {loop!r} has rms results judged without this {source} "
+                             "spectrum; record a loop's spectra before its rms requirements "
+                             "are verified, or create a loop with a new name")
     row = LoopSpectrum(loop_id=lp.id, source=source, kind=form["kind"],
                        shaping_text=form["shaping"], intensity=form["intensity"],
                        table_json=json.dumps(form["table"]), unit_text=form["unit"],
