@@ -69,3 +69,24 @@ def rms_figure(view, limit: float | None = None) -> str:
     ax.grid(True, which="both", alpha=0.3)
     _finish(fig, [ax])
     return _svg(fig)
+
+
+def rms_evidence_html(lg, entry) -> str:
+    """The rms section of an evidence entry whose requirement is ``rms_error`` or
+    ``rms_effort`` (``""`` for any other metric): the contribution table and the cumulative
+    rms figure of the entry's revision, or a one-line note why there is none."""
+    from ..errors import LedgerError
+
+    q = entry.requirement
+    if q.metric not in ("rms_error", "rms_effort"):
+        return ""
+    settings = dict(q.settings or {})
+    output = "effort" if q.metric == "rms_effort" else (
+        "measured" if settings.get("error") == "measured" else "error")
+    try:
+        view = lg.rms_view(entry.loop, entry.revision.label, output=output)
+        with np.errstate(all="ignore"):
+            svg = rms_figure(view)
+    except LedgerError as e:
+        return f"<p class='note'>No rms budget: {html.escape(str(e))}</p>"
+    return rms_table_html(view) + f"<div class='figure'>{svg}</div>"
