@@ -144,3 +144,55 @@ def engine_spectrum(form: dict, sample_time: float | None = None):
 
         _shaping(sp, sample_time)
     return sp
+
+
+#: Keys of one ``[[loop.spectra]]`` table of a spec file.
+SPEC_KEYS = {"source", "intensity", "shaping", "file", "table", "unit", "frequency_unit", "label"}
+
+
+def spec_kwargs(item, base_dir, where: str) -> dict:
+    """Keyword arguments of :func:`ledger.store.spectra.add` from one ``spectra`` entry of a
+    spec file's loop: ``source`` and either ``intensity`` (+ ``shaping``) or ``file`` (a PSD
+    table next to the spec file) or ``table`` (inline rows ``[[f, psd], ...]``); ``unit``,
+    ``frequency_unit``, ``label`` optional."""
+    from pathlib import Path
+
+    from .errors import SpecError
+
+    if not isinstance(item, dict) or "source" not in item:
+        raise SpecError(f"{where}: each spectra entry is a table with a 'source'")
+    extra = set(item) - SPEC_KEYS
+    if extra:
+        raise SpecError(f"{where}: spectra entry has unknown key {sorted(extra)[0]!r}; known: "
+                        f"{', '.join(sorted(SPEC_KEYS))}")
+    kw = {"shaping": str(item.get("shaping", "")), "intensity": item.get("intensity"),
+          "unit": str(item.get("unit", "")),
+          "frequency_unit": str(item.get("frequency_unit", "Hz")),
+          "label": str(item.get("label", "")), "table_text": None}
+    if "file" in item:
+        f = Path(base_dir) / str(item["file"])
+        try:
+            kw["table_text"] = f.read_text(encoding="utf-8")
+        except (OSError, UnicodeDecodeError) as e:
+            raise SpecError(f"{where}: cannot read spectrum file {str(f)!r}: {e}") from e
+        kw["label"] = kw["label"] or f.name
+    elif "table" in item:
+        try:
+            kw["table_text"] = "\n".join(f"{float(a)!r}, {float(b)!r}" for a, b in item["table"])
+        except (TypeError, ValueError) as e:
+            raise SpecError(f"{where}: spectra 'table' must be rows [frequency, psd]") from e
+    return kw
+
+
+def spec_entry(form: dict) -> dict:
+    """A stored form as a spec file's ``spectra`` entry (converted numbers: Hz and the plant
+    unit^2/Hz), so an export imports back to the same spectrum."""
+    if form["kind"] == "table":
+        out = {"source": form["source"], "table": [list(r) for r in form["table"]]}
+    else:
+        out = {"source": form["source"], "intensity": form["intensity"]}
+        if form.get("shaping"):
+            out["shaping"] = form["shaping"]
+    if form.get("label"):
+        out["label"] = form["label"]
+    return out
