@@ -22,14 +22,17 @@ def _fmt(x: float, unit: str) -> str:
     return f"{x:.4g} {unit}".strip()
 
 
-def rms_table_html(view) -> str:
+def rms_table_html(view, sigmas: float = 1.0) -> str:
     """Contribution table: one row per source (rms, share of the variance, integration error
-    estimate, rms per band) and the combined row."""
+    estimate, rms per band) and the combined row; ``sigmas``: the requirement's multiple."""
     e = html.escape
+    times = (f" The requirement reads {sigmas:g} x the combined rms: "
+             f"{_fmt(sigmas * view.total_rms, view.unit)}.") if sigmas != 1 else ""
     head = ["source", "spectrum", "rms", "share", "est. error"] + \
         [band_label(a, b) for a, b in view.bands]
     out = [f"<p class='meta'>rms budget of the {e(view.words)} on variant "
-           f"{e(view.variant)} (largest combined rms); sources independent, powers add.</p>",
+           f"{e(view.variant)} (largest combined rms); values are 1-sigma rms, sources "
+           f"independent, powers add.{e(times)}</p>",
            "<table class='fields'><tr>" + "".join(f"<th>{e(h)}</th>" for h in head) + "</tr>"]
     for src, kind, label, rms, share, rel in view.rows:
         bands = view.band_rms.get(src, ())
@@ -89,4 +92,8 @@ def rms_evidence_html(lg, entry) -> str:
             svg = rms_figure(view)
     except LedgerError as e:
         return f"<p class='note'>No rms budget: {html.escape(str(e))}</p>"
-    return rms_table_html(view) + f"<div class='figure'>{svg}</div>"
+    try:
+        sigmas = float(settings.get("sigmas", 1.0))
+    except (TypeError, ValueError):
+        sigmas = 1.0
+    return rms_table_html(view, sigmas) + f"<div class='figure'>{svg}</div>"
