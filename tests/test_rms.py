@@ -269,3 +269,19 @@ def test_unstable_shaping_filter_and_missing_spectra_are_refused():
                 spectra=(Spectrum("sensor_noise", intensity=1.0,
                                   shaping=control.tf([1], [1, 1])),))
     assert "no output_disturbance spectrum" in m.errors["rms_error"]
+
+
+def test_digital_table_up_to_nyquist_equals_the_white_sequence():
+    # A flat table of level q from 0 Hz to the Nyquist frequency is the white sequence of
+    # variance q / (2 Ts) (definition of the digital convention); reference:
+    # scipy.linalg.solve_discrete_lyapunov of the loop closed by python-control.
+    ts = 1e-3
+    Gd = control.tf([0.1], [1, -0.9], ts)
+    q = 2e-2
+    fn = 0.5 / ts
+    tab = Spectrum("input_disturbance", frequencies=(0.0, fn / 2, fn), psd=(q, q, q))
+    b = rms_budget(Gd, 2.0, LoopSpec(sample_time=ts, spectra=(tab,)))
+    s = control.ss(control.feedback(Gd, 2.0))
+    P = solve_discrete_lyapunov(s.A, s.B @ s.B.T)
+    ref = q / (2 * ts) * float((s.C @ P @ s.C.T + s.D @ s.D.T)[0, 0])
+    assert_allclose(b.variance[0], ref, rtol=1e-8)

@@ -144,3 +144,22 @@ rationale = "proportional"
     cli("export-matrix", html)
     page = html.read_text()
     assert "rms budget of the output error" in page and "cumulative rms" in page
+
+
+def test_spectra_enter_the_metric_key_only_when_present(tmp_path):
+    # The key of a loop without spectra is what it was (no 'spectra' entry); two loops that
+    # differ only in a spectrum get different keys, so no cached value is reused across them.
+    from ledger.api import open_ledger
+    from ledger.store.loops import loop_form, loop_row
+
+    with open_ledger(tmp_path / "k.db", create=True) as lg:
+        lg.add_plant("p1", "1/(s+2)")
+        for name in ("a", "b", "c"):
+            lg.add_loop(name, "p1")
+        lg.add_spectrum("a", "sensor_noise", intensity=1e-6, shaping="1/(s+100)")
+        lg.add_spectrum("b", "sensor_noise", intensity=2e-6, shaping="1/(s+100)")
+        with lg.reading() as s:
+            fa, fb, fc = (loop_form(loop_row(s, n)) for n in ("a", "b", "c"))
+    assert "spectra" not in fc
+    assert fa["spectra"] != fb["spectra"]
+    assert {k: v for k, v in fa.items() if k != "spectra"} == fc
