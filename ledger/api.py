@@ -201,6 +201,33 @@ class Ledger:
             description=description)
         return info
 
+    def add_spectrum(self, loop: str, source: str, *, shaping: str = "",
+                     intensity: float | None = None, table_text: str | None = None,
+                     unit: str = "", frequency_unit: str = "Hz", label: str = "") -> dict:
+        """Record a noise or disturbance spectrum on a loop (one per source, fixed once
+        recorded; see :mod:`ledger.spectra_io` for the forms and units).  Returns the stored
+        form with its content hash."""
+        from .store import spectra as spectra_db
+
+        form, _ = self.store.write(spectra_db.add, loop, source, author=self.author,
+                                   shaping=shaping, intensity=intensity, table_text=table_text,
+                                   unit=unit, frequency_unit=frequency_unit, label=label)
+        return form
+
+    def spectra(self, loop: str) -> list[dict]:
+        """The stored forms of a loop's spectra, in source order."""
+        from .store import spectra as spectra_db
+
+        with self.reading() as s:
+            return spectra_db.forms(s, loop)
+
+    def rms_view(self, loop: str, label: str | None = None, *, output: str = "error",
+                 bands=None):
+        """The rms budget of a revision per source and band (:func:`ledger.rmsview.rms_view`)."""
+        from .rmsview import rms_view
+
+        return rms_view(self, loop, label, output=output, bands=bands)
+
     def loops(self) -> list[LoopInfo]:
         """Every loop, by name."""
         with self.reading() as s:

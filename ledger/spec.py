@@ -33,7 +33,7 @@ _FIELDS = {
         "optional": {"kind": str, "description": str, "sensor": str, "prefilter": str,
                      "input_delay": (int, float, str), "output_delay": (int, float, str),
                      "sample_time": (int, float, str), "computation_delay": int,
-                     "actuator_limit": (int, float)},
+                     "actuator_limit": (int, float), "spectra": list},
     },
     "requirement": {
         "required": {"id": str, "title": str, "statement": str},
@@ -112,7 +112,10 @@ def _check_record(path, kind: str, idx: int, rec: Any) -> str:
             raise _err(path, where, fld, f"expected {_tname(typ)}, got {type(val).__name__}")
         if typ is str and fld in spec["required"] and not val.strip():
             raise _err(path, where, fld, "must not be empty")
-        if typ is list and not all(isinstance(x, str) for x in val):
+        if typ is list and fld == "spectra":
+            if not all(isinstance(x, dict) for x in val):
+                raise _err(path, where, fld, "must be a list of tables (source, intensity, ...)")
+        elif typ is list and not all(isinstance(x, str) for x in val):
             raise _err(path, where, fld, "must be a list of strings")
     return where
 
@@ -234,6 +237,14 @@ def import_spec(ledger, path: str | os.PathLike) -> ImportReport:
                 sample_time=kw["sample_time"], computation_delay=rec.get("computation_delay", 0),
                 actuator_limit=rec.get("actuator_limit"), description=rec.get("description", "")))
             _tally(report, f"loop {info.name}", changed, 1)
+            for item in rec.get("spectra", []):
+                from .spectra_io import spec_kwargs
+                from .store import spectra as spectra_db
+
+                kw_sp = spec_kwargs(item, p.parent, f"{p}: {where}")
+                _, made = guard("loop", rec, lambda: spectra_db.add(
+                    s, rec["name"], item["source"], author=author, **kw_sp))
+                _tally(report, f"loop {info.name} spectrum {item['source']}", made, 1)
 
         existing = req_db.keys(s)
         for rec in _topo_requirements(p, data.get("requirement", []), existing):
@@ -317,6 +328,8 @@ def _drop_empty(d: dict) -> dict:
 
 def dump_spec(ledger) -> dict:
     """The ledger's current content (latest versions, every revision) as spec data."""
+    from .spectra_io import spec_entry
+
     out: dict[str, Any] = {"format": SPEC_FORMAT}
     out["plant"] = [_drop_empty({
         "name": p.name, "model": p.model, "description": p.description,
@@ -330,6 +343,7 @@ def dump_spec(ledger) -> dict:
         "sensor": lp.sensor, "prefilter": lp.prefilter, "input_delay": lp.input_delay or None,
         "output_delay": lp.output_delay or None, "sample_time": lp.sample_time,
         "computation_delay": lp.computation_delay or None, "actuator_limit": lp.actuator_limit,
+        "spectra": [spec_entry(f) for f in ledger.spectra(lp.name)],
     }) for lp in loops]
     out["requirement"] = [_drop_empty({
         "id": r.key, "title": r.title, "statement": r.statement, "rationale": r.rationale,

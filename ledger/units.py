@@ -120,6 +120,8 @@ PLANT_UNIT_METRICS = {
     "ramp_error": "out",
     "parabola_error": "out",
     "peak_control_sensitivity": "in/out",
+    "rms_error": "out",
+    "rms_effort": "in",
 }
 
 

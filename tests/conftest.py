@@ -33,6 +33,7 @@ NUMERIC_MODULES = {"test_blocks", "test_family", "test_family_scale", "test_freq
                    "test_plant_units", "test_display", "test_plot_axes", "test_yieldbound",
                    "test_digital", "test_intersample"}
 NUMERIC_MODULES |= {"test_measured"}
+NUMERIC_MODULES |= {"test_rms"}
 
 
 def pytest_configure(config):

@@ -68,6 +68,12 @@ def starter_cmd(kind: str = typer.Argument("position", help="Loop kind: position
           [[i.suffix, i.metric, i.limit, i.title, i.rationale] for i in items])
 
 
+from .spectra import loop_rms, loop_spectrum  # noqa: E402 - registered on this group
+
+group.command("spectrum")(loop_spectrum)
+group.command("rms")(loop_rms)
+
+
 @group.command("list")
 @errors_to_exit
 def loop_list(as_json: bool = JSON_OPTION):
@@ -87,6 +93,7 @@ def loop_show(name: str, as_json: bool = JSON_OPTION):
     """Show a loop's settings."""
     with open_ledger() as lg:
         lp = lg.loop(name)
+        spectra = lg.spectra(name)
     if as_json:
         return emit_json(lp)
     typer.echo(f"loop {lp.name} ({lp.kind}) on plant {lp.plant}")
@@ -100,3 +107,8 @@ def loop_show(name: str, as_json: bool = JSON_OPTION):
                                      else "continuous"))
     typer.echo(f"  actuator limit {lp.actuator_limit if lp.actuator_limit is not None else 'none'}")
     typer.echo(f"  revisions      {lp.revisions} (tip {lp.tip or '-'})")
+    for sp in spectra:
+        what = (f"table of {len(sp['table'])} rows ({sp['label'] or 'file'})"
+                if sp["kind"] == "table" else
+                f"white {sp['intensity']:.4g} /Hz through {sp['shaping'] or '1'}")
+        typer.echo(f"  spectrum       {sp['source']}: {what}")

@@ -258,6 +258,8 @@ _COMPUTE = {
     "decay_rate": lambda c, s: _poles(c, decay_rate),
     "quantization_pole_shift": lambda c, s: _pole_shift(c),
     "intersample_ripple": lambda c, s: _ripple(c, s),
+    "rms_error": lambda c, s: _rms().kernel(c, s, "y"),
+    "rms_effort": lambda c, s: _rms().kernel(c, s, "u"),
 }
 
 
@@ -323,6 +325,11 @@ def _pole_shift(ctx) -> np.ndarray:
         ref = assemble(PlantFamily((pl.family.variants[int(i)],)), pl.reference, ref_loop)
         out.append(pole_shift(ref.groups[0].poles[0], moved))
     return np.array(out, dtype=float)
+
+
+def _rms():
+    from . import rms
+    return rms
 
 
 def _delay_margin(ctx):

@@ -101,6 +101,9 @@ class LoopSpec:
         Digital loops: the controller before quantisation, when the controller given is
         already quantised (the ledger quantises firmware forms itself); the reference of
         ``quantization_pole_shift``.  Neither set: the shift is 0.
+    spectra : tuple of Spectrum
+        Noise and disturbance spectra, at most one per source
+        (:class:`~ledger.engine.spectra.Spectrum`), for the rms metrics; ``()`` is none.
     """
 
     sensor: Any = None
@@ -113,6 +116,7 @@ class LoopSpec:
     controller_discretization: str | None = None
     number_format: str | None = None
     reference_controller: Any = None
+    spectra: tuple = ()
 
     def __post_init__(self):
         _check_time(self.input_delay, "input_delay")
@@ -140,6 +144,20 @@ class LoopSpec:
             from .quantize import parse_number_format
 
             parse_number_format(self.number_format)
+        object.__setattr__(self, "spectra", tuple(self.spectra or ()))
+        _check_spectra(self.spectra)
+
+
+def _check_spectra(spectra) -> None:
+    from .spectra import Spectrum
+
+    seen = set()
+    for sp in spectra:
+        if not isinstance(sp, Spectrum):
+            raise ModelError(f"spectra must be Spectrum objects, got {type(sp).__name__}")
+        if sp.source in seen:
+            raise ModelError(f"two spectra for {sp.source}; give one per source")
+        seen.add(sp.source)
 
 
 def _prepare_controller(controller, loop: LoopSpec) -> Block:

@@ -44,13 +44,14 @@ LOOP_SETTINGS = MappingProxyType({
     "sensor": "sensor", "prefilter": "prefilter", "actuator_limit": "actuator_limit",
     "controller_discretization": "controller_discretization",
     "discretization": "controller_discretization", "number_format": "number_format",
-    "reference_controller": "reference_controller"})
+    "reference_controller": "reference_controller", "spectra": "spectra"})
 
 #: ``measure`` keyword -> metric setting.
 METRIC_SETTINGS = MappingProxyType({
     "amplitude": "amplitude", "step_amplitude": "amplitude", "settling_band": "settling_band",
     "settling_basis": "settling_basis", "rise_limits": "rise_limits",
-    "frequency": "frequency", "band": "band", "time_basis": "time_basis"})
+    "frequency": "frequency", "band": "band", "time_basis": "time_basis", "source": "source",
+    "error": "error", "sigmas": "sigmas"})
 
 
 # --------------------------------------------------------------------------- drivers

@@ -34,7 +34,19 @@ SETTING_DOCS = MappingProxyType({
     "band": "recovery band as a fraction of the disturbance peak |y|, dimensionless",
     "time_basis": "digital loops: 'samples' (read at the sample instants, the default) or "
                   "'continuous' (the plant output between samples)",
+    "source": "which recorded spectrum drives an rms metric: 'all' (independent sources, "
+              "powers add), 'sensor_noise', 'input_disturbance' or 'output_disturbance'",
+    "error": "which error rms_error reads: 'output' (the output about its set point, the "
+             "tracking error for a reference at rest) or 'measured' (the actuating error "
+             "the controller sees, sensor noise included)",
+    "sigmas": "multiple of the rms value reported (1: rms, 3: the 3-sigma value), "
+              "dimensionless",
 })
+
+
+#: Settings of the rms metrics that take one of a few words.
+_RMS_CHOICES = {"source": ("all", "sensor_noise", "input_disturbance", "output_disturbance"),
+                "error": ("output", "measured")}
 
 
 @dataclass(frozen=True)
@@ -173,6 +185,14 @@ _DEFS = [
     _m("model_fit_phase", "deg", "lower", False, "G", (("frequency", None),),
        "on a measured member: max over its kept points w <= frequency of "
        "|arg(G_meas / G_nominal)| wrapped to [0, 180]; 0 on model members"),
+    # rms budgets from the loop's recorded spectra (ledger/engine/rms.py)
+    _m("rms_error", "", "lower", True, "spectra->y",
+       (("source", "all"), ("error", "output"), ("sigmas", 1.0)),
+       "sigmas x rms of the output (or measured error) driven by the loop's noise and "
+       "disturbance spectra, sources independent (plant-output units)"),
+    _m("rms_effort", "", "lower", True, "spectra->u", (("source", "all"), ("sigmas", 1.0)),
+       "sigmas x rms of the control effort u driven by the loop's noise and disturbance "
+       "spectra, sources independent (plant-input units)"),
 ]
 
 #: name -> MetricDef, in catalogue order.
@@ -265,6 +285,20 @@ def resolve_settings(name: str, settings: dict | None = None) -> dict:
             if value not in ("samples", "continuous"):
                 raise SpecError(f"time_basis {value!r} is unknown; use 'samples' or "
                                 "'continuous'")
+        elif key in _RMS_CHOICES:
+            if value not in _RMS_CHOICES[key]:
+                raise SpecError(f"setting {key!r} of {name!r} is {value!r}; use one of "
+                                f"{', '.join(_RMS_CHOICES[key])}")
+        elif key == "sigmas":
+            try:
+                x = float(value)
+            except (TypeError, ValueError) as e:
+                raise SpecError(f"setting 'sigmas' of {name!r} must be a number, "
+                                f"got {value!r}") from e
+            if not (math.isfinite(x) and x > 0):
+                raise SpecError(f"setting 'sigmas' of {name!r} is {value!r}; give a positive "
+                                "multiple, e.g. 3 for the 3-sigma value")
+            out[key] = x
     if out.get("time_basis") == "samples":
         del out["time_basis"]   # the default: absent, as before the setting existed
     return out

@@ -236,10 +236,12 @@ def fingerprint(variant, controller, loop: LoopSpec, metric: str, settings: Mapp
     str
         64 hex characters; includes :data:`ENGINE_VERSION`.
     """
-    # fields added for digital controllers enter only when set, so older fingerprints hold
+    # fields added later enter only when set, so older fingerprints hold
     loop_form = {f.name: _canon(getattr(loop, f.name)) for f in fields(loop)
                  if not (f.name in ("number_format", "reference_controller")
-                         and getattr(loop, f.name) is None)}
+                         and getattr(loop, f.name) is None) and f.name != "spectra"}
+    if getattr(loop, "spectra", ()):  # only then: fingerprints of loops without stay the same
+        loop_form["spectra"] = [sp.canonical() for sp in loop.spectra]
     payload = json.dumps({"engine": ENGINE_VERSION,
                           "plant": _digest(variant.system, variant.delay),
                           "controller": _digest(controller) if not isinstance(

@@ -182,6 +182,7 @@ def render_html(matrix, lg) -> str:
     from ..curves import column_curves
     from ..prefs import frequency_unit
     from .plots import entry_figure
+    from .rmsplot import rms_evidence_html
 
     funit = frequency_unit(getattr(lg, "url", ""))  # the reader's choice for this ledger
     rows = matrix_rows(matrix)
@@ -227,6 +228,7 @@ def render_html(matrix, lg) -> str:
                 out.append(f"<div class='figure'>{svg}</div>")
             except LedgerError as e:
                 out.append(f"<p class='note'>No figure: {_e(e)}</p>")
+        out.append(rms_evidence_html(lg, entry))  # rms budgets: table and cumulative rms
         out.append("</section>")
     out.append(f"<p class='caution'>Caution: {_e(matrix.caution)}</p></body></html>")
     return "\n".join(out)

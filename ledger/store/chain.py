@@ -47,6 +47,7 @@ from .models import (
     BaselineEntry,
     ChainLink,
     Loop,
+    LoopSpectrum,
     MetricValue,
     Plant,
     PlantVersion,
@@ -105,6 +106,9 @@ HASHED_FIELDS: dict[str, tuple[str, ...]] = {
     "baseline": ("id", "name", "note", "author", "supersedes_id", "matrix_hash", "created_at"),
     "signoff": ("id", "baseline_id", "name", "role", "statement", "author", "matrix_hash",
                 "chain_head", "signed_at"),
+    "loop_spectrum": ("id", "loop_id", "source", "kind", "shaping_text", "intensity",
+                      "table_json", "unit_text", "frequency_unit", "label", "content_hash",
+                      "author", "created_at"),
 }
 
 _TABLES = {
@@ -117,6 +121,7 @@ _TABLES = {
     "requirement_version": RequirementVersion.__table__,
     "baseline": Baseline.__table__,
     "signoff": Signoff.__table__,
+    "loop_spectrum": LoopSpectrum.__table__,
 }
 
 #: Record kinds that carry chain links, in the order the audit reports them.

@@ -3,17 +3,18 @@
 from __future__ import annotations
 
 from sqlalchemy import func, select
-from sqlalchemy.orm import Session
+from sqlalchemy.orm import Session, object_session
 
 from ..errors import DuplicateError
 from ..records import LoopInfo
 from ..validate import check_name, loop_fields
 from .chain import append_link
-from .models import Loop, Revision
+from .models import Loop, LoopSpectrum, Revision
 from .plants import plant_row
 from .queries import now, one, utc
 
-__all__ = ["loop_row", "loop_rows", "info", "add", "all_loops", "get", "loop_form"]
+__all__ = ["loop_row", "loop_rows", "info", "add", "all_loops", "get", "loop_form",
+           "spectrum_forms"]
 
 
 def loop_row(s: Session, name: str) -> Loop:
@@ -78,10 +79,32 @@ def get(s: Session, name: str) -> LoopInfo:
 
 
 def loop_form(row: Loop) -> dict:
-    """The loop's settings that enter a metric value's cache key."""
-    return {
+    """The loop's settings that enter a metric value's cache key (its spectra only when it
+    has some, so the keys of loops without spectra are what they were)."""
+    form = {
         "sensor": row.sensor_text, "prefilter": row.prefilter_text,
         "input_delay": row.input_delay, "output_delay": row.output_delay,
         "sample_time": row.sample_time, "computation_delay": row.computation_delay,
         "actuator_limit": row.actuator_limit,
     }
+    s = object_session(row)
+    spectra = spectrum_forms(s, row) if s is not None else []
+    if spectra:
+        from ..spectra_io import canonical_forms
+
+        form["spectra"] = canonical_forms(spectra)
+    return form
+
+
+def spectrum_forms(s: Session, loop: Loop) -> list[dict]:
+    """The stored forms (:mod:`ledger.spectra_io`) of a loop's spectra, in source order."""
+    import json
+
+    from ..spectra_io import SOURCES
+
+    rows = s.scalars(select(LoopSpectrum).where(LoopSpectrum.loop_id == loop.id)).all()
+    out = [{"source": r.source, "kind": r.kind, "shaping": r.shaping_text,
+            "intensity": r.intensity, "table": json.loads(r.table_json or "[]"),
+            "unit": r.unit_text, "frequency_unit": r.frequency_unit, "label": r.label,
+            "content_hash": r.content_hash} for r in rows]
+    return sorted(out, key=lambda f: SOURCES.index(f["source"]))

@@ -127,6 +127,22 @@ def _revision_of(conn, tables: set[str], shown: str) -> str | None:
 _SQLITE_MAGIC = b"SQLite format 3\x00"
 
 
+def _check_not_truncated(path: Path, header: bytes, wal_file: Path) -> None:
+    """Refuse a file shorter than its own header says (SQLite reads the missing pages as
+    zeros, so a truncated file would otherwise fail only on the command that reads them).
+    The header's page count is used only when valid (its version-valid-for number equals the
+    change counter) and no ``-wal`` file may hold newer pages."""
+    if wal_file.exists() or header[92:96] != header[24:28]:
+        return
+    page = int.from_bytes(header[16:18], "big")
+    page = 65536 if page == 1 else page
+    pages = int.from_bytes(header[28:32], "big")
+    size = path.stat().st_size
+    if pages and size < pages * page:
+        raise SchemaError(f"{path}: ledger file damaged: truncated ({size} bytes, its header "
+                          f"says {pages} pages of {page} bytes)")
+
+
 def _check_sqlite_file(path: Path) -> str | None:
     """:func:`_check_is_ledger` for an SQLite file, read-only.
 
@@ -153,6 +169,7 @@ def _check_sqlite_file(path: Path) -> str | None:
         raise SchemaError(f"{path}: not an SQLite database (no SQLite header); not a ledger file")
     wal_mode = header[18] == 2 or header[19] == 2
     wal_file = path.with_name(path.name + "-wal")
+    _check_not_truncated(path, header, wal_file)
     mode = "immutable=1" if wal_mode and not wal_file.exists() else "mode=ro"
     uri = f"file:{quote(str(path))}?{mode}"
     conn = None

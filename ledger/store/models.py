@@ -37,6 +37,7 @@ __all__ = [
     "RequirementLoop",
     "Result",
     "MetricValue",
+    "LoopSpectrum",
 ]
 
 NAMING = {
@@ -415,3 +416,31 @@ def _install_text_checks() -> None:
 
 
 _install_text_checks()
+
+
+class LoopSpectrum(Base):
+    """A noise or disturbance spectrum of a loop (migration 0009): one per loop and source,
+    fixed once recorded like the loop's settings.  ``table_json`` holds rows
+    ``[frequency Hz, PSD in source-unit^2/Hz]`` (converted from the file's units, which
+    ``unit_text``/``frequency_unit`` keep); rational spectra keep the shaping filter text and
+    the intensity in source-unit^2/Hz."""
+
+    __tablename__ = "loop_spectrum"
+    __table_args__ = (
+        UniqueConstraint("loop_id", "source", name="uq_loop_spectrum_source"),
+        CheckConstraint("kind IN ('rational', 'table')", name="spectrum_kind_known"),
+    )
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    loop_id: Mapped[int] = mapped_column(ForeignKey("loop.id", ondelete="RESTRICT"), index=True)
+    source: Mapped[str] = mapped_column(String(30))
+    kind: Mapped[str] = mapped_column(String(10))
+    shaping_text: Mapped[str] = mapped_column(Text, default="")
+    intensity: Mapped[float | None] = mapped_column(Float, nullable=True)
+    table_json: Mapped[str] = mapped_column(Text, default="")
+    unit_text: Mapped[str] = mapped_column(String(60), default="")
+    frequency_unit: Mapped[str] = mapped_column(String(20), default="Hz")
+    label: Mapped[str] = mapped_column(Text, default="")
+    content_hash: Mapped[str] = mapped_column(String(64))
+    author: Mapped[str] = mapped_column(String(120))
+    created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True))

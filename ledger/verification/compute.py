@@ -72,10 +72,16 @@ def loop_spec_for(plan: RevisionPlan):
         text = digital_form(plan.design_text, ts,
                             discretization=plan.discretization).verified_text or plan.design_text
         reference = parse_model(text, sample_time=ts).system
+    spectra = ()
+    if f.get("spectra"):
+        from ..spectra_io import engine_spectrum
+
+        spectra = tuple(engine_spectrum(sp, ts) for sp in f["spectra"])
     return LoopSpec(sensor=block(f["sensor"], "sensor"), prefilter=block(f["prefilter"], "prefilter"),
                     input_delay=f["input_delay"], output_delay=f["output_delay"],
                     sample_time=ts, computation_delay=f["computation_delay"],
-                    actuator_limit=f["actuator_limit"], reference_controller=reference)
+                    actuator_limit=f["actuator_limit"], reference_controller=reference,
+                    spectra=spectra)
 
 
 def controller_for(plan: RevisionPlan):

@@ -14,7 +14,7 @@ import sqlalchemy as sa
 
 
 revision = '0007_measured'
-down_revision = '0005'
+down_revision = '0006_digital'
 branch_labels = None
 depends_on = None
 
