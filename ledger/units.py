@@ -120,6 +120,8 @@ PLANT_UNIT_METRICS = {
     "ramp_error": "out",
     "parabola_error": "out",
     "peak_control_sensitivity": "in/out",
+    "disturbance_offset": "out",
+    "move_peak_rate": "out/s",
 }
 
 
@@ -171,13 +173,16 @@ def resolve_unit(metric: str, catalogue_unit: str, input_unit: str = "",
         if not iu and not ou:
             return catalogue_unit
         return f"{iu or '1'}/{ou}" if ou else iu
+    if kind == "out/s":
+        return f"{ou}/s" if ou else catalogue_unit
     return catalogue_unit
 
 
 def unit_origin(metric: str) -> str:
     """Words naming where a metric's unit comes from, for messages (``""`` if fixed)."""
     return {"in": "the plant's input unit", "out": "the plant's output unit",
-            "in/out": "plant input unit per output unit"}.get(PLANT_UNIT_METRICS.get(metric, ""), "")
+            "in/out": "plant input unit per output unit",
+            "out/s": "the plant's output unit per second"}.get(PLANT_UNIT_METRICS.get(metric, ""), "")
 
 
 def _angle_power(unit_text: str) -> int:

@@ -214,10 +214,25 @@ def _decay_delayed(ctx) -> np.ndarray:
 
 def _disturbance(ctx, s, part: int):
     tr = _timeresp()
-    key = ("recovery", s["amplitude"], s.get("band", 0.02))
+    to = s.get("recovery_to", "final")
+    key = ("recovery", s["amplitude"], s.get("band", 0.02), to)
     res = ctx.cached(key, lambda: tr.recovery(ctx.batch("d->y"), amplitude=s["amplitude"],
-                                              band=s.get("band", 0.02)))
+                                              band=s.get("band", 0.02), to=to))
     return np.asarray(res[part], dtype=float)
+
+
+def _disturbance_offset(ctx, s) -> np.ndarray:
+    """``|y(inf)|`` after a step input disturbance, by the final-value theorem from the
+    closed-loop matrices (``timeresp.final_value``; 0 up to rounding with an integrator in the
+    controller).  An integrating d->y path (singular equilibrium) has no offset to state."""
+    tr = _timeresp()
+    return np.abs(np.asarray(tr.final_value(ctx.batch("d->y"), s["amplitude"]), dtype=float))
+
+
+def _moves(ctx, s):
+    from . import moves
+    key = ("move", s["move"], s["settling_band"], s["settling_basis"])
+    return ctx.cached(key, lambda: moves.move_metrics_group(ctx.asm, ctx.g, ctx.m, s))
 
 
 #: row-wise forms of the pole metrics, for groups whose variants have equally many poles
@@ -256,6 +271,11 @@ _COMPUTE = {
     "disk_phase_margin": lambda c, s: _disk_phase(c),
     "min_damping": lambda c, s: _poles(c, min_damping),
     "decay_rate": lambda c, s: _poles(c, decay_rate),
+    "disturbance_offset": _disturbance_offset,
+    "move_settling_time": lambda c, s: _moves(c, s).settling_time,
+    "move_overshoot": lambda c, s: _moves(c, s).overshoot,
+    "move_time_saturated": lambda c, s: _moves(c, s).time_saturated,
+    "move_peak_rate": lambda c, s: _moves(c, s).peak_rate,
 }
 
 

@@ -47,7 +47,7 @@ LOOP_SETTINGS = MappingProxyType({
 METRIC_SETTINGS = MappingProxyType({
     "amplitude": "amplitude", "step_amplitude": "amplitude", "settling_band": "settling_band",
     "settling_basis": "settling_basis", "rise_limits": "rise_limits",
-    "frequency": "frequency", "band": "band"})
+    "frequency": "frequency", "band": "band", "recovery_to": "recovery_to", "move": "move"})
 
 
 # --------------------------------------------------------------------------- drivers
