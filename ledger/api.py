@@ -141,7 +141,8 @@ class Ledger:
     def add_loop(self, name: str, plant: str, *, kind: str = "position", sensor: str = "",
                  prefilter: str = "", input_delay: float = 0.0, output_delay: float = 0.0,
                  sample_time: float | None = None, computation_delay: int = 0,
-                 actuator_limit: float | None = None, description: str = "") -> LoopInfo:
+                 actuator_limit: float | None = None, description: str = "",
+                 rate_limit: float | None = None) -> LoopInfo:
         """Add a loop: how a controller and a plant are connected.
 
         Parameters
@@ -156,12 +157,14 @@ class Ledger:
             Whole samples of computation delay (z^-d).
         actuator_limit : float, optional
             Largest |u| the actuator can deliver, in the plant's input unit.
+        rate_limit : float, optional
+            Largest |du/dt| of the actuator, plant input unit per second (large moves).
         """
         info, _ = self.store.write(
             loops_db.add, name, plant, kind=kind, sensor=sensor, prefilter=prefilter,
             input_delay=input_delay, output_delay=output_delay, sample_time=sample_time,
             computation_delay=computation_delay, actuator_limit=actuator_limit,
-            description=description)
+            description=description, rate_limit=rate_limit)
         return info
 
     def loops(self) -> list[LoopInfo]:
@@ -248,7 +251,9 @@ class Ledger:
     # -- revisions ------------------------------------------------------------------------
     def add_revision(self, loop: str, controller: str, *, rationale: str,
                      parent: str | None = "tip", author: str | None = None,
-                     label: str | None = None, verify: bool = True) -> RevisionInfo:
+                     label: str | None = None, verify: bool = True, prefilter: str = "",
+                     anti_windup: str = "none",
+                     anti_windup_gain: float | None = None) -> RevisionInfo:
         """Record a new controller revision of ``loop`` and verify it.
 
         Parameters
@@ -266,6 +271,16 @@ class Ledger:
             Judge every applicable requirement on the new revision over the whole plant
             family (default).  The metric values are computed before the write, and the
             revision and all its results are recorded in one transaction.
+        prefilter : str
+            The revision's own reference prefilter / feedforward shaping F (model text):
+            ``u = C (F r - ym)``.  Empty: the loop's prefilter applies (the revision's takes
+            precedence when given).  Hashed, shown and diffed like the controller.
+        anti_windup : str
+            ``"none"`` (default), ``"clamping"`` (conditional integration) or
+            ``"back-calculation"``: what the controller's integrator does while the actuator
+            is at its limit (large-move metrics, docs/metrics.md).
+        anti_windup_gain : float, optional
+            Back-calculation gain, 1/s.
 
         Raises
         ------
@@ -274,7 +289,9 @@ class Ledger:
             a continuous controller in a digital loop); nothing is recorded.
         """
         return runner.add_revision(self, loop, controller, rationale=rationale, parent=parent,
-                                   author=author, label=label, verify=verify)
+                                   author=author, label=label, verify=verify,
+                                   prefilter=prefilter, anti_windup=anti_windup,
+                                   anti_windup_gain=anti_windup_gain)
 
     def revisions(self, loop: str) -> list[RevisionInfo]:
         """Every revision of ``loop`` in the order recorded (two queries, any length)."""

@@ -59,6 +59,7 @@ class LoopInfo:
     created_at: datetime
     revisions: int = 0
     tip: str | None = None
+    rate_limit: float | None = None
 
 
 @dataclass(frozen=True)
@@ -97,6 +98,10 @@ class RevisionInfo:
     content_hash: str
     created_at: datetime
     children: tuple[str, ...] = ()
+    #: the revision's own prefilter (model text; "" = the loop's prefilter applies)
+    prefilter: str = ""
+    anti_windup: str = "none"
+    anti_windup_gain: float | None = None
 
 
 @dataclass(frozen=True)

@@ -33,7 +33,7 @@ _FIELDS = {
         "optional": {"kind": str, "description": str, "sensor": str, "prefilter": str,
                      "input_delay": (int, float, str), "output_delay": (int, float, str),
                      "sample_time": (int, float, str), "computation_delay": int,
-                     "actuator_limit": (int, float)},
+                     "actuator_limit": (int, float), "rate_limit": (int, float)},
     },
     "requirement": {
         "required": {"id": str, "title": str, "statement": str},
@@ -42,7 +42,8 @@ _FIELDS = {
     },
     "revision": {
         "required": {"loop": str, "controller": str, "rationale": str},
-        "optional": {"label": str, "parent": str, "author": str},
+        "optional": {"label": str, "parent": str, "author": str, "prefilter": str,
+                     "anti_windup": str, "anti_windup_gain": (int, float)},
     },
 }
 _TOP = {"format", "title", "plant", "loop", "requirement", "revision"}
@@ -230,7 +231,8 @@ def import_spec(ledger, path: str | os.PathLike) -> ImportReport:
                 sensor=rec.get("sensor", ""), prefilter=rec.get("prefilter", ""),
                 input_delay=kw["input_delay"] or 0.0, output_delay=kw["output_delay"] or 0.0,
                 sample_time=kw["sample_time"], computation_delay=rec.get("computation_delay", 0),
-                actuator_limit=rec.get("actuator_limit"), description=rec.get("description", "")))
+                actuator_limit=rec.get("actuator_limit"), description=rec.get("description", ""),
+                rate_limit=rec.get("rate_limit")))
             _tally(report, f"loop {info.name}", changed, 1)
 
         existing = req_db.keys(s)
@@ -248,7 +250,9 @@ def import_spec(ledger, path: str | os.PathLike) -> ImportReport:
             info, changed = guard("revision", rec, lambda: rev_db.add(
                 s, rec["loop"], rec["controller"], rationale=rec["rationale"],
                 parent=parent if parent else None, author=rec.get("author") or author,
-                label=rec.get("label")))
+                label=rec.get("label"), prefilter=rec.get("prefilter", ""),
+                anti_windup=rec.get("anti_windup", "none"),
+                anti_windup_gain=rec.get("anti_windup_gain")))
             if changed:
                 report.revisions_added.append((info.loop, info.label))
             else:
@@ -286,6 +290,7 @@ def dump_spec(ledger) -> dict:
         "sensor": lp.sensor, "prefilter": lp.prefilter, "input_delay": lp.input_delay or None,
         "output_delay": lp.output_delay or None, "sample_time": lp.sample_time,
         "computation_delay": lp.computation_delay or None, "actuator_limit": lp.actuator_limit,
+        "rate_limit": lp.rate_limit,
     }) for lp in loops]
     out["requirement"] = [_drop_empty({
         "id": r.key, "title": r.title, "statement": r.statement, "rationale": r.rationale,
@@ -297,7 +302,9 @@ def dump_spec(ledger) -> dict:
         for r in ledger.revisions(lp.name):
             revs.append(_drop_empty({
                 "loop": r.loop, "label": r.label, "parent": r.parent, "author": r.author,
-                "rationale": r.rationale, "controller": r.controller,
+                "rationale": r.rationale, "controller": r.controller, "prefilter": r.prefilter,
+                "anti_windup": None if r.anti_windup == "none" else r.anti_windup,
+                "anti_windup_gain": r.anti_windup_gain,
             }))
     out["revision"] = revs
     return {k: v for k, v in out.items() if v != []}

@@ -60,6 +60,9 @@ def rev_add(loop: str = typer.Argument(..., help="Loop name."),
             root: bool = typer.Option(False, "--root", help="Start a new root (no parent)."),
             label: Optional[str] = typer.Option(None, "--label", help="Label (default r<N>)."),
             no_verify: bool = typer.Option(False, "--no-verify", help="Record only; verify later with 'loopledger verify'."),
+            prefilter: str = typer.Option("", "--prefilter", help="The revision's own reference prefilter / feedforward shaping F (model text; takes precedence over the loop's)."),
+            anti_windup: str = typer.Option("none", "--anti-windup", help="none, clamping or back-calculation (large moves)."),
+            anti_windup_gain: Optional[float] = typer.Option(None, "--anti-windup-gain", help="Back-calculation gain, 1/s."),
             exit_on: Optional[str] = typer.Option(None, "--exit-on", help="Exit with status 3 (the revision is still recorded) when a requirement broke against the parent ('broke'), an approved one broke ('approved-broke'), or anything broke or eroded ('any')."),
 ):
     """Record a controller revision and verify every applicable requirement on it at once."""
@@ -71,7 +74,8 @@ def rev_add(loop: str = typer.Argument(..., help="Loop name."),
     with open_ledger() as lg:
         r = lg.add_revision(loop, controller, rationale=why,
                             parent=None if root else (parent or "tip"), label=label,
-                            verify=not no_verify)
+                            verify=not no_verify, prefilter=prefilter, anti_windup=anti_windup,
+                            anti_windup_gain=anti_windup_gain)
         typer.echo(f"revision {r.loop}/{r.label} recorded (parent {r.parent or 'none'})")
         if not no_verify:
             d = print_regressions(lg, r.loop, r.label)
@@ -120,6 +124,11 @@ def rev_show(loop: str, label: Optional[str] = typer.Argument(None, help="Revisi
     if r.children:
         typer.echo(f"  children    {', '.join(r.children)}")
     typer.echo(f"  controller  {r.controller}")
+    if r.prefilter:
+        typer.echo(f"  prefilter   {r.prefilter}  (the revision's own; the loop's is not used)")
+    if r.anti_windup != "none":
+        gain = f", gain {r.anti_windup_gain:g} 1/s" if r.anti_windup_gain is not None else ""
+        typer.echo(f"  anti-windup {r.anti_windup}{gain}")
     typer.echo(f"  hash        {r.content_hash[:16]}")
     typer.echo("  rationale")
     for line in r.rationale.splitlines():

@@ -41,7 +41,8 @@ LOOP_SETTINGS = MappingProxyType({
     "delay": "input_delay", "input_delay": "input_delay", "output_delay": "output_delay",
     "sample_time": "sample_time", "computation_delay": "computation_delay",
     "sensor": "sensor", "prefilter": "prefilter", "actuator_limit": "actuator_limit",
-    "controller_discretization": "controller_discretization"})
+    "controller_discretization": "controller_discretization", "rate_limit": "rate_limit",
+    "anti_windup": "anti_windup", "anti_windup_gain": "anti_windup_gain"})
 
 #: ``measure`` keyword -> metric setting.
 METRIC_SETTINGS = MappingProxyType({

@@ -7,7 +7,7 @@ from sqlalchemy.orm import Session
 
 from ..errors import DuplicateError, IntegrityViolation, NotFoundError
 from ..records import RevisionInfo
-from ..validate import KEY_RE, check_name, model_canonical, revision_hash
+from ..validate import KEY_RE, check_name, design_fields, model_canonical, revision_hash
 from .chain import append_link
 from .loops import loop_row
 from .models import Loop, Revision
@@ -60,6 +60,8 @@ def make_info(row: Revision, loop: str, parent: str | None,
         loop=loop, label=row.label, seq=row.seq, parent=parent, author=row.author,
         rationale=row.rationale, controller=row.controller_text,
         content_hash=row.content_hash, created_at=utc(row.created_at), children=children,
+        prefilter=row.prefilter_text or "", anti_windup=row.anti_windup or "none",
+        anti_windup_gain=row.anti_windup_gain,
     )
 
 
@@ -72,9 +74,14 @@ def info(s: Session, row: Revision, loop: Loop | None = None) -> RevisionInfo:
 
 
 def add(s: Session, loop: str, controller: str, *, rationale: str, author: str,
-        parent: str | None = "tip", label: str | None = None) -> tuple[RevisionInfo, bool]:
+        parent: str | None = "tip", label: str | None = None, prefilter: str = "",
+        anti_windup: str = "none", anti_windup_gain: float | None = None
+        ) -> tuple[RevisionInfo, bool]:
     """Record a revision (an identical one with the same label is left as it is);
-    ``(info, created)``.  ``parent="tip"``: the loop's latest revision; ``None``: a root."""
+    ``(info, created)``.  ``parent="tip"``: the loop's latest revision; ``None``: a root.
+    ``prefilter``: the revision's own prefilter (model text; it takes precedence over the
+    loop's); ``anti_windup``: one of :data:`~ledger.validate.ANTI_WINDUP`, with its gain (1/s)
+    for back-calculation."""
     lp = loop_row(s, loop)
     lock_row(s, Loop, lp.id)  # serialise label/seq allocation per loop (PostgreSQL)
     what = f"revision of loop {loop!r}"
@@ -82,6 +89,8 @@ def add(s: Session, loop: str, controller: str, *, rationale: str, author: str,
         raise IntegrityViolation(f"{what}: a rationale is required (why this change?)")
     canonical = model_canonical(controller, what=f"{what}: controller",
                                 sample_time=lp.sample_time)
+    design = design_fields(prefilter, anti_windup, anti_windup_gain, what=what,
+                           sample_time=lp.sample_time)
     if parent == "tip":
         prow = tip_row(s, lp)
     elif parent in (None, ""):
@@ -94,6 +103,9 @@ def add(s: Session, loop: str, controller: str, *, rationale: str, author: str,
                                                    Revision.label == label))
         if existing is not None:
             same = (existing.controller_canonical == canonical
+                    and existing.prefilter_canonical == design["prefilter_canonical"]
+                    and existing.anti_windup == design["anti_windup"]
+                    and existing.anti_windup_gain == design["anti_windup_gain"]
                     and existing.rationale == rationale.strip()
                     and existing.parent_id == (prow.id if prow else None))
             if same:
@@ -108,11 +120,13 @@ def add(s: Session, loop: str, controller: str, *, rationale: str, author: str,
     content_hash = revision_hash(
         loop=lp.name, label=label, controller_canonical=canonical,
         parent_hash=prow.content_hash if prow else None, rationale=rationale.strip(),
-        author=author, created_at_iso=created.isoformat())
+        author=author, created_at_iso=created.isoformat(),
+        prefilter_canonical=design["prefilter_canonical"], anti_windup=design["anti_windup"],
+        anti_windup_gain=design["anti_windup_gain"])
     row = Revision(loop_id=lp.id, label=label, seq=seq, parent_id=prow.id if prow else None,
                    author=author, rationale=rationale.strip(), controller_text=controller,
                    controller_canonical=canonical, content_hash=content_hash,
-                   created_at=created)
+                   created_at=created, **design)
     s.add(row)
     s.flush()
     append_link(s, "revision", row)

@@ -19,9 +19,20 @@ from ..store import requirements as req_db
 from ..store import results as results_db
 from ..store import revisions as rev_db
 from ..store.models import Loop, PlantVersion, Revision
+from ..validate import design_hash_part
 
 __all__ = ["Check", "RevisionPlan", "engine_version", "applicable_checks", "plan_revision",
-           "plan_head", "plan_loops", "plan_controller"]
+           "plan_head", "plan_loops", "plan_controller", "design_of"]
+
+
+def design_of(row) -> dict:
+    """The prefilter and anti-windup of a revision row (or the stored fields of a revision not
+    yet recorded, :func:`~ledger.validate.design_fields`) as a plan carries them."""
+    get = row.get if isinstance(row, dict) else (lambda k: getattr(row, k))
+    return {"prefilter_text": get("prefilter_text") or "",
+            "prefilter_canonical": get("prefilter_canonical") or "",
+            "anti_windup": get("anti_windup") or "none",
+            "anti_windup_gain": get("anti_windup_gain")}
 
 
 def engine_version() -> str:
@@ -61,14 +72,23 @@ class RevisionPlan:
     plant_hash: str
     plant_spec: dict
     checks: list[Check] = field(default_factory=list)
+    #: the revision's own prefilter and anti-windup (:func:`design_of`; empty: none)
+    design: dict = field(default_factory=dict)
 
     def metric_key(self, metric: str, settings: dict) -> str:
-        """Content hash of everything a family's metric values depend on."""
-        return sha256_of({
+        """Content hash of everything a family's metric values depend on (the revision's
+        prefilter and anti-windup only when set, so earlier keys are unchanged)."""
+        content = {
             "engine": engine_version(), "plant": self.plant_hash,
             "controller": self.controller_canonical, "loop": self.loop_form,
             "metric": metric, "settings": _jsonable_settings(settings),
-        })
+        }
+        part = design_hash_part(self.design.get("prefilter_canonical", ""),
+                                self.design.get("anti_windup", "none"),
+                                self.design.get("anti_windup_gain"))
+        if part:
+            content["design"] = part
+        return sha256_of(content)
 
     def keys(self) -> list[str]:
         """The metric key of every check, in order."""
@@ -110,9 +130,12 @@ def applicable_checks(s: Session, loop_id: int, keys: Iterable[str] | None = Non
 
 def plan_head(loop: Loop, pv: PlantVersion, revision: Revision | None,
               controller_text: str | None = None,
-              controller_canonical: str | None = None) -> RevisionPlan:
-    """A plan without checks for ``revision`` (or a controller) against plant version ``pv``."""
+              controller_canonical: str | None = None, design: dict | None = None
+              ) -> RevisionPlan:
+    """A plan without checks for ``revision`` (or a controller, with the stored fields of its
+    prefilter and anti-windup ``design``) against plant version ``pv``."""
     return RevisionPlan(
+        design=design_of(revision) if revision is not None else design_of(design or {}),
         loop=loop.name, loop_id=loop.id, label=revision.label if revision else None,
         revision_id=revision.id if revision else None,
         controller_text=revision.controller_text if revision else controller_text,
@@ -127,11 +150,12 @@ def plan_head(loop: Loop, pv: PlantVersion, revision: Revision | None,
 
 def plan_revision(s: Session, loop: Loop, *, revision: Revision | None = None,
                   controller_text: str | None = None, controller_canonical: str | None = None,
-                  keys: Iterable[str] | None = None, missing_only: bool = True) -> RevisionPlan:
+                  keys: Iterable[str] | None = None, missing_only: bool = True,
+                  design: dict | None = None) -> RevisionPlan:
     """What must be computed to bring ``revision`` (or a not-yet-recorded controller) up to
     date against the latest requirement and plant versions."""
     pv = plants_db.latest_version(s, loop.plant_id)
-    plan = plan_head(loop, pv, revision, controller_text, controller_canonical)
+    plan = plan_head(loop, pv, revision, controller_text, controller_canonical, design)
     checks = applicable_checks(s, loop.id, keys)
     if revision is not None and missing_only:
         done = results_db.judged_version_ids(s, revision.id, pv.id)
@@ -161,12 +185,19 @@ def plan_loops(s: Session, loop: str | None = None, *, label: str | None = None,
     return plans
 
 
-def plan_controller(s: Session, loop: str, controller: str) -> tuple[RevisionPlan, dict]:
-    """(plan, cached payloads) for a controller not recorded yet on ``loop``."""
-    from ..validate import model_canonical
+def plan_controller(s: Session, loop: str, controller: str, *, prefilter: str = "",
+                    anti_windup: str = "none", anti_windup_gain: float | None = None
+                    ) -> tuple[RevisionPlan, dict]:
+    """(plan, cached payloads) for a controller not recorded yet on ``loop`` (with its own
+    prefilter and anti-windup, checked here)."""
+    from ..validate import design_fields, model_canonical
 
     lp = loops_db.loop_row(s, loop)
-    canonical = model_canonical(controller, what=f"revision of loop {loop!r}: controller",
+    what = f"revision of loop {loop!r}"
+    canonical = model_canonical(controller, what=f"{what}: controller",
                                 sample_time=lp.sample_time)
-    plan = plan_revision(s, lp, controller_text=controller, controller_canonical=canonical)
+    design = design_fields(prefilter, anti_windup, anti_windup_gain, what=what,
+                           sample_time=lp.sample_time)
+    plan = plan_revision(s, lp, controller_text=controller, controller_canonical=canonical,
+                         design=design)
     return plan, results_db.load_cached(s, plan.keys())

@@ -99,13 +99,16 @@ def verify(lg, loop: str | None = None, *, label: str | None = None, tips_only: 
 
 def add_revision(lg, loop: str, controller: str, *, rationale: str, parent: str | None = "tip",
                  author: str | None = None, label: str | None = None,
-                 verify: bool = True) -> RevisionInfo:
+                 verify: bool = True, prefilter: str = "", anti_windup: str = "none",
+                 anti_windup_gain: float | None = None) -> RevisionInfo:
     """:meth:`ledger.api.Ledger.add_revision` (see there): the metric values are computed
     before the write; the revision and all its results are recorded in one transaction."""
     payloads, fresh, plan = {}, set(), None
     if verify:
         with lg.store.reading() as s:
-            plan, cached = plan_controller(s, loop, controller)
+            plan, cached = plan_controller(s, loop, controller, prefilter=prefilter,
+                                           anti_windup=anti_windup,
+                                           anti_windup_gain=anti_windup_gain)
         try:
             validate_controller(plan)
         except LedgerError as e:
@@ -116,7 +119,9 @@ def add_revision(lg, loop: str, controller: str, *, rationale: str, parent: str 
 
     def op(s):
         info, created = rev_db.add(s, loop, controller, rationale=rationale, parent=parent,
-                                   author=author or lg.author, label=label)
+                                   author=author or lg.author, label=label,
+                                   prefilter=prefilter, anti_windup=anti_windup,
+                                   anti_windup_gain=anti_windup_gain)
         if created and plan is not None and plan.checks:
             row = rev_db.revision_row(s, loops_db.loop_row(s, loop), info.label)
             write_results(s, plan, row.id, payloads, fresh)

@@ -33,6 +33,23 @@ def parent_note(loop: str, parent: str | None, tip: str | None) -> str:
     return f"parent {loop}/{parent} is not the tip ({tip or 'none'}): this starts a branch"
 
 
+def anti_windup_field(text: str) -> tuple[str, float | None]:
+    """The form's anti-windup field: ``""``/``none``, ``clamping``, ``back-calculation 50``."""
+    from ...errors import ModelError
+
+    parts = (text or "").split()
+    if not parts:
+        return "none", None
+    if len(parts) == 2 and parts[0] == "back-calculation":
+        try:
+            return parts[0], float(parts[1])
+        except ValueError as e:
+            raise ModelError(f"anti-windup gain {parts[1]!r} is not a number (1/s)") from e
+    if len(parts) == 1:
+        return parts[0], None
+    raise ModelError(f"anti-windup {text!r}: write none, clamping or back-calculation GAIN")
+
+
 class RevisionForm(ModalScreen[Recorded | None]):
     """Controller text, parent and rationale for a new revision of ``loop``.
 
@@ -61,6 +78,10 @@ class RevisionForm(ModalScreen[Recorded | None]):
             yield Label(f"loop: {self.loop}   tip: {self.tip or 'none yet'}", id="form-loop")
             yield Label("controller (model text)")
             yield Input(placeholder="e.g. pid(kp=0.4, ki=4, kd=0.006, tf=0.0008)", id="form-controller")
+            yield Label("prefilter / feedforward shaping F (model text; empty: the loop's)")
+            yield Input(placeholder="e.g. 1/(0.02*s+1)^2", id="form-prefilter")
+            yield Label("anti-windup: none, clamping, or back-calculation GAIN (1/s)")
+            yield Input(placeholder="none", id="form-antiwindup")
             yield Label(f"parent revision of loop {self.loop} (empty: new root)")
             yield Input(self.parent_label or "", id="form-parent")
             yield Static(parent_note(self.loop, self.parent_label, self.tip), id="form-parent-note")
@@ -103,13 +124,18 @@ class RevisionForm(ModalScreen[Recorded | None]):
         self.query_one("#form-ok", Button).disabled = True
         self._record(self.query_one("#form-controller", Input).value,
                      self.query_one("#form-parent", Input).value.strip() or None,
-                     self.query_one("#form-rationale", Input).value)
+                     self.query_one("#form-rationale", Input).value,
+                     self.query_one("#form-prefilter", Input).value.strip(),
+                     self.query_one("#form-antiwindup", Input).value)
 
     @work(thread=True, exclusive=True, group="record")
-    def _record(self, controller: str, parent: str | None, rationale: str) -> None:
+    def _record(self, controller: str, parent: str | None, rationale: str,
+                prefilter: str = "", anti_windup: str = "") -> None:
         try:
+            scheme, gain = anti_windup_field(anti_windup)
             info = self.app.lg.add_revision(self.loop, controller, rationale=rationale,
-                                            parent=parent)
+                                            parent=parent, prefilter=prefilter,
+                                            anti_windup=scheme, anti_windup_gain=gain)
         except LedgerError as e:
             self.app.call_from_thread(self._failed, str(e))
             return
