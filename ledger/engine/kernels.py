@@ -230,9 +230,9 @@ def _disturbance_offset(ctx, s) -> np.ndarray:
 
 
 def _moves(ctx, s):
-    from . import moves
+    from . import movemetrics
     key = ("move", s["move"], s["settling_band"], s["settling_basis"])
-    return ctx.cached(key, lambda: moves.move_metrics_group(ctx.asm, ctx.g, ctx.m, s))
+    return ctx.cached(key, lambda: movemetrics.move_metrics_group(ctx.asm, ctx.g, ctx.m, s))
 
 
 #: row-wise forms of the pole metrics, for groups whose variants have equally many poles
