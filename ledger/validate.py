@@ -216,6 +216,15 @@ def requirement_fields(key: str, *, title, statement, rationale, method, status,
         except LedgerError as e:
             raise with_context(e, what) from e
         comparator, limit_value, limit_text = lim.comparator, lim.value, lim.text
+        if isinstance(settings.get("move"), str):
+            # a move amplitude with a unit must fit each loop's plant output unit
+            from .units import quantity_in
+
+            for loop_name, _, ou in plant_units(sorted(set(loops or ()))):
+                try:
+                    quantity_in(settings["move"], ou)
+                except LedgerError as e:
+                    raise with_context(e, f"{what} on loop {loop_name!r}") from e
         # a metric without loops is allowed (coverage reports it)
     elif limit:
         raise IntegrityViolation(f"{what}: a limit needs a metric")

@@ -350,19 +350,22 @@ def _first_exit(mode: _Mode, Z: np.ndarray, h: float):
     for c in mode.conds:
         f0, f1 = float(c @ Z), float(c @ Zb)
         d0, d1 = float(c @ mode.M @ Z), float(c @ mode.M @ Zb)
+        # rounding: a condition held at zero (e.g. a stopped integrator at the limit) is not
+        # left until it goes clearly negative
+        tol = 1e-12 * (float(np.abs(c) @ (np.abs(Z) + np.abs(Zb))) + 1e-300)
 
         def f(s, c=c):
             return float(c @ scipy.linalg.expm(mode.M * s) @ Z)
         hit = None
-        if f1 < 0:
-            hit = _brent(f, 0.0, h, max(f0, 0.0), f1, h) if f0 > 0 else 0.0
+        if f1 < -tol:
+            hit = _brent(f, 0.0, h, f0, f1, h) if f0 > 0 else 0.0
         elif d0 < 0 < d1:
             def df(s, c=c):
                 return float(c @ mode.M @ scipy.linalg.expm(mode.M * s) @ Z)
             sm = _brent(df, 0.0, h, d0, d1, h)
             fm = f(sm)
-            if fm < 0:
-                hit = _brent(f, 0.0, sm, max(f0, 0.0), fm, h) if f0 > 0 else 0.0
+            if fm < -tol:
+                hit = _brent(f, 0.0, sm, f0, fm, h) if f0 > 0 else 0.0
         if hit is not None and (best is None or hit < best):
             best = hit
     return best, E
@@ -377,7 +380,11 @@ def _simulate_continuous(st: MoveSetup, R: float, *, max_pieces: int = 200_000,
     Z[rows.n] = 1.0
     k = _choose(modes, Z)
     # a step enters at t = 0+: the state is zero, the mode follows from the conditions
-    lin = modes[0]
+    # the linear loop without the actuator's state (a rate-limited actuator adds one that
+    # only tracks the command): its slowest mode and its equilibrium (the final value)
+    from dataclasses import replace
+    plain = _Rows(replace(st, rate=math.inf), R)
+    lin = _modes(plain)[0]
     decay = _slowest(lin.M)
     if decay <= 0:
         raise UnstableLoopError("the linear loop is not stable; no large move to simulate")
@@ -424,7 +431,7 @@ def _simulate_continuous(st: MoveSetup, R: float, *, max_pieces: int = 200_000,
     # final value: the linear mode's equilibrium (the move ends in the linear mode)
     A, b = lin.M[:-1, :-1], lin.M[:-1, -1]
     x = np.linalg.solve(A, -b)
-    final = float(rows.y[:-1] @ x + rows.y[-1])
+    final = float(plain.y[:-1] @ x + plain.y[-1])
     sat = []
     cur = None
     for tt, kk in zip(ts, ks):

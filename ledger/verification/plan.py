@@ -119,9 +119,21 @@ def applicable_checks(s: Session, loop_id: int, keys: Iterable[str] | None = Non
                 unit, limit_value = lim.unit, lim.value
             except LedgerError as e:
                 problem = str(e)
+        settings = json.loads(v.settings_json)
+        if isinstance(settings.get("move"), str):
+            # a move amplitude with a unit, read in this plant's output unit (docs/metrics.md)
+            from ..units import quantity_in
+
+            try:
+                settings["move"] = quantity_in(settings["move"], ou)
+            except LedgerError as e:
+                problem = problem or str(e)
+                settings.pop("move")
+        if "move" not in settings and v.metric.startswith("move_"):
+            settings["move"] = 1.0  # judged as an error (problem) without computing
         out.append(Check(
             version_id=v.id, key=key, version=v.number, status=v.status, metric=v.metric,
-            settings=resolve_settings(v.metric, json.loads(v.settings_json)),
+            settings=resolve_settings(v.metric, settings),
             comparator=v.comparator, limit_value=limit_value, limit_text=v.limit_text,
             unit=unit, problem=problem,
         ))
