@@ -31,7 +31,7 @@ BACKENDS = ["sqlite", "postgresql"]
 NUMERIC_MODULES = {"test_blocks", "test_family", "test_family_scale", "test_freqresp", "test_loop",
                    "test_measure", "test_parser", "test_stability", "test_timeresp", "test_units",
                    "test_plant_units", "test_display", "test_plot_axes", "test_yieldbound",
-                   "test_moves", "test_disturbance_offset"}
+                   "test_moves", "test_disturbance_offset", "test_feedforward"}
 
 
 def pytest_configure(config):

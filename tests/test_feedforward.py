@@ -99,3 +99,61 @@ def test_spec_round_trip_keeps_design(lg, tmp_path):
         r = other.revision("ax", "a")
         assert (r.prefilter, r.anti_windup, r.anti_windup_gain) == ("1/(0.05*s+1)",
                                                                    "clamping", None)
+
+
+# --------------------------------------------------------------------------- large moves
+# Source of the numbers: the engine's own large-move simulation, itself checked against
+# closed forms and solve_ivp in tests/test_moves.py; here the ledger's side is under test (the
+# move amplitude read in the plant's unit, the revision's prefilter, the diff).
+
+_PLANT = "400/(s*(0.02*s+1))"           # belt axis, mm per A
+_LEAD = "0.5*(s+15)/(15*(s/300+1))"
+
+
+@pytest.fixture()
+def axis(tmp_path):
+    with open_ledger(tmp_path / "mv.db", create=True, author="tester") as lg:
+        lg.add_plant("belt", _PLANT, input_unit="A", output_unit="mm")
+        lg.add_loop("x", "belt", actuator_limit=2.0)
+        lg.add_requirement("MV", title="move", statement="a 10 mm move settles in 250 ms",
+                           metric="move_settling_time", limit="<= 250 ms",
+                           settings={"move": "10 mm"}, loops=["x"])
+        yield lg
+
+
+def test_feedforward_meets_a_move_the_feedback_only_revision_misses(axis):
+    import control
+
+    from ledger.engine import measure
+
+    axis.add_revision("x", _LEAD, rationale="lead compensator only", label="fb")
+    axis.add_revision("x", _LEAD, rationale="shape the reference: no saturation", label="ff",
+                      prefilter="1/(0.03*s+1)^2")
+    fb, ff = axis.results("x", "fb")[0], axis.results("x", "ff")[0]
+    assert (fb.verdict, ff.verdict) == ("fail", "pass")
+    # the ledger's values are the engine's for the move in the plant's unit (10 mm = 10)
+    s = control.tf("s")
+    G = 400 / (s * (0.02 * s + 1))
+    C = 0.5 * (s + 15) / (15 * (s / 300 + 1))
+    ref = measure(G, C, ["move_settling_time"], actuator_limit=2.0, move=10.0)
+    assert_allclose(fb.value, ref["move_settling_time"], rtol=1e-9)
+    ref_ff = measure(G, C, ["move_settling_time"], actuator_limit=2.0, move=10.0,
+                     prefilter=1 / (0.03 * s + 1) ** 2)
+    assert_allclose(ff.value, ref_ff["move_settling_time"], rtol=1e-9)
+    d = diff(axis, "x", "ff", "fb")
+    assert d.design_changes == (("prefilter", "(loop's)", "1/(0.03*s+1)^2"),)
+    assert [(c.requirement, c.kind) for c in d.changes] == [("MV", "fixed")]
+
+
+def test_move_amplitude_units(axis):
+    # 1 cm is 10 mm (pint): the same value; an angle does not fit a plant in mm
+    axis.add_revision("x", _LEAD, rationale="lead", label="fb")
+    v_mm = axis.results("x", "fb")[0].value
+    axis.edit_requirement("MV", settings={"move": "1 cm"})
+    axis.verify("x")
+    r = axis.results("x", "fb")[0]
+    assert r.requirement_version == 2
+    assert_allclose(r.value, v_mm, rtol=1e-12)
+    with pytest.raises(LedgerError, match="does not fit"):
+        axis.add_requirement("MV2", title="m", statement="s", metric="move_overshoot",
+                             limit="<= 5 %", settings={"move": "10 mrad"}, loops=["x"])
