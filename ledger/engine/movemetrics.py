@@ -13,7 +13,8 @@ import scipy.linalg
 from ..errors import ComputeError, UnstableLoopError
 from .moves import MoveResponse, _brent, _simulate_continuous, move_setup, simulate_move
 
-__all__ = ["MoveMetrics", "move_metrics", "move_metrics_group", "simulate_digital_moves"]
+__all__ = ["MoveMetrics", "move_metrics", "move_metrics_group", "simulate_digital_moves",
+           "move_responses"]
 
 
 # --------------------------------------------------------------------------- digital loops
@@ -220,3 +221,56 @@ def move_metrics_group(plan, g, mask: np.ndarray, s: dict) -> MoveMetrics:
 def move_metrics(F, K, G, H, loop, amplitude: float, *, settling_band: float = 0.02):
     """``(settling time, overshoot, time saturated, peak rate)`` of one continuous variant."""
     return _continuous_metrics(simulate_move(F, K, G, H, loop, amplitude), settling_band)
+
+
+def _runs(mask: np.ndarray, ts: float) -> tuple:
+    """``(start, end)`` times of the runs of True in a sample mask (sample k covers
+    ``[k ts, (k + 1) ts)``)."""
+    out, k, n = [], 0, mask.size
+    while k < n:
+        if mask[k]:
+            j = k
+            while j < n and mask[j]:
+                j += 1
+            out.append((k * ts, j * ts))
+            k = j
+        else:
+            k += 1
+    return tuple(out)
+
+
+def move_responses(asm, amplitude: float, *, points: int = 800) -> dict:
+    """For plots: the large move of every variant of an assembly (a
+    :class:`~ledger.engine.loop.Assembly`), ``name -> (t, y, saturated intervals, final)``;
+    continuous loops sampled exactly at ``points`` times and at every switching instant,
+    digital loops at their samples."""
+    from .blocks import make_block
+
+    loop = asm.loop
+    R = float(amplitude)
+    F = make_block(1.0 if loop.prefilter is None else loop.prefilter, "prefilter")
+    out = {}
+    for g in asm.groups:
+        K, Gs, H = g.blocks
+        if loop.sample_time is None and g.tau > 0:
+            raise ComputeError("large-move metrics need a continuous loop without delays or a "
+                               "digital loop (the delay makes the pieces infinite-dimensional)")
+        setups = [move_setup(F, K, G, H, loop) for G in Gs]
+        names = [asm.variants[int(i)] for i in np.asarray(g.index)]
+        if loop.sample_time is not None:
+            from .timeresp import final_value
+
+            ts = loop.sample_time
+            yf = np.asarray(final_value(g.paths["r->y"], R), float)
+            decay = np.array([float(np.min(-np.log(np.maximum(np.abs(p), 1e-300)))) / ts
+                              if np.size(p) else 1.0 / ts for p in g.poles])
+            y, sat = simulate_digital_moves(setups, R, decay)
+            t = np.arange(y.shape[1]) * ts
+            for j, n in enumerate(names):
+                out[n] = (t, y[j], _runs(sat[j], ts), float(yf[j]))
+            continue
+        for n, st in zip(names, setups):
+            resp = _simulate_continuous(st, R)
+            t = np.union1d(np.linspace(0.0, float(resp.t[-1]), points), resp.t)
+            out[n] = (t, resp.at(t), resp.saturated, resp.final)
+    return out
