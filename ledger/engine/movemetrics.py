@@ -12,6 +12,10 @@ import scipy.linalg
 
 from ..errors import ComputeError, UnstableLoopError
 from .moves import MoveResponse, _brent, _simulate_continuous, move_setup, simulate_move
+from .simulation import _hermite_extremum
+
+#: interior extrema refined exactly per metric (the largest estimates; the rest cannot win)
+_REFINE = 4
 
 __all__ = ["MoveMetrics", "move_metrics", "move_metrics_group", "simulate_digital_moves",
            "move_responses"]
@@ -99,39 +103,57 @@ def _piece_fn(resp: MoveResponse, k: int, row_of):
 def _continuous_metrics(resp: MoveResponse, band: float, peak_rtol: float = 1e-9):
     C, yf = resp.C, resp.final
     K = resp.t.size - 1
-    Ms = [resp.modes[j].M for j in resp.mode[:K]]
     Za, Zb = resp.Z[:K], resp.Z[1:]
     ya, yb = Za @ C, Zb @ C
-    CM = np.array([C @ M for M in Ms])
-    CMM = np.array([C @ M @ M for M in Ms])
+    rows1 = np.array([C @ md.M for md in resp.modes])
+    rows2 = np.array([C @ md.M @ md.M for md in resp.modes])
+    CM, CMM = rows1[resp.mode[:K]], rows2[resp.mode[:K]]
     da = np.einsum("ki,ki->k", CM, Za)
     db = np.einsum("ki,ki->k", CM, Zb)
     aa = np.einsum("ki,ki->k", CMM, Za)
     ab = np.einsum("ki,ki->k", CMM, Zb)
     h = resp.h[:K]
     sgn = 1.0 if yf >= 0 else -1.0
-    # extrema of y inside pieces
+    # extrema of y inside pieces: each estimated by the cubic Hermite interpolant of the end
+    # values and slopes, the few largest (the only ones that can set the maximum) refined by
+    # Brent on the exact y'
     te = np.full(K, np.nan)
     ye = np.full(K, np.nan)
-    for k in np.flatnonzero(da * db < 0):
+    ext = np.flatnonzero(da * db < 0)
+    if ext.size:
+        se, ve = _hermite_extremum(ya[ext], yb[ext], da[ext], db[ext], h[ext])
+        te[ext], ye[ext] = se, ve
+    cand = np.concatenate([ya, yb])
+    top = ext[np.argsort(-sgn * ye[ext])[:_REFINE]] if ext.size else ext
+    for k in top:
         f = _piece_fn(resp, k, lambda M: C @ M)
         te[k] = _brent(f, 0.0, h[k], da[k], db[k], h[k])
         ye[k] = _piece_fn(resp, k, lambda M: C)(te[k])
-    cand = np.concatenate([ya, yb, ye[np.isfinite(ye)]])
-    qmax = float(np.max(sgn * cand))
+    qmax = float(max(np.max(sgn * cand), np.max(sgn * ye[top]) if top.size else -math.inf))
     a = abs(yf)
     over = 100.0 * (qmax - a) / a if qmax > a * (1 + peak_rtol) else 0.0
-    # peak rate: |y'| at piece ends and at extrema of y' inside pieces
+    # peak rate: |y'| at piece ends and at the largest extrema of y' inside pieces
     rate = [np.max(np.abs(da)), np.max(np.abs(db))]
-    for k in np.flatnonzero(aa * ab < 0):
-        f = _piece_fn(resp, k, lambda M: C @ M @ M)
-        sm = _brent(f, 0.0, h[k], aa[k], ab[k], h[k])
-        rate.append(abs(_piece_fn(resp, k, lambda M: C @ M)(sm)))
+    ext2 = np.flatnonzero(aa * ab < 0)
+    if ext2.size:
+        _, v2 = _hermite_extremum(da[ext2], db[ext2], aa[ext2], ab[ext2], h[ext2])
+        for k in ext2[np.argsort(-np.abs(v2))[:_REFINE]]:
+            f = _piece_fn(resp, k, lambda M: C @ M @ M)
+            sm = _brent(f, 0.0, h[k], aa[k], ab[k], h[k])
+            rate.append(abs(_piece_fn(resp, k, lambda M: C @ M)(sm)))
     peak_rate = float(max(rate))
     # settling: the last time |y - yf| exceeds the band
     bw = band * a
     out_a = np.abs(ya - yf) > bw
     out_b = np.abs(yb - yf) > bw
+    out_e = np.isfinite(ye) & (np.abs(np.nan_to_num(ye) - yf) > bw)
+    # a Hermite estimate near the band edge is refined before it decides the last exit
+    near = np.flatnonzero(np.isfinite(ye) & (np.abs(np.abs(np.nan_to_num(ye) - yf) - bw)
+                                             < 0.05 * bw))
+    for k in near[-_REFINE:]:
+        f = _piece_fn(resp, k, lambda M: C @ M)
+        te[k] = _brent(f, 0.0, h[k], da[k], db[k], h[k])
+        ye[k] = _piece_fn(resp, k, lambda M: C)(te[k])
     out_e = np.isfinite(ye) & (np.abs(np.nan_to_num(ye) - yf) > bw)
     anyk = np.flatnonzero(out_a | out_b | out_e)
     if anyk.size == 0:
