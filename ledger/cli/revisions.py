@@ -125,7 +125,7 @@ def rev_show(loop: str, label: Optional[str] = typer.Argument(None, help="Revisi
         typer.echo(f"  children    {', '.join(r.children)}")
     typer.echo(f"  controller  {r.controller}")
     if r.prefilter:
-        typer.echo(f"  prefilter   {r.prefilter}  (the revision's own; the loop's is not used)")
+        typer.echo(f"  prefilter   {r.prefilter}  (the revision's own, in place of the loop's)")
     if r.anti_windup != "none":
         gain = f", gain {r.anti_windup_gain:g} 1/s" if r.anti_windup_gain is not None else ""
         typer.echo(f"  anti-windup {r.anti_windup}{gain}")
