@@ -203,6 +203,16 @@ def _amplitude(s) -> float:
     return float(R)
 
 
+def _rows_of(b, m):
+    """The variants ``m`` of an :class:`~ledger.engine.types.SSBatch`."""
+    from dataclasses import replace
+
+    def sub(x):
+        return None if x is None else x[m]
+    return replace(b, A=b.A[m], B=b.B[m], C=b.C[m], D=b.D[m], Bw=sub(b.Bw), Cz=sub(b.Cz),
+                   Dz=sub(b.Dz), Dw=sub(b.Dw), Dzw=sub(b.Dzw))
+
+
 def move_metrics_group(plan, g, mask: np.ndarray, s: dict) -> MoveMetrics:
     """Large-move metrics of the variants ``mask`` of one planned group (``plan``: the
     :class:`~ledger.engine.loop.Plan`; ``g``: its :class:`~ledger.engine.loop.LoopGroup`)."""
@@ -221,9 +231,8 @@ def move_metrics_group(plan, g, mask: np.ndarray, s: dict) -> MoveMetrics:
     n = len(setups)
     if loop.sample_time is not None:
         from .timeresp import final_value
-        from .kernels import _sub_batch
 
-        yf = np.asarray(final_value(_sub_batch(g.paths["r->y"], mask), R), float)
+        yf = np.asarray(final_value(_rows_of(g.paths["r->y"], mask), R), float)
         ts = loop.sample_time
         poles = [g.poles[int(j)] for j in np.flatnonzero(mask)]
         decay = np.array([float(np.min(-np.log(np.maximum(np.abs(p), 1e-300)))) / ts

@@ -19,10 +19,12 @@ def move_amplitude(req, output_unit: str) -> float:
     return quantity_in((req.settings or {}).get("move", 1.0), output_unit)
 
 
-def draw_move(fig, curves, req, res, worst) -> None:
+def draw_move(fig, curves, req, res, worst, kit) -> None:
     """Large move (solid) and linear step of the same amplitude (dashed) for the nominal and
-    the worst variant; saturation intervals of the worst variant shaded."""
-    from .plots import PALETTE, _labels, _num, _thin
+    the worst variant; saturation intervals of the worst variant shaded.  ``kit``: the
+    figure helpers of :mod:`ledger.exports.plots` (palette, variant labels, number text,
+    thinning), handed in so that this module does not import that one."""
+    PALETTE, _labels, _num, _thin = kit
 
     ax = fig.add_subplot(111)
     R = move_amplitude(req, curves.output_unit)

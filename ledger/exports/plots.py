@@ -489,7 +489,7 @@ def entry_plot(curves, requirement, result, *, width_in: float = 10.0,
     elif kind == "move":
         from .moveplots import draw_move
 
-        draw_move(fig, curves, requirement, result, worst)
+        draw_move(fig, curves, requirement, result, worst, (PALETTE, _labels, _num, _thin))
     elif kind == "sensitivity":
         _draw_sens(fig, curves, requirement, result, worst)
     elif kind == "disk":
