@@ -104,8 +104,14 @@ def _diff_json(d) -> dict:
 
 
 def _design_lines(d) -> None:
+    """What the design changed, the old and the new text on lines of their own (shortened to
+    the terminal width)."""
+    from .output import short, width
+
+    n = max(20, (width() or 10_000) - 16)
     for part, a, b in d.design_changes:
-        typer.echo(f"  {part}: {a}  ->  {b}")
+        typer.echo(f"  {part} was  {short(a, n)}")
+        typer.echo(f"  {' ' * len(part)} now  {short(b, n)}")
 
 
 def _counts_line(d) -> str:
