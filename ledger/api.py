@@ -178,7 +178,8 @@ class Ledger:
     def add_loop(self, name: str, plant: str, *, kind: str = "position", sensor: str = "",
                  prefilter: str = "", input_delay: float = 0.0, output_delay: float = 0.0,
                  sample_time: float | None = None, computation_delay: int = 0,
-                 actuator_limit: float | None = None, description: str = "") -> LoopInfo:
+                 actuator_limit: float | None = None, description: str = "",
+                 rate_limit: float | None = None) -> LoopInfo:
         """Add a loop: how a controller and a plant are connected.
 
         Parameters
@@ -193,12 +194,14 @@ class Ledger:
             Whole samples of computation delay (z^-d).
         actuator_limit : float, optional
             Largest |u| the actuator can deliver, in the plant's input unit.
+        rate_limit : float, optional
+            Largest |du/dt| of the actuator, plant input unit per second (large moves).
         """
         info, _ = self.store.write(
             loops_db.add, name, plant, kind=kind, sensor=sensor, prefilter=prefilter,
             input_delay=input_delay, output_delay=output_delay, sample_time=sample_time,
             computation_delay=computation_delay, actuator_limit=actuator_limit,
-            description=description)
+            description=description, rate_limit=rate_limit)
         return info
 
     def add_spectrum(self, loop: str, source: str, *, shaping: str = "",
@@ -314,7 +317,9 @@ class Ledger:
                      parent: str | None = "tip", author: str | None = None,
                      label: str | None = None, verify: bool = True,
                      discretization: str | None = None,
-                     number_format: str | None = None) -> RevisionInfo:
+                     number_format: str | None = None, prefilter: str = "",
+                     anti_windup: str = "none",
+                     anti_windup_gain: float | None = None) -> RevisionInfo:
         """Record a new controller revision of ``loop`` and verify it.
 
         Parameters
@@ -340,6 +345,16 @@ class Ledger:
         number_format : str, optional
             Digital loops: the number format of the stored coefficients (``"fixed:W/F"``,
             ``"single"``); verification then uses the quantised coefficients.
+        prefilter : str
+            The revision's own reference prefilter / feedforward shaping F (model text):
+            ``u = C (F r - ym)``.  Empty: the loop's prefilter applies (the revision's takes
+            precedence when given).  Hashed, shown and diffed like the controller.
+        anti_windup : str
+            ``"none"`` (default), ``"clamping"`` (conditional integration) or
+            ``"back-calculation"``: what the controller's integrator does while the actuator
+            is at its limit (large-move metrics, docs/metrics.md).
+        anti_windup_gain : float, optional
+            Back-calculation gain, 1/s.
 
         Raises
         ------
@@ -350,7 +365,9 @@ class Ledger:
         return runner.add_revision(self, loop, controller, rationale=rationale, parent=parent,
                                    author=author, label=label, verify=verify,
                                    discretization=discretization or "",
-                                   number_format=number_format or "")
+                                   number_format=number_format or "",
+                                   prefilter=prefilter, anti_windup=anti_windup,
+                                   anti_windup_gain=anti_windup_gain)
 
     def try_revision(self, loop: str, controllers: str | Sequence[str], *,
                      against: str | None = None, threshold: float = 0.25):

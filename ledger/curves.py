@@ -99,6 +99,7 @@ class ColumnCurves:
     freq_grid: dict = field(default_factory=lambda: dict(DISPLAY_FREQ_GRID))
     _steps: dict = field(default_factory=dict)
     _freq: FreqCurves | None = None
+    _moves: dict = field(default_factory=dict)
 
     def _group_of(self, name: str):
         i = self.variants.index(name)
@@ -122,6 +123,17 @@ class ColumnCurves:
                     t[name], y[name], fin[name] = sr.t, sr.y[j], float(sr.final[j])
             self._steps[key] = StepCurves(t, y, fin, float(amplitude))
         return self._steps[key]
+
+    def move(self, amplitude: float) -> dict:
+        """The large move of amplitude ``amplitude`` (plant output units) per variant:
+        ``name -> (t, y, saturated intervals, final)``
+        (:func:`ledger.engine.movemetrics.move_responses`)."""
+        from .engine.movemetrics import move_responses
+
+        key = float(amplitude)
+        if key not in self._moves:
+            self._moves[key] = move_responses(self.assembly, key)
+        return self._moves[key]
 
     def freq(self) -> FreqCurves:
         """Loop gain, S, T, CS and classical margins per variant."""

@@ -61,6 +61,7 @@ class LoopInfo:
     created_at: datetime
     revisions: int = 0
     tip: str | None = None
+    rate_limit: float | None = None
 
 
 @dataclass(frozen=True)
@@ -104,6 +105,10 @@ class RevisionInfo:
     discretization: str = ""
     number_format: str = ""
     verified: str = ""
+    #: the revision's own prefilter (model text; "" = the loop's prefilter applies)
+    prefilter: str = ""
+    anti_windup: str = "none"
+    anti_windup_gain: float | None = None
 
 
 @dataclass(frozen=True)

@@ -33,7 +33,8 @@ _FIELDS = {
         "optional": {"kind": str, "description": str, "sensor": str, "prefilter": str,
                      "input_delay": (int, float, str), "output_delay": (int, float, str),
                      "sample_time": (int, float, str), "computation_delay": int,
-                     "actuator_limit": (int, float), "spectra": list},
+                     "actuator_limit": (int, float), "spectra": list,
+                     "rate_limit": (int, float)},
     },
     "requirement": {
         "required": {"id": str, "title": str, "statement": str},
@@ -43,7 +44,8 @@ _FIELDS = {
     "revision": {
         "required": {"loop": str, "controller": str, "rationale": str},
         "optional": {"label": str, "parent": str, "author": str, "discretize": str,
-                     "number_format": str},
+                     "number_format": str, "prefilter": str, "anti_windup": str,
+                     "anti_windup_gain": (int, float)},
     },
 }
 _TOP = {"format", "title", "plant", "loop", "requirement", "revision"}
@@ -235,7 +237,8 @@ def import_spec(ledger, path: str | os.PathLike) -> ImportReport:
                 sensor=rec.get("sensor", ""), prefilter=rec.get("prefilter", ""),
                 input_delay=kw["input_delay"] or 0.0, output_delay=kw["output_delay"] or 0.0,
                 sample_time=kw["sample_time"], computation_delay=rec.get("computation_delay", 0),
-                actuator_limit=rec.get("actuator_limit"), description=rec.get("description", "")))
+                actuator_limit=rec.get("actuator_limit"), description=rec.get("description", ""),
+                rate_limit=rec.get("rate_limit")))
             _tally(report, f"loop {info.name}", changed, 1)
             for item in rec.get("spectra", []):
                 from .spectra_io import spec_kwargs
@@ -262,7 +265,10 @@ def import_spec(ledger, path: str | os.PathLike) -> ImportReport:
                 s, rec["loop"], rec["controller"], rationale=rec["rationale"],
                 parent=parent if parent else None, author=rec.get("author") or author,
                 label=rec.get("label"), discretization=rec.get("discretize", ""),
-                number_format=rec.get("number_format", "")))
+                number_format=rec.get("number_format", ""),
+                prefilter=rec.get("prefilter", ""),
+                anti_windup=rec.get("anti_windup", "none"),
+                anti_windup_gain=rec.get("anti_windup_gain")))
             if changed:
                 report.revisions_added.append((info.loop, info.label))
             else:
@@ -344,6 +350,7 @@ def dump_spec(ledger) -> dict:
         "output_delay": lp.output_delay or None, "sample_time": lp.sample_time,
         "computation_delay": lp.computation_delay or None, "actuator_limit": lp.actuator_limit,
         "spectra": [spec_entry(f) for f in ledger.spectra(lp.name)],
+        "rate_limit": lp.rate_limit,
     }) for lp in loops]
     out["requirement"] = [_drop_empty({
         "id": r.key, "title": r.title, "statement": r.statement, "rationale": r.rationale,
@@ -357,6 +364,9 @@ def dump_spec(ledger) -> dict:
                 "loop": r.loop, "label": r.label, "parent": r.parent, "author": r.author,
                 "rationale": r.rationale, "controller": r.controller,
                 "discretize": r.discretization, "number_format": r.number_format,
+                "prefilter": r.prefilter,
+                "anti_windup": None if r.anti_windup == "none" else r.anti_windup,
+                "anti_windup_gain": r.anti_windup_gain,
             }))
     out["revision"] = revs
     return {k: v for k, v in out.items() if v != []}

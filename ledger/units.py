@@ -122,6 +122,8 @@ PLANT_UNIT_METRICS = {
     "peak_control_sensitivity": "in/out",
     "rms_error": "out",
     "rms_effort": "in",
+    "disturbance_offset": "out",
+    "move_peak_rate": "out/s",
 }
 
 
@@ -173,13 +175,47 @@ def resolve_unit(metric: str, catalogue_unit: str, input_unit: str = "",
         if not iu and not ou:
             return catalogue_unit
         return f"{iu or '1'}/{ou}" if ou else iu
+    if kind == "out/s":
+        return f"{ou}/s" if ou else catalogue_unit
     return catalogue_unit
+
+
+def quantity_in(text, output_unit: str, what: str = "move") -> float:
+    """A setting written as a number or ``"10 mm"`` read in a plant's unit ``output_unit``.
+
+    A bare number is in the plant's own unit; a unit needs the plant to declare one that it
+    converts to (angles stay apart, as for limits).
+
+    Raises
+    ------
+    UnitError
+        The text does not parse, the unit is unknown or does not fit ``output_unit``.
+    """
+    if not isinstance(text, str):
+        return float(text)
+    parts = text.strip().split(None, 1)
+    try:
+        value = float(parts[0])
+    except (ValueError, IndexError) as e:
+        raise UnitError(f"{what} {text!r} is not a number with an optional unit") from e
+    if len(parts) == 1:
+        return value
+    unit = parts[1].strip()
+    ou = (output_unit or "").strip()
+    if not ou:
+        raise UnitError(f"{what} {text!r} has a unit but the plant declares no output unit; "
+                        "give a plain number or declare the plant's units")
+    try:
+        return _convert_signal(value, unit, ou)
+    except UnitError as e:
+        raise UnitError(f"{what} {text!r}: {e}") from e
 
 
 def unit_origin(metric: str) -> str:
     """Words naming where a metric's unit comes from, for messages (``""`` if fixed)."""
     return {"in": "the plant's input unit", "out": "the plant's output unit",
-            "in/out": "plant input unit per output unit"}.get(PLANT_UNIT_METRICS.get(metric, ""), "")
+            "in/out": "plant input unit per output unit",
+            "out/s": "the plant's output unit per second"}.get(PLANT_UNIT_METRICS.get(metric, ""), "")
 
 
 def _angle_power(unit_text: str) -> int:

@@ -18,7 +18,7 @@ from .hashing import sha256_of
 __all__ = ["METHODS", "STATUSES", "LOOP_KINDS", "NAME_RE", "KEY_RE", "check_name", "finite",
            "model_canonical", "param_specs", "plant_fields", "loop_fields",
            "requirement_fields", "requirement_hash", "revision_hash", "PLANT_HASH_FIELDS",
-           "plant_content_hash"]
+           "plant_content_hash", "ANTI_WINDUP", "design_hash_part", "design_fields"]
 
 METHODS = ("analysis", "test", "inspection", "demonstration")
 STATUSES = ("draft", "approved", "retired")
@@ -174,7 +174,7 @@ def plant_fields(name, model, params, fidelity, samples, seed, sample_time, inpu
 
 
 def loop_fields(name, kind, sensor, prefilter, input_delay, output_delay, sample_time,
-                computation_delay, actuator_limit) -> dict:
+                computation_delay, actuator_limit, rate_limit=None) -> dict:
     """The stored fields of a loop, checked."""
     what = f"loop {name!r}"
     if kind not in LOOP_KINDS:
@@ -191,6 +191,8 @@ def loop_fields(name, kind, sensor, prefilter, input_delay, output_delay, sample
         computation_delay=int(computation_delay or 0),
         actuator_limit=finite(f"{what}: actuator_limit", actuator_limit, allow_none=True,
                               minimum=0, strict=True),
+        rate_limit=finite(f"{what}: rate_limit", rate_limit, allow_none=True, minimum=0,
+                          strict=True),
     )
     if fields["computation_delay"] < 0:
         raise ModelError(f"{what}: computation_delay must be >= 0 samples")
@@ -238,6 +240,15 @@ def requirement_fields(key: str, *, title, statement, rationale, method, status,
         except LedgerError as e:
             raise with_context(e, what) from e
         comparator, limit_value, limit_text = lim.comparator, lim.value, lim.text
+        if isinstance(settings.get("move"), str):
+            # a move amplitude with a unit must fit each loop's plant output unit
+            from .units import quantity_in
+
+            for loop_name, _, ou in plant_units(sorted(set(loops or ()))):
+                try:
+                    quantity_in(settings["move"], ou)
+                except LedgerError as e:
+                    raise with_context(e, f"{what} on loop {loop_name!r}") from e
         # a metric without loops is allowed (coverage reports it)
     elif limit:
         raise IntegrityViolation(f"{what}: a limit needs a metric")
@@ -264,10 +275,13 @@ def requirement_hash(fields: Mapping) -> str:
 
 def revision_hash(*, loop: str, label: str, controller_canonical: str, parent_hash: str | None,
                   rationale: str, author: str, created_at_iso: str, discretization: str = "",
-                  number_format: str = "", verified_text: str = "") -> str:
+                  number_format: str = "", verified_text: str = "",
+                  prefilter_canonical: str = "", anti_windup: str = "none",
+                  anti_windup_gain: float | None = None) -> str:
     """Content hash of a revision (``created_at_iso``: ``datetime.isoformat`` in UTC).  The
-    digital fields (docs/digital.md) enter only when set, so revisions without them keep the
-    hash they had before those fields existed."""
+    digital fields (docs/digital.md) and the revision's prefilter and anti-windup
+    (:func:`design_hash_part`) enter only when set, so revisions without them keep the hash
+    they had before those fields existed."""
     payload = {
         "loop": loop, "label": label, "controller": controller_canonical,
         "parent": parent_hash, "rationale": rationale, "author": author,
@@ -277,4 +291,50 @@ def revision_hash(*, loop: str, label: str, controller_canonical: str, parent_ha
                        ("verified", verified_text)):
         if value:
             payload[key] = value
+    payload.update(design_hash_part(prefilter_canonical, anti_windup, anti_windup_gain))
     return sha256_of(payload)
+
+
+#: Anti-windup schemes a revision may carry (docs/metrics.md, large moves).
+ANTI_WINDUP = ("none", "clamping", "back-calculation")
+
+
+def design_hash_part(prefilter_canonical: str = "", anti_windup: str = "none",
+                     anti_windup_gain: float | None = None) -> dict:
+    """The part of a revision's hashed content its prefilter and anti-windup add (empty for
+    the defaults)."""
+    out: dict = {}
+    if prefilter_canonical:
+        out["prefilter"] = prefilter_canonical
+    if anti_windup and anti_windup != "none":
+        out["anti_windup"] = anti_windup
+        if anti_windup_gain is not None:
+            out["anti_windup_gain"] = float(anti_windup_gain)
+    return out
+
+
+def design_fields(prefilter: str | None, anti_windup: str | None,
+                  anti_windup_gain, *, what: str, sample_time: float | None) -> dict:
+    """The stored fields of a revision's prefilter and anti-windup, checked: the prefilter is
+    model text (empty: the loop's own prefilter applies); ``back-calculation`` needs a gain
+    > 0 (1/s), the other schemes take none."""
+    prefilter = (prefilter or "").strip()
+    canonical = ""
+    if prefilter:
+        canonical = model_canonical(prefilter, what=f"{what}: prefilter",
+                                    sample_time=sample_time)
+    aw = (anti_windup or "none").strip()
+    if aw not in ANTI_WINDUP:
+        raise IntegrityViolation(f"{what}: anti-windup {aw!r} is not one of "
+                                 f"{', '.join(ANTI_WINDUP)}")
+    gain = None
+    if aw == "back-calculation":
+        if anti_windup_gain is None:
+            raise ModelError(f"{what}: back-calculation anti-windup needs a gain (1/s), "
+                             "e.g. anti_windup_gain = 50")
+        gain = finite(f"{what}: anti_windup_gain", anti_windup_gain, minimum=0, strict=True)
+    elif anti_windup_gain is not None:
+        raise ModelError(f"{what}: anti_windup_gain is only for back-calculation "
+                         f"(anti-windup is {aw!r})")
+    return {"prefilter_text": prefilter, "prefilter_canonical": canonical,
+            "anti_windup": aw, "anti_windup_gain": gain}

@@ -31,7 +31,8 @@ BACKENDS = ["sqlite", "postgresql"]
 NUMERIC_MODULES = {"test_blocks", "test_family", "test_family_scale", "test_freqresp", "test_loop",
                    "test_measure", "test_parser", "test_stability", "test_timeresp", "test_units",
                    "test_plant_units", "test_display", "test_plot_axes", "test_yieldbound",
-                   "test_digital", "test_intersample"}
+                   "test_digital", "test_intersample",
+                   "test_moves", "test_disturbance_offset", "test_feedforward"}
 NUMERIC_MODULES |= {"test_measured"}
 NUMERIC_MODULES |= {"test_rms"}
 

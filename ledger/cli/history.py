@@ -99,7 +99,19 @@ def _diff_json(d) -> dict:
     return {
         "loop": d.loop, "new": d.new.label, "old": d.old.label if d.old else None,
         "threshold": d.threshold, "counts": d.counts(), "changes": list(d.changes),
+        "design": [{"part": p, "old": a, "new": b} for p, a, b in d.design_changes],
     }
+
+
+def _design_lines(d) -> None:
+    """What the design changed, the old and the new text on lines of their own (shortened to
+    the terminal width)."""
+    from .output import short, width
+
+    n = max(20, (width() or 10_000) - 16)
+    for part, a, b in d.design_changes:
+        typer.echo(f"  {part} was  {short(a, n)}")
+        typer.echo(f"  {' ' * len(part)} now  {short(b, n)}")
 
 
 def _counts_line(d) -> str:
@@ -223,6 +235,7 @@ def diff_cmd(
         against = f"{d.old.label}" + (" (parent)" if d.old and d.old.label == d.new.parent else "") \
             if d.old else "nothing (root revision)"
         say(f"loop {loop}: {d.new.label} against {against}, threshold {d.threshold:.0%} of headroom")
+        _design_lines(d)
         shown = d.changes if show_all else tuple(c for c in d.changes if c.kind != "unchanged")
         if shown:
             _diff_table(diff_rows(shown))

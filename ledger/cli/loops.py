@@ -32,6 +32,7 @@ def loop_add(
     sample_time: Optional[float] = typer.Option(None, "--sample-time", help="Digital controller sample time, s."),
     computation_delay: int = typer.Option(0, "--computation-delay", help="Whole samples of computation delay."),
     actuator_limit: Optional[float] = typer.Option(None, "--actuator-limit", help="Largest |u|, in the plant input unit."),
+    rate_limit: Optional[float] = typer.Option(None, "--rate-limit", help="Largest |du/dt| of the actuator, plant input unit per second (large moves)."),
     description: str = typer.Option("", "--description", help="Free text."),
     starter: bool = typer.Option(False, "--starter", help="Also record the starter requirement set for this kind of loop (common-practice limits, as drafts)."),
 ):
@@ -40,7 +41,8 @@ def loop_add(
         lp = lg.add_loop(name, plant, kind=kind, sensor=sensor, prefilter=prefilter,
                          input_delay=input_delay, output_delay=output_delay,
                          sample_time=sample_time, computation_delay=computation_delay,
-                         actuator_limit=actuator_limit, description=description)
+                         actuator_limit=actuator_limit, description=description,
+                         rate_limit=rate_limit)
         typer.echo(f"loop {lp.name} on plant {lp.plant}")
         if starter:
             for r in lg.add_starter_requirements(lp.name):
@@ -106,6 +108,8 @@ def loop_show(name: str, as_json: bool = JSON_OPTION):
                                      f"{lp.computation_delay} sample(s)" if lp.sample_time
                                      else "continuous"))
     typer.echo(f"  actuator limit {lp.actuator_limit if lp.actuator_limit is not None else 'none'}")
+    if lp.rate_limit is not None:
+        typer.echo(f"  rate limit     {lp.rate_limit} per s")
     typer.echo(f"  revisions      {lp.revisions} (tip {lp.tip or '-'})")
     for sp in spectra:
         what = (f"table of {len(sp['table'])} rows ({sp['label'] or 'file'})"

@@ -34,7 +34,8 @@ def metrics_cmd(as_json: bool = JSON_OPTION):
                     "unit_from_plant": PLANT_UNIT_METRICS.get(d.name),
                     "settings": dict(d.settings), "doc": d.doc} for d in defs])
         return
-    words = {"in": "plant input", "out": "plant output", "in/out": "input/output"}
+    words = {"in": "plant input", "out": "plant output", "in/out": "input/output",
+             "out/s": "plant output per second"}
 
     def unit(d):
         own = words.get(PLANT_UNIT_METRICS.get(d.name, ""))

@@ -62,6 +62,9 @@ def rev_add(loop: str = typer.Argument(..., help="Loop name."),
             no_verify: bool = typer.Option(False, "--no-verify", help="Record only; verify later with 'loopledger verify'."),
             discretize: Optional[str] = typer.Option(None, "--discretize", help="Digital loops: how a controller in s becomes the one that runs: zoh, tustin, tustin@FREQ (rad/s, or e.g. 30Hz) or matched."),
             number_format: Optional[str] = typer.Option(None, "--number-format", help="Digital loops: number format of the stored coefficients, fixed:W/F or single; verification uses the quantised coefficients."),
+            prefilter: str = typer.Option("", "--prefilter", help="The revision's own reference prefilter / feedforward shaping F (model text; takes precedence over the loop's)."),
+            anti_windup: str = typer.Option("none", "--anti-windup", help="none, clamping or back-calculation (large moves)."),
+            anti_windup_gain: Optional[float] = typer.Option(None, "--anti-windup-gain", help="Back-calculation gain, 1/s."),
             exit_on: Optional[str] = typer.Option(None, "--exit-on", help="Exit with status 3 (the revision is still recorded) when a requirement broke against the parent ('broke'), an approved one broke ('approved-broke'), or anything broke or eroded ('any')."),
 ):
     """Record a controller revision and verify every applicable requirement on it at once."""
@@ -74,7 +77,8 @@ def rev_add(loop: str = typer.Argument(..., help="Loop name."),
         r = lg.add_revision(loop, controller, rationale=why,
                             parent=None if root else (parent or "tip"), label=label,
                             verify=not no_verify, discretization=discretize,
-                            number_format=number_format)
+                            number_format=number_format, prefilter=prefilter,
+                            anti_windup=anti_windup, anti_windup_gain=anti_windup_gain)
         typer.echo(f"revision {r.loop}/{r.label} recorded (parent {r.parent or 'none'})")
         if r.verified:
             typer.echo(f"  verified as {short(r.verified, 100)}")
@@ -138,6 +142,11 @@ def rev_show(loop: str, label: Optional[str] = typer.Argument(None, help="Revisi
         review = continuous_review(r.verified or r.controller, ts, r.discretization)
         if review:
             typer.echo(f"  in s        {review}  (inverse of the method, for review)")
+    if r.prefilter:
+        typer.echo(f"  prefilter   {r.prefilter}  (the revision's own, in place of the loop's)")
+    if r.anti_windup != "none":
+        gain = f", gain {r.anti_windup_gain:g} 1/s" if r.anti_windup_gain is not None else ""
+        typer.echo(f"  anti-windup {r.anti_windup}{gain}")
     typer.echo(f"  hash        {r.content_hash[:16]}")
     typer.echo("  rationale")
     for line in r.rationale.splitlines():

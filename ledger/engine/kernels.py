@@ -214,10 +214,25 @@ def _decay_delayed(ctx) -> np.ndarray:
 
 def _disturbance(ctx, s, part: int):
     tr = _timeresp()
-    key = ("recovery", s["amplitude"], s.get("band", 0.02))
+    to = s.get("recovery_to", "final")
+    key = ("recovery", s["amplitude"], s.get("band", 0.02), to)
     res = ctx.cached(key, lambda: tr.recovery(ctx.batch("d->y"), amplitude=s["amplitude"],
-                                              band=s.get("band", 0.02)))
+                                              band=s.get("band", 0.02), to=to))
     return np.asarray(res[part], dtype=float)
+
+
+def _disturbance_offset(ctx, s) -> np.ndarray:
+    """``|y(inf)|`` after a step input disturbance, by the final-value theorem from the
+    closed-loop matrices (``timeresp.final_value``; 0 up to rounding with an integrator in the
+    controller).  An integrating d->y path (singular equilibrium) has no offset to state."""
+    tr = _timeresp()
+    return np.abs(np.asarray(tr.final_value(ctx.batch("d->y"), s["amplitude"]), dtype=float))
+
+
+def _moves(ctx, s):
+    from . import movemetrics
+    key = ("move", s["move"], s["settling_band"], s["settling_basis"])
+    return ctx.cached(key, lambda: movemetrics.move_metrics_group(ctx.asm, ctx.g, ctx.m, s))
 
 
 #: row-wise forms of the pole metrics, for groups whose variants have equally many poles
@@ -260,6 +275,11 @@ _COMPUTE = {
     "intersample_ripple": lambda c, s: _ripple(c, s),
     "rms_error": lambda c, s: _rms().kernel(c, s, "y"),
     "rms_effort": lambda c, s: _rms().kernel(c, s, "u"),
+    "disturbance_offset": _disturbance_offset,
+    "move_settling_time": lambda c, s: _moves(c, s).settling_time,
+    "move_overshoot": lambda c, s: _moves(c, s).overshoot,
+    "move_time_saturated": lambda c, s: _moves(c, s).time_saturated,
+    "move_peak_rate": lambda c, s: _moves(c, s).peak_rate,
 }
 
 

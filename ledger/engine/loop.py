@@ -104,6 +104,15 @@ class LoopSpec:
     spectra : tuple of Spectrum
         Noise and disturbance spectra, at most one per source
         (:class:`~ledger.engine.spectra.Spectrum`), for the rms metrics; ``()`` is none.
+    rate_limit : float or None
+        Largest |du/dt| of the actuator, plant-input units per second (large-move metrics
+        only; ``None``: none).
+    anti_windup : str
+        ``"none"``, ``"clamping"`` (conditional integration) or ``"back-calculation"``: how
+        the controller's integrator is kept from winding up while the actuator is at its
+        limit (large-move metrics only; :mod:`ledger.engine.moves`).
+    anti_windup_gain : float or None
+        Back-calculation gain, 1/s (``back-calculation`` only).
     """
 
     sensor: Any = None
@@ -117,6 +126,9 @@ class LoopSpec:
     number_format: str | None = None
     reference_controller: Any = None
     spectra: tuple = ()
+    rate_limit: float | None = None
+    anti_windup: str = "none"
+    anti_windup_gain: float | None = None
 
     def __post_init__(self):
         _check_time(self.input_delay, "input_delay")
@@ -147,6 +159,20 @@ class LoopSpec:
         object.__setattr__(self, "spectra", tuple(self.spectra or ()))
         _check_spectra(self.spectra)
 
+        if self.rate_limit is not None:
+            a = float(self.rate_limit)
+            if not (math.isfinite(a) and a > 0):
+                raise ModelError(f"rate_limit {self.rate_limit!r} is not positive and finite; "
+                                 "give a limit > 0 (input units per second) or None")
+        if self.anti_windup not in ("none", "clamping", "back-calculation"):
+            raise ModelError(f"anti_windup {self.anti_windup!r} is unknown; use 'none', "
+                             "'clamping' or 'back-calculation'")
+        if self.anti_windup == "back-calculation":
+            g = self.anti_windup_gain
+            if g is None or not (math.isfinite(float(g)) and float(g) > 0):
+                raise ModelError("back-calculation anti-windup needs anti_windup_gain > 0 (1/s)")
+        elif self.anti_windup_gain is not None:
+            raise ModelError("anti_windup_gain is only for back-calculation anti-windup")
 
 def _check_spectra(spectra) -> None:
     from .spectra import Spectrum

@@ -44,14 +44,17 @@ LOOP_SETTINGS = MappingProxyType({
     "sensor": "sensor", "prefilter": "prefilter", "actuator_limit": "actuator_limit",
     "controller_discretization": "controller_discretization",
     "discretization": "controller_discretization", "number_format": "number_format",
-    "reference_controller": "reference_controller", "spectra": "spectra"})
+    "reference_controller": "reference_controller", "spectra": "spectra",
+    "rate_limit": "rate_limit", "anti_windup": "anti_windup",
+    "anti_windup_gain": "anti_windup_gain"})
 
 #: ``measure`` keyword -> metric setting.
 METRIC_SETTINGS = MappingProxyType({
     "amplitude": "amplitude", "step_amplitude": "amplitude", "settling_band": "settling_band",
     "settling_basis": "settling_basis", "rise_limits": "rise_limits",
     "frequency": "frequency", "band": "band", "time_basis": "time_basis", "source": "source",
-    "error": "error", "sigmas": "sigmas"})
+    "error": "error", "sigmas": "sigmas", "recovery_to": "recovery_to",
+    "move": "move"})
 
 
 # --------------------------------------------------------------------------- drivers

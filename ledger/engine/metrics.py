@@ -14,7 +14,7 @@ from types import MappingProxyType
 from ..errors import SpecError, UnknownMetricError
 
 __all__ = ["MetricDef", "METRICS", "STANDARD_SUITE", "get_metric", "metric_names",
-           "resolve_settings", "SETTING_DOCS"]
+           "resolve_settings", "SETTING_DOCS", "OPTIONAL_SETTINGS"]
 
 _STEP = (("amplitude", 1.0), ("settling_band", 0.02), ("settling_basis", "final"),
          ("rise_limits", (0.1, 0.9)))
@@ -22,6 +22,7 @@ _STEP = (("amplitude", 1.0), ("settling_band", 0.02), ("settling_basis", "final"
 #: (docs/digital.md); the default is left out of resolved settings so that values recorded
 #: before the setting existed keep their keys
 _TIMED = _STEP + (("time_basis", "samples"),)
+_MOVE = (("move", None), ("settling_band", 0.02), ("settling_basis", "final"))
 
 #: Every metric setting with its meaning and unit.
 SETTING_DOCS = MappingProxyType({
@@ -41,7 +42,16 @@ SETTING_DOCS = MappingProxyType({
              "the controller sees, sensor noise included)",
     "sigmas": "multiple of the rms value reported (1: rms, 3: the 3-sigma value), "
               "dimensionless",
+    "recovery_to": "what disturbance_recovery settles to: 'final' (the final value, default) or "
+                   "'zero' (the output back at zero; a permanent offset larger than the band "
+                   "never recovers)",
+    "move": "amplitude of the large move (reference step), plant output units; a number or "
+            "text with a unit, e.g. '10 mm'",
 })
+
+#: Settings whose default is left out of the complete settings when not given, so that adding
+#: them kept every earlier requirement's metric key (and cached value) as it was.
+OPTIONAL_SETTINGS = MappingProxyType({("disturbance_recovery", "recovery_to"): "final"})
 
 
 #: Settings of the rms metrics that take one of a few words.
@@ -65,7 +75,8 @@ class MetricDef:
         The metric only exists for a stable closed loop.
     path : str
         Signal path or loop function it reads: ``r->y``, ``r->e``, ``r->u``, ``d->y``,
-        ``L``, ``S``, ``T``, ``CS``, ``poles``.
+        ``L``, ``S``, ``T``, ``CS``, ``poles``, ``move`` (r->y of the loop with its actuator
+        limits, simulated).
     settings : tuple of (str, default)
         Settings this metric accepts, with defaults (``None``: must be given).
     doc : str
@@ -133,7 +144,7 @@ _DEFS = [
     _m("disturbance_peak", "", "lower", True, "d->y", (("amplitude", 1.0),),
        "sup |y(t)| for a step disturbance at the plant input"),
     _m("disturbance_recovery", "s", "lower", True, "d->y",
-       (("amplitude", 1.0), ("band", 0.02)),
+       (("amplitude", 1.0), ("band", 0.02), ("recovery_to", "final")),
        "last time |y - y_final| exceeds band x peak |y| after a step input disturbance"),
     _m("gain_margin", "dB", "higher", False, "L", (),
        "smallest positive -20 log10|L| at a phase crossover (inf if none)"),
@@ -193,6 +204,18 @@ _DEFS = [
     _m("rms_effort", "", "lower", True, "spectra->u", (("source", "all"), ("sigmas", 1.0)),
        "sigmas x rms of the control effort u driven by the loop's noise and disturbance "
        "spectra, sources independent (plant-input units)"),
+    # issue 16: disturbance offset and the large-move response
+    _m("disturbance_offset", "", "lower", True, "d->y", (("amplitude", 1.0),),
+       "|y(inf)| for a step disturbance at the plant input: amplitude |G(0) / (1 + L(0))| by "
+       "the final-value theorem (0 with an integrator in the controller)"),
+    _m("move_settling_time", "s", "lower", True, "move", _MOVE,
+       "settling_time of the large-move response (actuator limit, rate limit, anti-windup)"),
+    _m("move_overshoot", "%", "lower", True, "move", _MOVE,
+       "overshoot of the large-move response, 100 (y_max - y_final) / |y_final|"),
+    _m("move_time_saturated", "s", "lower", True, "move", _MOVE,
+       "total time the actuator is at its limit (or slewing at its rate limit) during the move"),
+    _m("move_peak_rate", "", "lower", True, "move", _MOVE,
+       "sup |dy/dt| of the large-move response, plant output units per second"),
 ]
 
 #: name -> MetricDef, in catalogue order.
@@ -248,6 +271,7 @@ def resolve_settings(name: str, settings: dict | None = None) -> dict:
     """
     mdef = get_metric(name)
     out = mdef.defaults
+    given = set(settings or {})
     for key, value in (settings or {}).items():
         if key not in mdef.accepts:
             valid = ", ".join(dict(mdef.settings)) or "none"
@@ -299,6 +323,40 @@ def resolve_settings(name: str, settings: dict | None = None) -> dict:
                 raise SpecError(f"setting 'sigmas' of {name!r} is {value!r}; give a positive "
                                 "multiple, e.g. 3 for the 3-sigma value")
             out[key] = x
+        elif key == "recovery_to":
+            if value not in ("final", "zero"):
+                raise SpecError(f"recovery_to {value!r} is unknown; use 'final' or 'zero'")
+        elif key == "move":
+            out[key] = _move_value(name, value)
     if out.get("time_basis") == "samples":
         del out["time_basis"]   # the default: absent, as before the setting existed
+    for key in [k for k in out if (name, k) in OPTIONAL_SETTINGS]:
+        if key not in given and out[key] == OPTIONAL_SETTINGS[(name, key)]:
+            del out[key]
     return out
+
+
+def _move_value(name: str, value):
+    """A move amplitude: a non-zero finite number (plant output units), or text ``"10 mm"``
+    (kept as text; the verification reads it in the plant's output unit)."""
+    if isinstance(value, str):
+        parts = value.strip().split(None, 1)
+        try:
+            x = float(parts[0]) if parts else float("nan")
+        except ValueError as e:
+            raise SpecError(f"setting 'move' of {name!r} is {value!r}; give a number with an "
+                            "optional unit, e.g. '10 mm'") from e
+        if not math.isfinite(x) or x == 0:
+            raise SpecError(f"setting 'move' of {name!r} is {value!r}; give a finite non-zero "
+                            "amplitude")
+        return value.strip() if len(parts) > 1 else x
+    if isinstance(value, bool):
+        raise SpecError(f"setting 'move' of {name!r} must be a number, got {value!r}")
+    try:
+        x = float(value)
+    except (TypeError, ValueError) as e:
+        raise SpecError(f"setting 'move' of {name!r} must be a number, got {value!r}") from e
+    if not math.isfinite(x) or x == 0:
+        raise SpecError(f"setting 'move' of {name!r} is {value!r}; give a finite non-zero "
+                        "amplitude")
+    return x

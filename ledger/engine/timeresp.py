@@ -444,7 +444,8 @@ def peak_abs(sys: SSBatch, *, amplitude: float = 1.0, tail_rtol: float = 1e-6,
 
 
 def recovery(sys: SSBatch, *, amplitude: float = 1.0, band: float = 0.02, basis: str = "peak",
-             tail_rtol: float = 1e-6, max_samples: int = 200_000, **grid_kw):
+             tail_rtol: float = 1e-6, max_samples: int = 200_000, to: str = "final",
+             **grid_kw):
     """Peak and recovery time of a response that may end at zero (e.g. input-disturbance step).
 
     Parameters
@@ -457,6 +458,9 @@ def recovery(sys: SSBatch, *, amplitude: float = 1.0, band: float = 0.02, basis:
     basis : {"peak", "absolute"}, default "peak"
     tail_rtol, max_samples, **grid_kw
         See :func:`step_response`.
+    to : {"final", "zero"}, default "final"
+        What the response recovers to: its final value ``yf``, or zero.  With ``"zero"`` a
+        final value outside the band never recovers (``inf``).
 
     Returns
     -------
@@ -465,17 +469,43 @@ def recovery(sys: SSBatch, *, amplitude: float = 1.0, band: float = 0.02, basis:
     peak_time : ndarray (V,)
         s (``inf`` when only approached as t -> inf).
     recovery_time : ndarray (V,)
-        Last time ``|y - yf|`` exceeds the band, s (0 if never).
+        Last time ``|y - c|`` exceeds the band, s (0 if never), with ``c = yf`` or ``0``.
     """
     if basis not in ("peak", "absolute"):
         raise ComputeError(f"basis {basis!r} must be 'peak' or 'absolute'")
+    if to not in ("final", "zero"):
+        raise ComputeError(f"recovery to {to!r} must be 'final' or 'zero'")
     if not band > 0:
         raise ComputeError(f"band {band!r} must be positive")
     p = simulate(sys, amplitude, tail_rtol=tail_rtol, max_samples=max_samples, **grid_kw)
     _refine(p)
     pk, tpk = _sup_abs(p)
     b = band * pk if basis == "peak" else np.full_like(pk, float(band))
-    _refine(p, (p.final + b, p.final - b), near_extremes=False)
+    c = p.final if to == "final" else np.zeros_like(p.final)
+    _refine(p, (c + b, c - b), near_extremes=False)
     b = band * pk if basis == "peak" else np.full_like(pk, float(band))
-    rt = _shift_settle(_last_exceed(p, p.final, b), p.final, b, p.io_delay)
+    never = np.abs(p.final - c) > b  # ends outside the band: never recovers
+    if np.all(never):
+        return pk, tpk, np.full_like(pk, np.inf)
+    ok = ~never
+    rt = np.full_like(pk, np.inf)
+    if np.all(ok):
+        rt = _shift_settle(_last_exceed(p, c, b), c, b, p.io_delay)
+    else:
+        rt[ok] = _shift_settle(_last_exceed(_rows(p, ok), c[ok], b[ok]), c[ok], b[ok],
+                               p.io_delay)
     return pk, tpk, rt
+
+
+def _rows(p: Pieces, m: np.ndarray) -> Pieces:
+    """The pieces of the variants ``m`` (a boolean mask)."""
+    from dataclasses import fields, replace
+
+    kw = {}
+    for f in fields(p):
+        v = getattr(p, f.name)
+        if f.name in ("t", "io_delay", "discrete"):
+            continue
+        if isinstance(v, np.ndarray) and v.ndim >= 1 and v.shape[0] == m.size:
+            kw[f.name] = v[m]
+    return replace(p, **kw)

@@ -6,6 +6,8 @@ One figure per entry, chosen by the metric's signal path:
   settling band and settling-time limit, rise-time levels and markers, peak-time limit);
 * ``r->e`` step error, ``r->u`` effort, ``d->y`` disturbance: that path's step response with
   the limit band;
+* large-move metrics: the simulated move beside the linear step of the same amplitude, the
+  actuator's saturation intervals shaded (:mod:`ledger.exports.moveplots`);
 * loop-gain metrics (margins, crossovers, error constants): Bode plot of L with the gain and
   phase crossovers and margins marked and the limit drawn;
 * ``S``/``T``/``CS`` and disk-margin metrics: the magnitudes with their bounds;
@@ -41,16 +43,18 @@ _SENS = {"peak_sensitivity", "peak_complementary_sensitivity", "peak_control_sen
 
 
 def figure_kind(metric: str) -> str:
-    """``step``, ``effort``, ``error``, ``disturbance``, ``bode``, ``sensitivity``, ``disk``
-    or ``poles``."""
+    """``step``, ``effort``, ``error``, ``disturbance``, ``move``, ``bode``, ``sensitivity``,
+    ``disk`` or ``poles``."""
     if metric in _STEP_PATH:
         return "step"
     if metric == "peak_effort":
         return "effort"
     if metric == "steady_state_error":
         return "error"
-    if metric in ("disturbance_peak", "disturbance_recovery"):
+    if metric in ("disturbance_peak", "disturbance_recovery", "disturbance_offset"):
         return "disturbance"
+    if metric.startswith("move_"):
+        return "move"
     if metric in _SENS:
         return "sensitivity"
     if metric in _DISK:
@@ -482,6 +486,10 @@ def entry_plot(curves, requirement, result, *, width_in: float = 10.0,
     elif kind == "disturbance":
         _draw_band_path(fig, curves, requirement, result, worst, "d->y",
                         f"output y{out_unit}", "Input-disturbance response d -> y")
+    elif kind == "move":
+        from .moveplots import draw_move
+
+        draw_move(fig, curves, requirement, result, worst, (PALETTE, _labels, _num, _thin))
     elif kind == "sensitivity":
         _draw_sens(fig, curves, requirement, result, worst)
     elif kind == "disk":

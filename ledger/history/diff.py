@@ -57,6 +57,7 @@ __all__ = [
     "classify_pair",
     "classify",
     "diff",
+    "design_changes",
 ]
 
 #: every class, in the order they are listed (regressions first)
@@ -175,6 +176,35 @@ class Diff:
     def regressions(self) -> tuple[Change, ...]:
         """``broke`` and ``eroded`` changes."""
         return self.of(*REGRESSIONS)
+
+    @property
+    def design_changes(self) -> tuple[tuple[str, str, str], ...]:
+        """What the design itself changed: ``(part, old, new)`` for the controller, the
+        revision's own prefilter and its anti-windup, where they differ (:func:`design_changes`)."""
+        return design_changes(self.old, self.new)
+
+
+def _anti_windup_text(r: RevisionInfo) -> str:
+    if r.anti_windup == "none":
+        return "none"
+    gain = f" (gain {r.anti_windup_gain:g} 1/s)" if r.anti_windup_gain is not None else ""
+    return f"{r.anti_windup}{gain}"
+
+
+def design_changes(old: RevisionInfo | None, new: RevisionInfo) -> tuple:
+    """``(part, old text, new text)`` of each design part that differs between two revisions:
+    ``controller``, ``prefilter`` (the revision's own; ``"(loop's)"`` when it has none) and
+    ``anti-windup``; empty when ``old`` is ``None``."""
+    if old is None:
+        return ()
+    out = []
+    if old.controller != new.controller:
+        out.append(("controller", old.controller, new.controller))
+    if (old.prefilter or "") != (new.prefilter or ""):
+        out.append(("prefilter", old.prefilter or "(loop's)", new.prefilter or "(loop's)"))
+    if _anti_windup_text(old) != _anti_windup_text(new):
+        out.append(("anti-windup", _anti_windup_text(old), _anti_windup_text(new)))
+    return tuple(out)
 
 
 def _sub(a: float | None, b: float | None) -> float | None:

@@ -24,7 +24,7 @@ from .chain import (
     result_row_hash,
 )
 from ..hashing import sha256_of
-from ..validate import model_canonical, plant_content_hash, requirement_hash
+from ..validate import model_canonical, plant_content_hash, requirement_hash, revision_hash
 from .baselines import frozen_matrix_hash
 from .queries import chunks
 from .models import (
@@ -443,19 +443,16 @@ class Checker:
         if parse:
             loop_dt = dict(s.execute(select(Loop.id, Loop.sample_time)).all())
         for rv in revs:
-            payload = {
-                "loop": lab["loop"].get(rv.loop_id, "?"), "label": rv.label,
-                "controller": rv.controller_canonical,
-                "parent": parents.get(rv.parent_id) if rv.parent_id else None,
-                "rationale": rv.rationale, "author": rv.author,
-                "created_at": _aware_iso(rv.created_at)}
-            # the digital form enters only when set (validate.revision_hash)
-            for key, value in (("discretization", rv.discretization),
-                               ("number_format", rv.number_format),
-                               ("verified", rv.verified_text)):
-                if value:
-                    payload[key] = value
-            h = sha256_of(payload)
+            h = revision_hash(
+                loop=lab["loop"].get(rv.loop_id, "?"), label=rv.label,
+                controller_canonical=rv.controller_canonical,
+                parent_hash=parents.get(rv.parent_id) if rv.parent_id else None,
+                rationale=rv.rationale, author=rv.author,
+                created_at_iso=_aware_iso(rv.created_at),
+                prefilter_canonical=rv.prefilter_canonical or "",
+                anti_windup=rv.anti_windup or "none", anti_windup_gain=rv.anti_windup_gain,
+                discretization=rv.discretization, number_format=rv.number_format,
+                verified_text=rv.verified_text)
             if self._altered("revision", rv.id):
                 continue
             if h != rv.content_hash:
@@ -466,6 +463,11 @@ class Checker:
                                                    rv.controller_canonical):
                 self.add("record altered", "revision", rv.id,
                          "canonical form does not match its controller text")
+            elif parse and rv.prefilter_text and self._canonical_differs(
+                    model_canonical, rv.prefilter_text, loop_dt.get(rv.loop_id),
+                    rv.prefilter_canonical):
+                self.add("record altered", "revision", rv.id,
+                         "canonical form does not match its prefilter text")
 
     @staticmethod
     def _canonical_differs(canonical_of, text_: str, sample_time, stored: str) -> bool:

@@ -111,6 +111,14 @@ HASHED_FIELDS: dict[str, tuple[str, ...]] = {
                       "author", "created_at"),
 }
 
+#: Columns added after the chain existed (migration 0008): they enter a record's content only
+#: when they differ from the default given here, so every link made before stays valid.
+OPTIONAL_HASHED_FIELDS: dict[str, dict[str, Any]] = {
+    "loop": {"rate_limit": None},
+    "revision": {"prefilter_text": "", "prefilter_canonical": "", "anti_windup": "none",
+                 "anti_windup_gain": None},
+}
+
 _TABLES = {
     "plant": Plant.__table__,
     "plant_version": PlantVersion.__table__,
@@ -160,6 +168,10 @@ def content_of(kind: str, row: Mapping, children: Mapping | None = None,
     floats = float_columns(kind) if floats is None else floats
     content: dict[str, Any] = {"kind": kind, "fields": {
         name: _norm(row[name], is_float=name in floats) for name in HASHED_FIELDS[kind]}}
+    for name, default in OPTIONAL_HASHED_FIELDS.get(kind, {}).items():
+        value = row[name] if name in row else default
+        if value is not None and value != default:
+            content["fields"][name] = _norm(value, is_float=isinstance(value, float))
     for k, v in (children or {}).items():
         content[k] = v
     return content

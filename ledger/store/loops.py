@@ -42,17 +42,18 @@ def info(s: Session, row: Loop) -> LoopInfo:
         output_delay=row.output_delay, sample_time=row.sample_time,
         computation_delay=row.computation_delay, actuator_limit=row.actuator_limit,
         created_at=utc(row.created_at), revisions=n, tip=tip.label if tip else None,
+        rate_limit=row.rate_limit,
     )
 
 
 def add(s: Session, name: str, plant: str, *, kind="position", sensor="", prefilter="",
         input_delay=0.0, output_delay=0.0, sample_time=None, computation_delay=0,
-        actuator_limit=None, description="") -> tuple[LoopInfo, bool]:
+        actuator_limit=None, description="", rate_limit=None) -> tuple[LoopInfo, bool]:
     """Add a loop; an identical one is left as it is; ``(info, created)``."""
     check_name("loop", name)
     p = plant_row(s, plant)
     fields = loop_fields(name, kind, sensor, prefilter, input_delay, output_delay,
-                         sample_time, computation_delay, actuator_limit)
+                         sample_time, computation_delay, actuator_limit, rate_limit)
     row = s.scalar(select(Loop).where(Loop.name == name))
     if row is not None:
         same = row.plant_id == p.id and all(getattr(row, k) == v for k, v in fields.items())
@@ -79,8 +80,8 @@ def get(s: Session, name: str) -> LoopInfo:
 
 
 def loop_form(row: Loop) -> dict:
-    """The loop's settings that enter a metric value's cache key (its spectra only when it
-    has some, so the keys of loops without spectra are what they were)."""
+    """The loop's settings that enter a metric value's cache key (its spectra and its rate
+    limit only when set, so the keys of loops without them are what they were)."""
     form = {
         "sensor": row.sensor_text, "prefilter": row.prefilter_text,
         "input_delay": row.input_delay, "output_delay": row.output_delay,
@@ -93,6 +94,8 @@ def loop_form(row: Loop) -> dict:
         from ..spectra_io import canonical_forms
 
         form["spectra"] = canonical_forms(spectra)
+    if row.rate_limit is not None:
+        form["rate_limit"] = row.rate_limit
     return form
 
 

@@ -167,6 +167,13 @@ def _check_sqlite_file(path: Path) -> str | None:
         return None
     if len(header) < 100 or not header.startswith(_SQLITE_MAGIC):
         raise SchemaError(f"{path}: not an SQLite database (no SQLite header); not a ledger file")
+    page = int.from_bytes(header[16:18], "big")
+    page = 65536 if page == 1 else page
+    if page and path.stat().st_size % page:
+        # an SQLite file is whole pages; a part page is a cut file (pages no query touches
+        # would otherwise go unnoticed)
+        raise SchemaError(f"{path}: not a ledger database or damaged (its size is not a whole "
+                          f"number of {page}-byte pages: the file was cut short)")
     wal_mode = header[18] == 2 or header[19] == 2
     wal_file = path.with_name(path.name + "-wal")
     _check_not_truncated(path, header, wal_file)

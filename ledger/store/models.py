@@ -19,6 +19,7 @@ from sqlalchemy import (
     Integer,
     MetaData,
     String,
+    text,
     Text,
     text,
     UniqueConstraint,
@@ -107,6 +108,8 @@ class Loop(Base):
     computation_delay: Mapped[int] = mapped_column(Integer, default=0)
     actuator_limit: Mapped[float | None] = mapped_column(Float, nullable=True)
     created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True))
+    #: largest |du/dt| of the actuator, plant input unit per second (migration 0008)
+    rate_limit: Mapped[float | None] = mapped_column(Float, nullable=True)
 
     plant: Mapped[Plant] = relationship()
 
@@ -140,6 +143,13 @@ class Revision(Base):
     number_format: Mapped[str] = mapped_column(String(40), default="",
                                                server_default=text("''"))
     verified_text: Mapped[str] = mapped_column(Text, default="", server_default=text("''"))
+    # the revision's own prefilter and anti-windup (migration 0008; defaults: none)
+    prefilter_text: Mapped[str] = mapped_column(Text, default="", server_default=text("''"))
+    prefilter_canonical: Mapped[str] = mapped_column(Text, default="",
+                                                     server_default=text("''"))
+    anti_windup: Mapped[str] = mapped_column(String(20), default="none",
+                                             server_default=text("'none'"))
+    anti_windup_gain: Mapped[float | None] = mapped_column(Float, nullable=True)
 
     loop: Mapped[Loop] = relationship()
 

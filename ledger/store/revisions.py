@@ -8,7 +8,7 @@ from sqlalchemy.orm import Session
 from ..digital import digital_form
 from ..errors import DuplicateError, IntegrityViolation, NotFoundError
 from ..records import RevisionInfo
-from ..validate import KEY_RE, check_name, model_canonical, revision_hash
+from ..validate import KEY_RE, check_name, design_fields, model_canonical, revision_hash
 from .chain import append_link
 from .loops import loop_row
 from .models import Loop, Revision
@@ -63,6 +63,8 @@ def make_info(row: Revision, loop: str, parent: str | None,
         content_hash=row.content_hash, created_at=utc(row.created_at), children=children,
         discretization=row.discretization or "", number_format=row.number_format or "",
         verified=row.verified_text or "",
+        prefilter=row.prefilter_text or "", anti_windup=row.anti_windup or "none",
+        anti_windup_gain=row.anti_windup_gain,
     )
 
 
@@ -76,10 +78,14 @@ def info(s: Session, row: Revision, loop: Loop | None = None) -> RevisionInfo:
 
 def add(s: Session, loop: str, controller: str, *, rationale: str, author: str,
         parent: str | None = "tip", label: str | None = None, discretization: str = "",
-        number_format: str = "") -> tuple[RevisionInfo, bool]:
+        number_format: str = "", prefilter: str = "", anti_windup: str = "none",
+        anti_windup_gain: float | None = None) -> tuple[RevisionInfo, bool]:
     """Record a revision (an identical one with the same label is left as it is);
     ``(info, created)``.  ``parent="tip"``: the loop's latest revision; ``None``: a root.
-    ``discretization``/``number_format``: the digital form (:mod:`ledger.digital`)."""
+    ``discretization``/``number_format``: the digital form (:mod:`ledger.digital`);
+    ``prefilter``: the revision's own prefilter (model text; it takes precedence over the
+    loop's); ``anti_windup``: one of :data:`~ledger.validate.ANTI_WINDUP`, with its gain (1/s)
+    for back-calculation."""
     lp = loop_row(s, loop)
     lock_row(s, Loop, lp.id)  # serialise label/seq allocation per loop (PostgreSQL)
     what = f"revision of loop {loop!r}"
@@ -89,6 +95,8 @@ def add(s: Session, loop: str, controller: str, *, rationale: str, author: str,
                                 sample_time=lp.sample_time)
     form = digital_form(controller, lp.sample_time, discretization=discretization,
                         number_format=number_format, what=f"{what}: controller")
+    design = design_fields(prefilter, anti_windup, anti_windup_gain, what=what,
+                           sample_time=lp.sample_time)
     if parent == "tip":
         prow = tip_row(s, lp)
     elif parent in (None, ""):
@@ -103,6 +111,9 @@ def add(s: Session, loop: str, controller: str, *, rationale: str, author: str,
             same = (existing.controller_canonical == canonical
                     and (existing.discretization or "") == form.discretization
                     and (existing.number_format or "") == form.number_format
+                    and existing.prefilter_canonical == design["prefilter_canonical"]
+                    and existing.anti_windup == design["anti_windup"]
+                    and existing.anti_windup_gain == design["anti_windup_gain"]
                     and existing.rationale == rationale.strip()
                     and existing.parent_id == (prow.id if prow else None))
             if same:
@@ -118,12 +129,15 @@ def add(s: Session, loop: str, controller: str, *, rationale: str, author: str,
         loop=lp.name, label=label, controller_canonical=canonical,
         parent_hash=prow.content_hash if prow else None, rationale=rationale.strip(),
         author=author, created_at_iso=created.isoformat(), discretization=form.discretization,
-        number_format=form.number_format, verified_text=form.verified_text)
+        number_format=form.number_format, verified_text=form.verified_text,
+        prefilter_canonical=design["prefilter_canonical"], anti_windup=design["anti_windup"],
+        anti_windup_gain=design["anti_windup_gain"])
     row = Revision(loop_id=lp.id, label=label, seq=seq, parent_id=prow.id if prow else None,
                    author=author, rationale=rationale.strip(), controller_text=controller,
                    controller_canonical=canonical, content_hash=content_hash,
                    created_at=created, discretization=form.discretization,
-                   number_format=form.number_format, verified_text=form.verified_text)
+                   number_format=form.number_format, verified_text=form.verified_text,
+                   **design)
     s.add(row)
     s.flush()
     append_link(s, "revision", row)

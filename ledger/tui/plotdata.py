@@ -11,7 +11,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["Bound", "PlotData", "load_plot_data", "worst_variant", "settle_time", "step_horizon",
+__all__ = ["Bound", "PlotData", "MoveView", "load_plot_data", "worst_variant", "settle_time", "step_horizon",
            "log_ticks"]
 
 
@@ -45,6 +45,22 @@ class PlotData:
     phase_margin_deg: float
     gain_crossover: float
     settle_band: float = 0.02
+    #: a large-move requirement's move on this variant (None without one): amplitude
+    #: (output units), times (s), the simulated move and the linear step of that amplitude,
+    #: and the intervals (s) the actuator is at a limit
+    move: "MoveView | None" = None
+
+
+@dataclass(frozen=True, eq=False)
+class MoveView:
+    """The large move shown beside the linear step in the plot view."""
+
+    key: str
+    amplitude: float
+    t: np.ndarray
+    y: np.ndarray
+    linear: np.ndarray
+    saturated: tuple
 
 
 def worst_variant(results) -> str:
@@ -116,7 +132,8 @@ def load_plot_data(lg, loop: str, label: str | None = None, *, variant: str | No
     bounds = []
     checks = [r for r in lg.requirements(loop=loop) if r.metric and r.status != "retired"]
     for c in checks:
-        kind = {"overshoot": "overshoot", "settling_time": "settling", "rise_time": "rise"}.get(c.metric)
+        kind = {"overshoot": "overshoot", "settling_time": "settling", "rise_time": "rise",
+                "move_settling_time": "settling"}.get(c.metric)
         if kind is None:
             continue
         val = c.limit_value
@@ -129,7 +146,28 @@ def load_plot_data(lg, loop: str, label: str | None = None, *, variant: str | No
     t, y = _thin(t_all[keep], y_all[keep])
     return PlotData(loop, rev.label, name, t, y, float(final), tuple(bounds), w[idx],
                     mag[idx], ph[idx], float(fr.gain_margin[name]), float(fr.phase_crossover[name]),
-                    float(fr.phase_margin[name]), float(fr.gain_crossover[name]))
+                    float(fr.phase_margin[name]), float(fr.gain_crossover[name]),
+                    move=_move_view(curves, name, checks))
+
+
+def _move_view(curves, name: str, checks):
+    """The move of the loop's first large-move requirement, or None (none, or it cannot be
+    simulated: the plot view then shows the linear step alone)."""
+    from ..errors import LedgerError
+    from ..units import quantity_in
+
+    req = next((c for c in checks if c.metric.startswith("move_")), None)
+    if req is None:
+        return None
+    try:
+        R = quantity_in((req.settings or {}).get("move", 1.0), curves.output_unit)
+        t, y, sat, _ = curves.move(R)[name]
+    except (LedgerError, KeyError):
+        return None
+    st = curves.step("r->y", 1.0)
+    lin = R * np.interp(t, st.t[name], st.y[name])
+    idx = np.unique(np.linspace(0, t.size - 1, min(t.size, 400)).round().astype(int))
+    return MoveView(req.key, float(R), t[idx], y[idx], lin[idx], tuple(sat))
 
 
 def log_ticks(lo: float, hi: float, max_ticks: int = 7) -> tuple[list[float], list[str]]:

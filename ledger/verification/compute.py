@@ -77,11 +77,17 @@ def loop_spec_for(plan: RevisionPlan):
         from ..spectra_io import engine_spectrum
 
         spectra = tuple(engine_spectrum(sp, ts) for sp in f["spectra"])
-    return LoopSpec(sensor=block(f["sensor"], "sensor"), prefilter=block(f["prefilter"], "prefilter"),
+    d = plan.design or {}
+    # precedence (docs/models.md): the revision's own prefilter, else the loop's
+    own = d.get("prefilter_text") or ""
+    prefilter = block(own, "revision prefilter") if own else block(f["prefilter"], "prefilter")
+    return LoopSpec(sensor=block(f["sensor"], "sensor"), prefilter=prefilter,
                     input_delay=f["input_delay"], output_delay=f["output_delay"],
                     sample_time=ts, computation_delay=f["computation_delay"],
                     actuator_limit=f["actuator_limit"], reference_controller=reference,
-                    spectra=spectra)
+                    spectra=spectra, rate_limit=f.get("rate_limit"),
+                    anti_windup=d.get("anti_windup") or "none",
+                    anti_windup_gain=d.get("anti_windup_gain"))
 
 
 def controller_for(plan: RevisionPlan):

@@ -19,9 +19,20 @@ from ..store import requirements as req_db
 from ..store import results as results_db
 from ..store import revisions as rev_db
 from ..store.models import Loop, PlantVersion, Revision
+from ..validate import design_hash_part
 
 __all__ = ["Check", "RevisionPlan", "engine_version", "applicable_checks", "plan_revision",
-           "plan_head", "plan_loops", "plan_controller"]
+           "plan_head", "plan_loops", "plan_controller", "design_of"]
+
+
+def design_of(row) -> dict:
+    """The prefilter and anti-windup of a revision row (or the stored fields of a revision not
+    yet recorded, :func:`~ledger.validate.design_fields`) as a plan carries them."""
+    get = row.get if isinstance(row, dict) else (lambda k: getattr(row, k))
+    return {"prefilter_text": get("prefilter_text") or "",
+            "prefilter_canonical": get("prefilter_canonical") or "",
+            "anti_windup": get("anti_windup") or "none",
+            "anti_windup_gain": get("anti_windup_gain")}
 
 
 def engine_version() -> str:
@@ -66,6 +77,8 @@ class RevisionPlan:
     design_text: str = ""
     discretization: str = ""
     number_format: str = ""
+    #: the revision's own prefilter and anti-windup (:func:`design_of`; empty: none)
+    design: dict = field(default_factory=dict)
 
     def metric_key(self, metric: str, settings: dict) -> str:
         """Content hash of everything a family's metric values depend on."""
@@ -77,6 +90,11 @@ class RevisionPlan:
         if self.discretization or self.number_format:  # absent before digital forms existed
             payload["digital"] = {"design": self.design_text, "method": self.discretization,
                                   "format": self.number_format}
+        part = design_hash_part(self.design.get("prefilter_canonical", ""),
+                                self.design.get("anti_windup", "none"),
+                                self.design.get("anti_windup_gain"))
+        if part:  # the revision's prefilter and anti-windup, only when set
+            payload["design"] = part
         return sha256_of(payload)
 
     def keys(self) -> list[str]:
@@ -108,9 +126,21 @@ def applicable_checks(s: Session, loop_id: int, keys: Iterable[str] | None = Non
                 unit, limit_value = lim.unit, lim.value
             except LedgerError as e:
                 problem = str(e)
+        settings = json.loads(v.settings_json)
+        if isinstance(settings.get("move"), str):
+            # a move amplitude with a unit, read in this plant's output unit (docs/metrics.md)
+            from ..units import quantity_in
+
+            try:
+                settings["move"] = quantity_in(settings["move"], ou)
+            except LedgerError as e:
+                problem = problem or str(e)
+                settings.pop("move")
+        if "move" not in settings and v.metric.startswith("move_"):
+            settings["move"] = 1.0  # judged as an error (problem) without computing
         out.append(Check(
             version_id=v.id, key=key, version=v.number, status=v.status, metric=v.metric,
-            settings=resolve_settings(v.metric, json.loads(v.settings_json)),
+            settings=resolve_settings(v.metric, settings),
             comparator=v.comparator, limit_value=limit_value, limit_text=v.limit_text,
             unit=unit, problem=problem,
         ))
@@ -119,15 +149,17 @@ def applicable_checks(s: Session, loop_id: int, keys: Iterable[str] | None = Non
 
 def plan_head(loop: Loop, pv: PlantVersion, revision: Revision | None,
               controller_text: str | None = None,
-              controller_canonical: str | None = None, form=None) -> RevisionPlan:
+              controller_canonical: str | None = None, form=None,
+              design: dict | None = None) -> RevisionPlan:
     """A plan without checks for ``revision`` (or a controller with its digital ``form``,
-    :class:`ledger.digital.DigitalForm`) against plant version ``pv``."""
+    :class:`ledger.digital.DigitalForm`, and the stored fields of its prefilter and anti-windup
+    ``design``) against plant version ``pv``."""
     if revision is not None:
-        design, canonical = revision.controller_text, revision.controller_canonical
+        entered, canonical = revision.controller_text, revision.controller_canonical
         method, fmt = revision.discretization or "", revision.number_format or ""
         verified = revision.verified_text or ""
     else:
-        design, canonical = controller_text, controller_canonical
+        entered, canonical = controller_text, controller_canonical
         method = form.discretization if form else ""
         fmt = form.number_format if form else ""
         verified = form.verified_text if form else ""
@@ -137,10 +169,11 @@ def plan_head(loop: Loop, pv: PlantVersion, revision: Revision | None,
         canonical = model_canonical(verified, what="verified controller",
                                     sample_time=loop.sample_time)
     return RevisionPlan(
+        design=design_of(revision) if revision is not None else design_of(design or {}),
         loop=loop.name, loop_id=loop.id, label=revision.label if revision else None,
         revision_id=revision.id if revision else None,
-        controller_text=verified or design, controller_canonical=canonical,
-        design_text=design, discretization=method, number_format=fmt,
+        controller_text=verified or entered, controller_canonical=canonical,
+        design_text=entered, discretization=method, number_format=fmt,
         loop_form=loops_db.loop_form(loop), plant_version_id=pv.id, plant_version=pv.number,
         plant_hash=pv.content_hash,
         plant_spec={"model": pv.model_text, "params": json.loads(pv.parameters_json),
@@ -153,11 +186,12 @@ def plan_head(loop: Loop, pv: PlantVersion, revision: Revision | None,
 def plan_revision(s: Session, loop: Loop, *, revision: Revision | None = None,
                   controller_text: str | None = None, controller_canonical: str | None = None,
                   keys: Iterable[str] | None = None, missing_only: bool = True,
-                  form=None) -> RevisionPlan:
+                  form=None, design: dict | None = None) -> RevisionPlan:
     """What must be computed to bring ``revision`` (or a not-yet-recorded controller) up to
     date against the latest requirement and plant versions."""
     pv = plants_db.latest_version(s, loop.plant_id)
-    plan = plan_head(loop, pv, revision, controller_text, controller_canonical, form)
+    plan = plan_head(loop, pv, revision, controller_text, controller_canonical, form,
+                     design)
     checks = applicable_checks(s, loop.id, keys)
     if revision is not None and missing_only:
         done = results_db.judged_version_ids(s, revision.id, pv.id)
@@ -188,17 +222,21 @@ def plan_loops(s: Session, loop: str | None = None, *, label: str | None = None,
 
 
 def plan_controller(s: Session, loop: str, controller: str, *, discretization: str = "",
-                    number_format: str = "") -> tuple[RevisionPlan, dict]:
+                    number_format: str = "", prefilter: str = "", anti_windup: str = "none",
+                    anti_windup_gain: float | None = None) -> tuple[RevisionPlan, dict]:
     """(plan, cached payloads) for a controller not recorded yet on ``loop`` (with its
-    digital form: method and number format, docs/digital.md)."""
+    digital form: method and number format, docs/digital.md; and its own prefilter and
+    anti-windup, checked here)."""
     from ..digital import digital_form
-    from ..validate import model_canonical
+    from ..validate import design_fields, model_canonical
 
     lp = loops_db.loop_row(s, loop)
     what = f"revision of loop {loop!r}: controller"
     canonical = model_canonical(controller, what=what, sample_time=lp.sample_time)
     form = digital_form(controller, lp.sample_time, discretization=discretization,
                         number_format=number_format, what=what)
+    design = design_fields(prefilter, anti_windup, anti_windup_gain,
+                           what=f"revision of loop {loop!r}", sample_time=lp.sample_time)
     plan = plan_revision(s, lp, controller_text=controller, controller_canonical=canonical,
-                         form=form)
+                         form=form, design=design)
     return plan, results_db.load_cached(s, plan.keys())

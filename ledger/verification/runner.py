@@ -89,7 +89,9 @@ def _engine_version() -> str:
 def add_revision(lg, loop: str, controller: str, *, rationale: str, parent: str | None = "tip",
                  author: str | None = None, label: str | None = None,
                  verify: bool = True, discretization: str = "",
-                 number_format: str = "") -> RevisionInfo:
+                 number_format: str = "", prefilter: str = "",
+                 anti_windup: str = "none",
+                 anti_windup_gain: float | None = None) -> RevisionInfo:
     """:meth:`ledger.api.Ledger.add_revision` (see there): the metric values are computed
     before the write (values a dry run kept in :mod:`.tried` are reused); the revision and all
     its results are recorded in one transaction."""
@@ -97,7 +99,9 @@ def add_revision(lg, loop: str, controller: str, *, rationale: str, parent: str 
     if verify:
         with lg.store.reading() as s:
             plan, cached = plan_controller(s, loop, controller, discretization=discretization,
-                                           number_format=number_format)
+                                           number_format=number_format, prefilter=prefilter,
+                                           anti_windup=anti_windup,
+                                           anti_windup_gain=anti_windup_gain)
         try:
             validate_controller(plan)
         except LedgerError as e:
@@ -112,7 +116,9 @@ def add_revision(lg, loop: str, controller: str, *, rationale: str, parent: str 
         info, created = rev_db.add(s, loop, controller, rationale=rationale, parent=parent,
                                    author=author or lg.author, label=label,
                                    discretization=discretization or "",
-                                   number_format=number_format or "")
+                                   number_format=number_format or "",
+                                   prefilter=prefilter, anti_windup=anti_windup,
+                                   anti_windup_gain=anti_windup_gain)
         if created and plan is not None and plan.checks:
             row = rev_db.revision_row(s, loops_db.loop_row(s, loop), info.label)
             write_results(s, plan, row.id, payloads, fresh)

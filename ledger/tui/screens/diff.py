@@ -98,6 +98,10 @@ class DiffScreen(ViewScreen):
         t.append(f"loop {loop}: {cmp_.old.label} -> {cmp_.new.label}  "
                  f"(eroded/improved: headroom change beyond {cmp_.threshold:.0%})\n\n",
                  style="bold")
+        for part, a, b in cmp_.design_changes:
+            t.append(f"{part}: {a}  ->  {b}\n")
+        if cmp_.design_changes:
+            t.append("\n")
         for kind in _ORDER:
             items = cmp_.of(kind)
             if not items and kind in ("moved", "new", "dropped", "incomparable"):

@@ -113,6 +113,12 @@ class LineageScreen(ViewScreen):
         if r.verified:
             t.append(f"verified as: {r.verified}\n")
         t.append("\n")
+        if r.prefilter:
+            t.append("prefilter (the revision's own)\n", style="bold underline")
+            t.append(f"{r.prefilter}\n\n")
+        if r.anti_windup != "none":
+            gain = f", gain {r.anti_windup_gain:g} 1/s" if r.anti_windup_gain is not None else ""
+            t.append(f"anti-windup: {r.anti_windup}{gain}\n\n")
         t.append("rationale\n", style="bold underline")
         t.append(r.rationale + "\n")
         box.update(t)

@@ -107,6 +107,10 @@ class PlotsScreen(ViewScreen):
         plt = plot.plt
         plt.clear_data()
         plt.clear_figure()
+        if d.move is not None:
+            self._move(plt, d)
+            plot.refresh()
+            return
         plt.title("step response r->y")
         plt.plot(d.t.tolist(), d.y.tolist(), label=d.variant, marker="braille")
         plt.hline(d.final, "blue")
@@ -121,6 +125,22 @@ class PlotsScreen(ViewScreen):
         plt.xlabel("t [s]  red: limits of " + ", ".join(b.key for b in d.bounds) if d.bounds
                    else "t [s]")
         plot.refresh()
+
+    def _move(self, plt, d) -> None:
+        """The large move beside the linear step of the same amplitude; yellow lines bound
+        the intervals the actuator is at its limit."""
+        mv = d.move
+        plt.title(f"large move r->y, amplitude {mv.amplitude:g} ({mv.key})")
+        plt.plot(mv.t.tolist(), mv.y.tolist(), label="large move", marker="braille")
+        plt.plot(mv.t.tolist(), mv.linear.tolist(), label="linear step", marker="dot")
+        for a, b in mv.saturated:
+            plt.vline(a, "yellow")
+            plt.vline(b, "yellow")
+        for b in d.bounds:
+            if b.kind == "settling":
+                plt.vline(b.value, "red")
+        plt.xlabel("t [s]  yellow: actuator at its limit" if mv.saturated else
+                   "t [s]  (the actuator never reaches its limit)")
 
     def _bode(self, d) -> None:
         from ..plotdata import log_ticks

@@ -67,6 +67,23 @@ def preview_text(rep) -> str:
     return "\n".join(lines)
 
 
+def anti_windup_field(text: str) -> tuple[str, float | None]:
+    """The form's anti-windup field: ``""``/``none``, ``clamping``, ``back-calculation 50``."""
+    from ...errors import ModelError
+
+    parts = (text or "").split()
+    if not parts:
+        return "none", None
+    if len(parts) == 2 and parts[0] == "back-calculation":
+        try:
+            return parts[0], float(parts[1])
+        except ValueError as e:
+            raise ModelError(f"anti-windup gain {parts[1]!r} is not a number (1/s)") from e
+    if len(parts) == 1:
+        return parts[0], None
+    raise ModelError(f"anti-windup {text!r}: write none, clamping or back-calculation GAIN")
+
+
 class RevisionForm(ModalScreen[Recorded | None]):
     """Controller text, parent and rationale for a new revision of ``loop``.
 
@@ -105,6 +122,10 @@ class RevisionForm(ModalScreen[Recorded | None]):
             yield Static(parent_note(self.loop, self.parent_label, self.tip), id="form-parent-note")
             yield Label("rationale: why this change")
             yield Input(placeholder="required", id="form-rationale")
+            yield Label("prefilter / feedforward shaping F (model text; empty: the loop's)")
+            yield Input(placeholder="e.g. 1/(0.02*s+1)^2", id="form-prefilter")
+            yield Label("anti-windup: none, clamping, or back-calculation GAIN (1/s)")
+            yield Input(placeholder="none", id="form-antiwindup")
             with Vertical(id="form-digital"):
                 yield Label(f"digital loop, Ts = {self.sample_time} s: discretisation of a "
                             "controller in s (zoh, tustin, tustin@FREQ, matched)")
@@ -156,7 +177,9 @@ class RevisionForm(ModalScreen[Recorded | None]):
                      self.query_one("#form-parent", Input).value.strip() or None,
                      self.query_one("#form-rationale", Input).value,
                      self.query_one("#form-discretize", Input).value.strip(),
-                     self.query_one("#form-format", Input).value.strip())
+                     self.query_one("#form-format", Input).value.strip(),
+                     self.query_one("#form-prefilter", Input).value.strip(),
+                     self.query_one("#form-antiwindup", Input).value)
 
     def action_preview(self) -> None:
         if self.busy:
@@ -184,11 +207,15 @@ class RevisionForm(ModalScreen[Recorded | None]):
 
     @work(thread=True, exclusive=True, group="record")
     def _record(self, controller: str, parent: str | None, rationale: str,
-                discretization: str = "", number_format: str = "") -> None:
+                discretization: str = "", number_format: str = "", prefilter: str = "",
+                anti_windup: str = "") -> None:
         try:
+            scheme, gain = anti_windup_field(anti_windup)
             info = self.app.lg.add_revision(self.loop, controller, rationale=rationale,
                                             parent=parent, discretization=discretization,
-                                            number_format=number_format)
+                                            number_format=number_format,
+                                            prefilter=prefilter,
+                                            anti_windup=scheme, anti_windup_gain=gain)
         except LedgerError as e:
             self.app.call_from_thread(self._failed, str(e))
             return
