@@ -29,6 +29,7 @@ VERDICT_FILLS = {
     "error": "FFE08A",
     "stale": "C5CAE9",
     "unverified": "E0E0E0",
+    "waived": "D9C8F0",   # the state of a fail or error a live waiver covers: soft lilac
 }
 
 _BAD_SHEET_CHARS = re.compile(r"[\[\]:*?/\\]")
@@ -108,18 +109,22 @@ def export_xlsx(matrix, path) -> Path:
     ws["B3"].font = Font(bold=True, color="9C2A00")
     ws["B3"].alignment = Alignment(wrap_text=True, vertical="top")
     ws.row_dimensions[3].height = 45
-    head = ["Loop", "Revisions"] + [v.capitalize() for v in VERDICT_ORDER] + ["Total"]
+    head = ["Loop", "Revisions"] + [v.capitalize() for v in VERDICT_ORDER] + \
+        ["Total", "Waived (of fail, error)"]
     ws.append([])
     ws.append(head)
     for c in ws[5]:
         c.font = bold
     for loop in matrix.loops:
         counts = verdict_counts(rows, loop)
+        waived = counts.pop("waived", 0)
         labels = ", ".join(c.label for c in matrix.columns if c.loop == loop)
         ws.append([cell_safe(loop), cell_safe(labels)] + [counts[v] for v in VERDICT_ORDER]
-                  + [sum(counts.values())])
+                  + [sum(counts.values()), waived])
     total = verdict_counts(rows)
-    ws.append(["All loops", ""] + [total[v] for v in VERDICT_ORDER] + [sum(total.values())])
+    waived = total.pop("waived", 0)
+    ws.append(["All loops", ""] + [total[v] for v in VERDICT_ORDER] + [sum(total.values()),
+                                                                       waived])
     for c in ws[ws.max_row]:
         c.font = bold
     # colour the verdict header cells with the same palette, word kept in the cell
@@ -129,10 +134,14 @@ def export_xlsx(matrix, path) -> Path:
     ws.column_dimensions["B"].width = 60
     for j in range(len(VERDICT_ORDER) + 1):
         ws.column_dimensions[get_column_letter(3 + j)].width = 12
-    _print_setup(ws, 3 + len(VERDICT_ORDER))
+    ws.cell(row=5, column=4 + len(VERDICT_ORDER)).fill = PatternFill(
+        "solid", fgColor=VERDICT_FILLS["waived"])
+    ws.column_dimensions[get_column_letter(4 + len(VERDICT_ORDER))].width = 24
+    _print_setup(ws, 4 + len(VERDICT_ORDER))
 
     taken: set[str] = set()
     vcol = COLUMNS.index("verdict") + 1
+    scol = COLUMNS.index("state") + 1
     for loop in matrix.loops:
         sh = wb.create_sheet(sheet_name(loop, taken))
         sh.append(list(COLUMNS))
@@ -150,6 +159,9 @@ def export_xlsx(matrix, path) -> Path:
             sh.cell(row=sh.max_row, column=tcol).number_format = "yyyy-mm-dd hh:mm:ss"
             cell = sh.cell(row=sh.max_row, column=vcol)
             cell.fill = PatternFill("solid", fgColor=VERDICT_FILLS.get(r.verdict, "FFFFFF"))
+            cell.font = bold
+            cell = sh.cell(row=sh.max_row, column=scol)
+            cell.fill = PatternFill("solid", fgColor=VERDICT_FILLS.get(r.state, "FFFFFF"))
             cell.font = bold
         sh.freeze_panes = "A2"
         sh.auto_filter.ref = f"A1:{get_column_letter(len(COLUMNS))}{max(sh.max_row, 1)}"
