@@ -210,7 +210,10 @@ def test_upgrade_from_0002_keeps_records_and_backfills_chain(tmp_path):
         b = create_baseline(lg, "B1")
         assert b.counts() == {"pass": 1, "fail": 1}
         np.testing.assert_allclose([c.value for c in b.cells], [52.5, 0.45], rtol=0)  # fixture rows
-        sign_baseline(lg, "B1", signer="A", role="lead", statement="fail accepted for now")
+        with pytest.raises(IntegrityViolation, match=r"first: SH-2 on shaker-speed/r2 is fail"):
+            sign_baseline(lg, "B1", signer="A", role="lead", statement="fail accepted for now")
+        sign_baseline(lg, "B1", signer="A", role="lead", statement="fail accepted for now",
+                      accept=["SH-2@shaker-speed:r2"])
         lg.add_revision("shaker-speed", "pi(kp=0.1, ki=1.1)", rationale="back off", verify=False)
         rep = audit(lg)
         assert rep.ok and rep.links == 12 + 3  # a baseline, its sign-off, revision r3
