@@ -20,7 +20,7 @@ from typing import Callable
 
 from ..fileio import write_atomic  # noqa: F401 - re-exported for the exporters
 from ..errors import ComputeError, UsageError
-from ..judge import MATRIX_VERDICTS, count_verdicts
+from ..judge import MATRIX_VERDICTS
 
 __all__ = ["require", "SCHEMA_VERSION", "JSON_SCHEMA_NAME", "json_schema_path", "COLUMNS", "VERDICT_ORDER", "ExportRow", "matrix_rows",
            "number_text", "parse_number", "write_atomic", "write_xml", "verdict_counts"]
@@ -197,13 +197,14 @@ def _waiver_fields(w) -> dict:
 
 
 def verdict_counts(rows, loop: str | None = None) -> dict[str, int]:
-    """Number of rows per verdict word (every word of :data:`VERDICT_ORDER` present), and
-    ``waived`` (those of them a live waiver covers) when there are any."""
-    rows = [r for r in rows if loop is None or r.loop == loop]
-    out = count_verdicts(rows, VERDICT_ORDER)
-    waived = sum(1 for r in rows if r.state == "waived")
-    if waived:
-        out["waived"] = waived
+    """Number of rows per shown state: every verdict word of :data:`VERDICT_ORDER` (0 when
+    none), then ``waived`` (a fail or error a live waiver covers, not counted under its
+    verdict) when there are any."""
+    out = {w: 0 for w in VERDICT_ORDER}
+    for r in rows:
+        if loop is None or r.loop == loop:
+            k = r.state or r.verdict
+            out[k] = out.get(k, 0) + 1
     return out
 
 

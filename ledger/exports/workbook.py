@@ -109,35 +109,29 @@ def export_xlsx(matrix, path) -> Path:
     ws["B3"].font = Font(bold=True, color="9C2A00")
     ws["B3"].alignment = Alignment(wrap_text=True, vertical="top")
     ws.row_dimensions[3].height = 45
-    head = ["Loop", "Revisions"] + [v.capitalize() for v in VERDICT_ORDER] + \
-        ["Total", "Waived (of fail, error)"]
+    states = VERDICT_ORDER + ("waived",)
+    head = ["Loop", "Revisions"] + [v.capitalize() for v in states] + ["Total"]
     ws.append([])
     ws.append(head)
     for c in ws[5]:
         c.font = bold
     for loop in matrix.loops:
         counts = verdict_counts(rows, loop)
-        waived = counts.pop("waived", 0)
         labels = ", ".join(c.label for c in matrix.columns if c.loop == loop)
-        ws.append([cell_safe(loop), cell_safe(labels)] + [counts[v] for v in VERDICT_ORDER]
-                  + [sum(counts.values()), waived])
+        ws.append([cell_safe(loop), cell_safe(labels)] + [counts.get(v, 0) for v in states]
+                  + [sum(counts.values())])
     total = verdict_counts(rows)
-    waived = total.pop("waived", 0)
-    ws.append(["All loops", ""] + [total[v] for v in VERDICT_ORDER] + [sum(total.values()),
-                                                                       waived])
+    ws.append(["All loops", ""] + [total.get(v, 0) for v in states] + [sum(total.values())])
     for c in ws[ws.max_row]:
         c.font = bold
     # colour the verdict header cells with the same palette, word kept in the cell
-    for j, v in enumerate(VERDICT_ORDER):
+    for j, v in enumerate(states):
         ws.cell(row=5, column=3 + j).fill = PatternFill("solid", fgColor=VERDICT_FILLS[v])
     ws.column_dimensions["A"].width = 18
     ws.column_dimensions["B"].width = 60
-    for j in range(len(VERDICT_ORDER) + 1):
+    for j in range(len(states) + 1):
         ws.column_dimensions[get_column_letter(3 + j)].width = 12
-    ws.cell(row=5, column=4 + len(VERDICT_ORDER)).fill = PatternFill(
-        "solid", fgColor=VERDICT_FILLS["waived"])
-    ws.column_dimensions[get_column_letter(4 + len(VERDICT_ORDER))].width = 24
-    _print_setup(ws, 4 + len(VERDICT_ORDER))
+    _print_setup(ws, 3 + len(states))
 
     taken: set[str] = set()
     vcol = COLUMNS.index("verdict") + 1
