@@ -65,7 +65,8 @@ def gate_cmd(
         for c in rep.offending:
             typer.echo(f"{c.requirement} {c.loop}/{c.revision} {c.state} value {c.value} "
                        f"limit {c.limit}" + (f" ({c.reason})" if c.reason else ""))
-        tail = f" ({len(rep.waived)} waived, as of {rep.as_of})" if rep.waived else ""
+        tail = (f" ({len(rep.waived)} of them waived, as of {rep.as_of})" if rep.waived
+                else "")
         tail += f"; excluded: {', '.join(rep.excluded)}" if rep.excluded else ""
         verdict = "holds" if rep.ok else "fails"
         typer.echo(f"gate {verdict}: {rep.passing} of {rep.cells} cell(s) pass on "

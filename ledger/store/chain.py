@@ -1,7 +1,8 @@
 """The append-only hash chain over the ledger's records, and the content hashes of results.
 
 Every plant, plant version, loop, requirement, requirement version (with its trace parents and
-loops), revision, result batch, baseline (with its frozen entries) and sign-off gets one link,
+loops), revision, result batch, baseline (with its frozen entries), sign-off, loop spectrum,
+waiver and waiver withdrawal gets one link,
 appended in the same transaction as the record:
 
 * ``record_hash`` = SHA-256 of the record's canonical content (:func:`record_content`): the
