@@ -24,7 +24,7 @@ from ledger.api import open_ledger
 from ledger.audit import audit
 from ledger.chain import GENESIS
 from ledger.cli import app
-from ledger.errors import IntegrityViolation, LedgerError, NotFoundError, UsageError, WaiverError
+from ledger.errors import IntegrityViolation, NotFoundError, UsageError, WaiverError
 from ledger.history.gate import gate
 from ledger.history.matrix import build_matrix
 from ledger.signoff import baseline, create_baseline, sign_baseline
@@ -259,7 +259,7 @@ def test_gate_passes_a_waived_failure_and_fails_an_expired_one(db_url):
             [("X-1", "fail")]
     res = _cli(db_url, "gate", "--as-of", "2031-01-31")
     assert res.exit_code == 0, res.output
-    assert f"X-1 x/r1 waived" in res.output and f"waiver {w.id}" in res.output
+    assert "X-1 x/r1 waived" in res.output and f"waiver {w.id}" in res.output
     res = _cli(db_url, "gate", "--as-of", "2031-02-01")
     assert res.exit_code == 1 and "X-1 x/r1 fail" in res.output
     doc = json.loads(_cli(db_url, "gate", "--as-of", "2031-01-31", "--json").output)
@@ -290,6 +290,8 @@ def test_bad_waivers_are_refused_in_one_line_and_change_nothing(db_url):
             (NotFoundError, "no baseline", dict(loop=None, baseline="B9")),
             (UsageError, "not both", dict(baseline="B1")),
             (UsageError, "not both", dict(loop=None)),
+            (IntegrityViolation, r"waiver reason: character U\+001B", dict(reason="x\x1b[2J")),
+            (IntegrityViolation, r"waiver approver: character U\+000A", dict(approver="A\nB")),
         ]
         for cls, msg, kw in cases:
             key = kw.pop("requirement", "X-1")
