@@ -753,3 +753,11 @@ async def test_waiver_form_waives_the_cell_under_the_cursor(ledger):
         await press(pilot, "3")
         text = str(app.screen.query_one("#req-detail", Static).render())
         assert "pos/r2" in text and "live" in text and "bench rig only" in text
+        # the requirement view opens the same form for the selected revision
+        before = ledger.counts()
+        await press(pilot, "w")
+        assert type(app.screen).__name__ == "WaiverForm"
+        assert "PM-1 on pos/r2" in str(app.screen.query_one("#form-title").render())
+        await press(pilot, "escape")
+        assert type(app.screen).__name__ == "RequirementScreen"
+        assert ledger.counts() == before
