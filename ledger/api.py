@@ -16,12 +16,14 @@ from typing import Callable, Iterable, Mapping, Sequence
 
 from . import config
 from .errors import LedgerError, SchemaError
-from .records import LineageNode, LoopInfo, lineage_forest, PlantInfo, RequirementInfo, ResultInfo, RevisionInfo
+from .records import (LineageNode, LoopInfo, lineage_forest, PlantInfo, RequirementInfo,
+                      ResultInfo, RevisionInfo, WaiverInfo)
 from .store import loops as loops_db
 from .store import plants as plants_db
 from .store import requirements as req_db
 from .store import results as results_db
 from .store import revisions as rev_db
+from .store import waivers as waivers_db
 from .store.db import display_url, resolve_url, scrub_secret
 from .store.migrate import ensure_schema
 from .store.session import UnitOfWork
@@ -467,6 +469,55 @@ class Ledger:
         (a ``PlantFamily`` of the plant's latest version, the controller and the ``LoopSpec``)
         for plots, evidence and notebook work with ``ledger.engine``."""
         return runner.numeric_setup(self, loop, label)
+
+    # -- waivers (rules: ledger.waivers) --------------------------------------------------
+    def add_waiver(self, requirement: str, *, reason: str, approver: str, role: str,
+                   loop: str | None = None, revision: str | None = None,
+                   baseline: str | None = None, expires=None, condition: str = "",
+                   as_of=None) -> WaiverInfo:
+        """Record a waiver of ``requirement``'s failing (or error) verdict on revision
+        ``loop``/``revision`` (the loop's tip when ``revision`` is ``None``) or on every
+        revision ``baseline`` freezes (give ``loop`` or ``baseline``, not both).
+
+        ``expires`` (a date or ``YYYY-MM-DD``) is the last day it counts and must not be
+        before ``as_of`` (default today, UTC); ``condition`` is free text ("until the next
+        hardware build").  Raises ``WaiverError`` (no reason/approver/role, past expiry, no
+        cell there), ``NotFoundError`` or ``UsageError``; nothing is recorded then.
+        """
+        from .errors import UsageError
+        from .waivers import check_waiver
+
+        if (loop is None) == (baseline is None) or (baseline is not None and revision):
+            raise UsageError("a waiver names a loop (and optionally a revision) or a "
+                             "baseline, not both and not neither")
+        fields = check_waiver(reason=reason, approver=approver, role=role, expires=expires,
+                              condition=condition, as_of=as_of)
+
+        def work(s):
+            return waivers_db.get(s, waivers_db.add(
+                s, requirement, loop=loop, label=revision, baseline=baseline,
+                author=self.author, **fields))
+
+        return self.store.write(work)
+
+    def waivers(self, requirement: str | None = None) -> list[WaiverInfo]:
+        """Every waiver (withdrawn and expired ones included: see ``WaiverInfo.status``),
+        oldest first; of one requirement if given."""
+        with self.reading() as s:
+            return waivers_db.all_waivers(s, requirement=requirement)
+
+    def withdraw_waiver(self, waiver_id: int, *, reason: str, approver: str,
+                        role: str) -> WaiverInfo:
+        """Withdraw a waiver: a new, chained withdrawal record (the waiver is not edited)."""
+        from .waivers import check_withdrawal
+
+        fields = check_withdrawal(reason=reason, approver=approver, role=role)
+
+        def work(s):
+            waivers_db.withdraw(s, int(waiver_id), author=self.author, **fields)
+            return waivers_db.get(s, int(waiver_id))
+
+        return self.store.write(work)
 
     # -- results --------------------------------------------------------------------------
     def results(self, loop: str, label: str | None = None, *,

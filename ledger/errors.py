@@ -16,6 +16,7 @@ __all__ = [
     "NotFoundError",
     "DuplicateError",
     "IntegrityViolation",
+    "WaiverError",
     "UnknownMetricError",
     "SchemaError",
     "ComputeError",
@@ -122,3 +123,9 @@ def with_context(e: LedgerError, prefix: str) -> LedgerError:
     out = copy.copy(e)
     out.args = (f"{prefix}: {e}",)
     return out
+
+
+class WaiverError(IntegrityViolation):
+    """A waiver that cannot be recorded or withdrawn as given (no reason, approver or role, an
+    expiry that has passed or is not a date, a requirement that has no cell there, a waiver
+    withdrawn already), or a sign-off whose ``accept`` names no cell that needs it."""

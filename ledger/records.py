@@ -18,6 +18,7 @@ __all__ = [
     "FrozenCell",
     "SignoffInfo",
     "BaselineInfo",
+    "WaiverInfo",
     "to_jsonable",
 ]
 
@@ -194,6 +195,11 @@ class SignoffInfo:
     matrix_hash: str
     chain_head: str
     signed_at: datetime
+    #: cells accepted explicitly (``requirement, loop, revision, verdict``), and the waivers
+    #: that covered cells when it was signed (``waiver`` id, the cell, reason, approver,
+    #: role, expiry, condition); empty for sign-offs made before waivers existed
+    accepted: tuple = ()
+    waivers: tuple = ()
 
 
 @dataclass(frozen=True)
@@ -218,6 +224,60 @@ class BaselineInfo:
 
         return count_verdicts(self.cells, ())
 
+
+
+@dataclass(frozen=True)
+class WaiverInfo:
+    """A waiver: a failing (or error) verdict of ``requirement`` accepted on one revision
+    (``loop``/``revision``) or on every revision baseline ``baseline`` freezes.
+
+    ``expires_on`` is the last day it counts (ISO date) or ``None``; ``condition`` is free
+    text ("until the next hardware build") that a person judges.  ``withdrawn_at`` (with who
+    and why) is set once a withdrawal is recorded."""
+
+    id: int
+    requirement: str
+    loop: str | None
+    revision: str | None
+    baseline: str | None
+    reason: str
+    approver: str
+    role: str
+    expires_on: str | None
+    condition: str
+    author: str
+    created_at: datetime
+    record_hash: str = ""
+    withdrawn_at: datetime | None = None
+    withdrawn_by: str = ""
+    withdrawn_role: str = ""
+    withdrawal_reason: str = ""
+    #: ``loop/label`` of each revision it covers (the one revision, or every revision the
+    #: baseline freezes)
+    covers: tuple = ()
+
+    @property
+    def scope(self) -> str:
+        """``loop/label`` or ``baseline NAME``."""
+        return f"{self.loop}/{self.revision}" if self.baseline is None else \
+            f"baseline {self.baseline}"
+
+    def status(self, as_of) -> str:
+        """``live``, ``expired`` (``expires_on`` before ``as_of``, a date) or ``withdrawn``."""
+        if self.withdrawn_at is not None:
+            return "withdrawn"
+        if self.expires_on is not None and self.expires_on < as_of.isoformat():
+            return "expired"
+        return "live"
+
+    def live(self, as_of) -> bool:
+        return self.status(as_of) == "live"
+
+    def until(self) -> str:
+        """Expiry and condition in words (``-`` when neither)."""
+        parts = ([f"until {self.expires_on}"] if self.expires_on else []) + \
+            ([self.condition] if self.condition else [])
+        return "; ".join(parts) or "-"
 
 
 def to_jsonable(obj: Any) -> Any:

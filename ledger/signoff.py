@@ -11,8 +11,13 @@ baseline's ``matrix_hash``.
 A **sign-off** is a named approval (name, role, statement, time) bound to that hash and to the
 hash-chain head at the moment of signing.  Signing recomputes the content hash of everything
 the baseline freezes (``ledger.audit.Checker.frozen``) and the matrix from the ledger as it is
-now, and refuses unless both agree with what was frozen; it refuses stale or unverified cells.  A
-signed baseline never changes; a newer baseline may supersede it (recorded, at most once).
+now, and refuses unless both agree with what was frozen.  It refuses a baseline holding
+``fail``, ``error``, ``stale`` or ``unverified`` cells unless each one is covered: a ``fail``
+or ``error`` by a live waiver (``ledger.waivers``: not withdrawn, not expired on the day of
+signing), any of them by naming it explicitly (``accept``, ``REQ@LOOP:LABEL``).  The sign-off
+record lists what it accepted and the waivers it relied on (``accepted_json``, part of its
+record hash).  A signed baseline never changes; a newer baseline may supersede it (recorded,
+at most once).
 """
 
 from __future__ import annotations
@@ -21,10 +26,11 @@ import json
 import re
 from typing import Sequence
 
-from .errors import DuplicateError, IntegrityViolation
+from .errors import DuplicateError, IntegrityViolation, WaiverError
 from .hashing import canonical_json, sha256_of
 from .records import BaselineColumn, BaselineInfo, FrozenCell, SignoffInfo
 from .store import baselines as baselines_db
+from .store import waivers as waivers_db
 from .store.audit import Checker
 from .store.baselines import frozen_matrix_hash, matrix_hash, sorted_matrix
 from .store.chain import lock
@@ -45,8 +51,9 @@ __all__ = [
 ]
 
 _NAME_RE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]{0,79}$")
-#: Verdicts a baseline may hold but a sign-off refuses.
-UNSIGNABLE = ("stale", "unverified")
+#: Verdicts a baseline may hold but a sign-off refuses unless each cell is waived (``fail``,
+#: ``error``) or accepted explicitly.
+UNSIGNABLE = ("fail", "error", "stale", "unverified")
 
 
 def live_matrix(lg, selection: str | Sequence[tuple[str, str]] = "tips") -> tuple[list, list]:
@@ -178,8 +185,68 @@ def first_difference(frozen: dict, live: dict) -> str:
     return "matrix differs"
 
 
+def _accept_set(accept) -> list[tuple[str, str, str]]:
+    """``accept`` items (``"REQ@LOOP:LABEL"`` or ``(req, loop, label)``) as triples."""
+    from .waivers import parse_cell
+
+    out = []
+    for item in accept or ():
+        t = parse_cell(item) if isinstance(item, str) else tuple(item)
+        if len(t) != 3:
+            raise WaiverError(f"accept {item!r}: give REQ@LOOP:LABEL")
+        out.append(t)
+    return list(dict.fromkeys(out))
+
+
+def covered_cells(name: str, cells: Sequence[dict], waivers, accept, as_of) -> dict:
+    """Which of a baseline's ``cells`` need covering and what covers each.
+
+    Returns ``{"accepted": [...], "waivers": [...]}`` (the sign-off record's lists); raises
+    :class:`~ledger.errors.WaiverError` when an ``accept`` names no cell that needs it, and
+    :class:`~ledger.errors.IntegrityViolation` naming the first cell left uncovered.
+    """
+    from .waivers import WaiverIndex, cell_text
+
+    index = WaiverIndex(waivers, as_of)
+    wanted = _accept_set(accept)
+    need = {(c["requirement"], c["loop"], c["revision"]): c for c in cells
+            if c["verdict"] in UNSIGNABLE}
+    for t in wanted:
+        if t not in need:
+            there = any((c["requirement"], c["loop"], c["revision"]) == t for c in cells)
+            raise WaiverError(
+                f"accept {cell_text(*t)}: baseline {name!r} has "
+                + ("that cell, but it passes" if there else "no such cell")
+                + "; accept only failing, error, stale or unverified cells")
+    accepted, used, bad = [], [], []
+    for key in sorted(need, key=lambda k: (k[1], k[2], k[0])):
+        c = need[key]
+        cell = {"requirement": key[0], "loop": key[1], "revision": key[2],
+                "verdict": c["verdict"]}
+        if key in wanted:
+            accepted.append(cell)
+            continue
+        w = index.cover(key[0], key[1], key[2], c["verdict"])
+        if w is None:
+            bad.append(c)
+            continue
+        used.append({**cell, "waiver": w.id, "reason": w.reason, "approver": w.approver,
+                     "role": w.role, "expires_on": w.expires_on, "condition": w.condition,
+                     "record_hash": w.record_hash})
+    if bad:
+        c = bad[0]
+        raise IntegrityViolation(
+            f"baseline {name!r} holds {len(bad)} failing, error, stale or unverified cell(s) "
+            f"neither waived nor accepted (first: {c['requirement']} on "
+            f"{c['loop']}/{c['revision']} is {c['verdict']}); verify and freeze a new "
+            f"baseline, waive it, or accept it explicitly "
+            f"({cell_text(c['requirement'], c['loop'], c['revision'])})")
+    return {"accepted": accepted, "waivers": used}
+
+
 def sign_baseline(lg, name: str, *, signer: str, role: str, statement: str,
-                  author: str | None = None) -> SignoffInfo:
+                  author: str | None = None, accept: Sequence = (),
+                  as_of=None) -> SignoffInfo:
     """Sign a baseline: record an approval bound to its matrix hash.
 
     Parameters
@@ -189,6 +256,10 @@ def sign_baseline(lg, name: str, *, signer: str, role: str, statement: str,
         The baseline.
     signer, role, statement : str
         Who approves, in what role, and what they state (all required).
+    accept : sequence of ``"REQ@LOOP:LABEL"`` (or ``(req, loop, label)``)
+        Failing, error, stale or unverified cells accepted explicitly by this sign-off.
+    as_of : date or ``YYYY-MM-DD``, optional
+        The day waivers are judged on (default today, UTC; never earlier than today).
 
     Raises
     ------
@@ -197,12 +268,23 @@ def sign_baseline(lg, name: str, *, signer: str, role: str, statement: str,
         hash; a record it freezes (revision, requirement version, plant version, their loops,
         requirements and plants, the results of its revisions with their metric values), the
         baseline itself or the hash chain no longer give their recomputed hashes (run the
-        audit); it holds stale or unverified cells; or the matrix recomputed from
-        the ledger now differs from the frozen one.  Nothing is recorded.
+        audit); it holds failing, error, stale or unverified cells that no live waiver
+        covers and ``accept`` does not name; or the matrix recomputed from the ledger now
+        differs from the frozen one.  Nothing is recorded.
+    WaiverError
+        ``accept`` names a cell the baseline does not hold or that passes, or ``as_of`` is
+        before today.
     """
+    from .waivers import as_date, today
+
     for what, value in (("name", signer), ("role", role), ("statement", statement)):
         if not isinstance(value, str) or not value.strip():
             raise IntegrityViolation(f"sign-off of {name!r}: a {what} is required")
+    day = as_date(as_of)
+    if day < today():
+        raise WaiverError(f"sign-off of {name!r}: waivers are judged on today or later, not "
+                          f"{day.isoformat()}")
+    _accept_set(accept)  # a malformed cell is named before anything is read
 
     def work(s) -> SignoffInfo:
         lock(s)  # PostgreSQL: no result write can commit while we compare and sign
@@ -217,18 +299,14 @@ def sign_baseline(lg, name: str, *, signer: str, role: str, statement: str,
                                      "matrix hash; run 'loopledger audit'")
         chk = Checker(s)  # recompute what the baseline freezes, not the stored hashes
         chk.frozen(b.id)
+        chk.records("waiver")             # the waivers it may rely on, and their withdrawals
+        chk.records("waiver_withdrawal")  # (a deleted withdrawal would revive a waiver)
         if chk.findings:
             more = f" and {len(chk.findings) - 1} more" if len(chk.findings) > 1 else ""
             raise IntegrityViolation(
                 f"baseline {name!r}: {chk.findings[0]}{more}; nothing signed, run "
                 "'loopledger audit'")
-        bad = [c for c in cells if c["verdict"] in UNSIGNABLE]
-        if bad:
-            c = bad[0]
-            raise IntegrityViolation(
-                f"baseline {name!r} holds {len(bad)} stale or unverified cell(s) (first: "
-                f"{c['requirement']} on {c['loop']}/{c['revision']} is {c['verdict']}); "
-                "verify, then freeze a new baseline")
+        covered = covered_cells(name, cells, waivers_db.all_waivers(s), accept, day)
         live_cols, live_cells = live_matrix(SessionView(s),
                                             [(c["loop"], c["revision"]) for c in cols])
         if matrix_hash(live_cols, live_cells) != b.matrix_hash:
@@ -238,8 +316,11 @@ def sign_baseline(lg, name: str, *, signer: str, role: str, statement: str,
             raise IntegrityViolation(
                 f"results changed since baseline {name!r} was frozen ({diff}); freeze a new "
                 "baseline that supersedes it and sign that")
+        record = ""
+        if covered["accepted"] or covered["waivers"]:
+            record = canonical_json({**covered, "as_of": day.isoformat()})
         return baselines_db.add_signoff(s, b, signer=signer, role=role, statement=statement,
-                                        author=author or lg.author)
+                                        author=author or lg.author, accepted_json=record)
 
     return lg.store.write(work)
 

@@ -86,8 +86,8 @@ def test_untouched_ledger_passes_and_chain_follows_the_rule(lg):
     assert rep.ok, rep.findings
     assert rep.records == {"plant": 1, "plant_version": 1, "loop": 1, "requirement": 3,
                            "requirement_version": 3, "revision": 2, "result_batch": 2,
-                           "baseline": 1, "signoff": 1, "loop_spectrum": 0, "result": 4,
-                           "metric_value": 4}
+                           "baseline": 1, "signoff": 1, "loop_spectrum": 0, "waiver": 0,
+                           "waiver_withdrawal": 0, "result": 4, "metric_value": 4}
     assert rep.links == 15
     prev = GENESIS
     links = rows(lg, "SELECT seq, kind, record_id, record_hash, prev_hash, chain_hash, "

@@ -290,5 +290,22 @@ def test_committed_demo_db_audits_clean_and_signs(committed):
 
     rep = audit(committed)
     assert rep.ok, [(f.problem, f.kind, f.record_id, f.detail) for f in rep.findings]
-    create_baseline(committed, "check-1")
-    sign_baseline(committed, "check-1", signer="A. Reviewer", role="lead", statement="ok")
+    from ledger.errors import IntegrityViolation
+
+    b = create_baseline(committed, "check-1")
+    bad = [c for c in b.cells if c.verdict in ("fail", "error", "stale", "unverified")]
+    assert bad, "the demo keeps one open failure (the draft PZ-06) for the review story"
+    first = min(bad, key=lambda c: (c.loop, c.revision, c.requirement))
+    # an unwaived failure is refused, naming the cell (docs/review.md) ...
+    with pytest.raises(IntegrityViolation, match=f"first: {first.requirement} on "
+                       f"{first.loop}/{first.revision} is {first.verdict}"):
+        sign_baseline(committed, "check-1", signer="A. Reviewer", role="lead", statement="ok")
+    # ... and signs once each failure is waived by an approver, the waivers listed
+    for c in bad:
+        committed.add_waiver(c.requirement, loop=c.loop, revision=c.revision,
+                             reason="draft requirement, open for the next hardware build",
+                             approver="A. Reviewer", role="lead",
+                             condition="until the next hardware build")
+    so = sign_baseline(committed, "check-1", signer="A. Reviewer", role="lead", statement="ok")
+    assert sorted(w["requirement"] for w in so.waivers) == sorted(c.requirement for c in bad)
+    assert audit(committed).ok

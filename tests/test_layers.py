@@ -215,7 +215,8 @@ def test_ledger_facade_holds_only_public_methods():
     private = [f.name for f in cls.body if isinstance(f, (ast.FunctionDef, ast.AsyncFunctionDef))
                and f.name.startswith("_") and not (f.name.startswith("__") and f.name.endswith("__"))]
     assert not private, private
-    assert len([f for f in cls.body if isinstance(f, ast.FunctionDef)]) <= 40
+    # 40 methods, and the three of waivers (add, list, withdraw: issue 17 item 4)
+    assert len([f for f in cls.body if isinstance(f, ast.FunctionDef)]) <= 43
 
 
 @pytest.mark.parametrize("name", ["ledger.spec", "ledger.signoff", "ledger.api"])

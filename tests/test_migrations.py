@@ -131,9 +131,12 @@ def test_upgrade_from_0004_relinks_the_chain_a_signoff_points_into(tmp_path, mon
         import ledger.engine.results as engine_results
 
         monkeypatch.setattr(engine_results, "ENGINE_VERSION", "engine-1")
-        sign_baseline(lg, "B-0004", signer="B", role="reviewer", statement="still agreed")
+        # (its SH-2 fail is accepted explicitly: sign-off refuses an unwaived failure)
+        sign_baseline(lg, "B-0004", signer="B", role="reviewer", statement="still agreed",
+                      accept=["SH-2@shaker-speed:r2"])
         create_baseline(lg, "B-0005", supersedes="B-0004")
-        sign_baseline(lg, "B-0005", signer="B", role="reviewer", statement="agreed")
+        sign_baseline(lg, "B-0005", signer="B", role="reviewer", statement="agreed",
+                      accept=["SH-2@shaker-speed:r2"])
         assert audit(lg).ok
     finally:
         lg.close()

@@ -169,7 +169,9 @@ def test_chosen_revisions_and_bad_selection(lg):
         create_baseline(lg, "bad name")
 
 
-def test_upgrade_from_0002_keeps_records_and_backfills_chain(tmp_path):
+def test_upgrade_from_0002_keeps_records_and_backfills_chain(tmp_path, monkeypatch):
+    import ledger.engine.results as engine_results
+
     path = tmp_path / "old.db"
     shutil.copy(FIXTURES / "ledger-0002.db", path)
     with sqlite3.connect(path) as db:
@@ -206,11 +208,18 @@ def test_upgrade_from_0002_keeps_records_and_backfills_chain(tmp_path):
         assert rep.ok, rep.findings
         # the API works on the upgraded ledger, and new records extend the chain
         assert lg.requirement("SH-2").limit_text == "<= 0.4 s"
+        # the fixture's results were computed by engine-1: stale under today's engine, current
+        # under the engine that computed them (docs/history.md, "When the engine changes")
+        assert [r.verdict for r in lg.results("shaker-speed", "r2")] == ["stale", "stale"]
+        monkeypatch.setattr(engine_results, "ENGINE_VERSION", "engine-1")
         assert [r.verdict for r in lg.results("shaker-speed", "r2")] == ["pass", "fail"]
         b = create_baseline(lg, "B1")
         assert b.counts() == {"pass": 1, "fail": 1}
         np.testing.assert_allclose([c.value for c in b.cells], [52.5, 0.45], rtol=0)  # fixture rows
-        sign_baseline(lg, "B1", signer="A", role="lead", statement="fail accepted for now")
+        with pytest.raises(IntegrityViolation, match=r"first: SH-2 on shaker-speed/r2 is fail"):
+            sign_baseline(lg, "B1", signer="A", role="lead", statement="fail accepted for now")
+        sign_baseline(lg, "B1", signer="A", role="lead", statement="fail accepted for now",
+                      accept=["SH-2@shaker-speed:r2"])
         lg.add_revision("shaker-speed", "pi(kp=0.1, ki=1.1)", rationale="back off", verify=False)
         rep = audit(lg)
         assert rep.ok and rep.links == 12 + 3  # a baseline, its sign-off, revision r3

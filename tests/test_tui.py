@@ -695,3 +695,69 @@ async def test_add_revision_form_previews_the_regression_table_before_saving(led
         assert ledger.kernel_requests == n
         res = {r.requirement: r for r in ledger.results("pos", "r3")}
         np.testing.assert_allclose(res["PM-1"].value, pm_of(1), rtol=1e-6)
+
+
+async def _type(pilot, text: str) -> None:
+    names = {" ": "space", "-": "minus", ".": "full_stop", "(": "left_parenthesis",
+             ")": "right_parenthesis"}
+    for ch in text:
+        await pilot.press(names.get(ch, ch))
+
+
+async def test_waiver_form_waives_the_cell_under_the_cursor(ledger):
+    """PM-1 fails on r2 (28.02 deg < 45 deg, closed form in the module docstring): 'w' on
+    that cell opens the waiver form; an empty reason is refused in the form and writes
+    nothing; a full one records the waiver, the cell then shows W (its own state, not the
+    pass symbol) and the requirement view lists the waiver."""
+    from textual.widgets import DataTable, Static
+
+    app = make_app(ledger)
+    async with app.run_test(size=(120, 40)) as pilot:
+        await settle(pilot)
+        await press(pilot, "2")
+        scr = app.screen
+        table = scr.query_one(DataTable)
+        table.move_cursor(row=2, column=2)  # PM-1 on pos/r2
+        await pilot.pause()
+        assert scr.selected() == ("PM-1", "pos", "r2")
+        before = ledger.counts()
+        await press(pilot, "w")
+        form = app.screen
+        assert type(form).__name__ == "WaiverForm"
+        assert "PM-1 on pos/r2 (fail)" in str(form.query_one("#form-title").render())
+        await press(pilot, "ctrl+s")  # nothing typed: refused, one line in the form
+        assert type(app.screen).__name__ == "WaiverForm"
+        assert "a waiver needs a reason" in str(form.query_one("#form-error", Static).render())
+        assert ledger.counts() == before
+        await _type(pilot, "bench rig only")
+        await press(pilot, "tab")
+        await _type(pilot, "R. Chen")
+        await press(pilot, "tab")
+        await _type(pilot, "controls lead")
+        await press(pilot, "tab")
+        await _type(pilot, "2999-12-31")
+        await press(pilot, "ctrl+s")
+        await settle(pilot, rounds=4)
+        assert type(app.screen).__name__ == "MatrixScreen"
+        (w,) = ledger.waivers("PM-1")
+        assert (w.reason, w.approver, w.role, w.expires_on, w.scope) == \
+            ("bench rig only", "R. Chen", "controls lead", "2999-12-31", "pos/r2")
+        table.move_cursor(row=2, column=2)
+        await pilot.pause()
+        cell = str(table.get_cell_at((2, 2)))
+        assert cell.startswith("W ") and "28.02" in cell, cell
+        assert str(table.get_cell_at((2, 1))).startswith("✓ ")  # r1 passes, untouched
+        detail = str(scr.query_one("#matrix-detail").render())
+        assert "waived (fail, waiver 1 by R. Chen (controls lead)" in detail, detail
+        app.current_req = "PM-1"
+        await press(pilot, "3")
+        text = str(app.screen.query_one("#req-detail", Static).render())
+        assert "pos/r2" in text and "live" in text and "bench rig only" in text
+        # the requirement view opens the same form for the selected revision
+        before = ledger.counts()
+        await press(pilot, "w")
+        assert type(app.screen).__name__ == "WaiverForm"
+        assert "PM-1 on pos/r2" in str(app.screen.query_one("#form-title").render())
+        await press(pilot, "escape")
+        assert type(app.screen).__name__ == "RequirementScreen"
+        assert ledger.counts() == before

@@ -19,6 +19,7 @@ One module per command group, each command a plain Typer function::
     signoff.py       baseline create/list/show; sign, audit
     ui.py            ui
     tryout.py        try (dry run of candidate controllers)
+    waivers.py       waiver add/list/show/withdraw
 
 Adding a command group (docs/architecture.md, "Where a change goes"): write
 ``ledger/cli/<group>.py`` with ``group = typer.Typer(help=..., no_args_is_help=True)`` for
@@ -32,7 +33,7 @@ the order of those two tuples.
 from __future__ import annotations
 
 from . import exports, gate, history, loops, plants, requirements, revisions, signoff, spec, ui
-from . import tryout
+from . import tryout, waivers
 from .common import CAUTION, app, run
 from .output import short_variant
 
@@ -43,7 +44,7 @@ _TOP_LEVEL = (spec, requirements, loops, revisions, history, exports, gate, sign
               tryout)
 #: ``(name, module)``: ``loopledger <name> ...`` is ``module.group``
 _GROUPS = (("plant", plants), ("loop", loops), ("requirement", requirements),
-           ("revision", revisions), ("baseline", signoff))
+           ("revision", revisions), ("baseline", signoff), ("waiver", waivers))
 
 for _module in _TOP_LEVEL:
     app.add_typer(_module.commands)

@@ -1,5 +1,5 @@
 """``loopledger gate``: exit 0 only when every applicable requirement on the chosen revisions
-passes (or is explicitly excluded); otherwise one line per offending cell and exit 1."""
+passes, is waived (a live waiver) or is explicitly excluded; otherwise one line per offending cell and exit 1."""
 
 from __future__ import annotations
 
@@ -30,13 +30,18 @@ def gate_cmd(
     exclude: Optional[List[str]] = typer.Option(
         None, "--exclude", metavar="ID", help="Leave this requirement out, explicitly "
         "(repeatable); listed in the output."),
+    as_of: Optional[str] = typer.Option(
+        None, "--as-of", metavar="YYYY-MM-DD", help="Judge waiver expiry on this day "
+        "(default: today, UTC)."),
     as_json: bool = JSON_OPTION,
 ):
-    """Exit 0 only when every applicable requirement on the chosen revisions passes.
+    """Exit 0 only when every applicable requirement on the chosen revisions passes or is
+    waived.
 
     Failing, error, stale (judged on an older requirement or plant version, or by another engine version) and unverified
     cells each print one line (requirement, revision, state, value, limit) and the exit status
-    is 1.  For CI jobs and scripts that want a yes or no."""
+    is 1; a failure covered by a live waiver holds (listed as waived), one whose waiver has
+    expired or was withdrawn offends.  For CI jobs and scripts that want a yes or no."""
     from ..history.gate import gate
     from .exports import revision_selection
 
@@ -44,19 +49,25 @@ def gate_cmd(
         raise UsageError("give either --revision or --all, not both")
     sel = revision_selection(loop, revision, every)
     with open_ledger() as lg:
-        rep = gate(lg, sel, loop=loop, exclude=exclude or ())
+        rep = gate(lg, sel, loop=loop, exclude=exclude or (), as_of=as_of)
     if not rep.revisions:
         raise UsageError("nothing to check: no revisions match; record one or change "
                          "--loop/--revision")
     if as_json:
         emit_json({"ok": rep.ok, "revisions": list(rep.revisions), "cells": rep.cells,
                    "passing": rep.passing, "excluded": list(rep.excluded),
+                   "as_of": rep.as_of, "waived": [c.__dict__ for c in rep.waived],
                    "offending": [c.__dict__ for c in rep.offending]})
     else:
+        for c in rep.waived:
+            typer.echo(f"{c.requirement} {c.loop}/{c.revision} waived value {c.value} "
+                       f"limit {c.limit} ({c.reason})")
         for c in rep.offending:
             typer.echo(f"{c.requirement} {c.loop}/{c.revision} {c.state} value {c.value} "
                        f"limit {c.limit}" + (f" ({c.reason})" if c.reason else ""))
-        tail = f"; excluded: {', '.join(rep.excluded)}" if rep.excluded else ""
+        tail = (f" ({len(rep.waived)} of them waived, as of {rep.as_of})" if rep.waived
+                else "")
+        tail += f"; excluded: {', '.join(rep.excluded)}" if rep.excluded else ""
         verdict = "holds" if rep.ok else "fails"
         typer.echo(f"gate {verdict}: {rep.passing} of {rep.cells} cell(s) pass on "
                    f"{', '.join(rep.revisions)}" + tail)

@@ -12,7 +12,7 @@ from .common import CAUTION, JSON_OPTION, emit_json, errors_to_exit, open_ledger
 from .output import say, table
 
 __all__ = ["group", "commands", "baseline_create", "baseline_list", "baseline_show", "sign_cmd",
-           "audit_cmd", "parse_revision_arg", "cell_units"]
+           "audit_cmd", "parse_revision_arg", "cell_units", "covered_lines"]
 
 #: mounted as ``loopledger baseline`` by ``ledger/cli/__init__.py``
 group = typer.Typer(help="Baselines: frozen sets of revisions, requirement versions "
@@ -79,6 +79,8 @@ def _show(b, units=None) -> None:
     for so in b.signoffs:
         typer.echo(f"  signed {so.signed_at:%Y-%m-%d %H:%M} UTC by {so.name} ({so.role}): "
                    f"{so.statement}")
+        for line in covered_lines(so):
+            typer.echo(f"    {line}")
     if not b.signoffs:
         typer.echo("  not signed")
     say(CAUTION)
@@ -148,16 +150,39 @@ def sign_cmd(
     name: str = typer.Option(..., "--name", help="Who approves."),
     role: str = typer.Option(..., "--role", help="In what role (e.g. controls lead)."),
     statement: str = typer.Option(..., "--statement", help="What is approved, in words."),
+    accept: List[str] = typer.Option(
+        [], "--accept", metavar="ID@LOOP:LABEL", help="Accept this failing, error, stale or "
+        "unverified cell explicitly (repeatable); listed in the sign-off record."),
+    as_of: Optional[str] = typer.Option(
+        None, "--as-of", metavar="YYYY-MM-DD", help="Judge waiver expiry on this day (today "
+        "or later; default: today, UTC)."),
 ):
     """Sign a baseline: record an approval bound to the SHA-256 of its matrix.  Refused when
-    the ledger's results no longer match the frozen ones."""
+    the ledger's results no longer match the frozen ones, or when a failing, error, stale or
+    unverified cell is neither covered by a live waiver nor named with --accept."""
     from ..signoff import sign_baseline
 
     with open_ledger() as lg:
-        so = sign_baseline(lg, baseline_name, signer=name, role=role, statement=statement)
+        so = sign_baseline(lg, baseline_name, signer=name, role=role, statement=statement,
+                           accept=accept, as_of=as_of)
     typer.echo(f"signed {so.baseline} by {so.name} ({so.role})")
     typer.echo(f"  matrix SHA-256 {so.matrix_hash}")
     typer.echo(f"  chain head before signing {so.chain_head}")
+    for line in covered_lines(so):
+        typer.echo(f"  {line}")
+
+
+def covered_lines(so) -> list[str]:
+    """One line per cell a sign-off accepted explicitly or through a waiver."""
+    out = [f"accepted {c['requirement']} on {c['loop']}/{c['revision']} ({c['verdict']})"
+           for c in so.accepted]
+    for w in so.waivers:
+        until = "; ".join(x for x in (f"until {w['expires_on']}" if w.get("expires_on") else "",
+                                      w.get("condition", "")) if x) or "no expiry"
+        out.append(f"waived {w['requirement']} on {w['loop']}/{w['revision']} ({w['verdict']}) "
+                   f"by waiver {w['waiver']}, {w['approver']} ({w['role']}): {w['reason']} "
+                   f"[{until}]")
+    return out
 
 
 @commands.command("audit")

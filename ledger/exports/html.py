@@ -24,7 +24,7 @@ __all__ = ["export_html", "render_html", "VERDICT_COLOURS"]
 
 #: Background colour of a verdict word in the report (the word is always printed too).
 VERDICT_COLOURS = {"pass": "#c8e6c9", "fail": "#f4b6a6", "error": "#ffe08a",
-                   "stale": "#c5cae9", "unverified": "#e0e0e0"}
+                   "stale": "#c5cae9", "unverified": "#e0e0e0", "waived": "#d9c8f0"}
 
 _CSS = """
 body { font-family: "DejaVu Sans", Arial, sans-serif; font-size: 11pt; color: #1b1b1b;
@@ -42,7 +42,7 @@ td.num { text-align: right; font-variant-numeric: tabular-nums; }
 .v { font-weight: bold; padding: 1px 6px; border-radius: 3px; white-space: nowrap; }
 .v-pass { background: #c8e6c9; } .v-fail { background: #f4b6a6; }
 .v-error { background: #ffe08a; } .v-stale { background: #c5cae9; }
-.v-unverified { background: #e0e0e0; }
+.v-unverified { background: #e0e0e0; } .v-waived { background: #d9c8f0; }
 table.fields th { width: 150px; }
 .figure svg { max-width: 100%; height: auto; }
 .note { color: #7a4b00; font-style: italic; }
@@ -89,16 +89,19 @@ def _first_line(text: str, n: int = 90) -> str:
 
 def _summary(matrix, rows) -> list[str]:
     out = ["<h2>Summary</h2>", "<table><tr><th>Loop</th><th>Revisions</th>"]
-    out += [f"<th>{_verdict(v)}</th>" for v in VERDICT_ORDER] + ["<th>Total</th></tr>"]
+    out += [f"<th>{_verdict(v)}</th>" for v in VERDICT_ORDER + ("waived",)] + \
+        ["<th>Total</th></tr>"]
     for loop in matrix.loops:
         c = verdict_counts(rows, loop)
         labels = ", ".join(col.label for col in matrix.columns if col.loop == loop)
         out.append(f"<tr><td>{_e(loop)}</td><td>{_e(labels)}</td>"
                    + "".join(f'<td class="num">{c[v]}</td>' for v in VERDICT_ORDER)
+                   + f'<td class="num">{c.get("waived", 0)}</td>'
                    + f'<td class="num">{sum(c.values())}</td></tr>')
     c = verdict_counts(rows)
     out.append("<tr><th>All loops</th><th></th>"
                + "".join(f'<th class="num">{c[v]}</th>' for v in VERDICT_ORDER)
+               + f'<th class="num">{c.get("waived", 0)}</th>'
                + f'<th class="num">{sum(c.values())}</th></tr></table>')
     out.append("<h2>Revisions</h2><table><tr><th>Loop</th><th>Revision</th><th>Parent</th>"
                "<th>Author</th><th>Recorded (UTC)</th><th>Rationale</th><th>Controller</th>"
@@ -132,7 +135,7 @@ def _matrix_table(matrix) -> list[str]:
                 cells.append('<td class="note">n/a</td>')
                 continue
             r = e.result
-            cells.append(f"<td>{_verdict(e.verdict)} "
+            cells.append(f"<td>{_verdict(e.state)} "
                          f"{_e(value_text(r.value, r.unit, q.limit_text)) if r else ''}</td>")
         out.append(f"<tr><td><b>{_e(q.key)}</b> v{q.version}<br>{_e(q.title)}</td>"
                    f"<td>{_e(q.limit_text)}<br><span class='meta'>{_e(q.metric)}</span></td>"
@@ -151,6 +154,7 @@ def _fields(entry, row) -> str:
              ("Method", _e(q.method)), ("Status", _e(q.status)),
              ("Metric", _e(q.metric)), ("Limit", _e(q.limit_text)),
              ("Verdict", _verdict(entry.verdict)),
+             ("Waiver", _waiver_html(row)),
              ("Value (worst case)", _e(row.value_shown)
               + (f" <span class='meta'>({_val(row.value, row.unit)})</span>"
                  if row.value is not None and row.value_shown != _val(row.value, row.unit) else "")),
@@ -168,6 +172,17 @@ def _fields(entry, row) -> str:
         pairs.append(("Reason", _e(r.reason)))
     return ("<table class='fields'>" + "".join(f"<tr><th>{k}</th><td>{v}</td></tr>"
                                               for k, v in pairs if v) + "</table>")
+
+
+def _waiver_html(row) -> str:
+    """The waiver covering a cell: id, approver, role, reason, until when ("" when none)."""
+    if row.state != "waived":
+        return ""
+    until = "; ".join(x for x in (f"until {row.waiver_expires}" if row.waiver_expires else "",
+                                  row.waiver_condition) if x) or "no expiry date or condition"
+    return (f"{_e(row.verdict)} accepted by waiver {_e(row.waiver)}, approved by "
+            f"{_e(row.waiver_approver)} ({_e(row.waiver_role)}): {_e(row.waiver_reason)} "
+            f"<span class='meta'>({_e(until)})</span>")
 
 
 def render_html(matrix, lg) -> str:
@@ -213,7 +228,7 @@ def render_html(matrix, lg) -> str:
         out.append(f"<section class='evidence' id='{_e(q.key)}--{_e(entry.loop)}--"
                    f"{_e(entry.revision.label)}'>")
         out.append(f"<h3>{_e(q.key)} v{q.version}: {_e(q.title)} &mdash; {_e(entry.loop)}/"
-                   f"{_e(entry.revision.label)} &mdash; {_verdict(entry.verdict)}</h3>")
+                   f"{_e(entry.revision.label)} &mdash; {_verdict(entry.state)}</h3>")
         out.append(_fields(entry, row))
         if entry.verdict == "stale":
             out.append("<p class='note'>Stale: the result judged an older requirement or plant "

@@ -19,7 +19,9 @@ tip) that is one per (requirement, loop).  ``pass`` has no child, ``fail`` a ``<
 carrying value and limit, ``error`` an ``<error>`` with the reason.  ``stale`` and
 ``unverified`` are failures too (``type="stale"`` / ``"unverified"``), so that a gate turns
 red after a plant or requirement change until ``verify`` has run; ``stale_as_skipped=True``
-writes them as ``<skipped>`` instead (the older behaviour).  ``<testsuites>`` carries no
+writes them as ``<skipped>`` instead (the older behaviour).  A ``fail`` or ``error`` covered
+by a live waiver (state ``waived``) passes, as the gate holds on it, and carries the waiver
+(id, approver, role, reason, expiry or condition) in its ``<system-out>``.  ``<testsuites>`` carries no
 ``skipped`` count (the schema has none there), and property names never repeat across suites
 (some readers merge the properties of every suite into one table).
 """
@@ -80,7 +82,13 @@ def junit_tree(matrix, *, stale_as_skipped: bool = False):
                       f"value {_value_text(r)}, limit {r.limit}, headroom "
                       f"{r.headroom_shown or 'none'}, worst variant "
                       f"{r.worst_variant or 'none'}; raw value {_raw_text(r)}")
-            if r.verdict == "fail":
+            if r.state == "waived":
+                # a waived failure passes the build, as the gate holds on it; the waiver
+                # travels with the case so a reader sees what was accepted and until when
+                out = sub(case, "system-out")
+                out.text = xml_safe(f"waived: {r.verdict} accepted by {_waiver_text(r)}; "
+                                    f"{detail}")
+            elif r.verdict == "fail":
                 n["failures"] += 1
                 msg = (f"value {_value_text(r)} does not meet limit {r.limit}"
                        + (f" ({r.reason})" if r.reason else ""))
@@ -112,6 +120,14 @@ def junit_tree(matrix, *, stale_as_skipped: bool = False):
     root.set("time", "0")
     root.addprevious(etree.Comment(" " + " ".join(matrix.caution.split()) + " "))
     return etree.ElementTree(root)
+
+
+def _waiver_text(r) -> str:
+    """Waiver, approver, role, reason and until when, in words."""
+    until = "; ".join(x for x in (f"until {r.waiver_expires}" if r.waiver_expires else "",
+                                  r.waiver_condition) if x) or "no expiry"
+    return (f"waiver {r.waiver} ({r.waiver_approver}, {r.waiver_role}): {r.waiver_reason} "
+            f"[{until}]")
 
 
 def export_junit(matrix, path, *, stale_as_skipped: bool = False) -> Path:

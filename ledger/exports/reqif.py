@@ -45,6 +45,17 @@ def _stamp(dt) -> str:
     return dt.replace(microsecond=0).isoformat()
 
 
+def _state_text(r) -> str:
+    """``loop/revision: verdict``, or for a waived cell the waiver with its approver, role,
+    reason and until when."""
+    if r.state != "waived":
+        return f"{r.loop}/{r.revision}: {r.verdict}"
+    until = ", ".join(x for x in (f"until {r.waiver_expires}" if r.waiver_expires else "",
+                                  r.waiver_condition) if x) or "no expiry"
+    return (f"{r.loop}/{r.revision}: waived ({r.verdict} accepted by waiver {r.waiver}, "
+            f"{r.waiver_approver} ({r.waiver_role}): {r.waiver_reason}; {until})")
+
+
 def reqif_tree(matrix):
     """The ReqIF document as an lxml element tree."""
     etree = require("lxml.etree")
@@ -66,8 +77,8 @@ def reqif_tree(matrix):
     reqs = sorted(matrix.requirements, key=lambda q: q.key)
     keys = {q.key for q in reqs}
     rows = matrix_rows(matrix)
-    latest = {q.key: "; ".join(f"{r.loop}/{r.revision}: {r.verdict}" for r in rows
-                               if r.requirement == q.key) for q in reqs}
+    latest = {q.key: "; ".join(_state_text(r) for r in rows if r.requirement == q.key)
+              for q in reqs}
 
     root = etree.Element(N + "REQ-IF", nsmap={None: REQIF_NS})
     root.addprevious(etree.Comment(" " + " ".join(matrix.caution.split()) + " "))

@@ -20,7 +20,7 @@ from typing import Callable
 
 from ..fileio import write_atomic  # noqa: F401 - re-exported for the exporters
 from ..errors import ComputeError, UsageError
-from ..judge import MATRIX_VERDICTS, count_verdicts
+from ..judge import MATRIX_VERDICTS
 
 __all__ = ["require", "SCHEMA_VERSION", "JSON_SCHEMA_NAME", "json_schema_path", "COLUMNS", "VERDICT_ORDER", "ExportRow", "matrix_rows",
            "number_text", "parse_number", "write_atomic", "write_xml", "verdict_counts"]
@@ -81,6 +81,14 @@ class ExportRow:
     engine_version : str
     reason : str
         Why a result is an error (or an unstable fail); "" otherwise.
+    state : str
+        What the cell shows: ``verdict``, or ``waived`` for a ``fail`` or ``error`` a live
+        waiver covers (never ``pass``; ``verdict`` keeps the judged verdict).
+    waiver : int or None
+        Id of that waiver (``loopledger waiver list``).
+    waiver_reason, waiver_approver, waiver_role, waiver_expires, waiver_condition : str
+        The waiver's reason, approver and role, last day it counts (``YYYY-MM-DD``) and
+        free-text condition; "" when the cell is not waived (or the waiver has none).
     """
 
     requirement: str
@@ -108,13 +116,20 @@ class ExportRow:
     verified_at: str
     engine_version: str
     reason: str
+    state: str = ""
+    waiver: int | None = None
+    waiver_reason: str = ""
+    waiver_approver: str = ""
+    waiver_role: str = ""
+    waiver_expires: str = ""
+    waiver_condition: str = ""
 
 
 #: Column names, in file order.
 COLUMNS = tuple(f.name for f in fields(ExportRow))
 
 _NUMERIC = {"value", "headroom", "headroom_fraction", "pass_fraction"}
-_INTEGER = {"version", "judged_version", "variants", "plant_version"}
+_INTEGER = {"version", "judged_version", "variants", "plant_version", "waiver"}
 
 
 def _finite_or_inf(x) -> float | None:
@@ -168,13 +183,29 @@ def matrix_rows(matrix) -> list[ExportRow]:
             plant_version=r.plant_version if r else None,
             verified_at=r.created_at.isoformat() if r else "",
             engine_version=r.engine_version if r else "", reason=r.reason if r else "",
+            state=e.state, **_waiver_fields(e.waiver),
         ))
     return out
 
 
+def _waiver_fields(w) -> dict:
+    if w is None:
+        return {}
+    return {"waiver": w.id, "waiver_reason": w.reason, "waiver_approver": w.approver,
+            "waiver_role": w.role, "waiver_expires": w.expires_on or "",
+            "waiver_condition": w.condition}
+
+
 def verdict_counts(rows, loop: str | None = None) -> dict[str, int]:
-    """Number of rows per verdict word (every word of :data:`VERDICT_ORDER` present)."""
-    return count_verdicts((r for r in rows if loop is None or r.loop == loop), VERDICT_ORDER)
+    """Number of rows per shown state: every verdict word of :data:`VERDICT_ORDER` (0 when
+    none), then ``waived`` (a fail or error a live waiver covers, not counted under its
+    verdict) when there are any."""
+    out = {w: 0 for w in VERDICT_ORDER}
+    for r in rows:
+        if loop is None or r.loop == loop:
+            k = r.state or r.verdict
+            out[k] = out.get(k, 0) + 1
+    return out
 
 
 def number_text(x: float | None, *, digits: int = 17) -> str:

@@ -29,6 +29,7 @@ VERDICT_FILLS = {
     "error": "FFE08A",
     "stale": "C5CAE9",
     "unverified": "E0E0E0",
+    "waived": "D9C8F0",   # the state of a fail or error a live waiver covers: soft lilac
 }
 
 _BAD_SHEET_CHARS = re.compile(r"[\[\]:*?/\\]")
@@ -108,7 +109,8 @@ def export_xlsx(matrix, path) -> Path:
     ws["B3"].font = Font(bold=True, color="9C2A00")
     ws["B3"].alignment = Alignment(wrap_text=True, vertical="top")
     ws.row_dimensions[3].height = 45
-    head = ["Loop", "Revisions"] + [v.capitalize() for v in VERDICT_ORDER] + ["Total"]
+    states = VERDICT_ORDER + ("waived",)
+    head = ["Loop", "Revisions"] + [v.capitalize() for v in states] + ["Total"]
     ws.append([])
     ws.append(head)
     for c in ws[5]:
@@ -116,23 +118,24 @@ def export_xlsx(matrix, path) -> Path:
     for loop in matrix.loops:
         counts = verdict_counts(rows, loop)
         labels = ", ".join(c.label for c in matrix.columns if c.loop == loop)
-        ws.append([cell_safe(loop), cell_safe(labels)] + [counts[v] for v in VERDICT_ORDER]
+        ws.append([cell_safe(loop), cell_safe(labels)] + [counts.get(v, 0) for v in states]
                   + [sum(counts.values())])
     total = verdict_counts(rows)
-    ws.append(["All loops", ""] + [total[v] for v in VERDICT_ORDER] + [sum(total.values())])
+    ws.append(["All loops", ""] + [total.get(v, 0) for v in states] + [sum(total.values())])
     for c in ws[ws.max_row]:
         c.font = bold
     # colour the verdict header cells with the same palette, word kept in the cell
-    for j, v in enumerate(VERDICT_ORDER):
+    for j, v in enumerate(states):
         ws.cell(row=5, column=3 + j).fill = PatternFill("solid", fgColor=VERDICT_FILLS[v])
     ws.column_dimensions["A"].width = 18
     ws.column_dimensions["B"].width = 60
-    for j in range(len(VERDICT_ORDER) + 1):
+    for j in range(len(states) + 1):
         ws.column_dimensions[get_column_letter(3 + j)].width = 12
-    _print_setup(ws, 3 + len(VERDICT_ORDER))
+    _print_setup(ws, 3 + len(states))
 
     taken: set[str] = set()
     vcol = COLUMNS.index("verdict") + 1
+    scol = COLUMNS.index("state") + 1
     for loop in matrix.loops:
         sh = wb.create_sheet(sheet_name(loop, taken))
         sh.append(list(COLUMNS))
@@ -150,6 +153,9 @@ def export_xlsx(matrix, path) -> Path:
             sh.cell(row=sh.max_row, column=tcol).number_format = "yyyy-mm-dd hh:mm:ss"
             cell = sh.cell(row=sh.max_row, column=vcol)
             cell.fill = PatternFill("solid", fgColor=VERDICT_FILLS.get(r.verdict, "FFFFFF"))
+            cell.font = bold
+            cell = sh.cell(row=sh.max_row, column=scol)
+            cell.fill = PatternFill("solid", fgColor=VERDICT_FILLS.get(r.state, "FFFFFF"))
             cell.font = bold
         sh.freeze_panes = "A2"
         sh.auto_filter.ref = f"A1:{get_column_letter(len(COLUMNS))}{max(sh.max_row, 1)}"

@@ -14,7 +14,7 @@ from datetime import datetime, timezone
 from typing import Iterable, Sequence
 
 from ..judge import count_verdicts
-from ..records import RequirementInfo, ResultInfo, RevisionInfo
+from ..records import RequirementInfo, ResultInfo, RevisionInfo, WaiverInfo
 
 __all__ = ["CAUTION", "MatrixEntry", "Matrix", "build_matrix"]
 
@@ -30,11 +30,20 @@ class MatrixEntry:
     loop: str
     revision: RevisionInfo
     result: ResultInfo | None
+    #: the live waiver covering a ``fail`` or ``error`` verdict here (``ledger.waivers``)
+    waiver: WaiverInfo | None = None
 
     @property
     def verdict(self) -> str:
-        """``pass``, ``fail``, ``error``, ``stale`` or ``unverified``."""
+        """``pass``, ``fail``, ``error``, ``stale`` or ``unverified`` (the judged verdict,
+        whether waived or not)."""
         return self.result.verdict if self.result is not None else "unverified"
+
+    @property
+    def state(self) -> str:
+        """What the cell shows: its verdict, or ``waived`` for a failure (or error) a live
+        waiver covers (never ``pass``)."""
+        return "waived" if self.waiver is not None else self.verdict
 
 
 @dataclass(frozen=True)
@@ -68,7 +77,15 @@ class Matrix:
         return None
 
     def counts(self) -> dict[str, int]:
+        """Cells per verdict (a waived cell counts under its judged verdict)."""
         return count_verdicts(self.entries, ())
+
+    def state_counts(self) -> dict[str, int]:
+        """Cells per shown state (``waived`` counted apart)."""
+        out: dict[str, int] = {}
+        for e in self.entries:
+            out[e.state] = out.get(e.state, 0) + 1
+        return out
 
     @property
     def loops(self) -> tuple[str, ...]:
@@ -80,7 +97,8 @@ class Matrix:
 
 
 def build_matrix(lg, selection: str | Sequence[tuple[str, str]] = "tips", *,
-                 loop: str | None = None, title: str = "Verification matrix") -> Matrix:
+                 loop: str | None = None, title: str = "Verification matrix",
+                 as_of=None) -> Matrix:
     """Build the matrix for a selection of revisions.
 
     Parameters
@@ -90,7 +108,12 @@ def build_matrix(lg, selection: str | Sequence[tuple[str, str]] = "tips", *,
         Which revisions become columns: each loop's tip, every revision, or the named ones.
     loop : str, optional
         Restrict to one loop.
+    as_of : date or ``YYYY-MM-DD``, optional
+        The day waivers are judged on (default today, UTC): an expired or withdrawn waiver
+        covers nothing.
     """
+    from ..waivers import WaiverIndex
+
     loops = [l.name for l in lg.loops() if loop is None or l.name == loop]
     columns: list[RevisionInfo] = []
     if selection == "tips":
@@ -117,11 +140,15 @@ def build_matrix(lg, selection: str | Sequence[tuple[str, str]] = "tips", *,
         by_loop.setdefault(col.loop, []).append(col.label)
     fetched = {(lname, label): res for lname, labels in by_loop.items()
                for label, res in lg.results_many(lname, labels).items()}
+    waived = WaiverIndex(lg.waivers() if columns else (), as_of)
     entries = []
     for col in columns:
         results = {r.requirement: r for r in fetched[(col.loop, col.label)]}
         for r in reqs:
             if r.metric and col.loop in r.loops:
-                entries.append(MatrixEntry(r, col.loop, col, results.get(r.key)))
+                res = results.get(r.key)
+                e = MatrixEntry(r, col.loop, col, res)
+                w = waived.cover(r.key, col.loop, col.label, e.verdict)
+                entries.append(e if w is None else MatrixEntry(r, col.loop, col, res, w))
     return Matrix(requirements=reqs, columns=tuple(columns), entries=tuple(entries),
                   generated_at=datetime.now(timezone.utc), title=title)

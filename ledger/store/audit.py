@@ -43,6 +43,8 @@ from .models import (
     ResultBatch,
     Revision,
     Signoff,
+    Waiver,
+    WaiverWithdrawal,
 )
 
 __all__ = ["PROBLEMS", "COVERED", "Finding", "Checker"]
@@ -130,6 +132,15 @@ class Checker:
                 "result_batch": {i: f"results of {revs.get(r, '?')}" for i, r in s.execute(
                     select(ResultBatch.id, ResultBatch.revision_id))},
             }
+            bases = self._labels["baseline"]
+            self._labels["waiver"] = {
+                i: f"{reqs.get(q, '?')} on " + (revs.get(r, '?') if r is not None
+                                                else f"baseline {bases.get(b, '?')}")
+                for i, q, r, b in s.execute(select(Waiver.id, Waiver.requirement_id,
+                                                   Waiver.revision_id, Waiver.baseline_id))}
+            self._labels["waiver_withdrawal"] = {
+                i: f"of waiver {w}" for i, w in s.execute(
+                    select(WaiverWithdrawal.id, WaiverWithdrawal.waiver_id))}
             self._labels["signoff"] = {i: f"{n}, baseline {self._labels['baseline'].get(b, '?')}"
                                        for i, n, b in s.execute(select(Signoff.id, Signoff.name,
                                                                        Signoff.baseline_id))}

@@ -156,11 +156,13 @@ def write_baseline(s: Session, name: str, *, existing: Baseline | None,
 
 
 def add_signoff(s: Session, b: Baseline, *, signer: str, role: str, statement: str,
-                author: str) -> SignoffInfo:
-    """Insert a sign-off of ``b`` bound to its matrix hash and the chain head, and chain it."""
+                author: str, accepted_json: str = "") -> SignoffInfo:
+    """Insert a sign-off of ``b`` bound to its matrix hash and the chain head, and chain it.
+    ``accepted_json`` (canonical JSON of the cells accepted explicitly and the waivers relied
+    on, ``""`` for none) enters the sign-off's record hash."""
     row = Signoff(baseline_id=b.id, name=signer.strip(), role=role.strip(),
                   statement=statement.strip(), author=author, matrix_hash=b.matrix_hash,
-                  chain_head=chain_head(s), signed_at=now())
+                  chain_head=chain_head(s), signed_at=now(), accepted_json=accepted_json)
     s.add(row)
     s.flush()
     append_link(s, "signoff", row)
@@ -177,9 +179,12 @@ def _num(x) -> float | None:
 
 
 def signoff_info(r: Signoff, baseline_name: str) -> SignoffInfo:
+    extra = json.loads(r.accepted_json) if r.accepted_json else {}
     return SignoffInfo(baseline=baseline_name, name=r.name, role=r.role, statement=r.statement,
                        author=r.author, matrix_hash=r.matrix_hash, chain_head=r.chain_head,
-                       signed_at=utc(r.signed_at))
+                       signed_at=utc(r.signed_at),
+                       accepted=tuple(extra.get("accepted", ())),
+                       waivers=tuple(extra.get("waivers", ())))
 
 
 def info(s: Session, b: Baseline) -> BaselineInfo:

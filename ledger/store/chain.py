@@ -1,7 +1,8 @@
 """The append-only hash chain over the ledger's records, and the content hashes of results.
 
 Every plant, plant version, loop, requirement, requirement version (with its trace parents and
-loops), revision, result batch, baseline (with its frozen entries) and sign-off gets one link,
+loops), revision, result batch, baseline (with its frozen entries), sign-off, loop spectrum,
+waiver and waiver withdrawal gets one link,
 appended in the same transaction as the record:
 
 * ``record_hash`` = SHA-256 of the record's canonical content (:func:`record_content`): the
@@ -59,6 +60,8 @@ from .models import (
     ResultBatch,
     Revision,
     Signoff,
+    Waiver,
+    WaiverWithdrawal,
 )
 
 __all__ = [
@@ -109,14 +112,20 @@ HASHED_FIELDS: dict[str, tuple[str, ...]] = {
     "loop_spectrum": ("id", "loop_id", "source", "kind", "shaping_text", "intensity",
                       "table_json", "unit_text", "frequency_unit", "label", "content_hash",
                       "author", "created_at"),
+    "waiver": ("id", "requirement_id", "revision_id", "baseline_id", "reason", "approver", "role",
+               "expires_on", "condition", "author", "created_at"),
+    "waiver_withdrawal": ("id", "waiver_id", "reason", "approver", "role", "author",
+                          "created_at"),
 }
 
-#: Columns added after the chain existed (migration 0008): they enter a record's content only
+#: Columns added after the chain existed (migrations 0008, 0010): they enter a record's content only
 #: when they differ from the default given here, so every link made before stays valid.
 OPTIONAL_HASHED_FIELDS: dict[str, dict[str, Any]] = {
     "loop": {"rate_limit": None},
     "revision": {"prefilter_text": "", "prefilter_canonical": "", "anti_windup": "none",
                  "anti_windup_gain": None},
+    # migration 0010: what a sign-off accepted explicitly and the waivers it relied on
+    "signoff": {"accepted_json": ""},
 }
 
 _TABLES = {
@@ -130,6 +139,8 @@ _TABLES = {
     "baseline": Baseline.__table__,
     "signoff": Signoff.__table__,
     "loop_spectrum": LoopSpectrum.__table__,
+    "waiver": Waiver.__table__,
+    "waiver_withdrawal": WaiverWithdrawal.__table__,
 }
 
 #: Record kinds that carry chain links, in the order the audit reports them.

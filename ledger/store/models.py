@@ -347,6 +347,9 @@ class Signoff(Base):
     matrix_hash: Mapped[str] = mapped_column(String(64))
     chain_head: Mapped[str] = mapped_column(String(64))
     signed_at: Mapped[datetime] = mapped_column(DateTime(timezone=True))
+    #: canonical JSON of the cells accepted explicitly and the waivers that covered cells at
+    #: signing (migration 0010; ``""`` for sign-offs before it, and when nothing was covered)
+    accepted_json: Mapped[str] = mapped_column(Text, default="", server_default=text("''"))
 
 
 class ChainLink(Base):
@@ -403,7 +406,7 @@ TEXT_FIELDS = (
 )
 
 
-def _install_text_checks() -> None:
+def _install_text_checks(fields=TEXT_FIELDS) -> None:
     """Refuse control characters when a record's text attribute is set (constructor or
     assignment), so the API, the CLI, spec import and the UI share one check; values loaded
     from the database are not checked (exports make those safe, ledger/text.py)."""
@@ -416,7 +419,7 @@ def _install_text_checks() -> None:
             return check(what, value)
         return on_set
 
-    for cls, kind, lines, blocks, jsons in TEXT_FIELDS:
+    for cls, kind, lines, blocks, jsons in fields:
         for group, check in ((lines, check_line), (blocks, check_block),
                              (jsons, check_json_strings)):
             for name in group:
@@ -455,3 +458,60 @@ class LoopSpectrum(Base):
     content_hash: Mapped[str] = mapped_column(String(64))
     author: Mapped[str] = mapped_column(String(120))
     created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True))
+
+
+# -- waivers (migration 0010) ---------------------------------------------------------------
+__all__ += ["Waiver", "WaiverWithdrawal"]
+
+
+class Waiver(Base):
+    """An approved, recorded deviation (migration 0010): a failing (or error) verdict of one
+    requirement accepted on one revision, or on every revision a baseline freezes, with the
+    reason, who approved it in what role, and until when (``expires_on``, an ISO date
+    ``YYYY-MM-DD``, the last day it counts) or on what condition (free text).  Append-only and
+    chained as kind ``waiver``; a withdrawal is a :class:`WaiverWithdrawal` row, never an edit."""
+
+    __tablename__ = "waiver"
+    __table_args__ = (
+        CheckConstraint("(revision_id IS NULL) <> (baseline_id IS NULL)",
+                        name="waiver_one_scope"),
+    )
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    requirement_id: Mapped[int] = mapped_column(
+        ForeignKey("requirement.id", ondelete="RESTRICT"), index=True)
+    revision_id: Mapped[int | None] = mapped_column(
+        ForeignKey("revision.id", ondelete="RESTRICT"), nullable=True, index=True)
+    baseline_id: Mapped[int | None] = mapped_column(
+        ForeignKey("baseline.id", ondelete="RESTRICT"), nullable=True, index=True)
+    reason: Mapped[str] = mapped_column(Text)
+    approver: Mapped[str] = mapped_column(String(120))
+    role: Mapped[str] = mapped_column(String(120))
+    expires_on: Mapped[str | None] = mapped_column(String(10), nullable=True)
+    condition: Mapped[str] = mapped_column(Text, default="")
+    author: Mapped[str] = mapped_column(String(120), default="")
+    created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True))
+
+
+class WaiverWithdrawal(Base):
+    """The withdrawal of a waiver (migration 0010): who withdrew it and why; at most one per
+    waiver.  Chained as kind ``waiver_withdrawal``."""
+
+    __tablename__ = "waiver_withdrawal"
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    waiver_id: Mapped[int] = mapped_column(
+        ForeignKey("waiver.id", ondelete="RESTRICT"), unique=True)
+    reason: Mapped[str] = mapped_column(Text)
+    approver: Mapped[str] = mapped_column(String(120))
+    role: Mapped[str] = mapped_column(String(120))
+    author: Mapped[str] = mapped_column(String(120), default="")
+    created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True))
+
+
+_WAIVER_TEXT = (
+    (Waiver, "waiver", ("approver", "role", "author", "expires_on"), ("reason", "condition"), ()),
+    (WaiverWithdrawal, "waiver withdrawal", ("approver", "role", "author"), ("reason",), ()),
+)
+TEXT_FIELDS += _WAIVER_TEXT
+_install_text_checks(_WAIVER_TEXT)

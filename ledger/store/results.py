@@ -211,5 +211,6 @@ def counts(s: Session) -> dict[str, int]:
         t.__tablename__: s.scalar(select(func.count()).select_from(t))
         for t in (m.Plant, m.PlantVersion, m.Loop, m.Revision, m.Requirement,
                   m.RequirementVersion, m.RequirementParent, m.RequirementLoop,
-                  m.Result, m.MetricValue)
+                  m.Result, m.MetricValue, m.Baseline, m.Signoff, m.Waiver,
+                  m.WaiverWithdrawal, m.ChainLink)
     }

@@ -11,7 +11,7 @@ from typing import Sequence
 
 from sqlalchemy.orm import Session
 
-from . import loops, plants, requirements, results, revisions
+from . import loops, plants, requirements, results, revisions, waivers
 
 __all__ = ["SessionView"]
 
@@ -43,3 +43,6 @@ class SessionView:
 
     def results_many(self, loop: str, labels: Sequence[str], **kw):
         return results.of_revisions(self.session, loop, labels, **kw)
+
+    def waivers(self, requirement: str | None = None):
+        return waivers.all_waivers(self.session, requirement=requirement)

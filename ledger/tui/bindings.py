@@ -7,7 +7,8 @@ from __future__ import annotations
 
 from textual.binding import Binding
 
-__all__ = ["key_display", "APP", "MATRIX", "REQUIREMENT", "DIFF", "PLOTS", "FORM", "HELP", "ALL"]
+__all__ = ["key_display", "APP", "MATRIX", "REQUIREMENT", "DIFF", "PLOTS", "FORM", "WAIVER_FORM",
+           "HELP", "ALL"]
 
 _DISPLAY = {"question_mark": "?", "slash": "/", "escape": "esc"}
 
@@ -36,6 +37,7 @@ MATRIX = [
     Binding("s", "cycle_status", "Status filter"),
     Binding("l", "cycle_loop", "Loop filter"),
     Binding("t", "toggle_tips", "Tips only / all revisions"),
+    Binding("w", "waive", "Waive the failure under the cursor", show=False),
     Binding("enter", "open_requirement", "Requirement detail", show=False),
     Binding("escape", "focus_table", "Back to table", show=False),
 ]
@@ -43,6 +45,7 @@ MATRIX = [
 REQUIREMENT = [
     Binding("n", "step(1)", "Next requirement"),
     Binding("p", "step(-1)", "Previous requirement"),
+    Binding("w", "waive", "Waive its failure on the selected revision"),
 ]
 
 DIFF = [
@@ -60,6 +63,11 @@ FORM = [
     Binding("ctrl+t", "preview", "Preview regressions (records nothing)"),
 ]
 
+WAIVER_FORM = [
+    Binding("escape", "cancel", "Cancel"),
+    Binding("ctrl+s", "submit", "Record the waiver"),
+]
+
 HELP = [
     Binding("escape,q,question_mark", "close", "Close help"),
 ]
@@ -72,6 +80,7 @@ ALL = [
     ("Diff", DIFF),
     ("Plots", PLOTS),
     ("Add-revision form", FORM),
+    ("Waiver form", WAIVER_FORM),
     ("Help", HELP),
 ]
 

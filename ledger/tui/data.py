@@ -81,6 +81,7 @@ class MatrixData:
     ``cells[(key, loop, label)]`` is the :class:`ResultInfo` or ``None`` (never verified);
     a missing key means the requirement does not apply to that column's loop (n/a).
     ``broke`` holds the cells that fail where the column's parent revision passed.
+    ``waivers`` holds the live waiver of each waived cell.
     """
 
     rows: tuple
@@ -89,6 +90,8 @@ class MatrixData:
     broke: frozenset
     loops: tuple
     caution: str
+    #: ``(key, loop, label)`` -> the live waiver covering that cell's fail or error
+    waivers: dict = field(default_factory=dict)
 
 
 def _group_order(reqs: list[RequirementInfo], loops: list[str]) -> list[RequirementInfo]:
@@ -120,7 +123,9 @@ def load_matrix(lg, loop: str | None = None, *, tips_only: bool = False) -> Matr
             broke.add((key, lname, label))
     return MatrixData(rows=tuple(_group_order(reqs, [l.name for l in lg.loops()])),
                       columns=tuple(m.columns), cells=cells, broke=frozenset(broke),
-                      loops=tuple(l.name for l in lg.loops()), caution=m.caution)
+                      loops=tuple(l.name for l in lg.loops()), caution=m.caution,
+                      waivers={(e.requirement.key, e.loop, e.revision.label): e.waiver
+                               for e in m.entries if e.waiver is not None})
 
 
 @dataclass(frozen=True)
@@ -140,6 +145,7 @@ class RequirementData:
     children: tuple
     trend: tuple  # of (loop, RevisionInfo, ResultInfo | None), revisions in recorded order
     keys: tuple   # every requirement ID (for next/previous)
+    waivers: tuple = ()  # every waiver of it (WaiverInfo), withdrawn and expired included
 
 
 def _tip_verdicts(lg, req: RequirementInfo) -> tuple:
@@ -174,4 +180,4 @@ def load_requirement(lg, key: str | None) -> RequirementData | None:
             res = {r.requirement: r for r in lg.results(lname, rev.label)}.get(key)
             trend.append((lname, rev, res))
     return RequirementData(req, tuple(lg.requirement_history(key)), parents, children,
-                           tuple(trend), tuple(by_key))
+                           tuple(trend), tuple(by_key), tuple(lg.waivers(key)))

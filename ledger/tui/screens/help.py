@@ -26,7 +26,8 @@ def help_text() -> Text:
     t.append("Inside lists and tables\n", style="bold underline")
     for keys, what in bindings.WIDGET_KEYS:
         t.append(f"  {keys:<28} {what}\n")
-    t.append("\nVerdicts: ✓ pass  ✗ fail  ! error  ~ stale  ? unverified  · n/a\n")
+    t.append("\nVerdicts: ✓ pass  ✗ fail  ! error  ~ stale  ? unverified  · n/a  "
+             "W waived (a fail or error a live waiver covers)\n")
     t.append(f"\nCaution: {CAUTION}\n", style="italic")
     return t
 

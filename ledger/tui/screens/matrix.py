@@ -115,7 +115,7 @@ class MatrixScreen(ViewScreen):
         self.query_one(DataTable).focus()
         self.query_one("#matrix-legend", Static).update(Text(
             "✓ pass  ✗ fail  ! error  ~ stale (older requirement, plant or engine)  ? unverified  "
-            "· n/a  BROKE: failed where the parent passed; values in the limit's unit\n", style="dim").append("Caution: " + CAUTION, style="italic"))
+            "W waived (w: waive)  · n/a  BROKE: failed where the parent passed; values in the limit's unit\n", style="dim").append("Caution: " + CAUTION, style="italic"))
 
     def fetch(self):
         return load_matrix(self.app.lg, self.loop_filter, tips_only=self.tips_only)
@@ -166,7 +166,8 @@ class MatrixScreen(ViewScreen):
                 applies = (r.key, c.loop, c.label) in d.cells
                 res = d.cells.get((r.key, c.loop, c.label))
                 cells.append(cell_text(res, applies=applies,
-                                       broke=(r.key, c.loop, c.label) in d.broke))
+                                       broke=(r.key, c.loop, c.label) in d.broke,
+                                       waiver=d.waivers.get((r.key, c.loop, c.label))))
             grid.append(cells)
         # a column header names its loop only where the loop changes (and on the first
         # column shown, below): "gantry-x/r3", "r4", "r5", ... keeps the columns narrow
@@ -290,7 +291,8 @@ class MatrixScreen(ViewScreen):
         if d is not None and sel and sel[1]:
             k = (sel[0], sel[1], sel[2])
             line = detail_text(sel[0], f"{sel[1]}/{sel[2]}", d.cells.get(k),
-                               broke=k in d.broke, applies=k in d.cells)
+                               broke=k in d.broke, applies=k in d.cells,
+                               waiver=d.waivers.get(k))
         elif sel:
             line = Text(f"{sel[0]}: move right onto a revision for its result", style="dim")
         self.query_one("#matrix-detail", Static).update(line)
@@ -305,3 +307,24 @@ class MatrixScreen(ViewScreen):
             self.app.action_view("requirement")
 
 
+
+    def action_waive(self) -> None:
+        """Open the waiver form for the cell under the cursor (a fail or error)."""
+        sel = self.selected()
+        if not sel or not sel[1] or self._data is None:
+            self.notify("move onto a revision's cell to waive it", severity="warning")
+            return
+        k = (sel[0], sel[1], sel[2])
+        if k not in self._data.cells:
+            self.notify(f"{sel[0]} does not apply to loop {sel[1]}", severity="warning")
+            return
+        res = self._data.cells[k]
+        verdict = res.verdict if res is not None else "unverified"
+        from .waiver_form import WaiverForm
+
+        def done(number) -> None:
+            if number is not None:
+                self.notify(f"waiver {number} recorded for {sel[0]} on {sel[1]}/{sel[2]}")
+                self.reload()
+
+        self.app.push_screen(WaiverForm(*k, verdict=verdict), done)

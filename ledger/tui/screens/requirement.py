@@ -12,7 +12,8 @@ from textual_plotext import PlotextPlot
 
 from .. import bindings
 from ..data import load_requirement
-from ..widgets.verdict import SYMBOL, STYLE, fmt_value, verdict_text
+from ...waivers import today
+from ..widgets.verdict import SYMBOL, STYLE, fmt_value, verdict_text, waiver_text
 from .base import ViewScreen
 
 __all__ = ["RequirementScreen"]
@@ -46,6 +47,38 @@ class RequirementScreen(ViewScreen):
         i = keys.index(self._data.requirement.key)
         self.app.current_req = keys[(i + step) % len(keys)]
         self.reload()
+
+    def action_waive(self) -> None:
+        """Open the waiver form for this requirement on the selected revision (or the tip
+        of the first loop it applies to)."""
+        if self._data is None or not self._data.requirement.metric:
+            self.notify("this requirement has no metric, so no verdict to waive",
+                        severity="warning")
+            return
+        r = self._data.requirement
+        loop, label = self.app.selection
+        if loop not in r.loops:
+            loop = r.loops[0] if r.loops else None
+            label = None
+        if loop is None:
+            self.notify(f"{r.key} applies to no loop", severity="warning")
+            return
+        if label is None:
+            label = self.app.lg.loop(loop).tip
+        if label is None:
+            self.notify(f"loop {loop} has no revision yet", severity="warning")
+            return
+        res = next((x for lname, rev, x in self._data.trend
+                    if lname == loop and rev.label == label), None)
+        from .waiver_form import WaiverForm
+
+        def done(number) -> None:
+            if number is not None:
+                self.notify(f"waiver {number} recorded for {r.key} on {loop}/{label}")
+                self.reload()
+
+        self.app.push_screen(WaiverForm(r.key, loop, label,
+                                        verdict=res.verdict if res else "unverified"), done)
 
     def present(self, data) -> None:
         self._data = data
@@ -85,6 +118,16 @@ class RequirementScreen(ViewScreen):
             t.append(f"  {lname}/{rev.label:<6} ")
             t.append(f"{SYMBOL.get(v, '?')} {v:<10}", style=STYLE.get(v, ""))
             t.append(f" {fmt_value(res.value, res.unit, res.limit_text) if res else '-'}\n")
+        t.append("\nwaivers (w: waive a failure on the selected revision)\n",
+                 style="bold underline")
+        day = today()
+        if not data.waivers:
+            t.append("  -\n")
+        for w in data.waivers:
+            st = w.status(day)
+            t.append(f"  {w.scope:<12} ")
+            t.append(f"{st:<9}", style=STYLE["waived"] if st == "live" else "dim")
+            t.append(f" {waiver_text(w)}\n")
         t.append("\nversions\n", style="bold underline")
         for h in data.history:
             t.append(f"  v{h.version} {h.created_at:%Y-%m-%d} {h.author}: {h.metric or '-'} "

@@ -7,11 +7,12 @@ import math
 from rich.text import Text
 
 __all__ = ["SYMBOL", "STYLE", "fmt_value", "verdict_text", "cell_text", "detail_text",
-           "counts_text"]
+           "counts_text", "waiver_text"]
 
-SYMBOL = {"pass": "✓", "fail": "✗", "error": "!", "stale": "~", "unverified": "?", "n/a": "·"}
+SYMBOL = {"pass": "✓", "fail": "✗", "error": "!", "stale": "~", "unverified": "?", "n/a": "·",
+          "waived": "W"}
 STYLE = {"pass": "green", "fail": "bold red", "error": "bold magenta", "stale": "yellow dim",
-         "unverified": "dim", "n/a": "dim"}
+         "unverified": "dim", "n/a": "dim", "waived": "bold cyan"}
 
 
 def fmt_value(value, unit: str = "", limit_text: str = "") -> str:
@@ -39,7 +40,12 @@ def _headroom_bar(fraction) -> str:
     return "-" if fraction > -0.2 else "--"
 
 
-def cell_text(result, *, broke: bool = False, applies: bool = True) -> Text:
+def waiver_text(w) -> str:
+    """A waiver in one line: number, approver, role, reason, until when."""
+    return f"waiver {w.id} by {w.approver} ({w.role}), {w.until()}: {w.reason}"
+
+
+def cell_text(result, *, broke: bool = False, applies: bool = True, waiver=None) -> Text:
     """One matrix cell, narrow: symbol and the value's number in the limit's unit (the row
     shows the limit, hence the unit; ``BROKE`` after it when the requirement broke here).
     Verdict word, unit, headroom and worst variant are in the detail line under the table
@@ -51,7 +57,8 @@ def cell_text(result, *, broke: bool = False, applies: bool = True) -> Text:
     if result is None:
         return Text("?", style=STYLE["unverified"])
     v = result.verdict
-    t = Text(SYMBOL.get(v, "?"), style=STYLE.get(v, ""))
+    shown = "waived" if waiver is not None else v  # a waived failure: its own symbol
+    t = Text(SYMBOL.get(shown, "?"), style=STYLE.get(shown, ""))
     if v in ("pass", "fail", "stale") and result.value is not None:
         t.append(f" {value_number(result.value, result.unit, result.limit_text)}")
     elif v == "error":
@@ -62,7 +69,7 @@ def cell_text(result, *, broke: bool = False, applies: bool = True) -> Text:
 
 
 def detail_text(key: str, where: str, result, *, broke: bool = False,
-                applies: bool = True) -> Text:
+                applies: bool = True, waiver=None) -> Text:
     """The detail line of the cell under the cursor: verdict, value, limit, headroom (in the
     limit's unit, with the gauge), worst variant, pass fraction, reason."""
     from ...display import headroom_text
@@ -72,7 +79,11 @@ def detail_text(key: str, where: str, result, *, broke: bool = False,
         return t.append("does not apply (n/a)", style=STYLE["n/a"])
     if result is None:
         return t.append("unverified: run verify", style=STYLE["unverified"])
-    t.append_text(verdict_text(result.verdict))
+    if waiver is not None:
+        t.append_text(verdict_text("waived"))
+        t.append(f" ({result.verdict}, {waiver_text(waiver)})", style=STYLE["waived"])
+    else:
+        t.append_text(verdict_text(result.verdict))
     if broke:
         t.append(" BROKE (the parent revision passed)", style="bold red")
     if result.value is not None:
