@@ -70,6 +70,12 @@ def summary(d) -> str:
         return d.note
     top = next((e for e in d.effects if e.magnitude > 0 and not _no_effect(e)), None)
     if top is None:
+        stepped = [e for e in d.effects if e.status == "steps"]
+        if stepped:
+            e = max(stepped, key=lambda x: abs(x.across or 0.0))
+            return (f"flat at the worst variant (the value moves in steps); across its band "
+                    f"{e.parameter} moves it most: {_value(d, e.value_low)} at its low end, "
+                    f"{_value(d, e.value_high)} at its high end")
         return "no toleranced parameter moves the worst value measurably at the worst variant"
     if top.status == "smooth":
         how = f"{_change(d, top.per_width)} per tolerance width"

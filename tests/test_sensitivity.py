@@ -292,3 +292,53 @@ def test_cli_results_why(tmp_path, monkeypatch, second_order):
         assert bad.exit_code == 1 and bad.output.startswith("error: ") and words in bad.output
         assert len(bad.output.strip().splitlines()) == 1
     assert second_order.counts() == before                     # computed, stored nowhere
+
+
+# -- the terminal UI and the HTML evidence ---------------------------------------------------------
+async def test_requirement_view_shows_what_drives_the_worst_value(second_order):
+    from textual.widgets import Static
+    from textual.worker import WorkerCancelled
+
+    from ledger.tui.app import LedgerApp
+
+    async def settle(pilot):
+        for _ in range(4):
+            await pilot.pause()
+            try:
+                await pilot.app.workers.wait_for_complete()
+            except WorkerCancelled:
+                continue
+            await pilot.pause()
+
+    app = LedgerApp(ledger=second_order)
+    app.current_req = "OS-1"
+    async with app.run_test(size=(140, 60)) as pilot:
+        await settle(pilot)
+        await pilot.press("3")
+        await settle(pilot)
+        scr = app.screen
+        text = str(scr.query_one("#req-drivers", Static).render())
+        assert "what drives the worst value" in text
+        assert "OS-1 v1 (overshoot <= 30 %) on pos/r1" in text
+        assert "worst corner: K high, tau high" in text and "drives it most" in text
+        assert "hardware testing" in text                         # the caution
+        # next requirement: its own drivers, not the previous one's
+        await pilot.press("n")
+        await settle(pilot)
+        text = str(scr.query_one("#req-drivers", Static).render())
+        assert scr._data.requirement.key == "PM-1"
+        assert "PM-1 v1 (phase_margin >= 30 deg)" in text and "OS-1" not in text
+
+
+def test_html_evidence_carries_the_drivers(second_order, tmp_path):
+    from ledger.exports import export_matrix
+    from ledger.history.matrix import build_matrix
+
+    before = second_order.counts()
+    path = export_matrix(build_matrix(second_order, "tips"), tmp_path / "m.html",
+                         ledger=second_order)
+    page = path.read_text()
+    assert page.count("What drives the worst value</h4>") == 2     # one per entry
+    assert "worst corner: K high, tau high" in page
+    assert "value change per tolerance width" in page and "hardware testing" in page
+    assert second_order.counts() == before
