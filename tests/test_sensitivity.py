@@ -342,3 +342,47 @@ def test_html_evidence_carries_the_drivers(second_order, tmp_path):
     assert "worst corner: K high, tau high" in page
     assert "value change per tolerance width" in page and "hardware testing" in page
     assert second_order.counts() == before
+
+
+def test_a_verdict_flip_within_the_stencil_is_said(tmp_path):
+    # the limit put between the worst value and its value two steps inwards (closed-form
+    # overshoot at K = 2.4 and K = 2.4 - 2 x 0.008, tau = 0.5): the slope is still smooth, and
+    # the view says that the verdict flips there
+    hi, lo = float(overshoot_pct(2.4, 0.5)), float(overshoot_pct(2.4 - 0.016, 0.5))
+    limit = (hi + lo) / 2
+    lg = _second_order_ledger(tmp_path / "flip.db", {"nominal": 2.0, "tol": "20 %"}, 0.5,
+                              [("OS-1", "overshoot", f"<= {limit:.12g} %")])
+    d = worst_case_drivers(lg, "pos")[0]
+    assert d.verdict == "fail"
+    e = d.effects[0]
+    assert e.status == "smooth" and "verdict flips" in e.note
+    _check_slope(e, float(d_overshoot(2.4, 0.5, "K")), 0.8)
+    lg.close()
+
+
+def test_fidelity_worst_variant_is_perturbed_in_its_own_model(tmp_path):
+    # The full-order model (an extra lag te) is evaluated at the nominal parameters only; its
+    # phase margin is the worst.  Its band ends must be the full-order model's margins at K low
+    # and high, checked against python-control's stability_margins (a general-purpose
+    # reference; phase margin of a continuous transfer function, by polynomial roots).
+    import control
+
+    lg = open_ledger(tmp_path / "fid.db", create=True, author="tester")
+    lg.add_plant("p", "K/(s*(tau*s+1))", params={"K": {"nominal": 2.0, "tol": "20 %"},
+                                                  "tau": 0.5, "te": 0.3},
+                 fidelity={"full": "K/(s*(tau*s+1)*(te*s+1))"})
+    lg.add_loop("pos", "p")
+    lg.add_requirement("PM-1", title="pm", statement="pm", metric="phase_margin",
+                       limit=">= 20 deg", loops=["pos"], status="approved")
+    lg.add_revision("pos", "gain(1)", rationale="unity feedback")
+    d = worst_case_drivers(lg, "pos")[0]
+    assert d.worst_variant == "fidelity:full" and d.variant_kind == "fidelity"
+    e = d.effects[0]
+    assert e.place == "nominal" and e.status == "smooth" and e.worse_when == "higher"
+
+    def pm(K):
+        return control.stability_margins(control.tf([K], [0.15, 0.8, 1, 0]))[1]
+
+    assert_allclose([e.value_low, e.value_high], [pm(1.6), pm(2.4)], rtol=1e-8)
+    assert_allclose(d.recomputed, pm(2.0), rtol=1e-8)
+    lg.close()

@@ -431,6 +431,15 @@ def _effect(name, spec, at, var, fam, payload, c, step, used, center, around, en
     else:
         worse = ""
     note = sl.note
+    if f0 is not None and math.isfinite(f0):
+        from ..judge import passes_array
+
+        near = [v for k, v in values.items() if k and v is not None and math.isfinite(v)]
+        flips = passes_array(c.comparator, near, c.limit_value) != bool(
+            passes_array(c.comparator, [f0], c.limit_value)[0])
+        if near and flips.any():
+            note = (note + "; " if note else "") + ("the verdict flips within two steps: the "
+                                                    "value crosses the limit here")
     across = None if base.get("value_low") is None or base.get("value_high") is None else \
         base["value_high"] - base["value_low"]
     status = sl.status
