@@ -386,3 +386,36 @@ def test_fidelity_worst_variant_is_perturbed_in_its_own_model(tmp_path):
     assert_allclose([e.value_low, e.value_high], [pm(1.6), pm(2.4)], rtol=1e-8)
     assert_allclose(d.recomputed, pm(2.0), rtol=1e-8)
     lg.close()
+
+
+def test_stale_results_and_bad_requests_are_refused_or_said(second_order):
+    from ledger.errors import NotFoundError, UsageError
+
+    with pytest.raises(NotFoundError, match="no loop named 'nope'"):
+        worst_case_drivers(second_order, "nope")
+    with pytest.raises(NotFoundError, match="'XX-1'"):
+        worst_case_drivers(second_order, "pos", keys=["XX-1"])
+    with pytest.raises(UsageError, match="step"):
+        worst_case_drivers(second_order, "pos", step=0.5)
+    # a new plant version: the results are stale until verify runs, so nothing is traced
+    second_order.auto_verify = False
+    second_order.add_plant("p", "K/(s*(tau*s+1))", params={"K": {"nominal": 2.0, "tol": "30 %"},
+                                                           "tau": {"nominal": 0.5, "tol": "20 %"}})
+    d = worst_case_drivers(second_order, "pos", keys=["OS-1"])[0]
+    assert d.effects == () and "run `loopledger verify`" in d.note
+    second_order.verify("pos")
+    d = worst_case_drivers(second_order, "pos", keys=["OS-1"])[0]
+    assert d.effects and d.effects[0].high == pytest.approx(2.6)
+
+
+def test_a_value_no_parameter_moves(tmp_path):
+    # peak effort of unity feedback round a strictly proper plant: u(0+) = r = 1 and |u| <= 1
+    # after (u = 1 - y, y overshoots by 16-30 % here, so u >= -0.3): sup |u| = 1 on every
+    # variant (initial value theorem; common practice, no source)
+    lg = _second_order_ledger(tmp_path / "pe.db", {"nominal": 2.0, "tol": "20 %"},
+                              {"nominal": 0.5, "tol": "20 %"}, [("PE-1", "peak_effort", "<= 2")])
+    d = worst_case_drivers(lg, "pos")[0]
+    assert_allclose(d.value, 1.0, rtol=1e-12)
+    assert "one of equals" in d.note
+    assert all(abs(e.per_width) <= e.rounding and e.worse_when == "" for e in d.effects)
+    lg.close()

@@ -341,6 +341,12 @@ def _variant_drivers(plan, fam, specs, items, controller, loop, step, kink_rtol,
         elif j.value is not None and not _close(f0, j.value):
             note = (f"measured alone the worst variant gives {f0:.6g} (the family's value "
                     f"{j.value:.6g}); the slopes are of the value measured alone")
+        vals = [float(v) for v in payload["values"]]
+        if len(vals) > 1 and all(math.isfinite(v) for v in vals) and \
+                max(vals) - min(vals) <= 1e-9 * max(abs(v) for v in vals):
+            note = (note + "; " if note else "") + (
+                "every variant of the family gives this value to 1e-9: the worst variant is "
+                "one of equals")
         yield i, _shell(plan, c, step, verdict=j.verdict, value=j.value,
                         worst_variant=var.name, variant_kind=var.kind, recomputed=f0,
                         effects=tuple(effects), note=note)
