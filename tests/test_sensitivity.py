@@ -419,3 +419,32 @@ def test_a_value_no_parameter_moves(tmp_path):
     assert "one of equals" in d.note
     assert all(abs(e.per_width) <= e.rounding and e.worse_when == "" for e in d.effects)
     lg.close()
+
+
+def test_demo_ledger_every_tip_traces(tmp_path):
+    """On the demo ledger (invented data, sample_db/README.md) every requirement of every loop's
+    tip gives its drivers or says why not, and a corner's directions are the corner's own signs
+    (corner names: ``+`` high, ``-`` low; ledger/systems/family.py)."""
+    import re
+    import shutil
+    from pathlib import Path
+
+    src = Path(__file__).resolve().parents[1] / "sample_db" / "demo.db"
+    shutil.copy(src, tmp_path / "demo.db")
+    lg = open_ledger(tmp_path / "demo.db")
+    seen = 0
+    for lp in lg.loops():
+        for d in worst_case_drivers(lg, lp.name):
+            assert d.effects or d.note, d
+            if d.variant_kind == "corner":
+                signs = dict(re.findall(r"([A-Za-z_]\w*)([+-])", d.worst_variant.split(":", 1)[1]))
+                assert d.corner_directions() == {n: "high" if s == "+" else "low"
+                                                 for n, s in signs.items()}
+                seen += 1
+            for e in d.effects:
+                assert e.status in ("smooth", "not smooth", "one-sided", "steps", "infinite",
+                                    "cannot", "not used")
+                if e.status == "smooth":
+                    assert e.truncation is not None and e.rounding is not None
+    assert seen > 0
+    lg.close()
