@@ -17,7 +17,8 @@ from typing import Any
 
 from .errors import LedgerError, SpecError, UnitError, with_context
 
-__all__ = ["SPEC_FORMAT", "ImportReport", "load_spec", "import_spec", "export_spec", "dump_spec"]
+__all__ = ["SPEC_FORMAT", "ImportReport", "load_spec", "import_spec", "export_spec", "dump_spec",
+           "measurement_text"]
 
 SPEC_FORMAT = 1
 
@@ -288,7 +289,7 @@ def _tally(report: ImportReport, name: str, changed: bool, version: int) -> None
 
 
 _MEASURED_KEYS = ("file", "rhp_poles", "integrators", "min_coherence", "measured_by",
-                  "measured_at", "excitation", "note")
+                  "measured_at", "excitation", "note", "source", "source_hash")
 
 
 def _measurements(path, where, table: dict) -> dict:
@@ -317,11 +318,15 @@ def _measurements(path, where, table: dict) -> dict:
                        f"{e.__class__.__name__}") from None
         meta = {k: str(rec[k]) for k in ("measured_by", "measured_at", "excitation", "note")
                 if k in rec}
+        # the file's own name and hash, unless the entry names the original bench file it was
+        # rewritten from (an exported spec, :func:`dump_spec`): the provenance is kept
+        meta["source"] = str(rec.get("source") or rec["file"])
+        meta["source_hash"] = str(rec.get("source_hash")
+                                  or hashlib.sha256(text.encode()).hexdigest())
         try:
             out[name] = parse_measurement(
                 text, rhp_poles=rec.get("rhp_poles", 0), integrators=rec.get("integrators", 0),
                 min_coherence=float(rec.get("min_coherence", 0.8)), where=rec["file"],
-                source=rec["file"], source_hash=hashlib.sha256(text.encode()).hexdigest(),
                 **meta)
         except LedgerError as e:
             raise _err(path, where, fld, str(e)) from e
@@ -332,8 +337,39 @@ def _drop_empty(d: dict) -> dict:
     return {k: v for k, v in d.items() if v not in (None, "", [], {}) and v is not False}
 
 
-def dump_spec(ledger) -> dict:
-    """The ledger's current content (latest versions, every revision) as spec data."""
+def measurement_text(m: dict) -> str:
+    """A stored measurement (its JSON form) as a measurement file that reads back to the same
+    numbers: frequency in rad/s, real and imaginary parts (and coherence) as shortest reprs."""
+    cols = ["freq[rad/s]", "re", "im"] + (["coh"] if m.get("coherence") is not None else [])
+    lines = ["# written by loopledger export: the stored points of one measurement "
+             "(docs/measured.md)", ",".join(cols)]
+    data = [m["omega"], m["re"], m["im"]] + ([m["coherence"]] if len(cols) == 4 else [])
+    lines += [",".join(repr(float(x)) for x in row) for row in zip(*data)]
+    return "\n".join(lines) + "\n"
+
+
+def _measured_entries(plant: str, measured: dict, folder: str, files: dict | None) -> dict:
+    out = {}
+    for name, m in sorted(measured.items()):
+        rel = f"{folder}/{plant}.{name}.csv"
+        if files is not None:
+            files[rel] = measurement_text(m)
+        meta = m.get("meta", {})
+        out[name] = _drop_empty({
+            "file": rel, "rhp_poles": m.get("rhp_poles") or None,
+            "integrators": m.get("integrators") or None,
+            "min_coherence": m.get("min_coherence"),
+            **{k: meta.get(k) for k in ("measured_by", "measured_at", "excitation", "note",
+                                        "source", "source_hash")}})
+    return out
+
+
+def dump_spec(ledger, *, folder: str = "measured", files: dict | None = None) -> dict:
+    """The ledger's current content (latest versions, every revision) as spec data.
+
+    Measurements are written as files: each entry names ``folder/<plant>.<name>.csv``
+    (relative to the spec file) and, when ``files`` is a dict, its text is put there under
+    that name (:func:`export_spec` writes them beside the spec)."""
     from .spectra_io import spec_entry
 
     out: dict[str, Any] = {"format": SPEC_FORMAT}
@@ -342,6 +378,7 @@ def dump_spec(ledger) -> dict:
         "input_unit": p.input_unit, "output_unit": p.output_unit, "sample_time": p.sample_time,
         "samples": p.samples, "seed": p.seed, "note": p.note, "params": p.params,
         "fidelity": p.fidelity,
+        "measured": _measured_entries(p.name, p.measured or {}, folder, files),
     }) for p in ledger.plants()]
     loops = ledger.loops()
     out["loop"] = [_drop_empty({
@@ -373,11 +410,20 @@ def dump_spec(ledger) -> dict:
 
 
 def export_spec(ledger, path: str | os.PathLike) -> Path:
-    """Write the ledger's content as a spec file (atomically: temp file, then rename)."""
+    """Write the ledger's content as a spec file (atomically: temp file, then rename), and
+    each measurement as a file in ``<spec stem>-measured/`` beside it (each atomically, before
+    the spec)."""
     import tomli_w
 
     from .fileio import write_atomic
 
+    path = Path(path)
+    files: dict[str, str] = {}
+    data = dump_spec(ledger, folder=f"{path.stem}-measured", files=files)
     text = "# loopledger spec file (format 1); see docs/spec-files.md\n" + tomli_w.dumps(
-        dump_spec(ledger), multiline_strings=True)
+        data, multiline_strings=True)
+    for rel, body in sorted(files.items()):
+        f = path.parent / rel
+        f.parent.mkdir(parents=True, exist_ok=True)
+        write_atomic(f, lambda tmp, body=body: tmp.write_text(body, encoding="utf-8"))
     return write_atomic(path, lambda tmp: tmp.write_text(text, encoding="utf-8"))

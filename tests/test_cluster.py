@@ -233,12 +233,12 @@ def test_a_task_recorded_twice_writes_nothing_twice(tmp_path):
 
 
 def test_workers_of_another_engine_version_are_refused(tmp_path, client, monkeypatch):
-    import ledger.engine.measuring as m
+    import ledger.engine.results as m
 
     path = tmp_path / "t.db"
     _small_ledger(path, revisions=6, samples=4)
     real = m.ENGINE_VERSION
-    client.run(exec, "import ledger.engine.measuring as m; m.ENGINE_VERSION = 'engine-test'")
+    client.run(exec, "import ledger.engine.results as m; m.ENGINE_VERSION = 'engine-test'")
     try:
         with open_ledger(path) as lg, pytest.raises(ClusterError, match="engine-test"):
             lg.verify(cluster=client)
@@ -251,10 +251,39 @@ def test_workers_of_another_engine_version_are_refused(tmp_path, client, monkeyp
         with open_ledger(path) as lg:
             assert len(lg.verify(cluster=client)) == 6
     finally:
-        client.run(exec, f"import ledger.engine.measuring as m; m.ENGINE_VERSION = {real!r}")
+        client.run(exec, f"import ledger.engine.results as m; m.ENGINE_VERSION = {real!r}")
     rows, cache = _rows(path)
     assert {r[-1] for r in rows} == {"engine-test"} and {c[-1] for c in cache} == {"engine-test"}
     assert (rows, cache) == _rows(ref)
+
+
+def test_engine_change_reverifies_every_revision_on_the_cluster(tmp_path, client, monkeypatch):
+    """An engine version change: every revision of a verified ledger is verified again on the
+    cluster, beside the old results, bitwise as in-process (issue 18, tests)."""
+    import ledger.engine.results as m
+
+    a = tmp_path / "a.db"
+    _small_ledger(a, revisions=6, samples=4)
+    with open_ledger(a) as lg:
+        assert len(lg.verify()) == 6
+    b = _copy(a, tmp_path / "b.db")
+    old = _rows(a)
+    real = m.ENGINE_VERSION
+    monkeypatch.setattr(m, "ENGINE_VERSION", "engine-next")
+    client.run(exec, "import ledger.engine.results as m; m.ENGINE_VERSION = 'engine-next'")
+    try:
+        with open_ledger(a) as lg:
+            ref = lg.verify()
+        with open_ledger(b) as lg:
+            got = lg.verify(cluster=client)
+            assert not lg.verify(cluster=client)      # nothing left
+    finally:
+        client.run(exec, f"import ledger.engine.results as m; m.ENGINE_VERSION = {real!r}")
+    assert len(ref) == len(got) == 6                  # every revision, not only the tip
+    assert _rows(a) == _rows(b)
+    rows, cache = _rows(b)
+    assert len(rows) == 2 * len(old[0]) and len(cache) == 2 * len(old[1])
+    assert [r for r in rows if r[-1] == real] == old[0]    # the old results stay as they were
 
 
 def _free_port() -> int:

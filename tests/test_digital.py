@@ -149,7 +149,12 @@ def test_no_zoh_equivalent_for_a_pole_on_the_negative_real_axis():
 
 def test_method_text_is_checked():
     assert parse_discretization("Tustin@30Hz").prewarp == pytest.approx(W * 30, rel=1e-15)
-    for bad in ("bilinear", "zoh@30", "tustin@0", "tustin@-3", "tustin@abc"):
+    # a product of numbers and pi, as the model text writes frequencies (exact: the same
+    # floating-point product)
+    assert parse_discretization("tustin@2*pi*30").prewarp == 2 * math.pi * 30
+    assert parse_discretization("tustin@ 2 * pi * 5 Hz").prewarp == 2 * math.pi * 10 * math.pi
+    for bad in ("bilinear", "zoh@30", "tustin@0", "tustin@-3", "tustin@abc", "tustin@2**3",
+                "tustin@pi*", "tustin@2*pi*0"):
         with pytest.raises(ModelError):
             parse_discretization(bad)
     # a pre-warp at or above the Nyquist frequency pi / T has no map

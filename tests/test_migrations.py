@@ -94,7 +94,7 @@ def test_light_head_check_agrees_with_alembic():
     assert known_revisions() == {r.revision for r in script.walk_revisions()}
 
 
-def test_upgrade_from_0004_relinks_the_chain_a_signoff_points_into(tmp_path):
+def test_upgrade_from_0004_relinks_the_chain_a_signoff_points_into(tmp_path, monkeypatch):
     """The 0004 fixture holds a baseline and a sign-off made by the loopledger of schema 0004;
     0005 puts link time stamps inside the link hash, so it re-links the chain and moves the
     sign-off's recorded head to the re-linked hash of the same link."""
@@ -121,7 +121,16 @@ def test_upgrade_from_0004_relinks_the_chain_a_signoff_points_into(tmp_path):
             (seq,) = db.execute("SELECT seq FROM chain_link WHERE chain_hash = ?",
                                 (new_head,)).fetchone()
         assert new_head != old_head and seq == head_seq
-        # the content hashes the old baseline froze recompute; a new sign-off goes through
+        # under today's engine the fixture's results (engine-1) are stale: no sign-off
+        from ledger.errors import IntegrityViolation
+
+        with pytest.raises(IntegrityViolation, match="stale"):
+            sign_baseline(lg, "B-0004", signer="B", role="reviewer", statement="still agreed")
+        # with the engine that computed them they are current: the content hashes the old
+        # baseline froze recompute, and a new sign-off goes through
+        import ledger.engine.results as engine_results
+
+        monkeypatch.setattr(engine_results, "ENGINE_VERSION", "engine-1")
         sign_baseline(lg, "B-0004", signer="B", role="reviewer", statement="still agreed")
         create_baseline(lg, "B-0005", supersedes="B-0004")
         sign_baseline(lg, "B-0005", signer="B", role="reviewer", statement="agreed")

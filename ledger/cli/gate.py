@@ -34,7 +34,7 @@ def gate_cmd(
 ):
     """Exit 0 only when every applicable requirement on the chosen revisions passes.
 
-    Failing, error, stale (judged on an older requirement or plant version) and unverified
+    Failing, error, stale (judged on an older requirement or plant version, or by another engine version) and unverified
     cells each print one line (requirement, revision, state, value, limit) and the exit status
     is 1.  For CI jobs and scripts that want a yes or no."""
     from ..history.gate import gate

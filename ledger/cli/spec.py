@@ -52,7 +52,8 @@ def import_cmd(spec: Path = typer.Argument(..., help="Spec file (TOML) to import
 @commands.command("export")
 @errors_to_exit
 def export_cmd(spec: Path = typer.Argument(..., help="Spec file (TOML) to write.")):
-    """Write the ledger's plants, loops, requirements and revisions as a spec file."""
+    """Write the ledger's plants, loops, requirements and revisions as a spec file (and each
+    bench measurement as a file in <SPEC stem>-measured/ beside it)."""
     from ..spec import export_spec
 
     with open_ledger() as lg:

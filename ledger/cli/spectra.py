@@ -11,7 +11,7 @@ import typer
 
 from ..errors import UsageError
 from .common import JSON_OPTION, emit_json, errors_to_exit, open_ledger
-from .output import table
+from .output import say, table
 
 __all__ = ["loop_spectrum", "loop_rms"]
 
@@ -76,15 +76,18 @@ def loop_rms(
                                       for r in v.rows],
                           "bands": [[a, b] for a, b in v.bands]})
     u = v.unit
-    typer.echo(f"rms budget of the {v.words} of {v.loop}/{v.revision} on variant {v.variant} "
-               f"(largest combined rms): {v.total_rms:.4g} {u}".rstrip())
-    heads = ["source", "spectrum", "rms", "share", "est. error"] + \
-        [band_label(a, b) for a, b in v.bands]
-    rows = [[r[0], r[1] + (f" ({r[2]})" if r[2] else ""), f"{r[3]:.4g} {u}".strip(),
-             f"{100 * r[4]:.1f} %" if r[4] == r[4] else "-",
-             "exact" if r[1] == "rational" else f"{r[5]:.1e}"] +
-            [f"{b:.3g}" for b in v.band_rms.get(r[0], ())] for r in v.rows]
-    table(heads, rows)
+    say(f"rms budget of the {v.words} of {v.loop}/{v.revision} on variant {v.variant} "
+        f"(largest combined rms): {v.total_rms:.4g} {u}".rstrip())
+    heads = ["source", "rms", "share", "est. error", "spectrum"]
+    rows = [[r[0], f"{r[3]:.4g} {u}".strip(), f"{100 * r[4]:.1f} %" if r[4] == r[4] else "-",
+             "exact" if r[1] == "rational" else f"{r[5]:.1e}",
+             r[1] + (f" ({r[2]})" if r[2] else "")] for r in v.rows]
+    table(heads, rows, drop=("spectrum",))
+    # the contribution of each source per frequency band, a table of its own so that it
+    # keeps its columns on a narrow terminal
+    table(["source"] + [band_label(a, b) for a, b in v.bands],
+          [[r[0]] + [f"{b:.3g}" for b in v.band_rms.get(r[0], ())] for r in v.rows],
+          title=f"rms per frequency band{f' ({u})' if u else ''}")
     if curve:
         import math
 
@@ -93,6 +96,7 @@ def loop_rms(
         f = v.frequencies
         lo, hi = math.floor(math.log10(f[f > 0][0])), math.ceil(math.log10(f[-1]))
         pts = [10.0 ** k for k in range(lo, hi + 1) if 10.0 ** k <= f[-1]]
-        table(["up to"] + [s for s in v.cumulative_rms],
-              [[f"{p:g} Hz"] + [f"{float(np.interp(p, f, c)):.4g}" for c in
-                                v.cumulative_rms.values()] for p in pts])
+        rows = [[f"{p:g} Hz"] + [f"{float(np.interp(p, f, c)):.4g}"
+                                 for c in v.cumulative_rms.values()] for p in pts]
+        table(["up to"] + list(v.cumulative_rms), rows,
+              title="cumulative rms" + (f" ({u})" if u else ""))

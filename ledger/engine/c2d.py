@@ -37,8 +37,10 @@ __all__ = ["Discretization", "parse_discretization", "discretize", "continuous_e
 METHODS = ("zoh", "tustin", "matched")
 
 _NUMBER = r"[0-9]+(?:\.[0-9]*)?(?:[eE][+-]?[0-9]+)?|\.[0-9]+(?:[eE][+-]?[0-9]+)?"
-_TEXT = re.compile(rf"^\s*(zoh|tustin|matched)\s*(?:@\s*({_NUMBER})\s*(hz|rad/s)?)?\s*$",
-                   re.IGNORECASE)
+#: a pre-warp frequency: a number or a product of numbers and ``pi`` (``2*pi*30``)
+_FACTOR = rf"(?:{_NUMBER}|pi)"
+_TEXT = re.compile(rf"^\s*(zoh|tustin|matched)\s*(?:@\s*({_FACTOR}(?:\s*\*\s*{_FACTOR})*)\s*"
+                   r"(hz|rad/s)?)?\s*$", re.IGNORECASE)
 
 
 @dataclass(frozen=True)
@@ -69,8 +71,8 @@ class Discretization:
 
 
 def parse_discretization(text) -> Discretization | None:
-    """Read a method text (``"zoh"``, ``"tustin"``, ``"tustin@188.5"``, ``"tustin@30Hz"``,
-    ``"matched"``); ``None`` or ``""`` give ``None``; a :class:`Discretization` is returned
+    """Read a method text (``"zoh"``, ``"tustin"``, ``"tustin@188.5"``, ``"tustin@2*pi*30"``,
+    ``"tustin@30Hz"``, ``"matched"``); ``None`` or ``""`` give ``None``; a :class:`Discretization` is returned
     as it is.
 
     Raises
@@ -95,7 +97,8 @@ def parse_discretization(text) -> Discretization | None:
         return Discretization(method)
     if method != "tustin":
         raise ModelError(f"discretisation {text!r}: only tustin takes a pre-warp frequency")
-    w = float(freq) * (2 * math.pi if unit == "hz" else 1.0)
+    w = math.prod(math.pi if f.strip().lower() == "pi" else float(f) for f in freq.split("*"))
+    w *= 2 * math.pi if unit == "hz" else 1.0
     if not (math.isfinite(w) and w > 0):
         raise ModelError(f"discretisation {text!r}: the pre-warp frequency must be > 0")
     return Discretization("tustin", w)

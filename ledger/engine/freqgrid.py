@@ -169,6 +169,33 @@ def _extend_ends(evaluate, dt, poles, zeros, lo, hi, axis, nvar):
     return lo, hi
 
 
+def _step_bad(ha, hb, aa, ab, phase_step):
+    """Per interval (columns): does any variant's phase turn more than ``phase_step`` rad, or
+    its magnitude change by more than a factor ``e^phase_step``, from ``ha`` to ``hb``
+    (``aa``, ``ab``: ``|h| + tiny``)?  Intervals next to an exact zero, and non-finite steps,
+    do not count.
+
+    Decided without a logarithm or an angle: ``|arg(hb/ha)| > step`` is ``arg(hb conj(ha))``
+    outside ``(-step, step)``, i.e. not (real part > 0 and ``|imag| <= tan(step) real``), for
+    ``step < pi/2``; the magnitude test compares ``ab`` with ``e^step aa`` directly.  Where a
+    value is not finite (or the product overflows) the test is the one written with the
+    logarithm and the angle."""
+    ok = ~((ha == 0) | (hb == 0))
+    q = hb * np.conj(ha)
+    fin = np.isfinite(q)           # both values finite and the product not overflowed
+    grow = math.exp(phase_step)
+    turn = ~((q.real > 0) & (np.abs(q.imag) <= math.tan(phase_step) * q.real))
+    bad = fin & ok & (turn | (ab > grow * aa) | (aa > grow * ab))
+    if not fin.all():
+        i = ~fin & ok
+        with np.errstate(divide="ignore", invalid="ignore"):
+            dph = np.abs(np.angle(hb[i] / ha[i]))
+            dmag = np.abs(np.log(ab[i]) - np.log(aa[i]))
+        bad[i] = (((dph > phase_step) & np.isfinite(dph))
+                  | ((dmag > phase_step) & np.isfinite(dmag)))
+    return np.any(bad, axis=0)
+
+
 def _refine_adaptively(evaluate, w, nvar, axis_w, *, phase_step, passes, max_points):
     """Bisect intervals where any variant's phase turns more than ``phase_step`` rad or its
     magnitude changes by more than a factor e^phase_step (boundary-pole intervals, and the
@@ -176,6 +203,8 @@ def _refine_adaptively(evaluate, w, nvar, axis_w, *, phase_step, passes, max_poi
 
     Returns the grid and the values on it when the last pass evaluated exactly that grid
     (else ``None``)."""
+    if not 0 < phase_step < math.pi / 2:
+        raise ComputeError(f"phase step {phase_step} rad must be in (0, pi/2)")
     h = None
     raw = None
     for _ in range(passes):
@@ -183,23 +212,14 @@ def _refine_adaptively(evaluate, w, nvar, axis_w, *, phase_step, passes, max_poi
         # and only the intervals next to them are checked again (the others were fine)
         if h is None:
             h = _call(evaluate, w, nvar)
-            with np.errstate(divide="ignore", invalid="ignore"):
-                lm = np.log(np.abs(h) + _TINY)          # log magnitude at every point
+            am = np.abs(h) + _TINY                       # magnitude at every point
             J = None                                     # every interval
             raw = np.zeros(w.size - 1, bool)
-        with np.errstate(divide="ignore", invalid="ignore"):
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
             if J is None:
-                ha, hb, la, lb = h[:, :-1], h[:, 1:], lm[:, :-1], lm[:, 1:]
+                step_bad = _step_bad(h[:, :-1], h[:, 1:], am[:, :-1], am[:, 1:], phase_step)
             else:
-                ha, hb, la, lb = h[:, J], h[:, J + 1], lm[:, J], lm[:, J + 1]
-            dph = np.abs(np.angle(hb / ha))
-            dmag = np.abs(lb - la)
-            # an exact zero at a grid point (S at w = 0 of a loop with an integrator) is like a
-            # pole there: no bisection resolves its phase or log magnitude; non-finite steps
-            # (at a pole) are left alone too
-            ok = ~((ha == 0) | (hb == 0))
-            step_bad = np.any(ok & (((dph > phase_step) & np.isfinite(dph))
-                                    | ((dmag > phase_step) & np.isfinite(dmag))), axis=0)
+                step_bad = _step_bad(h[:, J], h[:, J + 1], am[:, J], am[:, J + 1], phase_step)
         if J is None:
             raw |= step_bad
         else:
@@ -218,10 +238,9 @@ def _refine_adaptively(evaluate, w, nvar, axis_w, *, phase_step, passes, max_poi
         hn = np.empty((nvar, wn.size), complex)
         hn[:, ~fresh] = h
         hn[:, fresh] = _call(evaluate, wn[fresh], nvar)
-        lmn = np.empty((nvar, wn.size))
-        lmn[:, ~fresh] = lm
-        with np.errstate(divide="ignore", invalid="ignore"):
-            lmn[:, fresh] = np.log(np.abs(hn[:, fresh]) + _TINY)
+        amn = np.empty((nvar, wn.size))
+        amn[:, ~fresh] = am
+        amn[:, fresh] = np.abs(hn[:, fresh]) + _TINY
         # intervals between two old points keep their old verdict (a bad one whose midpoint
         # coincided with an end is checked again)
         old_left = np.searchsorted(w, wn[:-1])
@@ -230,7 +249,7 @@ def _refine_adaptively(evaluate, w, nvar, axis_w, *, phase_step, passes, max_poi
         rawn[both_old] = raw[np.minimum(old_left[both_old], raw.size - 1)]
         J = np.flatnonzero(~both_old | rawn)
         rawn[J] = False
-        w, h, lm, raw = wn, hn, lmn, rawn
+        w, h, am, raw = wn, hn, amn, rawn
     return w, None
 
 

@@ -24,11 +24,17 @@ if TYPE_CHECKING:
     from .loop import LoopSpec
     from .stability import StabilityReport
 
-__all__ = ["ENGINE_VERSION", "MetricResult", "FamilyResult", "Measurement", "request_key",
+__all__ = ["ENGINE_VERSION", "engine_version", "MetricResult", "FamilyResult", "Measurement", "request_key",
            "fingerprint"]
 
 #: Bumped whenever a number the engine returns may change; part of every fingerprint.
 ENGINE_VERSION = "engine-4"
+
+
+def engine_version() -> str:
+    """The engine version in force (read at call time, so every reader agrees): stored with
+    each result; a result of another version is stale (docs/history.md)."""
+    return ENGINE_VERSION
 
 # --------------------------------------------------------------------------- results
 

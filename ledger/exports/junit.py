@@ -92,7 +92,7 @@ def junit_tree(matrix, *, stale_as_skipped: bool = False):
                         type="error")
                 e.text = xml_safe(detail)
             elif r.verdict in ("stale", "unverified"):
-                why = ("judged against an older requirement or plant version"
+                why = ("judged against an older requirement or plant version, or by another engine version"
                        if r.verdict == "stale" else "never verified against this requirement")
                 if stale_as_skipped:
                     n["skipped"] += 1

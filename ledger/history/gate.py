@@ -2,7 +2,7 @@
 
 A cell (requirement x revision, one per requirement with a metric that applies to the
 revision's loop) *holds* when its verdict is ``pass``; it *offends* when it is ``fail``,
-``error``, ``stale`` (judged on an older requirement or plant version: run ``verify``) or
+``error``, ``stale`` (judged on an older requirement or plant version, or by another engine version: run ``verify``) or
 ``unverified`` (never judged).  Requirements named in ``exclude`` are left out explicitly and
 listed as such.  The gate holds when no cell offends.  Waivers are not part of the ledger yet:
 when they are, a waived failure will be a third state that holds (docs/history.md).

@@ -17,7 +17,7 @@ States, from best to worst: ``satisfied``, ``incomplete``, ``violated``.
 
 Coverage gaps (approved requirements only, except ``stale`` which lists every stale result on
 a tip): ``no loop`` (a metric but no loop to judge it on), ``unverified`` (never judged on a
-loop's tip), ``stale`` (judged against an older requirement or plant version), ``no evidence``
+loop's tip), ``stale`` (judged against an older requirement or plant version, or by another engine version), ``no evidence``
 (no metric and nothing derived from it).  Orphans: requirements whose parent is retired.
 """
 

@@ -371,10 +371,12 @@ def append_results(s: Session, revision_id: int, rows: list[dict],
     """
     lock(s)  # serialise with every chain writer and sign-offs (PostgreSQL)
     r = Result.__table__
-    done = set(s.execute(select(r.c.requirement_version_id, r.c.plant_version_id)
+    done = set(s.execute(select(r.c.requirement_version_id, r.c.plant_version_id,
+                                r.c.engine_version)
                          .where(r.c.revision_id == revision_id)).all())
     rows = [dict(x) for x in rows
-            if (x["requirement_version_id"], x["plant_version_id"]) not in done]
+            if (x["requirement_version_id"], x["plant_version_id"], x["engine_version"])
+            not in done]
     if not rows:
         return None
     used = sorted({x["metric_key"] for x in rows})

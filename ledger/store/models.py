@@ -233,8 +233,9 @@ class Result(Base):
     __tablename__ = "result"
     __table_args__ = (
         UniqueConstraint(
-            "revision_id", "requirement_version_id", "plant_version_id", name="uq_result_subject"
-        ),
+            "revision_id", "requirement_version_id", "plant_version_id", "engine_version",
+            name="uq_result_subject",
+        ),  # one result per subject and engine version (migration 0010)
         CheckConstraint("verdict IN ('pass', 'fail', 'error', 'n/a')", name="verdict_known"),
         Index("ix_result_requirement_revision", "requirement_version_id", "revision_id"),
     )

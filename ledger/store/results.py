@@ -61,6 +61,13 @@ def uncap(x: float | None) -> float | None:
     return x
 
 
+def current_engine() -> str:
+    """The engine version in force; a result computed by another one is stale."""
+    from ..engine.results import engine_version
+
+    return engine_version()
+
+
 def for_revisions(s: Session, lp: Loop, revs: list[Revision], include_stale: bool,
                   keys: Sequence[str] | None = None) -> dict[str, list[ResultInfo]]:
     """Per revision label: the best result of each requirement (fresh over stale, newest
@@ -92,11 +99,13 @@ def for_revisions(s: Session, lp: Loop, revs: list[Revision], include_stale: boo
                       & (sub.c.n == RequirementVersion.number))):
             latest[rid] = (vid, status)
     best: dict[tuple[int, str], tuple] = {}
+    engine = current_engine()
     for res, rv, key, rid, rpv_id, rpv_number in rows:
         lv_id, lv_status = latest[rid]
         if lv_status == "retired":
             continue
-        stale = rv.id != lv_id or rpv_id != pv.id
+        # stale: judged on an older requirement or plant version, or by another engine version, or by another engine
+        stale = rv.id != lv_id or rpv_id != pv.id or res.engine_version != engine
         rank = (not stale, rv.number, rpv_number, res.id)
         k = (res.revision_id, key)
         if k not in best or rank > best[k][0]:
@@ -152,7 +161,8 @@ def verdict_counts(s: Session, loop: str, labels: Sequence[str] | None = None
             select(Result.revision_id, Result.verdict, func.count())
             .join(current, current.c.id == Result.requirement_version_id)
             .join(Revision, Revision.id == Result.revision_id)
-            .where(Revision.loop_id == lp.id, Result.plant_version_id == pv.id, *only)
+            .where(Revision.loop_id == lp.id, Result.plant_version_id == pv.id,
+                   Result.engine_version == current_engine(), *only)
             .group_by(Result.revision_id, Result.verdict)):
         out[by_id[rid]][verdict] = out[by_id[rid]].get(verdict, 0) + n
         fresh_total[rid] = fresh_total.get(rid, 0) + n
@@ -175,17 +185,21 @@ def load_cached(s: Session, keys: Iterable[str]) -> dict[str, dict]:
 
 
 def judged_version_ids(s: Session, revision_id: int, plant_version_id: int) -> set[int]:
-    """Requirement versions with a result on ``revision_id`` against that plant version."""
+    """Requirement versions with a result on ``revision_id`` against that plant version, by
+    the engine in force."""
     return set(s.scalars(select(Result.requirement_version_id).where(
-        Result.revision_id == revision_id, Result.plant_version_id == plant_version_id)))
+        Result.revision_id == revision_id, Result.plant_version_id == plant_version_id,
+        Result.engine_version == current_engine())))
 
 
 def judged_pairs(s: Session, plant_version_id: int, version_ids: Iterable[int]
                  ) -> set[tuple[int, int]]:
     """(revision id, requirement version id) of the results against that plant version of
-    the requirement versions ``version_ids``."""
+    the requirement versions ``version_ids``, by the engine in force."""
+    engine = current_engine()
     return set(in_chunks(s, lambda ch: select(Result.revision_id, Result.requirement_version_id)
                          .where(Result.plant_version_id == plant_version_id,
+                                Result.engine_version == engine,
                                 Result.requirement_version_id.in_(ch)), version_ids))
 
 

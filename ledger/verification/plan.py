@@ -36,9 +36,9 @@ def design_of(row) -> dict:
 
 
 def engine_version() -> str:
-    from ..engine.measure import ENGINE_VERSION
+    from ..engine.results import engine_version as current
 
-    return ENGINE_VERSION
+    return current()
 
 
 @dataclass(frozen=True)

@@ -81,9 +81,9 @@ def verify(lg, loop: str | None = None, *, label: str | None = None, tips_only: 
 
 
 def _engine_version() -> str:
-    from ..engine.measure import ENGINE_VERSION
+    from ..engine.results import engine_version as current
 
-    return ENGINE_VERSION
+    return current()
 
 
 def add_revision(lg, loop: str, controller: str, *, rationale: str, parent: str | None = "tip",

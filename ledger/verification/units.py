@@ -54,9 +54,9 @@ class Unit:
 
 
 def _engine_version() -> str:
-    from ..engine.measure import ENGINE_VERSION
+    from ..engine.results import engine_version as current
 
-    return ENGINE_VERSION
+    return current()
 
 
 _BLAS_LIMITED: list = []

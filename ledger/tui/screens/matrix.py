@@ -114,7 +114,7 @@ class MatrixScreen(ViewScreen):
     def on_mount(self) -> None:
         self.query_one(DataTable).focus()
         self.query_one("#matrix-legend", Static).update(Text(
-            "✓ pass  ✗ fail  ! error  ~ stale (older requirement/plant version)  ? unverified  "
+            "✓ pass  ✗ fail  ! error  ~ stale (older requirement, plant or engine)  ? unverified  "
             "· n/a  BROKE: failed where the parent passed; values in the limit's unit\n", style="dim").append("Caution: " + CAUTION, style="italic"))
 
     def fetch(self):
