@@ -31,6 +31,7 @@ __all__ = [
     "open_ledger", "Ledger", "measure", "measure_family", "Measurement", "LoopSpec",
     "PlantFamily", "Variant", "parse_model", "build_family", "build_matrix", "diff",
     "first_failing", "build_trace", "export_matrix", "create_baseline", "sign_baseline", "audit_ledger",
+    "worst_case_drivers",
     "LedgerError", "ModelSyntaxError", "ModelError", "UnitError", "SpecError", "NotFoundError",
     "DuplicateError", "IntegrityViolation", "SchemaError", "ComputeError", "UnstableLoopError",
 ]
@@ -45,6 +46,7 @@ _LAZY = {
     "first_failing": "ledger.history.since", "build_trace": "ledger.history.trace",
     "export_matrix": "ledger.exports", "create_baseline": "ledger.signoff",
     "sign_baseline": "ledger.signoff",
+    "worst_case_drivers": "ledger.verification.drivers",
 }
 #: public name -> (module, attribute) where the two differ (``ledger.audit`` is a module)
 _RENAMED = {"audit_ledger": ("ledger.audit", "audit")}

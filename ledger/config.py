@@ -38,7 +38,8 @@ import os
 __all__ = ["DEFAULT_PATH", "BUSY_TIMEOUT_MS", "WRITE_RETRIES", "IN_CHUNK", "FAMILY_CACHE_SIZE",
            "db_target", "author", "debug", "digits_setting", "prefs_dir", "columns",
            "cache_dir", "TRIED_CACHE_FILES", "CLUSTER_TASK_WORK", "CLUSTER_CONNECT_TIMEOUT",
-           "CLUSTER_MALLOC_TRIM", "cluster_address"]
+           "CLUSTER_MALLOC_TRIM", "cluster_address", "SENSITIVITY_STEP",
+           "SENSITIVITY_KINK_RTOL", "SENSITIVITY_VALUE_RTOL"]
 
 #: the ledger file used when none is named and ``$LOOPLEDGER_DB`` is unset
 DEFAULT_PATH = "loopledger.db"
@@ -64,6 +65,12 @@ CLUSTER_TASK_WORK = 5000
 CLUSTER_MALLOC_TRIM = 128 * 2 ** 20
 #: seconds to wait for a Dask scheduler to answer and for its first worker to join
 CLUSTER_CONNECT_TIMEOUT = 60.0
+#: what drives the worst case (docs/history.md): the finite-difference step as a fraction of a
+#: parameter's tolerance width; a slope is called smooth when its one-sided slopes agree to
+#: this fraction; and the relative accuracy assumed of each value the engine measures
+SENSITIVITY_STEP = 0.01
+SENSITIVITY_KINK_RTOL = 0.01
+SENSITIVITY_VALUE_RTOL = 1e-10
 
 
 def db_target() -> str:

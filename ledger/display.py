@@ -24,7 +24,7 @@ from .units import (_DB, _PERCENT, _RATIO, _LIMIT_RE, _COMPARATOR_ALIASES, conve
                     format_value, limit_unit_text)
 
 __all__ = ["digits", "set_digits", "shown_unit", "to_shown", "value_text", "headroom_text",
-           "headroom_shown", "delta_text", "headroom_delta_text", "value_number", "number", "is_logarithmic", "DEFAULT_DIGITS"]
+           "headroom_shown", "delta_text", "change_text", "headroom_delta_text", "value_number", "number", "is_logarithmic", "DEFAULT_DIGITS"]
 
 DEFAULT_DIGITS = 4
 _digits: int | None = None
@@ -193,6 +193,30 @@ def delta_text(old: float | None, new: float | None, unit: str, limit_text: str 
             return t if t.startswith("-") else "+" + t
         return _join(number(b - a, d, sign=True), unit)
     return _join(number(b - a, d, sign=True), su) + ("pt" if su == "%" else "")
+
+
+def change_text(value: float | None, change: float | None, unit: str, limit_text: str = "",
+                d: int | None = None) -> str:
+    """A small change ``change`` (metric unit) of a value at ``value``, in the shown unit,
+    linearised there (a slope times a step: for a ratio shown in dB, ``20 / ln 10 x change /
+    value`` dB); ``%pt`` for percentages."""
+    if value is None or change is None or not (math.isfinite(value) and math.isfinite(change)):
+        return "-"
+    mode, su, k = _mode(unit, limit_text)
+    if mode == "todb":
+        if value <= 0:
+            return "-"
+        shown, u = 20.0 / math.log(10.0) * change / value, "dB"
+    elif mode == "toratio":
+        shown, u = math.log(10.0) / 20.0 * 10.0 ** (value / 20.0) * change, ""
+    elif mode == "own":
+        if unit == "s":
+            t = format_value(change, "s", d or digits())
+            return t if t.startswith("-") else "+" + t
+        shown, u = change, unit
+    else:
+        shown, u = change / k, su
+    return _join(number(shown, d, sign=True), u) + ("pt" if u == "%" else "")
 
 
 def headroom_delta_text(old_value: float | None, new_value: float | None,

@@ -186,13 +186,30 @@ def verify_cmd(loop: Optional[str] = typer.Option(None, "--loop", help="Only thi
 @errors_to_exit
 def results_cmd(loop: str = typer.Argument(..., help="Loop name."),
                 label: Optional[str] = typer.Argument(None, help="Revision label (default: tip)."),
+                why: Optional[str] = typer.Option(None, "--why", metavar="REQ", help="What drives requirement REQ's worst value: the slope of the worst value in each toleranced plant parameter at the worst variant, per tolerance width, ranked (computed now, stored nowhere); 'all' for every requirement."),
                 as_json: bool = JSON_OPTION, wide: bool = WIDE_OPTION):
     """Show the verdicts of one revision: worst value over the plant family, headroom,
     the variant that produced it and the fraction of variants that pass."""
     set_wide(wide)
+    if why is not None and not why.strip():
+        raise UsageError("--why needs a requirement ID (or 'all')")
     with open_ledger() as lg:
-        res = lg.results(loop, label)
+        if why is not None:
+            from ..verification.drivers import worst_case_drivers
+
+            keys = None if why.strip() == "all" else [why.strip()]
+            drivers = worst_case_drivers(lg, loop, label, keys)
+        else:
+            res = lg.results(loop, label)
         rev = lg.revision(loop, label)
+    if why is not None:
+        if as_json:
+            return emit_json(drivers)
+        from .drivers import print_drivers
+
+        for d in drivers:
+            print_drivers(d)
+        return say(CAUTION)
     if as_json:
         return emit_json(res)
     print_results(res, f"verdicts for {rev.loop}/{rev.label}")

@@ -197,6 +197,7 @@ def render_html(matrix, lg) -> str:
     from ..curves import column_curves
     from ..prefs import frequency_unit
     from .plots import entry_figure
+    from .drivershtml import drivers_evidence_html
     from .rmsplot import rms_evidence_html
 
     funit = frequency_unit(getattr(lg, "url", ""))  # the reader's choice for this ledger
@@ -213,8 +214,10 @@ def render_html(matrix, lg) -> str:
     out.append("<div class='evidence-head'><h2>Evidence</h2><p class='meta'>One section per "
                "entry: the ledger's result and the curves of the nominal plant and the worst "
                "variant, recomputed from the revision for display (the verdict is the "
-               "ledger's).</p></div>")
+               "ledger's), and what drives the worst value (the slope in each toleranced "
+               "plant parameter at the worst variant, computed for this report).</p></div>")
     cache: dict = {}
+    drivers: dict = {}
     for entry, row in zip(matrix.entries, rows):
         key = (entry.loop, entry.revision.label)
         if key not in cache:
@@ -244,6 +247,7 @@ def render_html(matrix, lg) -> str:
             except LedgerError as e:
                 out.append(f"<p class='note'>No figure: {_e(e)}</p>")
         out.append(rms_evidence_html(lg, entry))  # rms budgets: table and cumulative rms
+        out.append(drivers_evidence_html(lg, entry, drivers))  # what drives the worst value
         out.append("</section>")
     out.append(f"<p class='caution'>Caution: {_e(matrix.caution)}</p></body></html>")
     return "\n".join(out)

@@ -13,7 +13,7 @@ from ..judge import count_verdicts
 from ..records import RequirementInfo, RevisionInfo
 
 __all__ = ["RevisionRow", "LineageData", "load_lineage", "MatrixData", "load_matrix",
-           "TraceLink", "RequirementData", "load_requirement", "verdict_counts"]
+           "TraceLink", "RequirementData", "load_requirement", "verdict_counts", "load_drivers"]
 
 VERDICTS = ("pass", "fail", "error", "stale")
 
@@ -181,3 +181,23 @@ def load_requirement(lg, key: str | None) -> RequirementData | None:
             trend.append((lname, rev, res))
     return RequirementData(req, tuple(lg.requirement_history(key)), parents, children,
                            tuple(trend), tuple(by_key), tuple(lg.waivers(key)))
+
+
+def load_drivers(lg, key: str) -> tuple:
+    """What drives requirement ``key``'s worst value on the tip of each loop it applies to:
+    ``(loop, WorstCaseDrivers or the LedgerError that stopped it)`` per loop with a tip
+    (:func:`ledger.verification.drivers.worst_case_drivers`; computed, stored nowhere)."""
+    from ..errors import LedgerError
+    from ..verification.drivers import worst_case_drivers
+
+    out = []
+    for lname in lg.requirement(key).loops:
+        try:
+            tip = lg.revision(lname)
+        except LookupError:
+            continue
+        try:
+            out.append((lname, worst_case_drivers(lg, lname, tip.label, [key])[0]))
+        except LedgerError as e:
+            out.append((lname, e))
+    return tuple(out)

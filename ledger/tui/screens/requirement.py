@@ -1,17 +1,20 @@
-"""Requirement detail: statement, rationale, limit, versions, trace links with verdicts and
-the metric's value across the loop's revisions (a small trend plot)."""
+"""Requirement detail: statement, rationale, limit, versions, trace links with verdicts, the
+metric's value across the loop's revisions (a small trend plot) and what drives its worst
+value on each loop's tip (computed in a worker after the rest is shown)."""
 
 from __future__ import annotations
 
 import math
 
 from rich.text import Text
+from textual import work
 from textual.containers import Horizontal, VerticalScroll
 from textual.widgets import Static
 from textual_plotext import PlotextPlot
 
 from .. import bindings
-from ..data import load_requirement
+from ...errors import LedgerError
+from ..data import load_drivers, load_requirement
 from ...waivers import today
 from ..widgets.verdict import SYMBOL, STYLE, fmt_value, verdict_text, waiver_text
 from .base import ViewScreen
@@ -27,6 +30,8 @@ class RequirementScreen(ViewScreen):
     def __init__(self, *a, **kw):
         super().__init__(*a, **kw)
         self._data = None
+        #: what drives the worst value, by (key, tips' results): computed once per state
+        self._drivers: dict = {}
 
     def compose(self):
         header, footer = self.header_footer()
@@ -34,6 +39,7 @@ class RequirementScreen(ViewScreen):
         with Horizontal():
             with VerticalScroll(id="req-side"):
                 yield Static("", id="req-detail")
+                yield Static("", id="req-drivers")
             yield PlotextPlot(id="req-trend")
         yield footer
 
@@ -134,6 +140,40 @@ class RequirementScreen(ViewScreen):
                      f"{h.limit_text} [{h.status}]{' - ' + h.note if h.note else ''}\n")
         box.update(t)
         self._plot(data)
+        self._show_drivers(data)
+
+    def _drivers_key(self, data) -> tuple:
+        tips = {}
+        for lname, rev, res in data.trend:  # the last revision of each loop is its tip
+            tips[lname] = (rev.label, res)
+        return (data.requirement.key, data.requirement.version, tuple(sorted(
+            (k, v[0], v[1].created_at if v[1] else None) for k, v in tips.items())))
+
+    def _show_drivers(self, data) -> None:
+        box = self.query_one("#req-drivers", Static)
+        if not data.requirement.metric or not data.requirement.loops:
+            box.update("")
+            return
+        key = self._drivers_key(data)
+        if key in self._drivers:
+            box.update(self._drivers[key])
+            return
+        box.update(Text("what drives the worst value: computing...", style="dim"))
+        self._compute_drivers(key)
+
+    @work(thread=True, exclusive=True, group="drivers")
+    def _compute_drivers(self, key) -> None:
+        try:
+            found = load_drivers(self.app.lg, key[0])
+        except LedgerError as e:  # e.g. the requirement was retired meanwhile: said in the view
+            found = e
+        self.app.call_from_thread(self._drivers_ready, key, found)
+
+    def _drivers_ready(self, key, found) -> None:
+        text = drivers_text(found)
+        self._drivers[key] = text
+        if self._data is not None and self._drivers_key(self._data) == key:
+            self.query_one("#req-drivers", Static).update(text)
 
     def _plot(self, data) -> None:
         plot = self.query_one(PlotextPlot)
@@ -174,3 +214,47 @@ class RequirementScreen(ViewScreen):
             plt.xticks(list(range(1, len(labels) + 1)), labels)
             plt.ylabel(shown if shown not in ("ratio", "") else "")
         plot.refresh()
+
+
+def drivers_text(found) -> Text:
+    """The "what drives the worst value" section of ``load_drivers``'s result."""
+    from ...driversview import corner_line, effect_rows, headline, summary
+
+    t = Text()
+    t.append("what drives the worst value\n", style="bold underline")
+    if isinstance(found, Exception):
+        t.append(f"  cannot tell: {found}\n", style="red")
+        return t
+    if not found:
+        t.append("  no loop with a revision yet\n")
+    for lname, d in found:
+        if isinstance(d, Exception):
+            t.append(f"  {lname}: {d}\n", style="red")
+            continue
+        t.append(f"  {headline(d)}\n")
+        if not d.effects:
+            t.append(f"    {d.note}\n", style="dim")
+            continue
+        line = corner_line(d)
+        if line:
+            t.append(f"    {line}\n")
+        t.append(f"    {summary(d)}\n", style="bold")
+        for rank, name, band, at, change, err, worse, ends, note in effect_rows(d):
+            t.append(f"    {rank:>2} {name:<10} {change}")
+            if err != "-":
+                t.append(f" {err}", style="dim")
+            t.append(f"  worse when {worse}  at worst: {at}  band {band}\n"
+                     if worse != "-" else f"  at worst: {at}  band {band}\n")
+            if ends != "-":
+                t.append(f"       low end -> high end: {ends}\n", style="dim")
+            if note:
+                t.append(f"       {note}\n", style="dim")
+        if d.note:
+            t.append(f"    note: {d.note}\n", style="dim")
+    steps = {d.step for _, d in found if not isinstance(d, Exception)}
+    if steps:
+        t.append(f"  slopes: central differences, step {100 * max(steps):g} % of each "
+                 "tolerance width (docs/history.md)\n", style="dim")
+    t.append("  model-based verification does not replace hardware testing, applicable safety "
+             "standards and qualified review\n", style="dim")
+    return t
