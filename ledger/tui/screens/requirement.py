@@ -95,13 +95,11 @@ class RequirementScreen(ViewScreen):
             t.append(f"  {lname}/{rev.label:<6} ")
             t.append(f"{SYMBOL.get(v, '?')} {v:<10}", style=STYLE.get(v, ""))
             t.append(f" {fmt_value(res.value, res.unit, res.limit_text) if res else '-'}")
-            if res is not None and res.pass_fraction is not None and res.variants:
+            if res is not None and res.samples is not None and res.pass_fraction is not None:
+                # a family with random samples: the pass fraction and its lower bound
                 from ...yieldbound import bound_text
 
-                bound = bound_text(res)
-                t.append(f"  {res.pass_fraction:.0%} pass"
-                         + (f", bound {bound}" if bound not in ("-", "no samples")
-                            else f" ({bound})" if bound == "no samples" else ""))
+                t.append(f"  {res.pass_fraction:.0%} pass, yield bound {bound_text(res)}")
             t.append("\n")
         t.append("\nversions\n", style="bold underline")
         for h in data.history:
