@@ -385,3 +385,23 @@ def test_demo_verdicts_unchanged_when_rejudged(tmp_path):
         assert compared > 50
     finally:
         lg.close()
+
+
+async def test_ui_matrix_detail_line_shows_the_bound(ylg):
+    from textual.widgets import DataTable
+
+    from ledger.tui.app import LedgerApp
+    from tests.test_tui import press, settle
+
+    app = LedgerApp(ledger=ylg)
+    async with app.run_test(size=(160, 40)) as pilot:
+        await settle(pilot)
+        await press(pilot, "2")
+        scr = app.screen
+        table = scr.query_one(DataTable)
+        keys = [r.key for r in scr.visible_rows()]
+        table.move_cursor(row=keys.index("PM-2"), column=1)
+        await pilot.pause()
+        detail = str(scr.query_one("#matrix-detail").render())
+        assert "PM-2 on pz/r1" in detail and "pass" in detail
+        assert "yield bound" in detail and "target 90 % at 95 % (needs 29 passing)" in detail

@@ -288,8 +288,9 @@ def _yield_verdict(check: Check, jd: Judged, variants, passing) -> Judged:
     conf = check.confidence or DEFAULT_CONFIDENCE
     claim = yield_text(check.yield_target, conf)
     if jd.samples is None:
-        return replace(jd, verdict="error", reason=f"yield target {claim} needs random samples; "
-                       "this plant family has none (give the plant samples)")
+        return Judged("error", None, None, None, "", None, jd.variants,
+                      f"yield target {claim} needs random samples; this plant family has "
+                      "none (give the plant samples)")
     failed = [v for v, ok in zip(variants, passing) if not ok and _kind(v) in _MUST_PASS]
     if failed:
         more = f" (and {len(failed) - 1} more)" if len(failed) > 1 else ""
