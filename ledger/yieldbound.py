@@ -20,7 +20,8 @@ from .errors import SpecError
 
 __all__ = ["lower_bound", "samples_needed", "parse_yield", "parse_confidence", "meets",
            "yield_text", "percent_text", "DEFAULT_CONFIDENCE", "cached_bound", "YIELD_KEYS",
-           "yield_settings", "split_yield", "yield_fields", "bound_text"]
+           "yield_settings", "split_yield", "yield_fields", "bound_text",
+           "bound_percent"]
 
 #: the confidence of the bound shown beside a pass fraction when a requirement sets none
 DEFAULT_CONFIDENCE = 0.95
@@ -198,7 +199,7 @@ def bound_text(r) -> str:
     ``'re-verify'`` when a sampled family's counts were not recorded (results written before
     they were kept) and ``'-'`` when there is no value."""
     if r.yield_bound is not None:
-        return f"{_digits(r.yield_bound, r.yield_target)} at {percent_text(r.confidence)}"
+        return f"{bound_percent(r.yield_bound, r.yield_target)} at {percent_text(r.confidence)}"
     if r.samples is not None and r.sample_passes is None and r.value is not None:
         return "re-verify"
     if r.samples is None and r.variants and r.value is not None:
@@ -206,7 +207,7 @@ def bound_text(r) -> str:
     return "-"
 
 
-def _digits(bound: float, target: float | None) -> str:
+def bound_percent(bound: float, target: float | None) -> str:
     """The bound in percent with one decimal, more when fewer would hide which side of the
     target it lies on."""
     for d in range(1, 7):

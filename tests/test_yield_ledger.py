@@ -83,6 +83,17 @@ def test_yield_target_judged_on_the_bound_at_the_edge(samples, failing, verdict)
                                                 rel=1e-15)
 
 
+def test_bound_text_never_rounds_across_the_target():
+    from ledger.yieldbound import bound_percent
+
+    # one failure in 472: bound 0.9899892 (scipy, above); one decimal would read 99.0 %
+    b = cp_lower(471, 472, 0.95)
+    assert bound_percent(b, 0.99) == "98.999 %"
+    assert bound_percent(cp_lower(472, 473, 0.95), 0.99) == "99.0 %"
+    jd = judge_payload(_check(), _payload(472, 1))
+    assert "yield bound 98.999 % < 99 % at 95 %" in jd.reason
+
+
 def test_yield_target_members_that_decide():
     # corners are the tolerance box's extremes: they do not decide under a yield target
     jd = judge_payload(_check(), _payload(299, corner_fails=True))
@@ -312,7 +323,7 @@ def test_cli_yield_options_and_results_column(tmp_path, monkeypatch):
     out = call("results", "pz")
     # 300 of 300 pass: bound 0.05^(1/300) = 0.99006 (closed form, k = n)
     assert "yield bound" in out and "99.0 % at 95 %" in out
-    assert "yield bound 99.0064 % >= 99 % at 95 %" in out  # the note, cut to its column
+    assert "yield bound 99.0 % >= 99 % at 95 %" in out  # the note, cut to its column
     shown = call("requirement", "show", "PM-1")
     assert ">= 99 % at 95 %" in shown and "299 passing samples" in shown
     rows = json.loads(call("results", "pz", "--json"))

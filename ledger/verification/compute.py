@@ -282,7 +282,7 @@ def _yield_verdict(check: Check, jd: Judged, variants, passing) -> Judged:
     distribution and must each pass."""
     from dataclasses import replace
 
-    from ..yieldbound import DEFAULT_CONFIDENCE, lower_bound, percent_text, samples_needed, \
+    from ..yieldbound import DEFAULT_CONFIDENCE, bound_percent, lower_bound, samples_needed, \
         yield_text
 
     conf = check.confidence or DEFAULT_CONFIDENCE
@@ -301,9 +301,9 @@ def _yield_verdict(check: Check, jd: Judged, variants, passing) -> Judged:
     ok = bound >= check.yield_target
     counts = f"{jd.sample_passes} of {jd.samples} samples pass"
     if ok:
-        why = f"yield bound {percent_text(bound)} >= {claim} ({counts})"
+        why = f"yield bound {bound_percent(bound, check.yield_target)} >= {claim} ({counts})"
     else:
-        why = (f"yield bound {percent_text(bound)} < {claim} ({counts}; "
+        why = (f"yield bound {bound_percent(bound, check.yield_target)} < {claim} ({counts}; "
                f"{samples_needed(check.yield_target, conf)} passing samples with none failing "
                "would support it)")
     return replace(jd, verdict="pass" if ok else "fail",
