@@ -248,7 +248,8 @@ class Ledger:
                         metric: str | None = None, limit: str | None = None,
                         settings: Mapping | None = None, parents: Sequence[str] = (),
                         loops: Sequence[str] = (), method: str = "analysis",
-                        status: str = "draft") -> RequirementInfo:
+                        status: str = "draft", yield_claim: str | None = None,
+                        confidence: str | float | None = None) -> RequirementInfo:
         """Add a requirement (version 1).
 
         Parameters
@@ -264,11 +265,17 @@ class Ledger:
             IDs this requirement derives from (trace); cycles are refused.
         loops : sequence of str
             Loops it applies to.
+        yield_claim : str, optional
+            A yield target ``'99 % at 95 %'`` (docs/history.md): the requirement is then judged
+            on the lower confidence bound of its random samples' pass probability.
+        confidence : str or float, optional
+            Confidence of the bound shown beside the pass fraction (``'90 %'``; default 95 %).
         """
         info, _ = self.store.write(
             req_db.upsert, key, title=title, statement=statement, author=self.author,
             rationale=rationale, method=method, status=status, metric=metric,
-            settings=settings, limit=limit, parents=parents, loops=loops, must_exist=False)
+            settings=settings, limit=limit, parents=parents, loops=loops, must_exist=False,
+            yield_claim=yield_claim, confidence=confidence)
         runner.after_requirement_change(self, info)
         return info
 
@@ -276,7 +283,8 @@ class Ledger:
         """Make a new version of a requirement with ``changes`` applied.
 
         Accepted changes: ``title, statement, rationale, method, status, metric, settings,
-        limit, parents, loops``.  The old version stays readable.  Nothing changes (and no
+        limit, parents, loops, yield_claim, confidence`` (``yield_claim=""`` removes the yield
+        target).  The old version stays readable.  Nothing changes (and no
         version is made) when the changes equal the latest version.
         """
         info, _ = self.store.write(req_db.edit, key, author=self.author, note=note, **changes)

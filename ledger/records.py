@@ -87,6 +87,10 @@ class RequirementInfo:
     content_hash: str
     created_at: datetime
     latest_version: int = 1
+    #: the yield claim (docs/history.md, yield with confidence): target fraction or ``None``,
+    #: and the confidence of the bound (``None``: the default, 95 %)
+    yield_target: float | None = None
+    confidence: float | None = None
 
 
 @dataclass(frozen=True)
@@ -132,6 +136,16 @@ class ResultInfo:
     engine_version: str
     created_at: datetime
     stale: bool = False
+    #: yield with confidence (``ledger.yieldbound.yield_fields``): random samples in the
+    #: family and how many pass (``None``: no random samples, or not known), the one-sided
+    #: Clopper-Pearson lower bound on the pass probability at ``confidence``, the
+    #: requirement's yield target and the all-passing samples its claim needs
+    samples: int | None = None
+    sample_passes: int | None = None
+    confidence: float = 0.95
+    yield_bound: float | None = None
+    yield_target: float | None = None
+    samples_needed: int | None = None
 
 
 @dataclass(frozen=True)

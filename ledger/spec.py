@@ -40,7 +40,8 @@ _FIELDS = {
     "requirement": {
         "required": {"id": str, "title": str, "statement": str},
         "optional": {"rationale": str, "method": str, "status": str, "metric": str,
-                     "limit": str, "settings": dict, "derives_from": list, "loops": list},
+                     "limit": str, "settings": dict, "derives_from": list, "loops": list,
+                     "yield": str, "confidence": (str, int, float)},
     },
     "revision": {
         "required": {"loop": str, "controller": str, "rationale": str},
@@ -257,7 +258,8 @@ def import_spec(ledger, path: str | os.PathLike) -> ImportReport:
                 rationale=rec.get("rationale", ""), method=rec.get("method", "analysis"),
                 status=rec.get("status", "draft"), metric=rec.get("metric"),
                 settings=rec.get("settings"), limit=rec.get("limit"),
-                parents=rec.get("derives_from", []), loops=rec.get("loops", [])))
+                parents=rec.get("derives_from", []), loops=rec.get("loops", []),
+                yield_claim=rec.get("yield"), confidence=rec.get("confidence")))
             _tally(report, f"requirement {info.key}", changed, info.version)
 
         for rec in data.get("revision", []):
@@ -393,6 +395,7 @@ def dump_spec(ledger, *, folder: str = "measured", files: dict | None = None) ->
         "id": r.key, "title": r.title, "statement": r.statement, "rationale": r.rationale,
         "method": r.method, "status": r.status, "metric": r.metric, "limit": r.limit_text,
         "settings": r.settings, "derives_from": list(r.parents), "loops": list(r.loops),
+        **_yield_entry(r),
     }) for r in ledger.requirements()]
     revs = []
     for lp in loops:
@@ -427,3 +430,15 @@ def export_spec(ledger, path: str | os.PathLike) -> Path:
         f.parent.mkdir(parents=True, exist_ok=True)
         write_atomic(f, lambda tmp, body=body: tmp.write_text(body, encoding="utf-8"))
     return write_atomic(path, lambda tmp: tmp.write_text(text, encoding="utf-8"))
+
+
+def _yield_entry(r) -> dict:
+    """The ``yield`` claim (``'99 % at 95 %'``) or a bound ``confidence`` of a requirement as
+    a spec file gives them (nothing when neither is set)."""
+    from .yieldbound import percent_text, yield_text
+
+    if r.yield_target is not None:
+        return {"yield": yield_text(r.yield_target, r.confidence)}
+    if r.confidence is not None:
+        return {"confidence": percent_text(r.confidence)}
+    return {}

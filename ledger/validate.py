@@ -205,9 +205,12 @@ def loop_fields(name, kind, sensor, prefilter, input_delay, output_delay, sample
 
 
 def requirement_fields(key: str, *, title, statement, rationale, method, status, metric,
-                       settings, limit, parents, loops, plant_units=lambda names: ()) -> dict:
+                       settings, limit, parents, loops, plant_units=lambda names: (),
+                       yield_claim=None, confidence=None) -> dict:
     """The stored fields of a requirement version, checked (that the parents and loops exist
-    is the store's check).  ``parents`` and ``loops`` come back sorted, without repeats.
+    is the store's check).  ``yield_claim`` and ``confidence`` (``ledger.yieldbound.
+    yield_settings``) are stored among the settings, so they enter the content hash only when
+    set.  ``parents`` and ``loops`` come back sorted, without repeats.
     ``plant_units(loop names)`` gives ``(loop, plant input unit, plant output unit)`` for each
     loop, so that a limit is checked against the units of every plant it applies to."""
     what = f"requirement {key!r}"
@@ -220,6 +223,18 @@ def requirement_fields(key: str, *, title, statement, rationale, method, status,
     if status not in STATUSES:
         raise IntegrityViolation(f"{what}: status {status!r} is not one of {', '.join(STATUSES)}")
     settings = dict(settings or {})
+    from .yieldbound import YIELD_KEYS, yield_settings
+
+    reserved = sorted(set(settings) & set(YIELD_KEYS))
+    if reserved:
+        raise IntegrityViolation(f"{what}: {', '.join(reserved)} is set by the yield claim and "
+                                 "confidence, not among the metric settings")
+    try:
+        claim = yield_settings(yield_claim, confidence)
+    except LedgerError as e:
+        raise with_context(e, what) from e
+    if claim and not metric:
+        raise IntegrityViolation(f"{what}: a yield claim or confidence needs a metric")
     comparator = limit_value = None
     limit_text = ""
     if metric:
@@ -260,7 +275,7 @@ def requirement_fields(key: str, *, title, statement, rationale, method, status,
     return dict(
         title=title.strip(), statement=statement.strip(), rationale=(rationale or "").strip(),
         method=method, status=status, metric=metric or None,
-        settings_json=json.dumps(settings, sort_keys=True), comparator=comparator,
+        settings_json=json.dumps({**settings, **claim}, sort_keys=True), comparator=comparator,
         limit_value=limit_value, limit_text=limit_text, parents=parent_keys,
         loops=sorted(set(loops or ())),
     )

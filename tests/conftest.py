@@ -36,6 +36,7 @@ NUMERIC_MODULES = {"test_blocks", "test_family", "test_family_scale", "test_freq
 NUMERIC_MODULES |= {"test_measured"}
 NUMERIC_MODULES |= {"test_rms"}
 NUMERIC_MODULES |= {"test_sensitivity"}
+NUMERIC_MODULES |= {"test_yield_ledger"}
 
 
 def pytest_configure(config):

@@ -57,10 +57,11 @@ def settings_arg(items: list[str]) -> dict:
 
 
 def _changes(title, statement, rationale, metric, limit, setting, derives_from, loop,
-             method, status) -> dict:
+             method, status, yield_claim=None, confidence=None) -> dict:
     ch = {}
     for k, v in (("title", title), ("statement", statement), ("rationale", rationale),
-                 ("metric", metric), ("limit", limit), ("method", method), ("status", status)):
+                 ("metric", metric), ("limit", limit), ("method", method), ("status", status),
+                 ("yield_claim", yield_claim), ("confidence", confidence)):
         if v is not None:
             ch[k] = v
     if setting:
@@ -82,6 +83,10 @@ _OPT_PARENT = typer.Option([], "--derives-from", help="Parent requirement ID (tr
 _OPT_LOOP = typer.Option([], "--loop", help="Loop it applies to. Repeatable.")
 _OPT_METHOD = typer.Option(None, "--method", help="analysis, test, inspection or demonstration.")
 _OPT_STATUS = typer.Option(None, "--status", help="draft, approved or retired.")
+_OPT_YIELD = typer.Option(None, "--yield", help="Yield target judged on the lower confidence "
+                          "bound of the random samples: '99 % at 95 %' ('none' removes it).")
+_OPT_CONF = typer.Option(None, "--confidence", help="Confidence of the yield bound shown "
+                         "beside the pass fraction: '90 %' (default 95 %).")
 
 
 @group.command("add")
@@ -91,10 +96,11 @@ def req_add(key: str = typer.Argument(..., help="Requirement ID, e.g. PZ-07."),
             rationale: Optional[str] = _OPT_WHY, metric: Optional[str] = _OPT_METRIC,
             limit: Optional[str] = _OPT_LIMIT, setting: List[str] = _OPT_SET,
             derives_from: List[str] = _OPT_PARENT, loop: List[str] = _OPT_LOOP,
-            method: Optional[str] = _OPT_METHOD, status: Optional[str] = _OPT_STATUS):
+            method: Optional[str] = _OPT_METHOD, status: Optional[str] = _OPT_STATUS,
+            yield_claim: Optional[str] = _OPT_YIELD, confidence: Optional[str] = _OPT_CONF):
     """Add a requirement."""
     ch = _changes(title, statement, rationale, metric, limit, setting, derives_from,
-                  loop, method, status)
+                  loop, method, status, yield_claim, confidence)
     ch.setdefault("title", "")
     ch.setdefault("statement", "")
     with open_ledger() as lg:
@@ -111,10 +117,11 @@ def req_edit(key: str = typer.Argument(..., help="Requirement ID."),
              derives_from: List[str] = typer.Option([], "--derives-from", help="Replace the parents (give '-' alone for none). Repeatable."),
              loop: List[str] = typer.Option([], "--loop", help="Replace the loops (give '-' alone for none). Repeatable."),
              method: Optional[str] = _OPT_METHOD, status: Optional[str] = _OPT_STATUS,
+             yield_claim: Optional[str] = _OPT_YIELD, confidence: Optional[str] = _OPT_CONF,
              note: str = typer.Option("", "--note", help="Why this change.")):
     """Change a requirement: records a new version; the old one stays readable."""
     ch = _changes(title, statement, rationale, metric, limit, setting, derives_from,
-                  loop, method, status)
+                  loop, method, status, yield_claim, confidence)
     if not ch:
         raise UsageError("nothing to change; give at least one option")
     with open_ledger() as lg:
@@ -170,6 +177,15 @@ def req_show(key: str, version: Optional[int] = typer.Option(None, "--version", 
         if r.metric:
             typer.echo(f"  check      {r.metric} {r.limit_text}"
                        + (f"  settings {r.settings}" if r.settings else ""))
+        if r.yield_target is not None or r.confidence is not None:
+            from ..yieldbound import percent_text, samples_needed, yield_text
+
+            if r.yield_target is not None:
+                typer.echo(f"  yield      >= {yield_text(r.yield_target, r.confidence)} "
+                           f"(judged on the bound; {samples_needed(r.yield_target, r.confidence)}"
+                           " passing samples with none failing support it)")
+            else:
+                typer.echo(f"  yield      bound shown at {percent_text(r.confidence)} confidence")
         typer.echo(f"  derives    {', '.join(r.parents) or '-'}")
         typer.echo(f"  loops      {', '.join(r.loops) or '-'}")
         typer.echo(f"  recorded   {r.created_at:%Y-%m-%d %H:%M} by {r.author}"

@@ -32,6 +32,7 @@ def print_results(results, title: str) -> None:
         typer.echo("  no applicable requirements with a metric")
         return
     from ..display import headroom_text, value_text
+    from ..yieldbound import bound_text
 
     rows = []
     for r in results:
@@ -41,10 +42,16 @@ def print_results(results, title: str) -> None:
                      value_text(r.value, r.unit, r.limit_text), r.limit_text,
                      head, r.worst_variant or "-",
                      "-" if r.pass_fraction is None else f"{r.pass_fraction:.0%}",
+                     "" if bound_text(r) == "no samples" else bound_text(r),
                      short(r.reason, 50) or ""])
-    table(["ID", "verdict", "worst value", "limit", "headroom", "worst variant", "pass", "note"],
-          rows, title=title, drop=("note", "pass", "worst variant"),
-          shorten={"worst variant": short_variant}, quiet={"pass": lambda v: v == "100%"})
+    table(["ID", "verdict", "worst value", "limit", "headroom", "worst variant", "pass",
+           "yield bound", "note"],
+          rows, title=title, drop=("note", "yield bound", "pass", "worst variant"),
+          shorten={"worst variant": short_variant},
+          quiet={"pass": lambda v: v == "100%"})
+    if any(bound_text(r) == "no samples" for r in results):
+        typer.echo("  yield bound: none, the plant family has no random samples (corners and "
+                   "models are no random draws)")
     counts = {}
     for r in results:
         counts[r.verdict] = counts.get(r.verdict, 0) + 1

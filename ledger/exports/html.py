@@ -148,6 +148,26 @@ def _matrix_table(matrix) -> list[str]:
     return out
 
 
+def _yield_html(row) -> str:
+    """The lower confidence bound beside the pass fraction (docs/history.md), with the sample
+    counts and the yield target when the requirement states one."""
+    if not row.yield_shown or row.yield_shown == "-":
+        return ""
+    text = _e(row.yield_shown)
+    if row.yield_bound is not None:
+        text += (f" <span class='meta'>(one-sided Clopper-Pearson lower bound; "
+                 f"{row.sample_passes} of {row.samples} random samples pass)</span>")
+    elif row.yield_shown == "no samples":
+        text += " <span class='meta'>(no random samples: corners and models give no bound)</span>"
+    if row.yield_target is not None:
+        from ..yieldbound import yield_text
+
+        text += (f"<br>target {_e(yield_text(row.yield_target, row.yield_confidence))}, "
+                 f"judged on the bound; {row.samples_needed} passing samples with none failing "
+                 "support it")
+    return text
+
+
 def _fields(entry, row) -> str:
     q, r = entry.requirement, entry.result
     pairs = [("Statement", _e(q.statement)), ("Rationale", _e(q.rationale)),
@@ -163,6 +183,7 @@ def _fields(entry, row) -> str:
              ("Variants passing", (_e(number_text(100 * row.pass_fraction, digits=4)) + " %"
                                    if row.pass_fraction is not None else "")
               + (f" of {row.variants} plant variants" if row.variants else "")),
+             ("Yield bound", _yield_html(row)),
              ("Derives from", _e(", ".join(q.parents))),
              ("Judged version", _e(row.judged_version)),
              ("Plant version", _e(row.plant_version)),

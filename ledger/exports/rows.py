@@ -74,6 +74,20 @@ class ExportRow:
         Fraction of the family's variants that pass, 0..1.
     variants : int or None
         Number of plant variants judged.
+    samples, sample_passes : int or None
+        Random samples in the family and how many pass (``None`` without random samples).
+    yield_bound : float or None
+        One-sided Clopper-Pearson lower confidence bound on the samples' pass probability,
+        0..1, at ``yield_confidence`` (``None`` without random samples: a bound means
+        something for random draws only, not for corners).
+    yield_confidence : float or None
+        Confidence of the bound (the requirement's setting, 0.95 by default).
+    yield_target : float or None
+        The requirement's yield target; with one the verdict is judged on the bound.
+    samples_needed : int or None
+        Passing samples, none failing, that support the yield target at its confidence.
+    yield_shown : str
+        The bound as shown to a person, e.g. ``98.9 % at 95 %``, or ``no samples``.
     loop, revision : str
     plant_version : int or None
     verified_at : str
@@ -110,6 +124,13 @@ class ExportRow:
     worst_variant: str
     pass_fraction: float | None
     variants: int | None
+    samples: int | None
+    sample_passes: int | None
+    yield_bound: float | None
+    yield_confidence: float | None
+    yield_target: float | None
+    samples_needed: int | None
+    yield_shown: str
     loop: str
     revision: str
     plant_version: int | None
@@ -128,8 +149,10 @@ class ExportRow:
 #: Column names, in file order.
 COLUMNS = tuple(f.name for f in fields(ExportRow))
 
-_NUMERIC = {"value", "headroom", "headroom_fraction", "pass_fraction"}
-_INTEGER = {"version", "judged_version", "variants", "plant_version", "waiver"}
+_NUMERIC = {"value", "headroom", "headroom_fraction", "pass_fraction", "yield_bound",
+            "yield_confidence", "yield_target"}
+_INTEGER = {"version", "judged_version", "variants", "plant_version", "waiver", "samples",
+            "sample_passes", "samples_needed"}
 
 
 def _finite_or_inf(x) -> float | None:
@@ -160,10 +183,13 @@ def matrix_rows(matrix) -> list[ExportRow]:
     matrix : ledger.history.matrix.Matrix
     """
     from ..display import headroom_text, value_text
+    from ..yieldbound import DEFAULT_CONFIDENCE, bound_text, samples_needed
 
     out = []
     for e in matrix.entries:
         q, r = e.requirement, e.result
+        conf = r.confidence if r else (q.confidence or DEFAULT_CONFIDENCE)
+        target = r.yield_target if r else q.yield_target
         out.append(ExportRow(
             requirement=q.key, version=q.version,
             judged_version=r.requirement_version if r else None,
@@ -179,7 +205,14 @@ def matrix_rows(matrix) -> list[ExportRow]:
                                          q.limit_text) if r and r.headroom is not None else "",
             verdict=e.verdict, worst_variant=r.worst_variant if r else "",
             pass_fraction=_finite_or_inf(r.pass_fraction) if r else None,
-            variants=r.variants if r else None, loop=e.loop, revision=e.revision.label,
+            variants=r.variants if r else None,
+            samples=r.samples if r else None,
+            sample_passes=r.sample_passes if r else None,
+            yield_bound=r.yield_bound if r else None, yield_confidence=conf,
+            yield_target=target,
+            samples_needed=samples_needed(target, conf) if target else None,
+            yield_shown=bound_text(r) if r else "",
+            loop=e.loop, revision=e.revision.label,
             plant_version=r.plant_version if r else None,
             verified_at=r.created_at.isoformat() if r else "",
             engine_version=r.engine_version if r else "", reason=r.reason if r else "",

@@ -76,6 +76,7 @@ __all__ = [
     "chain_head",
     "append_link",
     "RESULT_FIELDS",
+    "RESULT_OPTIONAL_FIELDS",
     "METRIC_FIELDS",
     "result_row_hash",
     "metric_row_hash",
@@ -300,6 +301,9 @@ def append_link(s: Session, kind: str, row: Any) -> ChainLink:
 RESULT_FIELDS = ("revision_id", "requirement_version_id", "plant_version_id", "verdict", "value",
                  "headroom", "headroom_fraction", "worst_variant", "pass_fraction", "variants",
                  "reason", "metric_key", "engine_version", "created_at")
+#: Columns appended to a result's row hash only when set (sample counts, migration
+#: 0012_yield), so rows recorded before them keep their hashes.
+RESULT_OPTIONAL_FIELDS = ("samples", "sample_passes")
 #: Columns of a cached metric value that enter its row hash.
 METRIC_FIELDS = ("key", "metric", "values_json", "engine_version", "created_at")
 
@@ -310,7 +314,8 @@ _LAST_STAMP: tuple = (None, None)  # (time, its stamp): a batch's rows share one
 def result_row_hash(row: Mapping) -> str:
     """SHA-256 (hex) of one result row's content: the compact JSON list (``json.dumps`` with
     ``separators=(",", ":")``, ``ensure_ascii=False``) of :data:`RESULT_FIELDS` in that order;
-    floats as shortest round-trip decimals, NaN as null, the time as :func:`stamp`."""
+    floats as shortest round-trip decimals, NaN as null, the time as :func:`stamp`; then, only
+    when ``samples`` is set, :data:`RESULT_OPTIONAL_FIELDS`."""
     global _LAST_STAMP
     when, last = row["created_at"], _LAST_STAMP  # one tuple read: safe across threads
     if last[0] is None or last[0] != when:
@@ -320,7 +325,10 @@ def result_row_hash(row: Mapping) -> str:
             f"{_flt(row['headroom'])},{_flt(row['headroom_fraction'])},"
             f"{_str(row['worst_variant'])},{_flt(row['pass_fraction'])},"
             f"{_int(row['variants'])},{_str(row['reason'])},{_str(row['metric_key'])},"
-            f"{_str(row['engine_version'])},{_str(last[1])}]")
+            f"{_str(row['engine_version'])},{_str(last[1])}")
+    if row.get("samples") is not None:
+        data += f",{_int(row['samples'])},{_int(row.get('sample_passes'))}"
+    data += "]"
     return hashlib.sha256(data.encode("utf-8")).hexdigest()
 
 

@@ -257,6 +257,10 @@ class Result(Base):
     worst_variant: Mapped[str] = mapped_column(String(80), default="")
     pass_fraction: Mapped[float | None] = mapped_column(Float, nullable=True)
     variants: Mapped[int] = mapped_column(Integer, default=0)
+    #: random samples in the family and how many pass (migration 0012_yield; NULL: none, or
+    #: recorded before sample counts were kept)
+    samples: Mapped[int | None] = mapped_column(Integer, nullable=True)
+    sample_passes: Mapped[int | None] = mapped_column(Integer, nullable=True)
     reason: Mapped[str] = mapped_column(Text, default="")
     metric_key: Mapped[str] = mapped_column(String(64), default="")
     engine_version: Mapped[str] = mapped_column(String(20))

@@ -24,7 +24,7 @@ __all__ = ["requirement_row", "latest_version", "latest_versions", "latest_subqu
 
 #: the changes :func:`edit` accepts
 EDITABLE = frozenset({"title", "statement", "rationale", "method", "status", "metric",
-                      "settings", "limit", "parents", "loops"})
+                      "settings", "limit", "parents", "loops", "yield_claim", "confidence"})
 
 
 def requirement_row(s: Session, key: str) -> Requirement:
@@ -96,9 +96,12 @@ def infos(s: Session, pairs: list[tuple[Requirement, RequirementVersion]]
                                                  func.max(RequirementVersion.number))
                             .where(RequirementVersion.requirement_id.in_(ch))
                             .group_by(RequirementVersion.requirement_id), rids))
+    from ..yieldbound import split_yield
+
     units: dict[str, str] = {}
     out = []
     for req, v in pairs:
+        settings, target, confidence = split_yield(json.loads(v.settings_json))
         unit = ""
         if v.metric:
             if v.metric not in units:
@@ -110,7 +113,8 @@ def infos(s: Session, pairs: list[tuple[Requirement, RequirementVersion]]
         out.append(RequirementInfo(
             key=req.key, version=v.number, title=v.title, statement=v.statement,
             rationale=v.rationale, method=v.method, status=v.status, metric=v.metric,
-            settings=json.loads(v.settings_json), comparator=v.comparator,
+            settings=settings, yield_target=target, confidence=confidence,
+            comparator=v.comparator,
             limit_value=v.limit_value, limit_text=v.limit_text, unit=unit,
             parents=tuple(sorted(parents.get(v.id, ()))),
             loops=tuple(sorted(loops.get(v.id, ()))),
@@ -178,14 +182,17 @@ def plant_units(s: Session, loop: str) -> tuple[str, str, str]:
 
 def upsert(s: Session, key: str, *, title, statement, author: str, rationale="",
            method="analysis", status="draft", metric=None, settings=None, limit=None,
-           parents=(), loops=(), note="", must_exist: bool | None = None
-           ) -> tuple[RequirementInfo, bool]:
+           parents=(), loops=(), note="", must_exist: bool | None = None, yield_claim=None,
+           confidence=None) -> tuple[RequirementInfo, bool]:
     """Add a requirement or a new version of it when anything changed; ``(info, created)``.
-    ``must_exist``: ``True`` refuses a new ID, ``False`` an existing one."""
+    ``must_exist``: ``True`` refuses a new ID, ``False`` an existing one.  ``yield_claim``
+    (``'99 % at 95 %'``) and ``confidence`` (``'90 %'``): ``ledger.yieldbound.
+    yield_settings``."""
     check_name("requirement ID", key, KEY_RE)
     fields = requirement_fields(key, title=title, statement=statement, rationale=rationale,
                                 method=method, status=status, metric=metric, settings=settings,
                                 limit=limit, parents=parents, loops=loops,
+                                yield_claim=yield_claim, confidence=confidence,
                                 plant_units=lambda names: [plant_units(s, ln) for ln in names])
     for pk in fields["parents"]:
         requirement_row(s, pk)
@@ -224,7 +231,11 @@ def edit(s: Session, key: str, *, author: str, note: str = "", **changes
     base = dict(title=cur.title, statement=cur.statement, rationale=cur.rationale,
                 method=cur.method, status=cur.status, metric=cur.metric,
                 settings=cur.settings, limit=cur.limit_text or None,
-                parents=cur.parents, loops=cur.loops)
+                parents=cur.parents, loops=cur.loops,
+                yield_claim=(cur.yield_target, None) if cur.yield_target else None,
+                confidence=cur.confidence)
+    if "yield_claim" in changes and "confidence" not in changes:
+        base["confidence"] = None  # the new claim brings its own confidence
     if "metric" in changes and changes["metric"] != cur.metric and "limit" not in changes:
         raise IntegrityViolation(f"requirement {key!r}: a new metric needs a new limit")
     base.update(changes)

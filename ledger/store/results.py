@@ -15,6 +15,7 @@ from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
 from ..records import ResultInfo
+from ..yieldbound import yield_fields
 from .loops import loop_row
 from .models import (
     Loop,
@@ -80,7 +81,7 @@ def for_revisions(s: Session, lp: Loop, revs: list[Revision], include_stale: boo
     only = [Requirement.key.in_(list(keys))] if keys is not None else []
     rows = in_chunks(s, lambda ch: (
         select(Result, RequirementVersion, Requirement.key, Requirement.id,
-               PlantVersion.id, PlantVersion.number)
+               PlantVersion.id, PlantVersion.number, PlantVersion.samples)
         .join(RequirementVersion, Result.requirement_version_id == RequirementVersion.id)
         .join(Requirement, RequirementVersion.requirement_id == Requirement.id)
         .join(PlantVersion, Result.plant_version_id == PlantVersion.id)
@@ -100,21 +101,23 @@ def for_revisions(s: Session, lp: Loop, revs: list[Revision], include_stale: boo
             latest[rid] = (vid, status)
     best: dict[tuple[int, str], tuple] = {}
     engine = current_engine()
-    for res, rv, key, rid, rpv_id, rpv_number in rows:
+    rpv_samples = {row[4]: row[6] for row in rows}
+    for res, rv, key, rid, rpv_id, rpv_number, _ in rows:
         lv_id, lv_status = latest[rid]
         if lv_status == "retired":
             continue
-        # stale: judged on an older requirement or plant version, or by another engine version, or by another engine
+        # stale: judged on an older requirement or plant version, or by another engine
         stale = rv.id != lv_id or rpv_id != pv.id or res.engine_version != engine
         rank = (not stale, rv.number, rpv_number, res.id)
         k = (res.revision_id, key)
         if k not in best or rank > best[k][0]:
-            best[k] = (rank, res, rv, rpv_number, stale)
+            best[k] = (rank, res, rv, rpv_number, stale, rpv_samples[rpv_id])
     out: dict[str, list[ResultInfo]] = {r.label: [] for r in revs}
     for (rev_id, key) in sorted(best, key=lambda k: (k[0], k[1])):
-        _, res, rv, rpv_number, stale = best[(rev_id, key)]
+        _, res, rv, rpv_number, stale, drawn = best[(rev_id, key)]
         if stale and not include_stale:
             continue
+        settings = json.loads(rv.settings_json) if rv.settings_json else {}
         out[by_id[rev_id].label].append(ResultInfo(
             loop=lp.name, revision=by_id[rev_id].label, requirement=key,
             requirement_version=rv.number, plant_version=rpv_number,
@@ -125,8 +128,23 @@ def for_revisions(s: Session, lp: Loop, revs: list[Revision], include_stale: boo
             worst_variant=res.worst_variant, pass_fraction=res.pass_fraction,
             variants=res.variants, reason=res.reason, engine_version=res.engine_version,
             created_at=utc(res.created_at), stale=stale,
+            **yield_fields(*_sample_counts(res, drawn), settings.get("yield_target"),
+                           settings.get("confidence")),
         ))
     return out
+
+
+def _sample_counts(res: Result, drawn: int) -> tuple[int | None, int | None]:
+    """(samples, passing samples) of a result: as recorded; for a result written before the
+    counts were kept (migration 0012_yield), exact only when every member passed (then every
+    one of the plant version's ``drawn`` samples did), unknown (``(drawn, None)``) otherwise."""
+    if res.samples is not None:
+        return res.samples, res.sample_passes
+    if not drawn or res.value is None:
+        return None, None
+    if res.verdict == "pass" and res.pass_fraction == 1.0:
+        return drawn, drawn
+    return drawn, None
 
 
 def of_revision(s: Session, loop: str, label: str | None = None, *,

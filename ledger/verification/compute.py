@@ -210,29 +210,101 @@ class Judged:
     pass_fraction: float | None
     variants: int
     reason: str
+    #: random samples in the family and how many of them pass (``None``: no random samples,
+    #: or nothing could be judged)
+    samples: int | None = None
+    sample_passes: int | None = None
+
+
+#: members that are no draw from the tolerance distribution and must pass under a yield target
+_MUST_PASS = ("nominal", "fidelity", "measured")
+
+
+def _kind(name: str) -> str:
+    head = name.split(":", 1)[0]
+    return head if ":" in name and head in ("corner", "sample", "fidelity", "measured") \
+        else "nominal"
+
+
+def _sample_counts(variants, passing) -> tuple[int | None, int | None]:
+    idx = [i for i, v in enumerate(variants) if _kind(v) == "sample"]
+    if not idx:
+        return None, None
+    return len(idx), int(np.count_nonzero(np.asarray(passing, dtype=bool)[idx]))
 
 
 def judge_payload(check: Check, payload: dict) -> Judged:
-    """Worst case over the family by the requirement's own comparator."""
+    """Worst case over the family by the requirement's own comparator; with a yield target,
+    the verdict is the lower confidence bound over the random samples (:func:`_yield_verdict`).
+    """
     variants = payload["variants"]
     errors = payload.get("errors") or {}
     n = len(variants)
     if check.problem:
         return Judged("error", None, None, None, "", None, n, check.problem)
-    if errors:
+    unstable = bool(errors) and bool(payload.get("unstable"))
+    if errors and not unstable:
         first_variant, reason = next(iter(errors.items()))
         more = f" (and {len(errors) - 1} more variant(s))" if len(errors) > 1 else ""
         where = "" if first_variant == "*" else f" on {first_variant}"
-        if payload.get("unstable"):
-            return Judged("fail", None, None, None, first_variant, 1 - len(errors) / n if n else None,
-                          n, f"unstable{where}: {reason}{more}")
         return Judged("error", None, None, None, first_variant, None, n,
                       f"cannot compute{where}: {reason}{more}")
     vals = _decode(payload["values"])
-    lim = Limit(check.comparator, check.limit_value, check.unit, check.limit_text)
-    h = headroom_array(check.comparator, vals, check.limit_value)
-    i = int(np.argmin(h))
-    j = judge(lim, float(vals[i]))
-    passing = passes_array(check.comparator, vals, check.limit_value)
-    return Judged(j.verdict, float(vals[i]), j.headroom, j.headroom_fraction, variants[i],
-                  float(passing.mean()), n, "")
+    passing = np.zeros(n, dtype=bool)
+    if len(vals) == n:
+        passing = passes_array(check.comparator, vals, check.limit_value)
+        passing &= np.array([v not in errors for v in variants], dtype=bool)
+    samples, sample_passes = _sample_counts(variants, passing)
+    if unstable:
+        first_variant, reason = next(iter(errors.items()))
+        more = f" (and {len(errors) - 1} more variant(s))" if len(errors) > 1 else ""
+        where = "" if first_variant == "*" else f" on {first_variant}"
+        jd = Judged("fail", None, None, None, first_variant,
+                    1 - len(errors) / n if n else None, n, f"unstable{where}: {reason}{more}",
+                    samples, sample_passes)
+    else:
+        lim = Limit(check.comparator, check.limit_value, check.unit, check.limit_text)
+        h = headroom_array(check.comparator, vals, check.limit_value)
+        i = int(np.argmin(h))
+        j = judge(lim, float(vals[i]))
+        jd = Judged(j.verdict, float(vals[i]), j.headroom, j.headroom_fraction, variants[i],
+                    float(passing.mean()), n, "", samples, sample_passes)
+    if check.yield_target is None:
+        return jd  # every member must pass (the rule without a yield target)
+    return _yield_verdict(check, jd, variants, passing)
+
+
+def _yield_verdict(check: Check, jd: Judged, variants, passing) -> Judged:
+    """A yield target decides on the one-sided Clopper-Pearson lower bound of the samples'
+    pass probability (failing samples are allowed while the bound meets the target); corners
+    are the tolerance box's extremes, which a yield claim accepts, so they do not decide; the
+    nominal design model, fidelity models and bench measurements are no draws from the
+    distribution and must each pass."""
+    from dataclasses import replace
+
+    from ..yieldbound import DEFAULT_CONFIDENCE, bound_percent, lower_bound, samples_needed, \
+        yield_text
+
+    conf = check.confidence or DEFAULT_CONFIDENCE
+    claim = yield_text(check.yield_target, conf)
+    if jd.samples is None:
+        return Judged("error", None, None, None, "", None, jd.variants,
+                      f"yield target {claim} needs random samples; this plant family has "
+                      "none (give the plant samples)")
+    failed = [v for v, ok in zip(variants, passing) if not ok and _kind(v) in _MUST_PASS]
+    if failed:
+        more = f" (and {len(failed) - 1} more)" if len(failed) > 1 else ""
+        return replace(jd, verdict="fail", reason=f"yield target {claim}: {failed[0]}{more} "
+                       "fails, and the design model, fidelity models and measurements must pass"
+                       + (f"; {jd.reason}" if jd.reason else ""))
+    bound = lower_bound(jd.sample_passes, jd.samples, conf)
+    ok = bound >= check.yield_target
+    counts = f"{jd.sample_passes} of {jd.samples} samples pass"
+    if ok:
+        why = f"yield bound {bound_percent(bound, check.yield_target)} >= {claim} ({counts})"
+    else:
+        why = (f"yield bound {bound_percent(bound, check.yield_target)} < {claim} ({counts}; "
+               f"{samples_needed(check.yield_target, conf)} passing samples with none failing "
+               "would support it)")
+    return replace(jd, verdict="pass" if ok else "fail",
+                   reason=why + (f"; {jd.reason}" if jd.reason else ""))

@@ -56,6 +56,9 @@ class Check:
     limit_text: str
     unit: str
     problem: str = ""       # the limit does not fit the plant's units (judged as an error)
+    #: the yield claim (``ledger.yieldbound``): judged on the bound over the random samples
+    yield_target: float | None = None
+    confidence: float | None = None
 
 
 @dataclass
@@ -112,6 +115,7 @@ def applicable_checks(s: Session, loop_id: int, keys: Iterable[str] | None = Non
     from ..engine.metrics import resolve_settings
     from ..errors import LedgerError
     from ..units import PLANT_UNIT_METRICS, parse_limit_for
+    from ..yieldbound import split_yield
 
     loop = s.get(Loop, loop_id)
     pv = plants_db.latest_version(s, loop.plant_id) if loop is not None else None
@@ -126,7 +130,7 @@ def applicable_checks(s: Session, loop_id: int, keys: Iterable[str] | None = Non
                 unit, limit_value = lim.unit, lim.value
             except LedgerError as e:
                 problem = str(e)
-        settings = json.loads(v.settings_json)
+        settings, target, confidence = split_yield(json.loads(v.settings_json))
         if isinstance(settings.get("move"), str):
             # a move amplitude with a unit, read in this plant's output unit (docs/metrics.md)
             from ..units import quantity_in
@@ -142,7 +146,7 @@ def applicable_checks(s: Session, loop_id: int, keys: Iterable[str] | None = Non
             version_id=v.id, key=key, version=v.number, status=v.status, metric=v.metric,
             settings=resolve_settings(v.metric, settings),
             comparator=v.comparator, limit_value=limit_value, limit_text=v.limit_text,
-            unit=unit, problem=problem,
+            unit=unit, problem=problem, yield_target=target, confidence=confidence,
         ))
     return out
 

@@ -42,7 +42,8 @@ def write_results(s: Session, plan: RevisionPlan, revision_id: int,
             "value": results_db.cap(jd.value), "headroom": results_db.cap(jd.headroom),
             "headroom_fraction": results_db.cap(jd.headroom_fraction),
             "worst_variant": jd.worst_variant, "pass_fraction": jd.pass_fraction,
-            "variants": jd.variants, "reason": jd.reason, "metric_key": k,
+            "variants": jd.variants, "samples": jd.samples,
+            "sample_passes": jd.sample_passes, "reason": jd.reason, "metric_key": k,
             "engine_version": ev, "created_at": now,
         })
     if rows_only:

@@ -105,6 +105,7 @@ class TryReport:
 
 def _results(lg, plan, payloads: dict, units: tuple[str, str], label: str) -> list[ResultInfo]:
     from ..catalogue import metric_unit
+    from ..yieldbound import yield_fields
 
     now = datetime.now(timezone.utc)
     out = []
@@ -117,7 +118,8 @@ def _results(lg, plan, payloads: dict, units: tuple[str, str], label: str) -> li
             headroom=jd.headroom, headroom_fraction=jd.headroom_fraction,
             worst_variant=jd.worst_variant, pass_fraction=jd.pass_fraction,
             variants=jd.variants, reason=jd.reason, engine_version=engine_version(),
-            created_at=now))
+            created_at=now, **yield_fields(jd.samples, jd.sample_passes, c.yield_target,
+                                           c.confidence)))
     return out
 
 

@@ -99,6 +99,16 @@ class RequirementScreen(ViewScreen):
         t.append(f"version {r.version} of {r.latest_version}, {r.status}, by {r.method}\n")
         t.append(f"check: {r.metric or '(none: verified through derived requirements)'} "
                  f"{r.limit_text}\n", style="bold" if r.metric else "")
+        if r.yield_target is not None:
+            from ...yieldbound import samples_needed, yield_text
+
+            t.append(f"yield target: >= {yield_text(r.yield_target, r.confidence)}, judged on "
+                     f"the lower confidence bound ({samples_needed(r.yield_target, r.confidence)}"
+                     " passing samples with none failing support it)\n")
+        elif r.confidence is not None:
+            from ...yieldbound import percent_text
+
+            t.append(f"yield bound at {percent_text(r.confidence)} confidence\n")
         t.append(f"loops: {', '.join(r.loops) or '-'}\n\n")
         t.append("statement\n", style="bold underline")
         t.append(f"{r.statement}\n\n")
@@ -123,7 +133,13 @@ class RequirementScreen(ViewScreen):
             v = res.verdict if res else "unverified"
             t.append(f"  {lname}/{rev.label:<6} ")
             t.append(f"{SYMBOL.get(v, '?')} {v:<10}", style=STYLE.get(v, ""))
-            t.append(f" {fmt_value(res.value, res.unit, res.limit_text) if res else '-'}\n")
+            t.append(f" {fmt_value(res.value, res.unit, res.limit_text) if res else '-'}")
+            if res is not None and res.samples is not None and res.pass_fraction is not None:
+                # a family with random samples: the pass fraction and its lower bound
+                from ...yieldbound import bound_text
+
+                t.append(f"  {res.pass_fraction:.0%} pass, yield bound {bound_text(res)}")
+            t.append("\n")
         t.append("\nwaivers (w: waive a failure on the selected revision)\n",
                  style="bold underline")
         day = today()

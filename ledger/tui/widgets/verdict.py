@@ -99,6 +99,16 @@ def detail_text(key: str, where: str, result, *, broke: bool = False,
         t.append(f"  worst {result.worst_variant}")
     if result.pass_fraction is not None and result.variants:
         t.append(f"  {result.pass_fraction:.0%} of {result.variants} variants pass")
+        from ...yieldbound import bound_text
+
+        bound = bound_text(result)
+        if bound not in ("-", "no samples"):
+            t.append(f"  yield bound {bound}")
+        if result.yield_target is not None:
+            from ...yieldbound import yield_text
+
+            t.append(f"  target {yield_text(result.yield_target, result.confidence)}"
+                     f" (needs {result.samples_needed} passing)")
     if result.reason:
         t.append(f"  {result.reason}", style="dim")
     return t
