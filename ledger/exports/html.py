@@ -3,7 +3,10 @@
 Summary first (title, time, the caution in a box, counts by verdict per loop, the revisions
 with their rationale), then the matrix table (requirements x revisions, verdict word and
 value in each cell), then one evidence section per entry with its fields and its figure
-(inline SVG from :mod:`ledger.exports.plots`).  No external resources (no scripts, fonts or
+(inline SVG from :mod:`ledger.exports.plots`); an entry on the loop gain also gets the Nyquist
+plot and Nichols chart of the whole plant family with its worst variant highlighted
+(:mod:`ledger.exports.loopplots`; one figure per revision and worst variant, later entries
+link to it).  No external resources (no scripts, fonts or
 style sheets from elsewhere).  Print CSS puts each evidence section on a new page and keeps a
 figure with its heading, so printing to PDF gives a readable document.  All text is escaped.
 """
@@ -170,6 +173,40 @@ def _fields(entry, row) -> str:
                                               for k, v in pairs if v) + "</table>")
 
 
+#: figure kinds whose entries get the family's Nyquist and Nichols views
+FAMILY_VIEW_KINDS = ("bode", "sensitivity", "disk", "fit")
+
+
+def _family_views(entry, views, drawn: dict, funit: str) -> str:
+    """The Nyquist and Nichols figure of an entry on the loop gain (once per revision and
+    highlighted member; later entries link to it), or ``""``."""
+    from .loopplots import family_figure
+    from .plots import _svg, figure_kind
+
+    if figure_kind(entry.requirement.metric) not in FAMILY_VIEW_KINDS:
+        return ""
+    if isinstance(views, LedgerError):
+        return f"<p class='note'>No Nyquist or Nichols view: {_e(views)}</p>"
+    worst = entry.result.worst_variant if entry.result is not None else None
+    hl = views.highlight(worst)
+    key = (entry.loop, entry.revision.label, hl)
+    if key in drawn:
+        return (f"<p class='meta'>Nyquist and Nichols views of this revision with {_e(hl)} "
+                f"highlighted: see <a href='#{_e(drawn[key])}'>above</a>.</p>")
+    anchor = f"family--{entry.loop}--{entry.revision.label}--{len(drawn)}"
+    drawn[key] = anchor
+    why = ("the worst variant of this requirement" if hl == worst else
+           "the member with the smallest disk margin")
+    try:
+        with np.errstate(all="ignore"):
+            svg = _svg(family_figure(views, hl, frequency_unit=funit))
+    except LedgerError as e:
+        return f"<p class='note'>No Nyquist or Nichols view: {_e(e)}</p>"
+    return (f"<div class='figure family-views' id='{_e(anchor)}'><p class='meta'>Nyquist and "
+            f"Nichols views of every member drawn; highlighted: {_e(hl)} ({why}).</p>"
+            f"{svg}</div>")
+
+
 def render_html(matrix, lg) -> str:
     """The report as one HTML string.
 
@@ -180,6 +217,7 @@ def render_html(matrix, lg) -> str:
         The ledger the matrix came from; its revisions are rebuilt to draw the curves.
     """
     from ..curves import column_curves
+    from ..loopviews import loop_views
     from ..prefs import frequency_unit
     from .plots import entry_figure
     from .rmsplot import rms_evidence_html
@@ -200,6 +238,8 @@ def render_html(matrix, lg) -> str:
                "variant, recomputed from the revision for display (the verdict is the "
                "ledger's).</p></div>")
     cache: dict = {}
+    views_cache: dict = {}
+    drawn: dict = {}  # (loop, label, highlighted member) -> anchor of its family figure
     for entry, row in zip(matrix.entries, rows):
         key = (entry.loop, entry.revision.label)
         if key not in cache:
@@ -209,6 +249,11 @@ def render_html(matrix, lg) -> str:
                 cache[key] = column_curves(lg, *key, worst=worst)
             except LedgerError as e:
                 cache[key] = e
+            try:
+                with np.errstate(all="ignore"):
+                    views_cache[key] = loop_views(lg, *key, wanted=worst)
+            except LedgerError as e:
+                views_cache[key] = e
         q = entry.requirement
         out.append(f"<section class='evidence' id='{_e(q.key)}--{_e(entry.loop)}--"
                    f"{_e(entry.revision.label)}'>")
@@ -219,15 +264,18 @@ def render_html(matrix, lg) -> str:
             out.append("<p class='note'>Stale: the result judged an older requirement or plant "
                        "version; the curves below use the latest plant version.</p>")
         curves = cache[key]
+        views = views_cache[key] if not isinstance(views_cache[key], LedgerError) else None
         if isinstance(curves, LedgerError):
             out.append(f"<p class='note'>No figure: {_e(curves)}</p>")
         else:
             try:
                 with np.errstate(all="ignore"):
-                    svg = entry_figure(curves, q, entry.result, frequency_unit=funit)
+                    svg = entry_figure(curves, q, entry.result, frequency_unit=funit,
+                                       views=views)
                 out.append(f"<div class='figure'>{svg}</div>")
             except LedgerError as e:
                 out.append(f"<p class='note'>No figure: {_e(e)}</p>")
+        out.append(_family_views(entry, views_cache[key], drawn, funit))
         out.append(rms_evidence_html(lg, entry))  # rms budgets: table and cumulative rms
         out.append("</section>")
     out.append(f"<p class='caution'>Caution: {_e(matrix.caution)}</p></body></html>")

@@ -11,7 +11,13 @@ One figure per entry, chosen by the metric's signal path:
 * loop-gain metrics (margins, crossovers, error constants): Bode plot of L with the gain and
   phase crossovers and margins marked and the limit drawn;
 * ``S``/``T``/``CS`` and disk-margin metrics: the magnitudes with their bounds;
-* pole metrics: the closed-loop pole map with the damping or decay-rate bound.
+* pole metrics: the closed-loop pole map with the damping or decay-rate bound;
+* ``model_fit``/``model_fit_phase``: the plant's Bode plot, design model against the measured
+  members (:mod:`ledger.exports.loopplots`).
+
+Measured members are added to the loop-gain Bode plot at their measured points (the points
+left out for low coherence as hollow markers) when the family views are given; the Nyquist
+and Nichols views of the whole family are :func:`ledger.exports.loopplots.family_figure`.
 
 Every plot has axis labels with units and a legend, and shows the nominal variant and the
 worst variant the ledger named.  The ledger's value is shown beside the curves; nothing is
@@ -44,7 +50,9 @@ _SENS = {"peak_sensitivity", "peak_complementary_sensitivity", "peak_control_sen
 
 def figure_kind(metric: str) -> str:
     """``step``, ``effort``, ``error``, ``disturbance``, ``move``, ``bode``, ``sensitivity``,
-    ``disk`` or ``poles``."""
+    ``disk``, ``poles`` or ``fit``."""
+    if metric in ("model_fit", "model_fit_phase"):
+        return "fit"
     if metric in _STEP_PATH:
         return "step"
     if metric == "peak_effort":
@@ -446,7 +454,7 @@ def _axes_to_hz(fig) -> None:
 
 
 def entry_plot(curves, requirement, result, *, width_in: float = 10.0,
-               height_in: float = 3.8, frequency_unit: str = "Hz"):
+               height_in: float = 3.8, frequency_unit: str = "Hz", views=None):
     """The evidence figure of one entry as a matplotlib ``Figure`` (no pyplot state).
 
     Parameters
@@ -460,6 +468,9 @@ def entry_plot(curves, requirement, result, *, width_in: float = 10.0,
     frequency_unit : str
         ``"Hz"`` (default) or ``"rad/s"``: the unit of frequency axes (log axes, real tick
         values).
+    views : LoopViews, optional
+        The revision's family views (:func:`ledger.loopviews.loop_views`): measured members
+        are added to the loop-gain Bode plot, and ``fit`` entries need them.
 
     Raises
     ------
@@ -471,7 +482,7 @@ def entry_plot(curves, requirement, result, *, width_in: float = 10.0,
 
     kind = figure_kind(requirement.metric)
     worst = result.worst_variant if result else ""
-    tall = kind == "bode" or (kind == "poles" and curves.poles() is None)
+    tall = kind in ("bode", "fit") or (kind == "poles" and curves.poles() is None)
     fig = Figure(figsize=(width_in, height_in * (1.5 if tall else 1.0)))
     out_unit = f" ({curves.output_unit})" if curves.output_unit else ""
     in_unit = f" ({curves.input_unit})" if curves.input_unit else ""
@@ -496,9 +507,20 @@ def entry_plot(curves, requirement, result, *, width_in: float = 10.0,
         _draw_disk(fig, curves, requirement, result, worst)
     elif kind == "poles":
         _draw_poles(fig, curves, requirement, result, worst)
+    elif kind == "fit":
+        from ..errors import NotFoundError
+        from .loopplots import draw_fit
+
+        if views is None:
+            raise NotFoundError("the model-against-measurement figure needs the family views")
+        draw_fit(fig, views, requirement, result, worst)
     else:
         _draw_bode(fig, curves, requirement, result, worst)
-    if frequency_unit == "Hz" and kind in ("bode", "sensitivity", "disk", "poles"):
+        if views is not None:
+            from .loopplots import overlay_measured
+
+            overlay_measured(*fig.axes[:2], views, worst)
+    if frequency_unit == "Hz" and kind in ("bode", "sensitivity", "disk", "poles", "fit"):
         _axes_to_hz(fig)
     _finish(fig, fig.axes)
     return fig
