@@ -193,7 +193,14 @@ def results_cmd(loop: str = typer.Argument(..., help="Loop name."),
     with open_ledger() as lg:
         res = lg.results(loop, label)
         rev = lg.revision(loop, label)
+        plant = lg.loop(loop).plant
+        members = sorted({f"measured:{k}" for v in {r.plant_version for r in res}
+                          for k in lg.plant(plant, v).measured})
     if as_json:
         return emit_json(res)
     print_results(res, f"verdicts for {rev.loop}/{rev.label}")
+    if members:
+        worst = [r.requirement for r in res if r.worst_variant in members]
+        typer.echo(f"  measured members: {', '.join(members)}"
+                   + (f"; worst on a measured member: {', '.join(worst)}" if worst else ""))
     say(CAUTION)

@@ -123,7 +123,7 @@ def draw_nyquist(ax, views, highlight: str, *, hz: bool = True) -> None:
                         fontsize=7, color="#333333", zorder=10)
     ax.set_xlim(-WINDOW / 2 - 0.5, 1.5)
     ax.set_ylim(-2.0, 1.0)
-    ax.set_aspect("equal", adjustable="datalim")
+    ax.set_aspect("equal", adjustable="box")
     ax.axhline(0.0, color="#cccccc", lw=0.6, zorder=0)
     ax.axvline(0.0, color="#cccccc", lw=0.6, zorder=0)
     ax.set_xlabel("Re L(jw)")

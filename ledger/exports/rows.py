@@ -70,10 +70,14 @@ class ExportRow:
         ``pass``, ``fail``, ``error``, ``stale`` or ``unverified``.
     worst_variant : str
         Plant variant that produced ``value``.
+    worst_measured : bool
+        ``worst_variant`` is a measured member (``measured:<name>``; docs/measured.md).
     pass_fraction : float or None
         Fraction of the family's variants that pass, 0..1.
     variants : int or None
         Number of plant variants judged.
+    measured_members : str
+        The measured members among them, comma separated (``""`` when none).
     loop, revision : str
     plant_version : int or None
     verified_at : str
@@ -100,8 +104,10 @@ class ExportRow:
     headroom_shown: str
     verdict: str
     worst_variant: str
+    worst_measured: bool
     pass_fraction: float | None
     variants: int | None
+    measured_members: str
     loop: str
     revision: str
     plant_version: int | None
@@ -147,8 +153,10 @@ def matrix_rows(matrix) -> list[ExportRow]:
     from ..display import headroom_text, value_text
 
     out = []
+    measured = getattr(matrix, "measured", {}) or {}
     for e in matrix.entries:
         q, r = e.requirement, e.result
+        members = measured.get((e.loop, r.plant_version), ()) if r else ()
         out.append(ExportRow(
             requirement=q.key, version=q.version,
             judged_version=r.requirement_version if r else None,
@@ -163,8 +171,10 @@ def matrix_rows(matrix) -> list[ExportRow]:
             headroom_shown=headroom_text(r.value, r.headroom, r.headroom_fraction, r.unit,
                                          q.limit_text) if r and r.headroom is not None else "",
             verdict=e.verdict, worst_variant=r.worst_variant if r else "",
+            worst_measured=bool(r and r.worst_variant in members),
             pass_fraction=_finite_or_inf(r.pass_fraction) if r else None,
-            variants=r.variants if r else None, loop=e.loop, revision=e.revision.label,
+            variants=r.variants if r else None, measured_members=", ".join(members),
+            loop=e.loop, revision=e.revision.label,
             plant_version=r.plant_version if r else None,
             verified_at=r.created_at.isoformat() if r else "",
             engine_version=r.engine_version if r else "", reason=r.reason if r else "",
