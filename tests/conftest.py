@@ -35,6 +35,7 @@ NUMERIC_MODULES = {"test_blocks", "test_family", "test_family_scale", "test_freq
                    "test_moves", "test_disturbance_offset", "test_feedforward"}
 NUMERIC_MODULES |= {"test_measured"}
 NUMERIC_MODULES |= {"test_rms"}
+NUMERIC_MODULES |= {"test_loop_views"}
 
 
 def pytest_configure(config):

@@ -208,6 +208,10 @@ def family_figure(views, highlight: str | None = None, *, width_in: float = 10.0
     draw_nichols(ax2, views, hl, hz=hz)
     fig.suptitle(f"{views.loop}/{views.revision}: loop gain of the plant family "
                  f"({len(views.members)} members drawn)", fontsize=10)
+    from .plots import _finish
+
+    _finish(fig, fig.axes)
+    fig.subplots_adjust(top=0.93, bottom=0.06, hspace=0.3)
     return fig
 
 
