@@ -201,6 +201,7 @@ def results_cmd(loop: str = typer.Argument(..., help="Loop name."),
     print_results(res, f"verdicts for {rev.loop}/{rev.label}")
     if members:
         worst = [r.requirement for r in res if r.worst_variant in members]
-        typer.echo(f"  measured members: {', '.join(members)}"
-                   + (f"; worst on a measured member: {', '.join(worst)}" if worst else ""))
+        typer.echo(f"  measured members: {', '.join(members)}")
+        if worst:
+            typer.echo(f"  worst on a measured member: {', '.join(worst)}")
     say(CAUTION)

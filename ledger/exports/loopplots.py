@@ -93,12 +93,14 @@ def draw_nyquist(ax, views, highlight: str, *, hz: bool = True) -> None:
                 ax.plot(m.L_excluded.real, m.L_excluded.imag, "o", mfc="none",
                         color=MEMBER_STYLE["excluded"], ms=5, mew=1.0, zorder=z + 1)
         else:
-            idx = _thin_idx(L.size, 1500 if m.name == highlight or m.kind == "nominal" else 500)
+            main = m.name == highlight or m.kind == "nominal"
+            idx = _thin_idx(L.size, 800 if main else 250)
             keep = idx[np.abs(L[idx]) <= 3 * WINDOW]
             ax.plot(L[keep].real, L[keep].imag, "-", color=col, lw=lw, zorder=z,
                     label=_label(m, highlight))
-            ax.plot(L[keep].real, -L[keep].imag, ":", color=col, lw=lw * 0.5, zorder=z - 1,
-                    alpha=0.6)
+            if main:  # the mirror image (w < 0) of the curves that matter
+                ax.plot(L[keep].real, -L[keep].imag, ":", color=col, lw=lw * 0.5,
+                        zorder=z - 1, alpha=0.6)
         if m.name == highlight:
             mark = m
     if any(m.L_excluded.size for m in views.members):
@@ -128,7 +130,8 @@ def draw_nyquist(ax, views, highlight: str, *, hz: bool = True) -> None:
     ax.axvline(0.0, color="#cccccc", lw=0.6, zorder=0)
     ax.set_xlabel("Re L(jw)")
     ax.set_ylabel("Im L(jw)")
-    ax.set_title("Nyquist: loop gain of every member (w > 0 solid, w < 0 dotted)")
+    ax.set_title("Nyquist: loop gain of every member (w < 0 dotted for the nominal and the "
+                 "highlighted one)", fontsize=10)
     ax.grid(True, alpha=0.3)
 
 
@@ -148,7 +151,7 @@ def draw_nichols(ax, views, highlight: str, *, hz: bool = True) -> None:
                         20.0 * np.log10(np.abs(m.L_excluded)), "o", mfc="none",
                         color=MEMBER_STYLE["excluded"], ms=5, mew=1.0, zorder=z + 1)
         else:
-            idx = _thin_idx(ph.size, 1500 if m.name == highlight else 500)
+            idx = _thin_idx(ph.size, 800 if m.name == highlight or m.kind == "nominal" else 250)
             ax.plot(ph[idx], db[idx], "-", color=col, lw=lw, zorder=z, label=_label(m, highlight))
         vis = np.abs(db) <= 40.0
         if vis.any():
@@ -161,7 +164,7 @@ def draw_nichols(ax, views, highlight: str, *, hz: bool = True) -> None:
     x0, x1 = 90.0 * math.floor(min(x0, -270.0) / 90.0), 90.0 * math.ceil(max(x1, -90.0) / 90.0)
     first = True
     for m_db in M_CONTOURS_DB:
-        cph, cdb = m_contour(m_db)
+        cph, cdb = m_contour(m_db, 241)
         for k in range(int(math.floor(x0 / 360.0)), int(math.ceil(x1 / 360.0)) + 1):
             sel = (cph + 360.0 * k >= x0) & (cph + 360.0 * k <= x1) & (np.abs(cdb) <= 40)
             if not sel.any():
