@@ -21,6 +21,7 @@ import math
 
 import numpy as np
 
+from .figstyle import _aligned_phase, _finish
 from ..loopviews import (M_CONTOURS_DB, disk_region, frequency_marks, m_contour,
                          ms_circle, nichols_phase, align_points)
 
@@ -211,8 +212,6 @@ def family_figure(views, highlight: str | None = None, *, width_in: float = 10.0
     draw_nichols(ax2, views, hl, hz=hz)
     fig.suptitle(f"{views.loop}/{views.revision}: loop gain of the plant family "
                  f"({len(views.members)} members drawn)", fontsize=10)
-    from .plots import _finish
-
     _finish(fig, fig.axes)
     fig.subplots_adjust(top=0.93, bottom=0.06, hspace=0.3)
     return fig
@@ -221,8 +220,6 @@ def family_figure(views, highlight: str | None = None, *, width_in: float = 10.0
 def overlay_measured(axm, axp, views, worst: str) -> None:
     """Add the measured members of ``views`` to a Bode plot of L (axes in rad/s): kept
     points joined, points left out for low coherence as hollow markers."""
-    from .plots import _aligned_phase
-
     first = True
     for m in views.members:
         if not m.measured:

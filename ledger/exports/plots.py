@@ -33,6 +33,7 @@ import re
 import numpy as np
 
 from ..text import printable
+from .figstyle import _aligned_phase, _finish  # noqa: F401 - shared with rmsplot
 from .rows import require
 
 __all__ = ["entry_figure", "entry_plot", "figure_kind", "PALETTE"]
@@ -96,21 +97,6 @@ def _thin(x: np.ndarray, y: np.ndarray, max_points: int = 1500):
     idx = np.unique(np.concatenate(keep))
     return x[idx], y[idx]
 
-
-def _finish(fig, axes) -> None:
-    """Plain-text tick labels on log axes (no math text) and legends right of the plots."""
-    from matplotlib.ticker import FuncFormatter, LogLocator, NullLocator
-
-    for ax in axes:
-        for axis, scale in ((ax.xaxis, ax.get_xscale()), (ax.yaxis, ax.get_yscale())):
-            if scale == "log":
-                axis.set_major_locator(LogLocator(base=10.0, numticks=9))
-                axis.set_major_formatter(FuncFormatter(lambda v, _: f"{v:g}"))
-                axis.set_minor_locator(NullLocator())
-        if ax.get_legend_handles_labels()[0]:
-            ax.legend(loc="upper left", bbox_to_anchor=(1.02, 1.0), fontsize=8.5,
-                      borderaxespad=0.0, frameon=False)
-    fig.subplots_adjust(left=0.09, right=0.60, bottom=0.12, top=0.90, hspace=0.35)
 
 
 def _svg(fig) -> str:
@@ -273,15 +259,6 @@ def _fit_log_y(ax, floor_ratio: float = 1e-3) -> None:
         top = max(tops) * 2.0
         ax.set_ylim(max(min(bots) * 0.5, top * floor_ratio), top)
 
-
-def _aligned_phase(L, w, wgc, pm):
-    ph = np.degrees(np.unwrap(np.angle(L)))
-    if math.isfinite(wgc) and math.isfinite(pm):
-        at = float(np.interp(wgc, w, ph))
-        ph = ph - 360.0 * round((at - (pm - 180.0)) / 360.0)
-    else:
-        ph = ph - 360.0 * math.floor((ph[0] + 360.0) / 360.0) if ph[0] > 0 else ph
-    return ph
 
 
 def _draw_bode(fig, curves, req, res, worst):
