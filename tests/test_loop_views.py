@@ -211,6 +211,9 @@ def test_html_has_nyquist_nichols_and_measured_overlay(lg, tmp_path):
     assert "measured:unit-1 (measured)" in sect["GM-1"]
     assert "design model (nominal)" in sect["FIT-1"] and "compared up to" in sect["FIT-1"]
     assert "points left out (low coherence)" in sect["FIT-1"]
+    for key, text in sect.items():  # the fields say which members were measured
+        assert "Measured members measured:unit-1" in " ".join(text.split())
+        assert ("(a measured member)" in text) == (res[key].worst_variant == "measured:unit-1")
     assert "does not replace hardware testing" in path.read_text()
 
 

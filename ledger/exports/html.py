@@ -158,7 +158,9 @@ def _fields(entry, row) -> str:
               + (f" <span class='meta'>({_val(row.value, row.unit)})</span>"
                  if row.value is not None and row.value_shown != _val(row.value, row.unit) else "")),
              ("Headroom", _e(row.headroom_shown)),
-             ("Worst variant", _e(row.worst_variant)),
+             ("Worst variant", _e(row.worst_variant)
+              + (" <span class='meta'>(a measured member)</span>" if row.worst_measured else "")),
+             ("Measured members", _e(row.measured_members)),
              ("Variants passing", (_e(number_text(100 * row.pass_fraction, digits=4)) + " %"
                                    if row.pass_fraction is not None else "")
               + (f" of {row.variants} plant variants" if row.variants else "")),
@@ -219,7 +221,7 @@ def render_html(matrix, lg) -> str:
     from ..curves import column_curves
     from ..loopviews import loop_views
     from ..prefs import frequency_unit
-    from .plots import entry_figure
+    from .plots import entry_figure, figure_kind
     from .rmsplot import rms_evidence_html
 
     funit = frequency_unit(getattr(lg, "url", ""))  # the reader's choice for this ledger
@@ -249,12 +251,15 @@ def render_html(matrix, lg) -> str:
                 cache[key] = column_curves(lg, *key, worst=worst)
             except LedgerError as e:
                 cache[key] = e
-            try:
+        q = entry.requirement
+        if key not in views_cache and figure_kind(q.metric) in FAMILY_VIEW_KINDS:
+            worst = {e.result.worst_variant for e in matrix.entries
+                     if (e.loop, e.revision.label) == key and e.result is not None}
+            try:  # every member's loop gain: only for revisions with entries on it
                 with np.errstate(all="ignore"):
                     views_cache[key] = loop_views(lg, *key, wanted=worst)
             except LedgerError as e:
                 views_cache[key] = e
-        q = entry.requirement
         out.append(f"<section class='evidence' id='{_e(q.key)}--{_e(entry.loop)}--"
                    f"{_e(entry.revision.label)}'>")
         out.append(f"<h3>{_e(q.key)} v{q.version}: {_e(q.title)} &mdash; {_e(entry.loop)}/"
@@ -264,7 +269,8 @@ def render_html(matrix, lg) -> str:
             out.append("<p class='note'>Stale: the result judged an older requirement or plant "
                        "version; the curves below use the latest plant version.</p>")
         curves = cache[key]
-        views = views_cache[key] if not isinstance(views_cache[key], LedgerError) else None
+        views = views_cache.get(key)
+        views = None if isinstance(views, LedgerError) else views
         if isinstance(curves, LedgerError):
             out.append(f"<p class='note'>No figure: {_e(curves)}</p>")
         else:
@@ -275,7 +281,8 @@ def render_html(matrix, lg) -> str:
                 out.append(f"<div class='figure'>{svg}</div>")
             except LedgerError as e:
                 out.append(f"<p class='note'>No figure: {_e(e)}</p>")
-        out.append(_family_views(entry, views_cache[key], drawn, funit))
+        if key in views_cache:
+            out.append(_family_views(entry, views_cache[key], drawn, funit))
         out.append(rms_evidence_html(lg, entry))  # rms budgets: table and cumulative rms
         out.append("</section>")
     out.append(f"<p class='caution'>Caution: {_e(matrix.caution)}</p></body></html>")

@@ -21,6 +21,7 @@ import math
 
 import numpy as np
 
+from ..text import printable
 from .figstyle import _aligned_phase, _finish
 from ..loopviews import (M_CONTOURS_DB, disk_region, frequency_marks, m_contour,
                          ms_circle, nichols_phase, align_points)
@@ -210,7 +211,9 @@ def family_figure(views, highlight: str | None = None, *, width_in: float = 10.0
     draw_nyquist(ax1, views, hl, hz=hz)
     _others_note(ax1, views)
     draw_nichols(ax2, views, hl, hz=hz)
-    fig.suptitle(f"{views.loop}/{views.revision}: loop gain of the plant family "
+    # stored names with control characters read as \uXXXX (ledger/text.py), no missing glyph
+    fig.suptitle(f"{printable(views.loop)}/{printable(views.revision)}: loop gain of the "
+                 f"plant family "
                  f"({len(views.members)} members drawn)", fontsize=10)
     _finish(fig, fig.axes)
     fig.subplots_adjust(top=0.93, bottom=0.06, hspace=0.3)
