@@ -5,7 +5,9 @@
   measured members at their measured points, the points left out for low coherence as
   hollow markers), the highlighted member (the entry's worst variant, or the one with the
   smallest disk margin) in its own colour, the critical point -1, the highlighted member's
-  Ms circle and the exclusion disk of its disk margin, frequency labels along it;
+  Ms circle and the exclusion disk of its disk margin, frequency labels along it (crossover,
+  resonant peaks, decades) and the crossover and resonance labels of the nominal and the
+  measured members;
 * the Nichols chart (open-loop phase in deg against gain in dB) of the same members with
   closed-loop M-contours;
 * the measured members added to the Bode plot of the loop gain;
@@ -81,6 +83,15 @@ def _others_note(ax, views) -> None:
         ax.plot([], [], " ", label=f"not drawn: {s[:70]}")
 
 
+def _side_marks(m, highlight: str, hz: bool, window):
+    """Crossover and resonance labels of the nominal and measured members (the highlighted
+    one gets every label): which mode is which on each of those curves."""
+    if m.name == highlight or not (m.kind == "nominal" or m.measured):
+        return []
+    return [(j, t) for j, t in frequency_marks(m.w, m.L, hz=hz, window=window)
+            if not t[0].isdigit()]
+
+
 def draw_nyquist(ax, views, highlight: str, *, hz: bool = True) -> None:
     """The Nyquist plot of ``views`` on ``ax`` (see the module docstring)."""
     mark = None
@@ -105,6 +116,9 @@ def draw_nyquist(ax, views, highlight: str, *, hz: bool = True) -> None:
                         zorder=z - 1, alpha=0.6)
         if m.name == highlight:
             mark = m
+        for j, text in _side_marks(m, highlight, hz, WINDOW):
+            ax.annotate(text, (m.L[j].real, m.L[j].imag), textcoords="offset points",
+                        xytext=(-4, -9), fontsize=6, color=col, zorder=z)
     if any(m.L_excluded.size for m in views.members):
         ax.plot([], [], "o", mfc="none", color=MEMBER_STYLE["excluded"], ms=5,
                 label="measured points left out (low coherence)")
@@ -161,6 +175,10 @@ def draw_nichols(ax, views, highlight: str, *, hz: bool = True) -> None:
             hi.append(float(ph[vis].max()))
         if m.name == highlight:
             mark = (m, ph, db)
+        for j, text in _side_marks(m, highlight, hz, None):
+            if abs(db[j]) <= 40:
+                ax.annotate(text, (ph[j], db[j]), textcoords="offset points", xytext=(-4, -9),
+                            fontsize=6, color=col, zorder=z)
     x0 = max(min(lo, default=-360.0), -720.0)
     x1 = min(max(hi, default=0.0), 180.0)
     x0, x1 = 90.0 * math.floor(min(x0, -270.0) / 90.0), 90.0 * math.ceil(max(x1, -90.0) / 90.0)
