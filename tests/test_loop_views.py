@@ -209,6 +209,9 @@ def test_html_has_nyquist_nichols_and_measured_overlay(lg, tmp_path):
     sect = {s.get("id").split("--")[0]: " ".join(s.itertext())
             for s in doc.xpath("//section[@class='evidence']")}
     assert "measured:unit-1 (measured)" in sect["GM-1"]
+    for key, curve in (("PS-1", "|S|"), ("DM-1", "|S - T|")):
+        assert re.search(re.escape(curve) + r" (worst variant: )?measured:unit-1 \(measured\)",
+                         sect[key]), key
     assert "design model (nominal)" in sect["FIT-1"] and "compared up to" in sect["FIT-1"]
     assert "points left out (low coherence)" in sect["FIT-1"]
     for key, text in sect.items():  # the fields say which members were measured
@@ -308,3 +311,38 @@ async def test_ui_plot_view_draws_the_measured_members(built, tmp_path):
             screen = html.unescape(" ".join(re.findall(r">([^<]+)</text>", svg)))
             for needle in ("Nyquist", "Nichols", "measured:unit-1", "1/Ms"):
                 assert needle in screen.replace("\xa0", " "), needle
+
+
+def test_overlays_plot_the_measured_numbers(lg):
+    from ledger.curves import column_curves
+    from ledger.exports.plots import entry_plot
+
+    v = loop_views(lg, "x", "r1")
+    res = {r.requirement: r for r in lg.results("x", "r1")}
+    reqs = {q.key: q for q in lg.requirements()}
+    cc = column_curves(lg, "x", "r1", worst={r.worst_variant for r in res.values()})
+    meas = v.member("measured:unit-1")
+    # Source: python-control frequency_response of C times the sampled plant
+    L = np.asarray(control.frequency_response(C * TRUE, meas.w).complex).ravel()
+
+    def line(fig, start, end="(measured)"):
+        for ax in fig.axes:
+            for ln in ax.get_lines():
+                lab = ln.get_label()
+                if lab.startswith(start) and lab.endswith(end):
+                    return ln
+        raise AssertionError(f"no line {start!r}")
+
+    fig = entry_plot(cc, reqs["GM-1"], res["GM-1"], views=v, frequency_unit="Hz")
+    ln = line(fig, "|L|")
+    assert_allclose(ln.get_xdata(), meas.w / (2 * math.pi), rtol=1e-12)  # axes in Hz
+    assert_allclose(ln.get_ydata(), 20 * np.log10(np.abs(L)), rtol=1e-9, atol=1e-9)
+    fig = entry_plot(cc, reqs["PS-1"], res["PS-1"], views=v, frequency_unit="rad/s")
+    assert_allclose(line(fig, "|S|").get_ydata(), np.abs(1 / (1 + L)), rtol=1e-9)
+    assert_allclose(line(fig, "|T|").get_ydata(), np.abs(L / (1 + L)), rtol=1e-9)
+    fig = entry_plot(cc, reqs["DM-1"], res["DM-1"], views=v, frequency_unit="rad/s")
+    assert_allclose(line(fig, "|S - T|").get_ydata(), np.abs((1 - L) / (1 + L)), rtol=1e-9)
+    fig = entry_plot(cc, reqs["FIT-1"], res["FIT-1"], views=v, frequency_unit="rad/s")
+    G = np.asarray(control.frequency_response(TRUE, meas.w).complex).ravel()
+    assert_allclose(line(fig, "worst: measured:unit-1").get_ydata(),
+                    20 * np.log10(np.abs(G)), rtol=1e-9, atol=1e-9)

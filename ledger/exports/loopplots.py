@@ -10,7 +10,8 @@
   measured members;
 * the Nichols chart (open-loop phase in deg against gain in dB) of the same members with
   closed-loop M-contours;
-* the measured members added to the Bode plot of the loop gain;
+* the measured members added to the Bode plot of the loop gain and to the |S|, |T| and
+  |S - T| plots;
 * for ``model_fit`` entries, the plant's Bode plot: the design model against every
   measurement, the comparison band marked.
 
@@ -29,7 +30,7 @@ from ..loopviews import (M_CONTOURS_DB, disk_region, frequency_marks, m_contour,
                          ms_circle, nichols_phase, align_points)
 
 __all__ = ["family_figure", "draw_nyquist", "draw_nichols", "overlay_measured",
-           "draw_fit", "MEMBER_STYLE"]
+           "overlay_closed", "draw_fit", "MEMBER_STYLE"]
 
 #: colours of the family figures: other members, measured members, the highlighted one,
 #: the nominal, the critical point, the Ms circle, the disk, the M-contours
@@ -265,6 +266,34 @@ def overlay_measured(axm, axp, views, worst: str) -> None:
             axp.semilogx(m.w_excluded, align_points(m.w_excluded, m.L_excluded, m.w, ph), "o",
                          mfc="none", color=MEMBER_STYLE["excluded"], ms=5)
             first = False
+
+
+def overlay_closed(ax, views, worst: str, keys) -> None:
+    """Add the measured members' |S|, |T| or |S - T| (``keys``) to a magnitude plot (axes in
+    rad/s) at their measured points, low-coherence points as hollow markers; |CS| is not
+    drawn for them (the loop gain at a measured point does not separate C from H)."""
+    first = True
+    for m in views.members:
+        if not m.measured:
+            continue
+        col = MEMBER_STYLE["highlight"] if m.name == worst else MEMBER_STYLE["measured"]
+        lab = f"worst variant: {m.name}" if m.name == worst else m.name
+        for k in keys:
+            if k == "CS":
+                continue
+            for w, L, excluded in ((m.w, m.L, False), (m.w_excluded, m.L_excluded, True)):
+                if not w.size:
+                    continue
+                S = 1.0 / (1.0 + L)
+                y = np.abs({"S": S, "T": L * S, "S-T": S - L * S}[k])
+                if excluded:
+                    ax.plot(w, y, "o", mfc="none", color=MEMBER_STYLE["excluded"], ms=5,
+                            label="measured points left out (low coherence)" if first else None)
+                    first = False
+                else:
+                    name = "|S - T|" if k == "S-T" else f"|{k}|"
+                    ax.plot(w, y, ".-", color=col, lw=0.8, ms=2.5,
+                            label=f"{name} {lab} (measured)")
 
 
 def draw_fit(fig, views, req, res, worst: str) -> None:

@@ -305,14 +305,19 @@ def _draw_bode(fig, curves, req, res, worst):
         ax.grid(True, which="both", alpha=0.3)
 
 
+def _sens_show(m: str) -> tuple:
+    """The closed-loop magnitudes the figure of metric ``m`` shows."""
+    if m in ("peak_sensitivity", "peak_complementary_sensitivity"):
+        return ("S", "T")
+    return {"sensitivity_below": ("S",), "peak_control_sensitivity": ("CS",),
+            "bandwidth": ("T",)}.get(m, ("S", "T"))
+
+
 def _draw_sens(fig, curves, req, res, worst):
     fc = curves.freq()
     ax = fig.add_subplot(111)
     m, lim = req.metric, req.limit_value
-    show = {"peak_sensitivity": ("S",), "sensitivity_below": ("S",),
-            "peak_control_sensitivity": ("CS",), "bandwidth": ("T",)}.get(m, ("S", "T"))
-    if m in ("peak_sensitivity", "peak_complementary_sensitivity"):
-        show = ("S", "T")
+    show = _sens_show(m)
     styles = {"S": "-", "T": "--", "CS": "-"}
     for n, lab, col in _labels(curves, worst):
         for k in show:
@@ -482,6 +487,11 @@ def entry_plot(curves, requirement, result, *, width_in: float = 10.0,
         _draw_sens(fig, curves, requirement, result, worst)
     elif kind == "disk":
         _draw_disk(fig, curves, requirement, result, worst)
+    if kind in ("sensitivity", "disk") and views is not None:
+        from .loopplots import overlay_closed
+
+        overlay_closed(fig.axes[0], views, worst,
+                       ("S-T",) if kind == "disk" else _sens_show(requirement.metric))
     elif kind == "poles":
         _draw_poles(fig, curves, requirement, result, worst)
     elif kind == "fit" and views is not None:
