@@ -248,7 +248,7 @@ class PlotsScreen(ViewScreen):
             if fam.disk:
                 plt.plot(*fam.disk, marker="dot", color="orange", label="disk margin")
             for re, im, _, _, text in fam.marks.get(self.freq_unit or "Hz", ()):
-                plt.text(text, re, im, color="yellow")
+                plt.text(text, re, im, color="yellow", background="default")
         plt.scatter([-1.0], [0.0], marker="+", color="white")
         plt.xlim(-3.0, 1.5)
         plt.ylim(-2.0, 1.0)
@@ -269,7 +269,7 @@ class PlotsScreen(ViewScreen):
             self._family_members(plt, fam, "nichols")
             for _, _, phase, db, text in fam.marks.get(self.freq_unit or "Hz", ()):
                 if -360 <= phase <= 0 and abs(db) <= 40:
-                    plt.text(text, phase, db, color="yellow")
+                    plt.text(text, phase, db, color="yellow", background="default")
         plt.scatter([-180.0], [0.0], marker="+", color="white")
         plt.xlim(-360.0, 0.0)
         plt.ylim(-40.0, 40.0)
