@@ -346,3 +346,23 @@ def test_overlays_plot_the_measured_numbers(lg):
     G = np.asarray(control.frequency_response(TRUE, meas.w).complex).ravel()
     assert_allclose(line(fig, "worst: measured:unit-1").get_ydata(),
                     20 * np.log10(np.abs(G)), rtol=1e-9, atol=1e-9)
+
+
+def test_unstable_loop_draws_with_the_reason(tmp_path):
+    from ledger.exports.loopplots import family_figure
+
+    # Source: Routh-Hurwitz on s^3 + 6 s^2 + 5 s + 5 K (G = 1/(s (s+1) (0.2 s+1)) times K):
+    # unstable for K > 6; K = 20 is well past it
+    with open_ledger(tmp_path / "u.db", create=True, author="t") as led:
+        led.add_plant("p", "1/(s*(s+1)*(0.2*s+1))")
+        led.add_loop("x", "p")
+        led.add_revision("x", "20", rationale="too much gain", label="r1")
+        v = loop_views(led, "x", "r1")
+        m = v.members[0]
+        assert math.isnan(m.ms) and "stable" in m.note
+        assert m.alpha == 0.0 or math.isnan(m.alpha)
+        fig = family_figure(v)
+        labels = [t.get_text() for ax in fig.axes if ax.get_legend()
+                  for t in ax.get_legend().get_texts()]
+        assert any(t.startswith("no Ms circle:") for t in labels)
+        assert not any(t.startswith("Ms circle") for t in labels)

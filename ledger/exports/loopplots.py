@@ -130,6 +130,8 @@ def draw_nyquist(ax, views, highlight: str, *, hz: bool = True) -> None:
             _, r, pts = ms_circle(mark.ms)
             ax.plot(pts.real, pts.imag, "--", color=MEMBER_STYLE["ms"], lw=1.3, zorder=8,
                     label=f"Ms circle: centre -1, radius 1/Ms = {r:.3g} (Ms {mark.ms:.3g})")
+        elif mark.note:
+            ax.plot([], [], " ", label=f"no Ms circle: {mark.note[:70]}")
         d = disk_region(mark.alpha) if math.isfinite(mark.alpha) else None
         if d is not None:
             c, r, pts = d

@@ -118,9 +118,12 @@ class PlotsScreen(ViewScreen):
                  "qualified review.", style="italic dim")
         fam = d.family
         if fam is not None:
+            def num(x):  # an engine value, or "none" when the member has none (never nan)
+                return fmt_value(x, "") if math.isfinite(x) else "none"
+
             t.append(f"\nfamily: {len(fam.members)} of {fam.total} members; highlighted "
-                     f"{fam.highlight} ({fam.reason}): Ms {fmt_value(fam.ms, '')}, disk "
-                     f"margin {fmt_value(fam.alpha, '')}")
+                     f"{fam.highlight} ({fam.reason}): Ms {num(fam.ms)}, disk "
+                     f"margin {num(fam.alpha)}")
             n_meas = sum(1 for m in fam.members if m.measured)
             if n_meas:
                 t.append(f"; {n_meas} measured (dots; x: left out, low coherence)")
