@@ -275,8 +275,10 @@ def _model_curves(fam, controller, loop_spec, pos, skipped):
         L = g.loop_gain.evaluate(w)
         for j, i in enumerate(np.asarray(g.index)):
             v = sub.variants[int(i)]
+            dt = getattr(v.system, "dt", 0) or 0
+            x = np.exp(1j * w * dt) if dt and dt is not True else 1j * w  # z for a sampled plant
             with np.errstate(all="ignore"):
-                G = _eval(v.system, 1j * w) * np.exp(-1j * w * v.delay)
+                G = _eval(v.system, x) * np.exp(-1j * w * v.delay)
             out[pos[int(i)]] = (w, L[j], G)
     return out, asm.dt
 
