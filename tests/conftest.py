@@ -37,6 +37,7 @@ NUMERIC_MODULES |= {"test_measured"}
 NUMERIC_MODULES |= {"test_rms"}
 NUMERIC_MODULES |= {"test_sensitivity"}
 NUMERIC_MODULES |= {"test_yield_ledger"}
+NUMERIC_MODULES |= {"test_loop_views"}
 
 
 def pytest_configure(config):

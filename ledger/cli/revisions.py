@@ -209,6 +209,11 @@ def results_cmd(loop: str = typer.Argument(..., help="Loop name."),
         else:
             res = lg.results(loop, label)
         rev = lg.revision(loop, label)
+        members = []
+        if why is None:
+            plant = lg.loop(loop).plant
+            members = sorted({f"measured:{k}" for v in {r.plant_version for r in res}
+                              for k in lg.plant(plant, v).measured})
     if why is not None:
         if as_json:
             return emit_json(drivers)
@@ -220,4 +225,9 @@ def results_cmd(loop: str = typer.Argument(..., help="Loop name."),
     if as_json:
         return emit_json(res)
     print_results(res, f"verdicts for {rev.loop}/{rev.label}")
+    if members:
+        worst = [r.requirement for r in res if r.worst_variant in members]
+        typer.echo(f"  measured members: {', '.join(members)}")
+        if worst:
+            typer.echo(f"  worst on a measured member: {', '.join(worst)}")
     say(CAUTION)

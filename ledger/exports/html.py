@@ -3,7 +3,10 @@
 Summary first (title, time, the caution in a box, counts by verdict per loop, the revisions
 with their rationale), then the matrix table (requirements x revisions, verdict word and
 value in each cell), then one evidence section per entry with its fields and its figure
-(inline SVG from :mod:`ledger.exports.plots`).  No external resources (no scripts, fonts or
+(inline SVG from :mod:`ledger.exports.plots`); an entry on the loop gain also gets the Nyquist
+plot and Nichols chart of the whole plant family with its worst variant highlighted
+(:mod:`ledger.exports.loopplots`; one figure per revision and worst variant, later entries
+link to it).  No external resources (no scripts, fonts or
 style sheets from elsewhere).  Print CSS puts each evidence section on a new page and keeps a
 figure with its heading, so printing to PDF gives a readable document.  All text is escaped.
 """
@@ -179,7 +182,9 @@ def _fields(entry, row) -> str:
               + (f" <span class='meta'>({_val(row.value, row.unit)})</span>"
                  if row.value is not None and row.value_shown != _val(row.value, row.unit) else "")),
              ("Headroom", _e(row.headroom_shown)),
-             ("Worst variant", _e(row.worst_variant)),
+             ("Worst variant", _e(row.worst_variant)
+              + (" <span class='meta'>(a measured member)</span>" if row.worst_measured else "")),
+             ("Measured members", _e(row.measured_members)),
              ("Variants passing", (_e(number_text(100 * row.pass_fraction, digits=4)) + " %"
                                    if row.pass_fraction is not None else "")
               + (f" of {row.variants} plant variants" if row.variants else "")),
@@ -206,6 +211,40 @@ def _waiver_html(row) -> str:
             f"<span class='meta'>({_e(until)})</span>")
 
 
+#: figure kinds whose entries get the family's Nyquist and Nichols views
+FAMILY_VIEW_KINDS = ("bode", "sensitivity", "disk", "fit")
+
+
+def _family_views(entry, views, drawn: dict, funit: str) -> str:
+    """The Nyquist and Nichols figure of an entry on the loop gain (once per revision and
+    highlighted member; later entries link to it), or ``""``."""
+    from .loopplots import family_figure
+    from .plots import _svg, figure_kind
+
+    if figure_kind(entry.requirement.metric) not in FAMILY_VIEW_KINDS:
+        return ""
+    if isinstance(views, LedgerError):
+        return f"<p class='note'>No Nyquist or Nichols view: {_e(views)}</p>"
+    worst = entry.result.worst_variant if entry.result is not None else None
+    hl = views.highlight(worst)
+    key = (entry.loop, entry.revision.label, hl)
+    if key in drawn:
+        return (f"<p class='meta'>Nyquist and Nichols views of this revision with {_e(hl)} "
+                f"highlighted: see <a href='#{_e(drawn[key])}'>above</a>.</p>")
+    anchor = f"family--{entry.loop}--{entry.revision.label}--{len(drawn)}"
+    drawn[key] = anchor
+    why = ("the worst variant of this requirement" if hl == worst else
+           "the member with the smallest disk margin")
+    try:
+        with np.errstate(all="ignore"):
+            svg = _svg(family_figure(views, hl, frequency_unit=funit))
+    except LedgerError as e:
+        return f"<p class='note'>No Nyquist or Nichols view: {_e(e)}</p>"
+    return (f"<div class='figure family-views' id='{_e(anchor)}'><p class='meta'>Nyquist and "
+            f"Nichols views of every member drawn; highlighted: {_e(hl)} ({why}).</p>"
+            f"{svg}</div>")
+
+
 def render_html(matrix, lg) -> str:
     """The report as one HTML string.
 
@@ -216,8 +255,9 @@ def render_html(matrix, lg) -> str:
         The ledger the matrix came from; its revisions are rebuilt to draw the curves.
     """
     from ..curves import column_curves
+    from ..loopviews import loop_views
     from ..prefs import frequency_unit
-    from .plots import entry_figure
+    from .plots import entry_figure, figure_kind
     from .drivershtml import drivers_evidence_html
     from .rmsplot import rms_evidence_html
 
@@ -239,6 +279,8 @@ def render_html(matrix, lg) -> str:
                "plant parameter at the worst variant, computed for this report).</p></div>")
     cache: dict = {}
     drivers: dict = {}
+    views_cache: dict = {}
+    drawn: dict = {}  # (loop, label, highlighted member) -> anchor of its family figure
     for entry, row in zip(matrix.entries, rows):
         key = (entry.loop, entry.revision.label)
         if key not in cache:
@@ -249,6 +291,14 @@ def render_html(matrix, lg) -> str:
             except LedgerError as e:
                 cache[key] = e
         q = entry.requirement
+        if key not in views_cache and figure_kind(q.metric) in FAMILY_VIEW_KINDS:
+            worst = {e.result.worst_variant for e in matrix.entries
+                     if (e.loop, e.revision.label) == key and e.result is not None}
+            try:  # every member's loop gain: only for revisions with entries on it
+                with np.errstate(all="ignore"):
+                    views_cache[key] = loop_views(lg, *key, wanted=worst)
+            except LedgerError as e:
+                views_cache[key] = e
         out.append(f"<section class='evidence' id='{_e(q.key)}--{_e(entry.loop)}--"
                    f"{_e(entry.revision.label)}'>")
         out.append(f"<h3>{_e(q.key)} v{q.version}: {_e(q.title)} &mdash; {_e(entry.loop)}/"
@@ -256,17 +306,23 @@ def render_html(matrix, lg) -> str:
         out.append(_fields(entry, row))
         if entry.verdict == "stale":
             out.append("<p class='note'>Stale: the result judged an older requirement or plant "
-                       "version; the curves below use the latest plant version.</p>")
+                       "version, or another engine computed it; the curves below use the "
+                       "latest plant version.</p>")
         curves = cache[key]
+        views = views_cache.get(key)
+        views = None if isinstance(views, LedgerError) else views
         if isinstance(curves, LedgerError):
             out.append(f"<p class='note'>No figure: {_e(curves)}</p>")
         else:
             try:
                 with np.errstate(all="ignore"):
-                    svg = entry_figure(curves, q, entry.result, frequency_unit=funit)
+                    svg = entry_figure(curves, q, entry.result, frequency_unit=funit,
+                                       views=views)
                 out.append(f"<div class='figure'>{svg}</div>")
             except LedgerError as e:
                 out.append(f"<p class='note'>No figure: {_e(e)}</p>")
+        if key in views_cache:
+            out.append(_family_views(entry, views_cache[key], drawn, funit))
         out.append(rms_evidence_html(lg, entry))  # rms budgets: table and cumulative rms
         out.append(drivers_evidence_html(lg, entry, drivers))  # what drives the worst value
         out.append("</section>")

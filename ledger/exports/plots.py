@@ -11,7 +11,13 @@ One figure per entry, chosen by the metric's signal path:
 * loop-gain metrics (margins, crossovers, error constants): Bode plot of L with the gain and
   phase crossovers and margins marked and the limit drawn;
 * ``S``/``T``/``CS`` and disk-margin metrics: the magnitudes with their bounds;
-* pole metrics: the closed-loop pole map with the damping or decay-rate bound.
+* pole metrics: the closed-loop pole map with the damping or decay-rate bound;
+* ``model_fit``/``model_fit_phase``: the plant's Bode plot, design model against the measured
+  members (:mod:`ledger.exports.loopplots`).
+
+Measured members are added to the loop-gain Bode plot at their measured points (the points
+left out for low coherence as hollow markers) when the family views are given; the Nyquist
+and Nichols views of the whole family are :func:`ledger.exports.loopplots.family_figure`.
 
 Every plot has axis labels with units and a legend, and shows the nominal variant and the
 worst variant the ledger named.  The ledger's value is shown beside the curves; nothing is
@@ -27,6 +33,7 @@ import re
 import numpy as np
 
 from ..text import printable
+from .figstyle import _aligned_phase, _finish  # noqa: F401 - shared with rmsplot
 from .rows import require
 
 __all__ = ["entry_figure", "entry_plot", "figure_kind", "PALETTE"]
@@ -44,7 +51,9 @@ _SENS = {"peak_sensitivity", "peak_complementary_sensitivity", "peak_control_sen
 
 def figure_kind(metric: str) -> str:
     """``step``, ``effort``, ``error``, ``disturbance``, ``move``, ``bode``, ``sensitivity``,
-    ``disk`` or ``poles``."""
+    ``disk``, ``poles`` or ``fit``."""
+    if metric in ("model_fit", "model_fit_phase"):
+        return "fit"
     if metric in _STEP_PATH:
         return "step"
     if metric == "peak_effort":
@@ -88,21 +97,6 @@ def _thin(x: np.ndarray, y: np.ndarray, max_points: int = 1500):
     idx = np.unique(np.concatenate(keep))
     return x[idx], y[idx]
 
-
-def _finish(fig, axes) -> None:
-    """Plain-text tick labels on log axes (no math text) and legends right of the plots."""
-    from matplotlib.ticker import FuncFormatter, LogLocator, NullLocator
-
-    for ax in axes:
-        for axis, scale in ((ax.xaxis, ax.get_xscale()), (ax.yaxis, ax.get_yscale())):
-            if scale == "log":
-                axis.set_major_locator(LogLocator(base=10.0, numticks=9))
-                axis.set_major_formatter(FuncFormatter(lambda v, _: f"{v:g}"))
-                axis.set_minor_locator(NullLocator())
-        if ax.get_legend_handles_labels()[0]:
-            ax.legend(loc="upper left", bbox_to_anchor=(1.02, 1.0), fontsize=8.5,
-                      borderaxespad=0.0, frameon=False)
-    fig.subplots_adjust(left=0.09, right=0.60, bottom=0.12, top=0.90, hspace=0.35)
 
 
 def _svg(fig) -> str:
@@ -266,15 +260,6 @@ def _fit_log_y(ax, floor_ratio: float = 1e-3) -> None:
         ax.set_ylim(max(min(bots) * 0.5, top * floor_ratio), top)
 
 
-def _aligned_phase(L, w, wgc, pm):
-    ph = np.degrees(np.unwrap(np.angle(L)))
-    if math.isfinite(wgc) and math.isfinite(pm):
-        at = float(np.interp(wgc, w, ph))
-        ph = ph - 360.0 * round((at - (pm - 180.0)) / 360.0)
-    else:
-        ph = ph - 360.0 * math.floor((ph[0] + 360.0) / 360.0) if ph[0] > 0 else ph
-    return ph
-
 
 def _draw_bode(fig, curves, req, res, worst):
     fc = curves.freq()
@@ -320,14 +305,19 @@ def _draw_bode(fig, curves, req, res, worst):
         ax.grid(True, which="both", alpha=0.3)
 
 
+def _sens_show(m: str) -> tuple:
+    """The closed-loop magnitudes the figure of metric ``m`` shows."""
+    if m in ("peak_sensitivity", "peak_complementary_sensitivity"):
+        return ("S", "T")
+    return {"sensitivity_below": ("S",), "peak_control_sensitivity": ("CS",),
+            "bandwidth": ("T",)}.get(m, ("S", "T"))
+
+
 def _draw_sens(fig, curves, req, res, worst):
     fc = curves.freq()
     ax = fig.add_subplot(111)
     m, lim = req.metric, req.limit_value
-    show = {"peak_sensitivity": ("S",), "sensitivity_below": ("S",),
-            "peak_control_sensitivity": ("CS",), "bandwidth": ("T",)}.get(m, ("S", "T"))
-    if m in ("peak_sensitivity", "peak_complementary_sensitivity"):
-        show = ("S", "T")
+    show = _sens_show(m)
     styles = {"S": "-", "T": "--", "CS": "-"}
     for n, lab, col in _labels(curves, worst):
         for k in show:
@@ -446,7 +436,7 @@ def _axes_to_hz(fig) -> None:
 
 
 def entry_plot(curves, requirement, result, *, width_in: float = 10.0,
-               height_in: float = 3.8, frequency_unit: str = "Hz"):
+               height_in: float = 3.8, frequency_unit: str = "Hz", views=None):
     """The evidence figure of one entry as a matplotlib ``Figure`` (no pyplot state).
 
     Parameters
@@ -460,6 +450,9 @@ def entry_plot(curves, requirement, result, *, width_in: float = 10.0,
     frequency_unit : str
         ``"Hz"`` (default) or ``"rad/s"``: the unit of frequency axes (log axes, real tick
         values).
+    views : LoopViews, optional
+        The revision's family views (:func:`ledger.loopviews.loop_views`): measured members
+        are added to the loop-gain Bode plot, and ``fit`` entries need them.
 
     Raises
     ------
@@ -471,7 +464,7 @@ def entry_plot(curves, requirement, result, *, width_in: float = 10.0,
 
     kind = figure_kind(requirement.metric)
     worst = result.worst_variant if result else ""
-    tall = kind == "bode" or (kind == "poles" and curves.poles() is None)
+    tall = kind in ("bode", "fit") or (kind == "poles" and curves.poles() is None)
     fig = Figure(figsize=(width_in, height_in * (1.5 if tall else 1.0)))
     out_unit = f" ({curves.output_unit})" if curves.output_unit else ""
     in_unit = f" ({curves.input_unit})" if curves.input_unit else ""
@@ -494,11 +487,24 @@ def entry_plot(curves, requirement, result, *, width_in: float = 10.0,
         _draw_sens(fig, curves, requirement, result, worst)
     elif kind == "disk":
         _draw_disk(fig, curves, requirement, result, worst)
+    if kind in ("sensitivity", "disk") and views is not None:
+        from .loopplots import overlay_closed
+
+        overlay_closed(fig.axes[0], views, worst,
+                       ("S-T",) if kind == "disk" else _sens_show(requirement.metric))
     elif kind == "poles":
         _draw_poles(fig, curves, requirement, result, worst)
+    elif kind == "fit" and views is not None:
+        from .loopplots import draw_fit
+
+        draw_fit(fig, views, requirement, result, worst)
     else:
         _draw_bode(fig, curves, requirement, result, worst)
-    if frequency_unit == "Hz" and kind in ("bode", "sensitivity", "disk", "poles"):
+        if views is not None:
+            from .loopplots import overlay_measured
+
+            overlay_measured(*fig.axes[:2], views, worst)
+    if frequency_unit == "Hz" and kind in ("bode", "sensitivity", "disk", "poles", "fit"):
         _axes_to_hz(fig)
     _finish(fig, fig.axes)
     return fig

@@ -70,10 +70,14 @@ class ExportRow:
         ``pass``, ``fail``, ``error``, ``stale`` or ``unverified``.
     worst_variant : str
         Plant variant that produced ``value``.
+    worst_measured : bool
+        ``worst_variant`` is a measured member (``measured:<name>``; docs/measured.md).
     pass_fraction : float or None
         Fraction of the family's variants that pass, 0..1.
     variants : int or None
         Number of plant variants judged.
+    measured_members : str
+        The measured members among them, comma separated (``""`` when none).
     samples, sample_passes : int or None
         Random samples in the family and how many pass (``None`` without random samples).
     yield_bound : float or None
@@ -122,8 +126,10 @@ class ExportRow:
     headroom_shown: str
     verdict: str
     worst_variant: str
+    worst_measured: bool
     pass_fraction: float | None
     variants: int | None
+    measured_members: str
     samples: int | None
     sample_passes: int | None
     yield_bound: float | None
@@ -186,10 +192,12 @@ def matrix_rows(matrix) -> list[ExportRow]:
     from ..yieldbound import DEFAULT_CONFIDENCE, bound_text, samples_needed
 
     out = []
+    measured = getattr(matrix, "measured", {}) or {}
     for e in matrix.entries:
         q, r = e.requirement, e.result
         conf = r.confidence if r else (q.confidence or DEFAULT_CONFIDENCE)
         target = r.yield_target if r else q.yield_target
+        members = measured.get((e.loop, r.plant_version), ()) if r else ()
         out.append(ExportRow(
             requirement=q.key, version=q.version,
             judged_version=r.requirement_version if r else None,
@@ -204,8 +212,9 @@ def matrix_rows(matrix) -> list[ExportRow]:
             headroom_shown=headroom_text(r.value, r.headroom, r.headroom_fraction, r.unit,
                                          q.limit_text) if r and r.headroom is not None else "",
             verdict=e.verdict, worst_variant=r.worst_variant if r else "",
+            worst_measured=bool(r and r.worst_variant in members),
             pass_fraction=_finite_or_inf(r.pass_fraction) if r else None,
-            variants=r.variants if r else None,
+            variants=r.variants if r else None, measured_members=", ".join(members),
             samples=r.samples if r else None,
             sample_passes=r.sample_passes if r else None,
             yield_bound=r.yield_bound if r else None, yield_confidence=conf,

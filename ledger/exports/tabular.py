@@ -30,6 +30,8 @@ __all__ = ["export_csv", "export_json", "matrix_document"]
 def _csv_cell(name: str, value) -> str:
     if value is None:
         return ""
+    if isinstance(value, bool):
+        return "true" if value else "false"
     if isinstance(value, float):
         return number_text(value)
     return cell_safe(str(value))  # NUL, ESC... of hostile stored text as \uXXXX (text.py)

@@ -16,7 +16,7 @@ from typing import Iterable, Sequence
 from ..judge import count_verdicts
 from ..records import RequirementInfo, ResultInfo, RevisionInfo, WaiverInfo
 
-__all__ = ["CAUTION", "MatrixEntry", "Matrix", "build_matrix"]
+__all__ = ["CAUTION", "MatrixEntry", "Matrix", "build_matrix", "measured_members"]
 
 CAUTION = (
     "Model-based verification does not replace hardware testing, applicable safety standards "
@@ -69,6 +69,9 @@ class Matrix:
     generated_at: datetime
     caution: str = CAUTION
     title: str = "Verification matrix"
+    #: (loop, plant version) -> names of the measured members of that plant version's family
+    #: (``measured:<name>``; docs/measured.md), for the versions the results judged
+    measured: dict = field(default_factory=dict)
 
     def cell(self, key: str, loop: str, label: str) -> MatrixEntry | None:
         for e in self.entries:
@@ -151,4 +154,20 @@ def build_matrix(lg, selection: str | Sequence[tuple[str, str]] = "tips", *,
                 w = waived.cover(r.key, col.loop, col.label, e.verdict)
                 entries.append(e if w is None else MatrixEntry(r, col.loop, col, res, w))
     return Matrix(requirements=reqs, columns=tuple(columns), entries=tuple(entries),
-                  generated_at=datetime.now(timezone.utc), title=title)
+                  generated_at=datetime.now(timezone.utc), title=title,
+                  measured=measured_members(lg, entries))
+
+
+def measured_members(lg, entries) -> dict:
+    """(loop, plant version) -> the names of the measured members of that plant version's
+    family (``measured:<name>``), for every plant version a result among ``entries`` judged."""
+    out: dict = {}
+    plant_of: dict = {}
+    for e in entries:
+        if e.result is None or (e.loop, e.result.plant_version) in out:
+            continue
+        if e.loop not in plant_of:
+            plant_of[e.loop] = lg.loop(e.loop).plant
+        info = lg.plant(plant_of[e.loop], e.result.plant_version)
+        out[(e.loop, e.result.plant_version)] = tuple(f"measured:{k}" for k in info.measured)
+    return out

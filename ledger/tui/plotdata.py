@@ -49,6 +49,10 @@ class PlotData:
     #: (output units), times (s), the simulated move and the linear step of that amplitude,
     #: and the intervals (s) the actuator is at a limit
     move: "MoveView | None" = None
+    #: the family panels (Nyquist, Nichols, measured members on the Bode plot;
+    #: :mod:`ledger.tui.familydata`), or None with the reason in ``family_note``
+    family: object = None
+    family_note: str = ""
 
 
 @dataclass(frozen=True, eq=False)
@@ -63,10 +67,12 @@ class MoveView:
     saturated: tuple
 
 
-def worst_variant(results) -> str:
+def worst_variant(results, *, models_only: bool = False) -> str:
     """The variant behind the worst result of a revision (lowest headroom fraction, failing
-    results first); ``"nominal"`` when no result names one."""
-    named = [r for r in results if r.worst_variant and r.worst_variant != "*"]
+    results first); ``"nominal"`` when no result names one.  ``models_only`` passes over
+    measured members (``measured:...``: they have no step response)."""
+    named = [r for r in results if r.worst_variant and r.worst_variant != "*"
+             and not (models_only and r.worst_variant.startswith("measured:"))]
     if not named:
         return "nominal"
 

@@ -1,5 +1,9 @@
 """Plot view: step response with the requirement bounds and loop-gain Bode plot with the
-margins marked, for the selected revision on its nominal or worst plant variant."""
+margins marked, for the selected revision on its nominal or worst plant variant (a model
+member: a measurement has no step response); below them the Nyquist plot and the Nichols chart
+of every family member (:mod:`ledger.tui.familydata`), the measured members also on the Bode
+plot, one member highlighted: the worst variant of the selected requirement, else the member
+with the smallest disk margin."""
 
 from __future__ import annotations
 
@@ -61,9 +65,16 @@ class PlotsScreen(ViewScreen):
             with Vertical():
                 yield PlotextPlot(id="plot-mag")
                 yield PlotextPlot(id="plot-phase")
+        with Horizontal():
+            yield PlotextPlot(id="plot-nyquist")
+            yield PlotextPlot(id="plot-nichols")
         yield footer
 
     def fetch(self):
+        import dataclasses
+
+        from ...errors import LedgerError
+        from ..familydata import load_family_plot
         from ..plotdata import load_plot_data, worst_variant
 
         lg = self.app.lg
@@ -73,8 +84,15 @@ class PlotsScreen(ViewScreen):
             return None
         # the selected revision of the selected loop; its tip when the selection names none
         rev = lg.revision(loop, sel_label if sel_loop == loop else None)
-        variant = worst_variant(lg.results(loop, rev.label)) if self.use_worst else "nominal"
-        return load_plot_data(lg, loop, rev.label, variant=variant)
+        results = lg.results(loop, rev.label)
+        variant = (worst_variant(results, models_only=True) if self.use_worst
+                   else "nominal")
+        d = load_plot_data(lg, loop, rev.label, variant=variant)
+        try:
+            fam = load_family_plot(lg, loop, rev.label, requirement=self.app.current_req)
+        except LedgerError as e:
+            return dataclasses.replace(d, family_note=str(e))
+        return dataclasses.replace(d, family=fam)
 
     def reload(self) -> None:
         self.query_one("#plots-caption", Static).update("computing...")
@@ -92,15 +110,30 @@ class PlotsScreen(ViewScreen):
             return
         t = Text()
         t.append(f"{d.loop}/{d.label} on variant {d.variant}", style="bold")
-        t.append(f" ({'worst' if self.use_worst else 'nominal'}; w toggles)   ")
+        t.append(f" ({'worst model variant' if self.use_worst else 'nominal'}; w toggles)   ")
         t.append(f"GM {fmt_value(d.gain_margin_db, 'dB')} at {self._ftext(d.phase_crossover)}"
                  f"   PM {fmt_value(d.phase_margin_deg, 'deg')} at "
                  f"{self._ftext(d.gain_crossover)}   (f: Hz / rad/s)")
         t.append("\nModel-based: not a substitute for hardware tests, safety standards and "
                  "qualified review.", style="italic dim")
+        fam = d.family
+        if fam is not None:
+            def num(x):  # an engine value, or "none" when the member has none (never nan)
+                return fmt_value(x, "") if math.isfinite(x) else "none"
+
+            t.append(f"\nfamily: {len(fam.members)} of {fam.total} members; highlighted "
+                     f"{fam.highlight} ({fam.reason}): Ms {num(fam.ms)}, disk "
+                     f"margin {num(fam.alpha)}")
+            n_meas = sum(1 for m in fam.members if m.measured)
+            if n_meas:
+                t.append(f"; {n_meas} measured (dots; x: left out, low coherence)")
+        elif d.family_note:
+            t.append(f"\nno Nyquist or Nichols view: {d.family_note}")
         cap.update(t)
         self._step(d)
         self._bode(d)
+        self._nyquist(d)
+        self._nichols(d)
 
     def _step(self, d) -> None:
         plot = self.query_one("#plot-step", PlotextPlot)
@@ -166,5 +199,82 @@ class PlotsScreen(ViewScreen):
             mag.vline(math.log10(d.phase_crossover * k), "orange")
             ph.vline(math.log10(d.phase_crossover * k), "orange")
         ph.hline(-180.0, "gray")
+        for m in (d.family.members if d.family is not None else ()):
+            if not m.measured:
+                continue
+            col = "red" if m.name == d.family.highlight else "cyan"
+            w, db_, deg = m.bode
+            x = [math.log10(v * k) for v in w]
+            mag.scatter(x, db_, marker="dot", color=col, label=m.name)
+            ph.scatter(x, deg, marker="dot", color=col)
+            wx, dbx, phx = m.bode_excluded
+            if wx:
+                xx = [math.log10(v * k) for v in wx]
+                mag.scatter(xx, dbx, marker="x", color="magenta")
+                ph.scatter(xx, phx, marker="x", color="magenta")
         for pid in ("#plot-mag", "#plot-phase"):
             self.query_one(pid, PlotextPlot).refresh()
+
+    def _family_members(self, plt, fam, which: str) -> None:
+        """Members on one family panel: others grey, nominal blue, measured cyan dots, the
+        highlighted one red (drawn last, on top), left-out points magenta x."""
+        order = sorted(fam.members, key=lambda m: (m.name == fam.highlight,
+                                                   m.kind == "nominal" or m.measured))
+        for m in order:
+            x, y = getattr(m, which)
+            if not x:
+                continue
+            hl = m.name == fam.highlight
+            col = "red" if hl else "blue" if m.kind == "nominal" else \
+                "cyan" if m.measured else "gray"
+            lab = m.name if hl or m.kind == "nominal" or m.measured else None
+            if m.measured:
+                plt.scatter(x, y, marker="dot", color=col, label=lab)
+            else:
+                plt.plot(x, y, marker="braille", color=col, label=lab)
+            xx, yy = getattr(m, which + "_excluded")
+            if xx:
+                plt.scatter(xx, yy, marker="x", color="magenta")
+
+    def _nyquist(self, d) -> None:
+        plot = self.query_one("#plot-nyquist", PlotextPlot)
+        plt = plot.plt
+        plt.clear_data()
+        plt.clear_figure()
+        fam = d.family
+        plt.title("Nyquist L(jw): + critical point -1, Ms circle, disk-margin disk")
+        if fam is not None:
+            self._family_members(plt, fam, "nyquist")
+            if fam.ms_circle:
+                plt.plot(*fam.ms_circle, marker="dot", color="green",
+                         label=f"1/Ms {1 / fam.ms:.3g}")
+            if fam.disk:
+                plt.plot(*fam.disk, marker="dot", color="orange", label="disk margin")
+            for re, im, _, _, text in fam.marks.get(self.freq_unit or "Hz", ()):
+                plt.text(text, re, im, color="yellow", background="default")
+        plt.scatter([-1.0], [0.0], marker="+", color="white")
+        plt.xlim(-3.0, 1.5)
+        plt.ylim(-2.0, 1.0)
+        plt.xlabel("Re L")
+        plot.refresh()
+
+    def _nichols(self, d) -> None:
+        plot = self.query_one("#plot-nichols", PlotextPlot)
+        plt = plot.plt
+        plt.clear_data()
+        plt.clear_figure()
+        fam = d.family
+        plt.title("Nichols: |L| (dB) vs arg L (deg), |T| contours (dB)")
+        if fam is not None:
+            for m_db, x, y in fam.contours:
+                if m_db in (6.0, 3.0, 0.0, -3.0):
+                    plt.plot(x, y, marker="dot", color="gray+")
+            self._family_members(plt, fam, "nichols")
+            for _, _, phase, db, text in fam.marks.get(self.freq_unit or "Hz", ()):
+                if -360 <= phase <= 0 and abs(db) <= 40:
+                    plt.text(text, phase, db, color="yellow", background="default")
+        plt.scatter([-180.0], [0.0], marker="+", color="white")
+        plt.xlim(-360.0, 0.0)
+        plt.ylim(-40.0, 40.0)
+        plt.xlabel("arg L [deg]  contours |T| = 6, 3, 0, -3 dB")
+        plot.refresh()
