@@ -255,6 +255,30 @@ async def test_plots_view_margins(ledger):
         assert app.screen.use_worst and app.screen.plot_data.variant == "nominal"  # one variant
 
 
+@pytest.mark.parametrize("size, first", [((120, 40), "both"), ((80, 24), "time")])
+async def test_plots_view_rows_follow_the_terminal_and_cycle(ledger, size, first):
+    # The step/Bode row and the Nyquist/Nichols row share the screen from 36 rows up; below
+    # one row shows at a time; n cycles both -> time -> family (the ledger's own rule).
+    app = make_app(ledger)
+    app.current_loop, app.current_label = "pos", "r2"
+    async with app.run_test(size=size) as pilot:
+        await settle(pilot)
+        await press(pilot, "5")
+        scr = app.screen
+
+        def shown():
+            return (scr.query_one("#plots-time").display,
+                    scr.query_one("#plots-family").display)
+
+        want = {"both": (True, True), "time": (True, False), "family": (False, True)}
+        assert scr.layout_mode == first and shown() == want[first]
+        order = ["both", "time", "family"]
+        for k in range(1, 4):
+            await press(pilot, "n")
+            mode = order[(order.index(first) + k) % 3]
+            assert scr.layout_mode == mode and shown() == want[mode]
+
+
 async def test_add_revision_form_records_and_shows_verdicts(ledger):
     from textual.widgets import DataTable
 

@@ -55,6 +55,7 @@ DIFF = [
 PLOTS = [
     Binding("w", "toggle_variant", "Nominal/worst variant"),
     Binding("f", "toggle_frequency_unit", "Hz / rad/s"),
+    Binding("n", "cycle_plots", "Plot rows"),
 ]
 
 FORM = [

@@ -18,7 +18,11 @@ from .. import bindings
 from ..widgets.verdict import fmt_value
 from .base import ViewScreen
 
-__all__ = ["PlotsScreen"]
+__all__ = ["PlotsScreen", "ROOM_FOR_BOTH"]
+
+#: terminal rows from which the plot view shows the step/Bode row and the Nyquist/Nichols row
+#: together (below it one row at a time, ``n`` switches)
+ROOM_FOR_BOTH = 36
 
 
 class PlotsScreen(ViewScreen):
@@ -31,11 +35,26 @@ class PlotsScreen(ViewScreen):
         self.use_worst = False
         self.plot_data = None
         self.freq_unit = None  # "Hz" or "rad/s", read from the ledger's preferences on mount
+        #: which rows show: "both", "time" (step and Bode) or "family" (Nyquist and Nichols);
+        #: on mount "both" when the terminal has room for three rows of plots, else "time"
+        self.layout_mode = None
 
     def on_mount(self) -> None:
         from ...prefs import frequency_unit
 
         self.freq_unit = frequency_unit(self.app.lg.url)
+        self.layout_mode = "both" if self.app.size.height >= ROOM_FOR_BOTH else "time"
+        self._apply_layout()
+
+    def _apply_layout(self) -> None:
+        self.query_one("#plots-time").display = self.layout_mode in ("both", "time")
+        self.query_one("#plots-family").display = self.layout_mode in ("both", "family")
+
+    def action_cycle_plots(self) -> None:
+        """Both rows -> step and Bode only -> Nyquist and Nichols only -> both."""
+        order = ("both", "time", "family")
+        self.layout_mode = order[(order.index(self.layout_mode or "both") + 1) % 3]
+        self._apply_layout()
 
     def _fk(self) -> float:
         """Factor from rad/s to the frequency unit shown."""
@@ -60,12 +79,12 @@ class PlotsScreen(ViewScreen):
         header, footer = self.header_footer()
         yield header
         yield Static("computing...", id="plots-caption")
-        with Horizontal():
+        with Horizontal(id="plots-time"):
             yield PlotextPlot(id="plot-step")
             with Vertical():
                 yield PlotextPlot(id="plot-mag")
                 yield PlotextPlot(id="plot-phase")
-        with Horizontal():
+        with Horizontal(id="plots-family"):
             yield PlotextPlot(id="plot-nyquist")
             yield PlotextPlot(id="plot-nichols")
         yield footer

@@ -138,7 +138,9 @@ class RequirementScreen(ViewScreen):
                 # a family with random samples: the pass fraction and its lower bound
                 from ...yieldbound import bound_text
 
-                t.append(f"  {res.pass_fraction:.0%} pass, yield bound {bound_text(res)}")
+                # on a line of its own under the value (the pane is narrow)
+                t.append(f"\n      {res.pass_fraction:.0%} pass, yield bound {bound_text(res)}",
+                         style="dim")
             t.append("\n")
         t.append("\nwaivers (w: waive a failure on the selected revision)\n",
                  style="bold underline")
