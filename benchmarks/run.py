@@ -533,25 +533,28 @@ def markdown(info, rows, notes, quick: bool, elapsed: float) -> str:
 #: Where the resonant family's time goes and what to cut next (kept true by whoever changes
 #: the engine; the profile tables below are measured).
 NEXT_CUTS = (
-    "Where the time goes on the resonant families (profile below): the engine's cost is now "
-    "linear in the variants (grouping in clusters of close resonances), about 1.4 ms per "
-    "variant for one mode, spread over many vectorised kernels rather than one hot spot: the "
-    "step metrics (simulation of r->y, refinement of crossings and extrema, about a third), "
-    "the peak effort (a second simulation of the same closed loop for r->u, about a fifth), the "
-    "peaks of |S| and |T| (golden-section search on pairwise evaluations, about a quarter), the "
-    "margins and the adaptive grid refinement.  Next cuts, largest first: (1) one time "
-    "simulation shared by r->y and r->u (same A and B, only C and D differ), today two "
-    "simulations and two refinements; (2) per-variant time grids: a group's grid follows the "
-    "slowest and the fastest mode of all its members, so each variant is simulated over the "
-    "longest horizon at the finest step of its cluster; (3) the peaks of S and T and the disk "
-    "function from one pairwise evaluation of L per point, and a parabolic (Brent) step in the "
-    "maximisation to reach the same tolerance in fewer rounds; (4) one adaptive refinement of "
-    "the grid on L serving S, T and the disk function (today each refines its own).  Higher "
-    "plant orders multiply the resonance count and the time-grid span (order 16 has modes up "
-    "to 12,000 rad/s), which is where (2) matters most.  The two-worker figures are limited by "
-    "the serial parts (planning, the family build of a ledger revision, writing results) and "
-    "by the shared machine: other sessions kept the load average near 2 on its two cores "
-    "during this run.")
+    "Where the time goes on the resonant families (profile below): the engine's cost grows "
+    "linearly in the variants beyond a fixed start-up (grouping in clusters of close "
+    "resonances; the fitted exponent below 1 is that start-up), about 1.4 ms per variant for "
+    "one mode, spread over many vectorised kernels rather than one hot spot: the step metrics "
+    "(one simulation of the closed loop shared by r->y and r->u, refinement of crossings and "
+    "extrema between samples by a Taylor-moment series, about a third), the peaks of |S| and "
+    "|T| (the root of d ln|H|/dw from grid candidates, about a quarter), the margins (Illinois "
+    "root finding on the crossings, about a fifth) and the adaptive grid refinement (decided "
+    "without logarithms or angles since 2026-12-03).  Next cuts, largest first: (1) Newton "
+    "steps on the crossings and on the peak slopes with the analytic derivatives the "
+    "pole-zero evaluator already gives (d ln H/dw and its derivative): about 18 function "
+    "rounds per crossing today, 4 to 6 expected; (2) per-variant time grids: a group's grid "
+    "follows the slowest and the fastest mode of all its members, so each variant is "
+    "simulated over the longest horizon at the finest step of its cluster; (3) one adaptive "
+    "refinement on L with S, T and the disk function judged on the same points (today each "
+    "refines its own, because a grid fine enough for L is not always fine enough for S near "
+    "-1); (4) fewer numpy calls per group (about 800,000 Python-level calls for 1,000 "
+    "variants: the fixed cost of each small group).  Higher plant orders multiply the "
+    "resonance count and the time-grid span (order 16 has modes up to 12,000 rad/s), which "
+    "is where (2) matters most, and fall back to the matrix exponential inside a step where "
+    "the Taylor series would need too many terms.  The two-worker verify figure is limited by "
+    "the serial parts (planning, the family build of a ledger revision, writing results).")
 
 
 def _resonant_controller() -> str:
