@@ -12,6 +12,7 @@ import pytest
 from numpy.testing import assert_allclose
 
 from ledger.api import open_ledger
+from tuihelp import settle
 
 _PLANT = "400/(s*(0.02*s+1))"
 _LEAD = "0.5*(s+15)/(15*(s/300+1))"
@@ -77,25 +78,16 @@ def test_plot_data_has_the_move(axis):
 
 
 async def test_plots_view_shows_the_move(axis):
-    from textual.worker import WorkerCancelled
 
     from ledger.tui.app import LedgerApp
 
-    async def settle(pilot):
-        for _ in range(3):
-            await pilot.pause()
-            try:
-                await pilot.app.workers.wait_for_complete()
-            except WorkerCancelled:
-                continue
-            await pilot.pause()
 
     app = LedgerApp(ledger=axis)
     app.current_loop, app.current_label = "x", "fb"
     async with app.run_test(size=(120, 40)) as pilot:
-        await settle(pilot)
+        await settle(pilot, rounds=3)
         await pilot.press("5")
-        await settle(pilot)
+        await settle(pilot, rounds=3)
         d = app.screen.plot_data
         assert d is not None and d.move is not None and d.move.key == "MV"
         # the feedback-only revision saturates, the one with the shaped reference does not

@@ -23,6 +23,7 @@ from numpy.testing import assert_allclose
 from typer.testing import CliRunner
 
 from ledger.api import open_ledger
+from tuihelp import settle
 from ledger.verification.drivers import worst_case_drivers
 from ledger.verification.stencil import slope_from
 
@@ -313,25 +314,16 @@ def test_cli_results_why(tmp_path, monkeypatch, second_order):
 # -- the terminal UI and the HTML evidence ---------------------------------------------------------
 async def test_requirement_view_shows_what_drives_the_worst_value(second_order):
     from textual.widgets import Static
-    from textual.worker import WorkerCancelled
 
     from ledger.tui.app import LedgerApp
 
-    async def settle(pilot):
-        for _ in range(4):
-            await pilot.pause()
-            try:
-                await pilot.app.workers.wait_for_complete()
-            except WorkerCancelled:
-                continue
-            await pilot.pause()
 
     app = LedgerApp(ledger=second_order)
     app.current_req = "OS-1"
     async with app.run_test(size=(140, 60)) as pilot:
-        await settle(pilot)
+        await settle(pilot, rounds=4)
         await pilot.press("3")
-        await settle(pilot)
+        await settle(pilot, rounds=4)
         scr = app.screen
         text = str(scr.query_one("#req-drivers", Static).render())
         assert "what drives the worst value" in text
@@ -340,7 +332,7 @@ async def test_requirement_view_shows_what_drives_the_worst_value(second_order):
         assert "hardware testing" in text                         # the caution
         # next requirement: its own drivers, not the previous one's
         await pilot.press("n")
-        await settle(pilot)
+        await settle(pilot, rounds=4)
         text = str(scr.query_one("#req-drivers", Static).render())
         assert scr._data.requirement.key == "PM-1"
         assert "PM-1 v1 (phase_margin >= 30 deg)" in text and "OS-1" not in text

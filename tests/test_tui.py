@@ -29,6 +29,7 @@ import numpy as np
 import pytest
 
 from ledger.api import open_ledger
+from tuihelp import press, settle
 
 SNAPSHOTS = Path(__file__).parent / "snapshots"
 
@@ -86,24 +87,6 @@ def make_app(lg):
     from ledger.tui.app import LedgerApp
 
     return LedgerApp(ledger=lg)
-
-
-async def settle(pilot, rounds: int = 3):
-    from textual.worker import WorkerCancelled
-
-    for _ in range(rounds):
-        await pilot.pause()
-        try:
-            await pilot.app.workers.wait_for_complete()
-        except WorkerCancelled:  # an exclusive reload replaced an older load; wait again
-            continue
-        await pilot.pause()
-
-
-async def press(pilot, *keys):
-    for k in keys:
-        await pilot.press(k)
-    await settle(pilot, rounds=2)
 
 
 def test_core_imports_without_textual():

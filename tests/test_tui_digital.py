@@ -5,18 +5,7 @@ rules; common practice, no source)."""
 from __future__ import annotations
 
 from ledger.api import open_ledger
-
-
-async def _settle(pilot, rounds: int = 4):
-    from textual.worker import WorkerCancelled
-
-    for _ in range(rounds):
-        await pilot.pause()
-        try:
-            await pilot.app.workers.wait_for_complete()
-        except WorkerCancelled:  # a view's loader replaced by a newer one
-            pass
-        await pilot.pause()
+from tuihelp import settle
 
 
 async def test_digital_form_records_method_and_format(tmp_path):
@@ -31,10 +20,10 @@ async def test_digital_form_records_method_and_format(tmp_path):
     app = LedgerApp(ledger=lg)
     try:
         async with app.run_test(size=(120, 50)) as pilot:
-            await _settle(pilot)
+            await settle(pilot, rounds=4)
             app.current_loop, app.current_label = "ax", None
             app.action_add_revision()
-            await _settle(pilot)
+            await settle(pilot, rounds=4)
             form = app.screen
             assert type(form).__name__ == "RevisionForm"
             assert form.query_one("#form-digital").display
@@ -50,10 +39,10 @@ async def test_digital_form_records_method_and_format(tmp_path):
         assert r.number_format == "single" and r.verified.startswith("diffeq(")
         app2 = LedgerApp(ledger=lg)
         async with app2.run_test(size=(120, 50)) as pilot:
-            await _settle(pilot)
+            await settle(pilot, rounds=4)
             app2.current_loop, app2.current_label = "cont", None
             app2.action_add_revision()
-            await _settle(pilot)
+            await settle(pilot, rounds=4)
             assert not app2.screen.query_one("#form-digital").display
     finally:
         lg.close()
