@@ -32,7 +32,7 @@ async def test_digital_form_records_method_and_format(tmp_path):
             form.query_one("#form-discretize", Input).value = "tustin@30Hz"
             form.query_one("#form-format", Input).value = "single"
             form.action_submit()
-            await _settle(pilot, rounds=8)
+            await settle(pilot, rounds=8)
             assert type(app.screen).__name__ != "RevisionForm"
         (r,) = lg.revisions("ax")
         assert r.discretization.startswith("tustin@188.4955")
