@@ -73,3 +73,26 @@ def test_wide_after_the_command(demo):
         assert "not in the table" not in out
     assert any(len(line) > 80 for line in _run(demo, 80, "diff", "gantry-x", "r6",
                                                "--wide").splitlines())
+
+
+def test_a_value_every_row_shares_is_said_once(capsys, monkeypatch):
+    # A column left out of a narrow table whose value is the same in every row gets one
+    # "every row:" line, not one detail line per row; other values keep their rows.
+    from ledger.cli import output
+    from ledger.cli.common import state
+
+    monkeypatch.setattr(state, "wide", False)       # an earlier command may have left --wide
+    monkeypatch.setenv("COLUMNS", "40")
+    rows = [[f"R-{i}", "pass", "a long text that does not fit", "77.9 % at 95 %"]
+            for i in range(4)]
+    rows[2][2] = "another long text, this row only"
+    output.table(["ID", "verdict", "note", "yield bound"], rows,
+                 drop=("yield bound", "note"))
+    out = " ".join(capsys.readouterr().out.split())     # wrapped lines joined
+    assert out.count("77.9 % at 95 %") == 1 and "every row: yield bound 77.9 % at 95 %" in out
+    assert "R-2: note another long text, this row only" in out
+    assert out.count("a long text that does not fit") == 3
+    # with fewer than three rows each row keeps its own line
+    output.table(["ID", "verdict", "note", "yield bound"], rows[:2],
+                 drop=("yield bound", "note"))
+    assert capsys.readouterr().out.count("77.9 % at 95 %") == 2

@@ -75,7 +75,8 @@ def table(columns: list[str], rows: list[list[str]], title: str | None = None, *
     columns in ``shorten`` get their short form (``{column: function}``), then the columns
     named in ``drop`` are taken out in that order until it fits; what they held is printed
     below the table, one detail line per row (keyed by the first column), so nothing is lost,
-    except values ``quiet[column](value)`` calls unremarkable (e.g. a 100 % pass fraction).
+    except values ``quiet[column](value)`` calls unremarkable (e.g. a 100 % pass fraction); a
+    value every row (of three or more) shares is said once, on an ``every row:`` line.
     Cells still too wide are wrapped inside their column.
     """
     from rich import box
@@ -127,10 +128,20 @@ def table(columns: list[str], rows: list[list[str]], title: str | None = None, *
     console.print(t)
     if hidden:
         quiet = quiet or {}
+
+        def notable(j, x):
+            return x not in ("", "-") and not (columns[j] in quiet and quiet[columns[j]](x))
+
+        # a hidden column with one notable value in every row (of three or more) is said once
+        same = [j for j in sorted(hidden) if len(full) >= 3
+                and len({r[j] for r in full}) == 1 and notable(j, full[0][j])]
         for r in full:
-            parts = [f"{columns[j]} {r[j]}" for j in sorted(hidden) if r[j] not in ("", "-")
-                     and not (columns[j] in quiet and quiet[columns[j]](r[j]))]
+            parts = [f"{columns[j]} {r[j]}" for j in sorted(hidden) if j not in same
+                     and notable(j, r[j])]
             if parts:
                 say(f"  {r[0]}: " + "; ".join(parts), indent="      ")
+        if same:
+            say("  every row: " + "; ".join(f"{columns[j]} {full[0][j]}" for j in same),
+                indent="      ")
         say(f"  (not in the table: {', '.join(columns[j] for j in sorted(hidden))}; "
             "their notable values are above; --wide shows every column)")
