@@ -21,13 +21,14 @@ VERDICTS = ("pass", "fail", "error", "n/a", "stale")
 MATRIX_VERDICTS = ("pass", "fail", "error", "stale", "unverified")
 
 
-def count_verdicts(items, words=MATRIX_VERDICTS) -> dict[str, int]:
-    """How many of ``items`` (anything with a ``verdict``) carry each verdict: every word of
-    ``words`` present (0 when none), then any other verdict met, in the order met.  The one
-    count behind the UI, the exports, the matrix and baselines."""
+def count_verdicts(items, words=MATRIX_VERDICTS, *, attr: str = "verdict") -> dict[str, int]:
+    """How many of ``items`` (anything with a ``verdict``, or the attribute ``attr``) carry
+    each verdict: every word of ``words`` present (0 when none), then any other verdict met,
+    in the order met.  The one count behind the UI, the exports, the matrix and baselines."""
     out = {w: 0 for w in words}
     for it in items:
-        out[it.verdict] = out.get(it.verdict, 0) + 1
+        v = getattr(it, attr)
+        out[v] = out.get(v, 0) + 1
     return out
 
 

@@ -211,9 +211,9 @@ def results_cmd(loop: str = typer.Argument(..., help="Loop name."),
         rev = lg.revision(loop, label)
         members = []
         if why is None:
-            plant = lg.loop(loop).plant
-            members = sorted({f"measured:{k}" for v in {r.plant_version for r in res}
-                              for k in lg.plant(plant, v).measured})
+            from ..history.matrix import measured_members
+
+            members = sorted({m for ms in measured_members(lg, res).values() for m in ms})
     if why is not None:
         if as_json:
             return emit_json(drivers)

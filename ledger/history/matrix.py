@@ -85,10 +85,7 @@ class Matrix:
 
     def state_counts(self) -> dict[str, int]:
         """Cells per shown state (``waived`` counted apart)."""
-        out: dict[str, int] = {}
-        for e in self.entries:
-            out[e.state] = out.get(e.state, 0) + 1
-        return out
+        return count_verdicts(self.entries, (), attr="state")
 
     @property
     def loops(self) -> tuple[str, ...]:
@@ -150,24 +147,25 @@ def build_matrix(lg, selection: str | Sequence[tuple[str, str]] = "tips", *,
         for r in reqs:
             if r.metric and col.loop in r.loops:
                 res = results.get(r.key)
-                e = MatrixEntry(r, col.loop, col, res)
-                w = waived.cover(r.key, col.loop, col.label, e.verdict)
-                entries.append(e if w is None else MatrixEntry(r, col.loop, col, res, w))
+                verdict = res.verdict if res is not None else "unverified"
+                entries.append(MatrixEntry(r, col.loop, col, res,
+                                           waived.cover(r.key, col.loop, col.label, verdict)))
     return Matrix(requirements=reqs, columns=tuple(columns), entries=tuple(entries),
                   generated_at=datetime.now(timezone.utc), title=title,
-                  measured=measured_members(lg, entries))
+                  measured=measured_members(lg, (e.result for e in entries)))
 
 
-def measured_members(lg, entries) -> dict:
+def measured_members(lg, results) -> dict:
     """(loop, plant version) -> the names of the measured members of that plant version's
-    family (``measured:<name>``), for every plant version a result among ``entries`` judged."""
+    family (``measured:<name>``), for every plant version one of ``results`` (``ResultInfo``,
+    ``None`` skipped) judged."""
     out: dict = {}
     plant_of: dict = {}
-    for e in entries:
-        if e.result is None or (e.loop, e.result.plant_version) in out:
+    for r in results:
+        if r is None or (r.loop, r.plant_version) in out:
             continue
-        if e.loop not in plant_of:
-            plant_of[e.loop] = lg.loop(e.loop).plant
-        info = lg.plant(plant_of[e.loop], e.result.plant_version)
-        out[(e.loop, e.result.plant_version)] = tuple(f"measured:{k}" for k in info.measured)
+        if r.loop not in plant_of:
+            plant_of[r.loop] = lg.loop(r.loop).plant
+        info = lg.plant(plant_of[r.loop], r.plant_version)
+        out[(r.loop, r.plant_version)] = tuple(f"measured:{k}" for k in info.measured)
     return out
