@@ -243,12 +243,13 @@ def judge_payload(check: Check, payload: dict) -> Judged:
     if check.problem:
         return Judged("error", None, None, None, "", None, n, check.problem)
     unstable = bool(errors) and bool(payload.get("unstable"))
-    if errors and not unstable:
+    if errors:
         first_variant, reason = next(iter(errors.items()))
         more = f" (and {len(errors) - 1} more variant(s))" if len(errors) > 1 else ""
-        where = "" if first_variant == "*" else f" on {first_variant}"
-        return Judged("error", None, None, None, first_variant, None, n,
-                      f"cannot compute{where}: {reason}{more}")
+        what = ("" if first_variant == "*" else f" on {first_variant}") + f": {reason}{more}"
+        if not unstable:
+            return Judged("error", None, None, None, first_variant, None, n,
+                          f"cannot compute{what}")
     vals = _decode(payload["values"])
     passing = np.zeros(n, dtype=bool)
     if len(vals) == n:
@@ -256,11 +257,8 @@ def judge_payload(check: Check, payload: dict) -> Judged:
         passing &= np.array([v not in errors for v in variants], dtype=bool)
     samples, sample_passes = _sample_counts(variants, passing)
     if unstable:
-        first_variant, reason = next(iter(errors.items()))
-        more = f" (and {len(errors) - 1} more variant(s))" if len(errors) > 1 else ""
-        where = "" if first_variant == "*" else f" on {first_variant}"
         jd = Judged("fail", None, None, None, first_variant,
-                    1 - len(errors) / n if n else None, n, f"unstable{where}: {reason}{more}",
+                    1 - len(errors) / n if n else None, n, f"unstable{what}",
                     samples, sample_passes)
     else:
         lim = Limit(check.comparator, check.limit_value, check.unit, check.limit_text)
