@@ -49,12 +49,12 @@ def corner_line(d) -> str:
     dirs = d.corner_directions()
     if dirs:
         parts = []
-        for e in d.effects:
-            if e.parameter in dirs:
-                word = f"{e.parameter} {dirs[e.parameter]}"
-                if e.worse_when and (e.worse_when == "higher") != (e.place == "high"):
-                    word += " (but worse inside the band)"
-                parts.append(word)
+        by_name = {e.parameter: e for e in d.effects}
+        for e in (by_name[n] for n in dirs):
+            word = f"{e.parameter} {dirs[e.parameter]}"
+            if e.worse_when and (e.worse_when == "higher") != (e.place == "high"):
+                word += " (but worse inside the band)"
+            parts.append(word)
         return f"worst corner: {', '.join(parts)}"
     inside = [f"{e.parameter} {e.place}" for e in d.effects if e.status != "not used"]
     if not inside:

@@ -467,3 +467,22 @@ def test_change_text_linearises_in_the_shown_unit():
     assert change_text(0.17, 0.0196, "s", "<= 200 ms") == "+19.6 ms"
     assert change_text(9.6, 6.25, "%", "<= 25 %") == "+6.25 %pt"
     assert change_text(1.0, None, "s", "") == "-"
+
+
+def test_ranking_ties_within_the_error_keep_the_plants_order():
+    # K and tau of K/(s(tau s+1)) with equal relative tolerances change the damping alike, so
+    # their effects on overshoot agree to rounding: that must not decide the order (it did on
+    # one BLAS kernel and not another).  Effects differing beyond their errors rank by size.
+    # The ledger's own rule (docs/history.md; common practice, no source).
+    from ledger.verification.drivers import ParameterEffect, ranked
+
+    def eff(name, per_width, err):
+        return ParameterEffect(name, 0.9, 1.0, 1.1, 1.1, "high", "smooth", per_width=per_width,
+                               truncation=err, rounding=0.0)
+
+    a, b = eff("K", 1.0, 1e-10), eff("tau", 1.0 + 1e-12, 1e-10)
+    assert [e.parameter for e in ranked([a, b])] == ["K", "tau"]
+    assert [e.parameter for e in ranked([b, a])] == ["tau", "K"]   # the given (plant) order
+    c = eff("m", 2.0, 1e-10)
+    assert [e.parameter for e in ranked([a, b, c])] == ["m", "K", "tau"]
+    assert [e.parameter for e in ranked([a, eff("tau", 1.0 + 1e-6, 1e-10)])] == ["tau", "K"]

@@ -113,6 +113,29 @@ class ParameterEffect:
         sample periods) by the change over the band."""
         return (-self.magnitude, -abs(self.across or 0.0))
 
+    @property
+    def error(self) -> float:
+        """The estimated error of :attr:`magnitude` (truncation + rounding; 0 when unknown)."""
+        return (self.truncation or 0.0) + (self.rounding or 0.0)
+
+
+def ranked(effects: list[ParameterEffect]) -> list[ParameterEffect]:
+    """``effects`` (in the plant's parameter order) ranked by :meth:`ParameterEffect.rank_key`;
+    effects whose magnitudes agree within their estimated errors (e.g. K and tau of
+    K/(s(tau s+1)) with equal relative tolerances, whose effects on the damping are the same)
+    are a tie and keep the plant's order, so that rounding never decides the ranking."""
+    order = {e.parameter: k for k, e in enumerate(effects)}
+    out = sorted(effects, key=ParameterEffect.rank_key)
+    groups: list[list[ParameterEffect]] = []
+    for e in out:
+        g = groups[-1] if groups else None
+        if g and g[-1].magnitude >= 0 and e.magnitude >= 0 and \
+                g[-1].magnitude - e.magnitude <= g[-1].error + e.error:
+            g.append(e)
+        else:
+            groups.append([e])
+    return [e for g in groups for e in sorted(g, key=lambda x: order[x.parameter])]
+
 
 @dataclass(frozen=True)
 class WorstCaseDrivers:
@@ -139,12 +162,19 @@ class WorstCaseDrivers:
     effects: tuple[ParameterEffect, ...] = ()
     note: str = ""
     caution: str = CAUTION
+    #: the toleranced parameters in the plant's order (the order of corner lines)
+    parameters: tuple[str, ...] = ()
 
     def corner_directions(self) -> dict[str, str]:
-        """Parameter -> ``low``/``high`` of the worst corner (empty unless it is a corner)."""
+        """Parameter -> ``low``/``high`` of the worst corner (empty unless it is a corner), in
+        the plant's parameter order."""
         if self.variant_kind != "corner":
             return {}
-        return {e.parameter: e.place for e in self.effects if e.place in ("low", "high")}
+        return {e.parameter: e.place for e in sorted(self.effects, key=self._declared)
+                if e.place in ("low", "high")}
+
+    def _declared(self, e: ParameterEffect) -> int:
+        return self.parameters.index(e.parameter) if e.parameter in self.parameters else 0
 
 
 def worst_case_drivers(lg, loop: str, label: str | None = None,
@@ -333,7 +363,7 @@ def _variant_drivers(plan, fam, specs, items, controller, loop, step, kink_rtol,
             ends = {e: points[(n, e)][q] for e in ("low", "high") if (n, e) in points}
             effects.append(_effect(n, specs[n], at[n], var, fam, payload, c, step, used,
                                    center[q], near, ends, kink_rtol, value_rtol))
-        effects.sort(key=ParameterEffect.rank_key)
+        effects = ranked(effects)
         f0, err0 = center[q]
         note = ""
         if f0 is None:
@@ -349,7 +379,7 @@ def _variant_drivers(plan, fam, specs, items, controller, loop, step, kink_rtol,
                 "one of equals")
         yield i, _shell(plan, c, step, verdict=j.verdict, value=j.value,
                         worst_variant=var.name, variant_kind=var.kind, recomputed=f0,
-                        effects=tuple(effects), note=note)
+                        effects=tuple(effects), note=note, parameters=tuple(toleranced))
 
 
 def _close(a: float, b: float) -> bool:
