@@ -134,8 +134,8 @@ class _Sampler:
 def _vsolve(fun, vi, a, b, fa, fb, *, xrtol: float, maxiter: int = 200) -> np.ndarray:
     """Roots of ``fun(vi, x)`` in the brackets ``[a, b]`` (sign change), all at once.
 
-    Illinois false position (bisection where the secant point leaves the bracket, and for
-    every step after the 40th); stops when the bracket is narrower than ``xrtol * b`` or the
+    False position with the Anderson-Bjorck scaling of a retained end (bisection where the
+    secant point leaves the bracket, and for every step after the 40th); stops when the bracket is narrower than ``xrtol * b`` or the
     function is exactly zero.
     """
     a, b = np.array(a, float), np.array(b, float)
@@ -150,8 +150,15 @@ def _vsolve(fun, vi, a, b, fa, fb, *, xrtol: float, maxiter: int = 200) -> np.nd
         A, B, FA, FB = a[active], b[active], fa[active], fb[active]
         with np.errstate(divide="ignore", invalid="ignore"):
             c = B - FB * (B - A) / (FB - FA)
-        bis = (it >= 40) | ~np.isfinite(c) | (c <= A) | (c >= B)
+        # (with end values of opposite signs the secant point lies in the bracket: only
+        # rounding puts it on an end)
+        bis = (it >= 40) | ~np.isfinite(c)
         c = np.where(bis, 0.5 * (A + B), c)
+        # a point closer than the tolerance to an end moves to that distance from it: once
+        # false position has reached the root from one side, the next value then closes the
+        # bracket from the other side, instead of that end creeping in step by step
+        tol = 0.45 * xrtol * B
+        c = np.where(B - A > 2.0 * tol, np.clip(c, A + tol, B - tol), 0.5 * (A + B))
         fc = np.asarray(fun(vi[active], c), float)
         if not np.all(np.isfinite(fc)):
             k = int(np.flatnonzero(~np.isfinite(fc))[0])
@@ -159,10 +166,16 @@ def _vsolve(fun, vi, a, b, fa, fb, *, xrtol: float, maxiter: int = 200) -> np.nd
                                f"(variant {vi[active][k]}); check the loop near that frequency")
         left = np.sign(fc) == np.sign(FA)          # root lies in [c, B]
         s = side[active]
+        # an end kept twice in a row has its value scaled by m = 1 - f(c)/f(replaced end)
+        # (Anderson-Bjorck; 1/2 when m <= 0), so that a curved function cannot hold one end
+        # fixed while the other creeps towards the root
+        with np.errstate(divide="ignore", invalid="ignore"):
+            m = 1.0 - fc / np.where(left, FA, FB)
+        m = np.where(np.isfinite(m) & (m > 0), m, 0.5)
         na, nfa = np.where(left, c, A), np.where(left, fc, FA)
         nb, nfb = np.where(left, B, c), np.where(left, FB, fc)
-        nfb = np.where(left & (s == -1), nfb / 2, nfb)
-        nfa = np.where(~left & (s == 1), nfa / 2, nfa)
+        nfb = np.where(left & (s == -1), nfb * m, nfb)
+        nfa = np.where(~left & (s == 1), nfa * m, nfa)
         side[active] = np.where(left, -1, 1)
         a[active], fa[active], b[active], fb[active] = na, nfa, nb, nfb
         root[active] = c

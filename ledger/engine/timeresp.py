@@ -439,7 +439,7 @@ def peak_abs(sys: SSBatch, *, amplitude: float = 1.0, tail_rtol: float = 1e-6,
         Time of the supremum, s; ``inf`` when it is only approached as t -> inf (``|yf|``).
     """
     p = simulate(sys, amplitude, tail_rtol=tail_rtol, max_samples=max_samples, **grid_kw)
-    _refine(p)
+    _refine(p, near_extremes="abs")
     return _sup_abs(p)
 
 
@@ -478,7 +478,7 @@ def recovery(sys: SSBatch, *, amplitude: float = 1.0, band: float = 0.02, basis:
     if not band > 0:
         raise ComputeError(f"band {band!r} must be positive")
     p = simulate(sys, amplitude, tail_rtol=tail_rtol, max_samples=max_samples, **grid_kw)
-    _refine(p)
+    _refine(p, near_extremes="abs")
     pk, tpk = _sup_abs(p)
     b = band * pk if basis == "peak" else np.full_like(pk, float(band))
     c = p.final if to == "final" else np.zeros_like(p.final)
