@@ -60,10 +60,67 @@ def assert_identical(a, b):
 def test_resonant_variants_form_small_clusters():
     fam = servo_family(120, modes=2)
     pl = plan(fam, lead_integrator())
-    sizes = [gp.index.size for gp in pl.groups]
+    clusters = [c for gp in pl.groups for c in (gp.clusters or (gp.index,))]
+    sizes = [c.size for c in clusters]
     # two lightly damped pairs per variant: 3000 // (63 * 2) = 23 variants per cluster
     assert max(sizes) == 3000 // (63 * 2) and sum(sizes) == 120
     assert sorted(np.concatenate([gp.index for gp in pl.groups]).tolist()) == list(range(120))
+    # clusters are pooled for their time responses: 8192 // m^2 variants at most, with
+    # m = 6 plant + 2 controller states + 1 = 9 (4 clusters of 23)
+    assert len(pl.groups) < len(clusters)
+    for gp in pl.groups:
+        assert gp.index.size <= LP._POOL_BUDGET // 9 ** 2
+        if gp.clusters:
+            assert np.array_equal(gp.index, np.concatenate(gp.clusters))
+            assert [p.index.tolist() for p in gp.parts()] == [c.tolist() for c in gp.clusters]
+
+
+def _time_suite():
+    return [n for n in SUITE if n in M._POOLED]
+
+
+def test_pooled_time_responses_match_cluster_by_cluster(monkeypatch):
+    """A pool of clusters shares one time grid; the time metrics are refined on the exact
+    response (root finding to 1e-13 of a step), so they agree with each cluster's own grid to
+    the engine's accuracy contract of 1e-9 relative (docs/performance.md); the frequency
+    metrics (one grid per cluster either way) and the stability decisions are bitwise equal."""
+    fam = servo_family(120, modes=2)
+    C = lead_integrator()
+    assert any(gp.clusters for gp in plan(fam, C).groups)
+    got = M.measure_family(fam, C, LoopSpec(), list(SUITE))
+    monkeypatch.setattr(LP, "_POOL_BUDGET", 0)
+    assert not any(gp.clusters for gp in plan(fam, C).groups)
+    ref = M.measure_family(fam, C, LoopSpec(), list(SUITE))
+    timed = set(_time_suite())
+    assert timed
+    for k, r in ref.results.items():
+        a, b = np.asarray(got.results[k].values), np.asarray(r.values)
+        assert got.results[k].variant_errors == r.variant_errors
+        if r.name in timed:
+            assert np.array_equal(np.isfinite(a), np.isfinite(b)), r.name
+            fin = np.isfinite(b)
+            np.testing.assert_allclose(a[fin], b[fin], rtol=1e-9, atol=0, err_msg=r.name)
+        else:
+            np.testing.assert_array_equal(a, b, err_msg=r.name)
+
+
+def test_pool_error_falls_back_to_each_cluster(monkeypatch):
+    """When the pooled time response raises, every cluster is measured on its own: the numbers
+    are then those of an unpooled plan, bitwise."""
+    from ledger.engine import kernels as Kn
+    from ledger.errors import ComputeError
+
+    fam = servo_family(120, modes=2)
+    C = lead_integrator()
+
+    def refuse(self, path):
+        raise ComputeError("refused for the test")
+
+    monkeypatch.setattr(Kn._PoolContext, "batch", refuse)
+    got = M.measure_family(fam, C, LoopSpec(), _time_suite())
+    monkeypatch.setattr(LP, "_POOL_BUDGET", 0)
+    ref = M.measure_family(fam, C, LoopSpec(), _time_suite())
+    assert_identical(got, ref)
 
 
 def test_clustered_values_match_one_shared_grid(monkeypatch):
@@ -120,7 +177,7 @@ def test_unstable_variants_keep_their_reasons_in_family_order():
 
 
 def test_workers_give_identical_results():
-    fam = servo_family(100)
+    fam = servo_family(200)     # 5 clusters of 47 or fewer, pooled 3 + 2
     C = lead_integrator()
     assert len(plan(fam, C).groups) >= 2
     one = M.measure_family(fam, C, LoopSpec(), list(SUITE))
@@ -162,7 +219,7 @@ def test_verify_workers_split_one_revision(tmp_path, monkeypatch):
     for workers in (1, 2):
         with open_ledger(tmp_path / f"w{workers}.db", create=True, author="test") as lg:
             lg.auto_verify = False
-            lg.add_plant("axis", plant, params=params, samples=60, seed=4)
+            lg.add_plant("axis", plant, params=params, samples=150, seed=4)  # > 1 pool
             lg.add_loop("axis-loop", "axis")
             for key, metric, limit in (("R1", "phase_margin", ">= 45 deg"),
                                        ("R2", "peak_sensitivity", "<= 2"),

@@ -93,6 +93,40 @@ class _GroupContext:
         return self.cached(("pairwise", which), lambda: freqresp.loop_pairwise(self.fb(), which))
 
 
+class _PoolContext:
+    """The context of the time-response kernels over several clusters of one group at once
+    (:data:`ledger.engine.measuring._POOLED`): their closed-loop batches under their masks,
+    concatenated in cluster order."""
+
+    def __init__(self, asm: Assembly, groups: list, masks: list):
+        self.asm, self._groups, self._masks = asm, groups, masks
+        self._cache: dict = {}
+
+    cached = _GroupContext.cached
+
+    def batch(self, path: str) -> SSBatch:
+        return self.cached(("batch", path), lambda: _concat_batches(
+            [_sub_batch(g.paths[path], m) for g, m in zip(self._groups, self._masks) if m.any()]))
+
+
+def _concat_batches(bs: list) -> SSBatch:
+    """One batch of the variants of several batches of equal shapes and delays."""
+    b0 = bs[0]
+    if len(bs) == 1:
+        return b0
+    for b in bs[1:]:
+        if b.A.shape[1:] != b0.A.shape[1:] or (b.dt, b.tau, b.io_delay) != (b0.dt, b0.tau,
+                                                                           b0.io_delay):
+            raise ComputeError("clusters of one group differ in state size or delays")
+
+    def cat(name):
+        xs = [getattr(b, name) for b in bs]
+        return None if any(x is None for x in xs) else np.concatenate(xs)
+    return SSBatch(A=cat("A"), B=cat("B"), C=cat("C"), D=cat("D"), dt=b0.dt, tau=b0.tau,
+                   Bw=cat("Bw"), Cz=cat("Cz"), Dz=cat("Dz"), Dw=cat("Dw"), Dzw=cat("Dzw"),
+                   io_delay=b0.io_delay)
+
+
 def _timeresp():
     try:
         from . import timeresp

@@ -284,6 +284,11 @@ _POINTS_PER_RESONANCE = 63
 #: most ``_RESONANCE_BUDGET // (_POINTS_PER_RESONANCE * pairs)`` variants, so the grid of a
 #: group (the union over its variants) stays a few thousand points whatever the family size.
 _RESONANCE_BUDGET = 3000
+#: Most ``variants x m^2`` (``m``: closed-loop states + 1) of one pool of resonance clusters
+#: that share a time response (one propagation of ``V x m x m`` blocks): more variants per
+#: propagation save per-call work, and this bound keeps the propagation's power blocks in cache
+#: (measured on the benchmark families: optimum near 7,000 at plant orders 4 and 16)
+_POOL_BUDGET = 8192
 #: Damping ratio below which a plant pole or zero counts as a resonance (the grid's
 #: ``resonance_zeta``).
 _RESONANCE_ZETA = 0.3
@@ -328,6 +333,16 @@ class GroupPlan:
     tau: float
     d_in: float
     d_plant: float
+    #: resonant groups: the clusters of close resonances it pools (their index arrays, whose
+    #: concatenation is ``index``); each cluster has its own frequency grid, and the group
+    #: shares one time response (empty: the group is one cluster)
+    clusters: tuple = ()
+
+    def parts(self) -> list["GroupPlan"]:
+        """The group's clusters, each as a group of its own (``[self]`` for one cluster)."""
+        if not self.clusters:
+            return [self]
+        return [GroupPlan(c, self.tau, self.d_in, self.d_plant) for c in self.clusters]
 
 
 @dataclass(frozen=True, eq=False)
@@ -373,8 +388,11 @@ def plan(family: PlantFamily, controller, loop: LoopSpec | None = None, *,
     lightly damped plant pole or zero (damping below 0.3) form groups of up to
     ``batch_size`` in family order; resonant variants are sorted by their damped resonance
     frequencies and cut into clusters of at most ``3000 // (63 * pairs)`` variants (``pairs``:
-    the most lightly damped pairs of one variant), because a group's frequency grid carries
-    every member's resonance points and would otherwise grow with the family.  The grouping
+    the most lightly damped pairs of one variant), because a cluster's frequency grid carries
+    every member's resonance points and would otherwise grow with the family.  Consecutive
+    clusters are pooled into one group of at most ``8192 // m**2`` variants (``m``: closed-loop
+    states + 1): each cluster keeps its own frequency grid and the pool shares one time
+    response (:attr:`GroupPlan.clusters`).  The grouping
     depends only on the family, never on how its groups are later processed (one by one,
     streamed, or in worker processes), so every way gives the same numbers.
 
@@ -419,8 +437,15 @@ def plan(family: PlantFamily, controller, loop: LoopSpec | None = None, *,
             order = np.lexsort((np.asarray(res),) + tuple(F_[:, k] for k in
                                                           range(pairs - 1, -1, -1)))
             srt = np.asarray(res)[order]
-            for s0 in range(0, srt.size, c):
-                groups.append(GroupPlan(np.sort(srt[s0:s0 + c]), tau, d_in, d_plant))
+            clusters = [np.sort(srt[s0:s0 + c]) for s0 in range(0, srt.size, c)]
+            # consecutive clusters (close resonances) share their time responses: a pool
+            # holds at most _POOL_BUDGET / m^2 variants (m: closed-loop states + the step)
+            m = ng + K.order + F.order + H.order + 1
+            per = max(1, min(size, _POOL_BUDGET // (m * m)) // c)
+            for k in range(0, len(clusters), per):
+                cl = tuple(clusters[k:k + per])
+                groups.append(GroupPlan(np.concatenate(cl), tau, d_in, d_plant,
+                                        clusters=cl if len(cl) > 1 else ()))
     return Plan(family=family, loop=loop, blocks=(F, K, H), groups=tuple(groups),
                 algebraic_tol=algebraic_tol, variants=family.names, reference=reference)
 

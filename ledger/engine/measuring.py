@@ -154,49 +154,117 @@ def collect_groups(pl: Plan, reqs, outs) -> FamilyResult:
     return _collect(pl, reqs, outs)
 
 
+#: metrics whose kernels read only the group's closed-loop batches (time responses): a group
+#: that pools clusters of close resonances computes them once over the pool
+_POOLED = frozenset({"rise_time", "settling_time", "overshoot", "undershoot", "peak_time",
+                     "peak_effort", "disturbance_peak", "disturbance_recovery",
+                     "disturbance_offset"})
+
+
 def _measure_group(pl: Plan, gp, reqs) -> tuple:
     """Build one planned group and measure every request on it.
 
+    A group that pools clusters (:attr:`~ledger.engine.loop.GroupPlan.clusters`) is built
+    cluster by cluster: each cluster's stability and frequency metrics on its own grid, the
+    time-response metrics of :data:`_POOLED` once over the pool (cluster by cluster again if
+    that raises, so an error stays with the variants of its cluster).
+
     Returns ``(index, (counts, reasons, method), {key: (values, errors, unstable)})`` with
     values over the group's variants and errors as (family index, reason) pairs."""
-    from .kernels import _COMPUTE, _GroupContext
+    from .kernels import _GroupContext
     from .stability import group_stability
 
-    g = pl.build(gp)
-    counts, reasons, method = group_stability(g, pl.dt, pl.variants)
-    stable = counts == 0
-    contexts: dict = {}
+    parts = gp.parts()
+    built = []
+    for sub in parts:
+        g = pl.build(sub)
+        counts, reasons, method = group_stability(g, pl.dt, pl.variants)
+        built.append((g, counts, reasons, method, {}))
+    pooled = len(parts) > 1
     out = {}
     for name, full, key in reqs:
         if name == "stable":
             continue
         mdef = METRICS[name]
+        masks = [(b[1] == 0) if mdef.needs_stable else np.ones(b[0].index.size, bool)
+                 for b in built]
+        res = None
+        if (pooled and name in _POOLED and any(m.any() for m in masks)
+                and (full.get("time_basis", "samples") == "samples" or pl.dt is None)):
+            res = _run_pool(pl, built, masks, name, full, mdef)
+        if res is None:
+            res = [_run(pl, b, m, name, full, mdef, _GroupContext) for b, m in zip(built, masks)]
+        out[key] = (np.concatenate([r[0] for r in res]), [e for r in res for e in r[1]],
+                    any(r[2] for r in res))
+    index = np.concatenate([b[0].index for b in built])
+    counts = np.concatenate([b[1] for b in built])
+    reasons = [r for b in built for r in b[2]]
+    method = "nyquist" if any(b[3] == "nyquist" for b in built) else built[0][3]
+    return index, (counts, reasons, method), out
+
+
+def _run(pl, b, ok, name, full, mdef, context) -> tuple:
+    """One request on one built cluster ``b`` (LoopGroup, counts, reasons, method, contexts)
+    under the mask ``ok``: (values over the cluster, errors, unstable)."""
+    g, counts, reasons, _, contexts = b
+    vals_g = np.full(g.index.size, np.inf * mdef.worst_sign())
+    errors: list = []
+    unstable = False
+    for j in np.flatnonzero(~ok):
+        errors.append((int(g.index[j]), reasons[j]))
+        unstable = True
+    if np.any(ok):
+        ckey = ok.tobytes()
+        if ckey not in contexts:
+            contexts[ckey] = context(pl, g, ok, counts == 0)
+        ctx = contexts[ckey]
+        try:
+            vals = _values(ctx, name, full)
+        except LedgerError as e:
+            for i in g.index[ok]:
+                errors.append((int(i), str(e)))
+            unstable = unstable or isinstance(e, UnstableLoopError)
+        else:
+            pos = np.flatnonzero(ok)
+            nan = np.isnan(vals)
+            vals_g[pos[~nan]] = vals[~nan]
+            for i in g.index[pos[nan]]:
+                errors.append((int(i), "the value could not be computed (NaN)"))
+    return vals_g, errors, unstable
+
+
+def _values(ctx, name, full) -> np.ndarray:
+    from .kernels import _COMPUTE
+    return np.asarray(_COMPUTE[name](ctx, full), dtype=float).reshape(-1)
+
+
+def _run_pool(pl, built, masks, name, full, mdef) -> list | None:
+    """One pooled request over every cluster of a group at once: per cluster (values, errors,
+    unstable) as :func:`_run` gives them, or ``None`` when the pooled kernel raises (the caller
+    then measures cluster by cluster)."""
+    from .kernels import _PoolContext
+
+    ckey = ("pool",) + tuple(m.tobytes() for m in masks)
+    contexts = built[0][4]
+    if ckey not in contexts:
+        contexts[ckey] = _PoolContext(pl, [b[0] for b in built], masks)
+    try:
+        vals = _values(contexts[ckey], name, full)
+    except LedgerError:
+        return None
+    res = []
+    k = 0
+    for (g, counts, reasons, _, _), ok in zip(built, masks):
         vals_g = np.full(g.index.size, np.inf * mdef.worst_sign())
-        errors: list = []
-        unstable = False
-        ok = stable if mdef.needs_stable else np.ones(g.index.size, bool)
-        for j in np.flatnonzero(~ok):
-            errors.append((int(g.index[j]), reasons[j]))
-            unstable = True
-        if np.any(ok):
-            ckey = ok.tobytes()
-            if ckey not in contexts:
-                contexts[ckey] = _GroupContext(pl, g, ok, stable)
-            ctx = contexts[ckey]
-            try:
-                vals = np.asarray(_COMPUTE[name](ctx, full), dtype=float).reshape(-1)
-            except LedgerError as e:
-                for i in g.index[ok]:
-                    errors.append((int(i), str(e)))
-                unstable = unstable or isinstance(e, UnstableLoopError)
-            else:
-                pos = np.flatnonzero(ok)
-                nan = np.isnan(vals)
-                vals_g[pos[~nan]] = vals[~nan]
-                for i in g.index[pos[nan]]:
-                    errors.append((int(i), "the value could not be computed (NaN)"))
-        out[key] = (vals_g, errors, unstable)
-    return g.index, (counts, reasons, method), out
+        errors = [(int(g.index[j]), reasons[j]) for j in np.flatnonzero(~ok)]
+        pos = np.flatnonzero(ok)
+        v = vals[k:k + pos.size]
+        k += pos.size
+        nan = np.isnan(v)
+        vals_g[pos[~nan]] = v[~nan]
+        errors += [(int(i), "the value could not be computed (NaN)") for i in g.index[pos[nan]]]
+        res.append((vals_g, errors, bool((~ok).any())))
+    return res
 
 
 def _collect(pl: Plan, reqs, outs) -> FamilyResult:
