@@ -600,6 +600,29 @@ def test_grid_spans_features():
     assert_allclose(m.gain_crossover, [1e-4], rtol=1e-10)
 
 
+
+def test_refinement_does_not_bisect_towards_a_pole_at_the_origin():
+    # Source: the documented refinement rule ("intervals next to ... non-finite steps do not
+    # count").  The engine's loop gain is inf + 0j at w = 0 for an integrating loop; the
+    # quotient L(w1) / L(0) is then a signed zero whose angle numpy reads as pi, which once
+    # made every pass halve [0, w1] (so every pass ran and the grid's values were never kept).
+    # Double integrator 1/s^2 under a lead (s/0.5 + 1)/(s/20 + 1)^2, closed by the engine.
+    from ledger.engine import freqgrid as fg
+    from ledger.engine.loop import LoopSpec, assemble
+    from ledger.engine.types import PlantFamily
+    C = (s / 0.5 + 1) / (s / 20 + 1) ** 2
+    fb = assemble(PlantFamily.single(1 / s ** 2), C, LoopSpec()).groups[0].loop_gain
+    w = fr.frequency_grid(fb)
+    h = fb.evaluate(w[:2])
+    assert w[0] == 0.0 and np.isinf(h[0, 0])
+    am = np.abs(h) + 1e-300
+    assert not fg._step_bad(h[:, :1], h[:, 1:], am[:, :1], am[:, 1:], 0.35)[0]
+    # the low end is where the end-extension rule puts it (|L| about 100 or more), not
+    # halved towards 0 pass after pass, and the last pass found nothing left to refine
+    assert abs(h[0, 1]) < 1e6
+    assert "grid_values" in fg._memo(fb)
+
+
 # ----------------------------------------------------------------------------------------------
 # batches: the vectorised refinement against per-variant references
 # ----------------------------------------------------------------------------------------------

@@ -189,7 +189,10 @@ def _step_bad(ha, hb, aa, ab, phase_step):
     if not fin.all():
         i = ~fin & ok
         with np.errstate(divide="ignore", invalid="ignore"):
-            dph = np.abs(np.angle(hb[i] / ha[i]))
+            # a phase step needs both ends finite: next to an infinite value (a pole at
+            # w = 0) the quotient is a signed zero, whose angle may read pi
+            both = np.isfinite(ha[i]) & np.isfinite(hb[i])
+            dph = np.where(both, np.abs(np.angle(hb[i] / ha[i])), np.nan)
             dmag = np.abs(np.log(ab[i]) - np.log(aa[i]))
         bad[i] = (((dph > phase_step) & np.isfinite(dph))
                   | ((dmag > phase_step) & np.isfinite(dmag)))
