@@ -600,7 +600,6 @@ def test_grid_spans_features():
     assert_allclose(m.gain_crossover, [1e-4], rtol=1e-10)
 
 
-
 def test_refinement_does_not_bisect_towards_a_pole_at_the_origin():
     # Source: the documented refinement rule ("intervals next to ... non-finite steps do not
     # count").  The engine's loop gain is inf + 0j at w = 0 for an integrating loop; the
@@ -615,7 +614,7 @@ def test_refinement_does_not_bisect_towards_a_pole_at_the_origin():
     w = fr.frequency_grid(fb)
     h = fb.evaluate(w[:2])
     assert w[0] == 0.0 and np.isinf(h[0, 0])
-    am = np.abs(h) + 1e-300
+    am = np.abs(h) + fg._TINY
     assert not fg._step_bad(h[:, :1], h[:, 1:], am[:, :1], am[:, 1:], 0.35)[0]
     # the low end is where the end-extension rule puts it (|L| about 100 or more), not
     # halved towards 0 pass after pass, and the last pass found nothing left to refine
