@@ -508,3 +508,99 @@ def test_refinement_converges_in_few_steps_on_a_family(monkeypatch):
     # four refinements (extrema, two rise levels, settling): common practice, no source, for
     # the bound of 15 evaluations each (Newton converges quadratically from the Hermite guess)
     assert len(calls) <= 4 * 15, calls
+
+
+# -- the grid follows a mode only while its share of the response matters --------------------
+
+def _modal(poles, gains) -> SSBatch:
+    """Diagonal batch of sum_i gains_i / (s + poles_i): step residues -gains_i / poles_i."""
+    p = np.asarray(poles, dtype=float)
+    return SSBatch(A=np.diag(-p)[None], B=np.ones((1, p.size)), C=np.asarray(gains, float)[None],
+                   D=np.zeros(1))
+
+
+def test_residue_lives_closed_form_of_partial_fractions():
+    from ledger.engine.timegrid import residue_lives
+
+    # Source: partial fractions: the step response of sum k_i / (s + p_i) is
+    # sum (k_i / p_i)(1 - exp(-p_i t)), so mode i has residue -k_i / p_i (closed form).
+    p, k = np.array([1.0, 100.0, 1e4]), np.array([1.0, 1e-3, 1e-7])
+    sys = _modal(p, k)
+    lam, vecs = np.linalg.eig(sys.A)                 # diagonal: eigenvalues in that order
+    assert_allclose(lam[0], -p, rtol=0)
+    life = residue_lives(sys, lam, vecs, settle_factor=15.0, residue_rtol=1e-10)[0]
+    xss = 1.0 / p
+    yss = float(np.sum(k * xss))
+    # the documented allowance for rounding: 1000 eps kappa ||C|| ||x_ss||, kappa = 1 here
+    bound = np.abs(k / p) + 1e3 * np.finfo(float).eps * np.linalg.norm(k) * np.linalg.norm(xss)
+    want = np.minimum(15.0, np.maximum(0.0, np.log(bound / (1e-10 * yss)))) / p
+    assert_allclose(life, want, rtol=1e-12)
+    assert life[0] == 15.0                           # residue 1: the settle_factor rule
+    assert 0 < life[1] < 15.0 / 100.0                # residue 1e-5: ln(1e5) time constants
+    assert life[2] == 0.0                            # residue 1e-11 < 1e-10: never sets the step
+
+
+def test_residue_rule_never_follows_a_mode_longer_than_fifteen_time_constants():
+    from ledger.engine.timegrid import residue_lives
+
+    # a double pole in companion form has (nearly) parallel eigenvectors: the residues cannot
+    # be trusted, so the condition-number allowance keeps the settle_factor rule
+    # (common practice, no source: a Jordan block's eigenvector matrix is singular)
+    sys = batch(1 / (s + 1) ** 2)
+    lam, vecs = np.linalg.eig(sys.A)
+    life = residue_lives(sys, lam, vecs, settle_factor=15.0, residue_rtol=1e-10)
+    assert_allclose(life, 15.0 / -lam.real, rtol=1e-12)
+    # a mode with a large residue keeps the settle_factor rule exactly
+    big = _modal([1.0, 50.0], [1.0, 50.0])
+    lam, vecs = np.linalg.eig(big.A)
+    assert_allclose(residue_lives(big, lam, vecs, settle_factor=15.0, residue_rtol=1e-10),
+                    15.0 / -lam.real, rtol=1e-12)
+
+
+def test_negligible_fast_resonance_coarsens_the_grid_not_the_metrics():
+    # A slow first-order loop plus a lightly damped mode at 2e4 rad/s whose residue is 1e-13
+    # of the response: the old rule followed it for 15 time constants at 24 points per period.
+    sig, wd = 200.0, 2e4
+    A = np.array([[-1.0, 0, 0], [0, -sig, wd], [0, -wd, -sig]])
+    sys = SSBatch(A=A[None], B=np.array([[1.0, 1.0, 0.0]]), C=np.array([[1.0, 2e-9, 0.0]]),
+                  D=np.zeros(1))
+    old, new = horizon(sys, residue_rtol=None), horizon(sys)
+    assert min(new.t_end, old.t_end) >= 15.0      # the horizon still follows every mode
+    assert new.nsamples * 10 < old.nsamples
+    m_old, m_new = step_metrics(sys, residue_rtol=None), step_metrics(sys)
+    for name in ("rise_time", "settling_time", "overshoot", "undershoot"):
+        assert_allclose(getattr(m_new, name), getattr(m_old, name), rtol=1e-9, atol=1e-12)
+    # Source: closed form of the first-order step 1 - exp(-t): rise ln 9, 2 % settling ln 50;
+    # the fast mode's share (< 1e-12 of y) moves them by far less than 1e-9.
+    assert_allclose(m_new.rise_time, math.log(9), rtol=1e-9)
+    assert_allclose(m_new.settling_time, math.log(50), rtol=1e-9)
+
+
+def test_paths_of_one_loop_share_one_time_grid_and_it_is_exact():
+    # the r->y, r->e and r->u paths of one loop get one grid (their grid_rows), so one
+    # propagation serves them all; on the benchmark's order-16 axis (structural modes far above
+    # the crossover with residues near 1e-13) it is coarser than the old rule, and the step
+    # metrics and sup |u| agree with those on the old grid (the closed forms and reference
+    # checks above hold for both rules)
+    from ledger.engine.loop import assemble
+    from ledger.engine.timegrid import balance
+    from ledger.engine.types import PlantFamily
+
+    # an axis 20 / (s (0.01 s + 1)) with seven structural modes 2 pi 40 1.9^k rad/s, damping
+    # 0.05 / 0.03, under a lead + integrator (invented, as in benchmarks/resonant.py)
+    plant = 20.0 / (s * (0.01 * s + 1))
+    for k in range(7):
+        w, z = 2 * math.pi * 40.0 * 1.9 ** k, 0.05 - 0.02 * (k % 2)
+        plant = plant * w * w / (s * s + 2 * z * w * s + w * w)
+    ctrl = 0.3 * (1 + 1 / (0.3 * s)) * (0.1 * s + 1) / (0.03 * s + 1)
+    g = assemble(PlantFamily.single(plant), ctrl).groups[0]
+    grids = {p: horizon(balance(g.paths[p])) for p in ("r->y", "r->e", "r->u")}
+    assert grids["r->y"].segments == grids["r->u"].segments == grids["r->e"].segments
+    old = horizon(balance(g.paths["r->y"]), residue_rtol=None)
+    assert grids["r->y"].nsamples < old.nsamples
+    new_m = step_metrics(g.paths["r->y"])
+    old_m = step_metrics(g.paths["r->y"], residue_rtol=None)
+    for name in ("rise_time", "settling_time", "overshoot"):
+        assert_allclose(getattr(new_m, name), getattr(old_m, name), rtol=1e-9)
+    assert_allclose(peak_abs(g.paths["r->u"])[0], peak_abs(g.paths["r->u"], residue_rtol=None)[0],
+                    rtol=1e-9)

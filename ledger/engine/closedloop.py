@@ -202,6 +202,10 @@ def _build_group(idx, Gs, F, K, H, tau, d_in, d_plant, ts, algebraic_tol) -> Loo
     io = {"r->y": d_in + d_plant, "d->y": d_plant}
     V = len(Gs)
     paths = {}
+    r_rows = None
+    if tau == 0:   # [C | D] of the r paths: they share A and B, so one time grid serves all
+        r_rows = np.stack([np.concatenate([sig[dst][:, :N], sig[dst][:, col["r"]][:, None]], axis=1)
+                           for dst in ("y", "e", "u")], axis=1)
     for name in PATHS:
         src, dst = _PATH_IO[name]
         keep = np.arange(N) if src == "r" else np.arange(nf, N)  # prefilter unreachable from d, n
@@ -218,7 +222,8 @@ def _build_group(idx, Gs, F, K, H, tau, d_in, d_plant, ts, algebraic_tol) -> Loo
             z0 = np.zeros((V, keep.size))
             paths[name] = SSBatch(A=A, B=B, C=Cr, D=Dv, dt=ts, tau=0.0, Bw=z0, Cz=z0.copy(),
                                   Dz=np.zeros(V), Dw=np.zeros(V), Dzw=np.zeros(V),
-                                  io_delay=io.get(name, 0.0))
+                                  io_delay=io.get(name, 0.0),
+                                  grid_rows=r_rows if src == "r" else None)
     loop_poles = None
     if tau == 0:
         Aloop = X[:, nf:N, nf:N]

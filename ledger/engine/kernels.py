@@ -22,7 +22,8 @@ def _sub_batch(b: SSBatch, m: np.ndarray) -> SSBatch:
     def s(x):
         return None if x is None else x[m]
     return SSBatch(A=b.A[m], B=b.B[m], C=b.C[m], D=b.D[m], dt=b.dt, tau=b.tau, Bw=s(b.Bw),
-                   Cz=s(b.Cz), Dz=s(b.Dz), Dw=s(b.Dw), Dzw=s(b.Dzw), io_delay=b.io_delay)
+                   Cz=s(b.Cz), Dz=s(b.Dz), Dw=s(b.Dw), Dzw=s(b.Dzw), io_delay=b.io_delay,
+                   grid_rows=s(b.grid_rows))
 
 
 def _sub_eval(evaluate, m):
@@ -124,7 +125,13 @@ def _concat_batches(bs: list) -> SSBatch:
         return None if any(x is None for x in xs) else np.concatenate(xs)
     return SSBatch(A=cat("A"), B=cat("B"), C=cat("C"), D=cat("D"), dt=b0.dt, tau=b0.tau,
                    Bw=cat("Bw"), Cz=cat("Cz"), Dz=cat("Dz"), Dw=cat("Dw"), Dzw=cat("Dzw"),
-                   io_delay=b0.io_delay)
+                   io_delay=b0.io_delay, grid_rows=_cat_rows([b.grid_rows for b in bs]))
+
+
+def _cat_rows(rows: list):
+    if any(r is None for r in rows) or len({r.shape[1:] for r in rows}) != 1:
+        return None
+    return np.concatenate(rows)
 
 
 def _timeresp():

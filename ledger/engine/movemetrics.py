@@ -210,7 +210,7 @@ def _rows_of(b, m):
     def sub(x):
         return None if x is None else x[m]
     return replace(b, A=b.A[m], B=b.B[m], C=b.C[m], D=b.D[m], Bw=sub(b.Bw), Cz=sub(b.Cz),
-                   Dz=sub(b.Dz), Dw=sub(b.Dw), Dzw=sub(b.Dzw))
+                   Dz=sub(b.Dz), Dw=sub(b.Dw), Dzw=sub(b.Dzw), grid_rows=sub(b.grid_rows))
 
 
 def move_metrics_group(plan, g, mask: np.ndarray, s: dict) -> MoveMetrics:

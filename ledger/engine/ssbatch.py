@@ -132,6 +132,13 @@ def balance(sys: SSBatch) -> SSBatch:
         out["Bw"] = np.asarray(sys.Bw, dtype=float).reshape(V, n) / T
     if sys.Cz is not None:
         out["Cz"] = np.asarray(sys.Cz, dtype=float).reshape(V, n) * T
+    rows = sys.grid_rows
+    if rows is not None and rows.shape[0] == V and rows.shape[2] == n + 1:
+        rows = np.array(rows, dtype=float)
+        rows[:, :, :n] *= T[:, None, :]
+        out["grid_rows"] = rows
+    elif rows is not None:
+        out["grid_rows"] = None
     return replace(sys, **out)
 
 

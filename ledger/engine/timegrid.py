@@ -6,9 +6,14 @@ Every eigenvalue ``lam`` of ``A`` over every variant is a mode with decay rate
 ``sigma = -Re(lam)`` (1/s) and natural frequency ``|lam|`` (rad/s).  A mode is *alive* until
 ``T = settle_factor / sigma`` seconds (by then it has decayed by ``exp(-settle_factor)``, so a
 mode with a small residue, e.g. the slow pole of a pole-zero doublet, is still covered: the
-horizon follows the slowest mode, whatever its residue).  While a mode is alive the sample step
-is at most ``2 pi / (points_per_period |lam|)``, i.e. ``points_per_period`` samples per period of
-an oscillatory mode (and about ``points_per_period / 2 pi`` per time constant of a real one).
+horizon follows the slowest mode, whatever its residue).  A mode sets the sample step for a
+shorter time when its share of the response is small: until its modal residue times
+``exp(-sigma t)`` falls below ``residue_rtol`` (1e-10) of the response's scale, never longer
+than ``T`` (:func:`residue_lives`; a structural mode far above the crossover often has a
+residue of 1e-13 and would otherwise be sampled 24 times per period for 15 time constants).
+While a mode sets the step, the step is at most ``2 pi / (points_per_period |lam|)``, i.e.
+``points_per_period`` samples per period of an oscillatory mode (and about
+``points_per_period / 2 pi`` per time constant of a real one).
 The step is rounded down to ``h0 * 2**j`` (``h0`` the finest step), so the grid is a short list
 of uniform segments whose step doubles as the fast modes die out; the horizon is
 ``max T`` and never fewer than ``min_samples`` samples are used.  The samples themselves are exact
@@ -52,8 +57,8 @@ from ledger.engine.types import SSBatch
 from ledger.errors import ComputeError, UnstableLoopError
 
 # ``Pieces`` and ``simulate`` live in ledger.engine.simulation (which imports this module)
-__all__ = ["TimeGrid", "modes", "check_stable", "horizon", "equilibrium", "has_delay", "mats",
-           "expm_batch", "balance", "balance_scales"]
+__all__ = ["TimeGrid", "modes", "check_stable", "horizon", "residue_lives", "equilibrium",
+           "has_delay", "mats", "expm_batch", "balance", "balance_scales"]
 
 
 @dataclass(frozen=True)
@@ -168,9 +173,69 @@ def _delay_free_A(sys: SSBatch) -> np.ndarray | None:
     return np.asarray(sys.A, dtype=float) + Bw[:, :, None] * Cz[:, None, :] / (1.0 - Dzw)[:, None, None]
 
 
+def residue_lives(sys: SSBatch, lam: np.ndarray, vecs: np.ndarray, *, settle_factor: float,
+                  residue_rtol: float) -> np.ndarray:
+    """How long each mode's share of the step response stays above ``residue_rtol`` of it.
+
+    The step response from rest is ``y(t) = y_ss + sum_i r_i exp(lam_i t)`` with the modal
+    residue ``r_i = (C v_i) (w_i^T (0 - x_ss))`` (``v_i``, ``w_i^T`` the right and left
+    eigenvectors).  Mode ``i`` is followed for
+    ``min(settle_factor, max(0, ln(b_i / (residue_rtol s)))) / sigma_i`` seconds, where
+    ``s = max(|y_ss|, |y(0+)|)`` is at most ``max |y|`` and ``b_i`` is ``|r_i|`` plus an
+    allowance for its rounding, ``1000 eps kappa_i ||C|| ||x_ss||`` with
+    ``kappa_i = ||v_i|| ||w_i||`` the eigenvalue's condition number.  So a mode is never
+    followed longer than by the ``settle_factor`` rule, and it stops setting the sample step
+    once its share of ``y`` is below ``residue_rtol s`` for good.  The outputs are the
+    batch's own and those of ``sys.grid_rows`` (the longest life of each mode over them).  A
+    variant whose residues cannot be trusted (singular eigenvector matrix, ``s = 0``,
+    anything not finite) keeps the ``settle_factor`` rule for that mode.
+
+    Parameters
+    ----------
+    sys : SSBatch
+        Continuous, no internal delay.
+    lam, vecs : ndarray (V, n), (V, n, n)
+        Eigenvalues and right eigenvectors of ``A`` (``numpy.linalg.eig``).
+    settle_factor, residue_rtol : float
+        See :func:`horizon`.
+
+    Returns
+    -------
+    ndarray (V, n)
+        Seconds per mode.
+    """
+    A, B, C, D = mats(sys)
+    V, n = A.shape[0], A.shape[1]
+    sigma = -lam.real
+    old = settle_factor / sigma
+    rows = np.concatenate([C, D[:, None]], axis=1)[:, None, :]           # (V, 1, n + 1)
+    extra = sys.grid_rows
+    if extra is not None and extra.shape[0] == V and extra.shape[2] == n + 1:
+        rows = np.concatenate([rows, np.asarray(extra, dtype=float)], axis=1)
+    Cr, Dr = rows[:, :, :n], rows[:, :, n]
+    with np.errstate(all="ignore"):
+        try:
+            W = np.linalg.inv(vecs)
+            xss = -np.linalg.solve(A, B[:, :, None])[:, :, 0]
+        except np.linalg.LinAlgError:
+            return old
+        c = np.einsum("vij,vj->vi", W, -xss)                   # modal coordinates of x0 - x_ss
+        r = np.einsum("vkj,vji->vki", Cr, vecs) * c[:, None, :]             # (V, k, n)
+        kappa = np.linalg.norm(vecs, axis=1) * np.linalg.norm(W, axis=2)   # (V, n)
+        floor = (1e3 * np.finfo(float).eps * kappa[:, None, :]
+                 * (np.linalg.norm(Cr, axis=2) * np.linalg.norm(xss, axis=1)[:, None])[:, :, None])
+        bound = np.abs(r) + floor
+        yss = np.einsum("vkj,vj->vk", Cr, xss) + Dr
+        scale = np.maximum(np.abs(yss), np.abs(Dr))                          # (V, k)
+        decades = np.log(bound / (residue_rtol * scale[:, :, None]))
+        life = np.clip(decades, 0.0, settle_factor) / sigma[:, None, :]
+    trust = (np.isfinite(scale) & (scale > 0))[:, :, None] & np.isfinite(life)
+    return np.max(np.where(trust, life, old[:, None, :]), axis=1)
+
+
 def horizon(sys: SSBatch, *, settle_factor: float = 15.0, points_per_period: float = 24.0,
             min_samples: int = 100, max_samples: int = 200_000, delay_rtol: float = 1e-6,
-            min_delay_steps: int = 8) -> TimeGrid:
+            min_delay_steps: int = 8, residue_rtol: float | None = 1e-10) -> TimeGrid:
     """Choose the simulation horizon and sample grid from every closed-loop mode.
 
     Parameters
@@ -191,6 +256,11 @@ def horizon(sys: SSBatch, *, settle_factor: float = 15.0, points_per_period: flo
         ``h |lam| <= (96 delay_rtol)^(1/4)`` (about 0.1 at the default).
     min_delay_steps : int, default 8
         Fewest steps per delay ``tau`` (delay only).
+    residue_rtol : float or None, default 1e-10
+        Continuous, no delay: a mode stops setting the sample step once its share of the
+        response is below ``residue_rtol`` times the response's scale (see
+        :func:`residue_lives`); the horizon still follows every mode by the ``settle_factor``
+        rule.  ``None``: every mode sets the step for its whole ``settle_factor`` life.
 
     Returns
     -------
@@ -218,7 +288,11 @@ def horizon(sys: SSBatch, *, settle_factor: float = 15.0, points_per_period: flo
         _cap(count + 1, max_samples, fin)
         return TimeGrid(t_end=count * float(sys.dt), dt=float(sys.dt), segments=((float(sys.dt), count),))
 
-    lam = modes(sys).ravel()
+    if tau == 0.0 and sys.nstate > 0:
+        lam2, vecs = np.linalg.eig(np.asarray(sys.A, dtype=float))
+        lam = lam2.ravel()
+    else:
+        lam = modes(sys).ravel()
     if tau > 0.0:
         A0 = _delay_free_A(sys)
         if A0 is not None:
@@ -238,7 +312,12 @@ def horizon(sys: SSBatch, *, settle_factor: float = 15.0, points_per_period: flo
     if lam.size == 0:  # static gain: the response is constant from t = 0+
         return TimeGrid(t_end=1.0, dt=1.0, segments=((1.0, 1),))
     sigma = -lam.real
-    life = settle_factor / sigma
+    life = settle_factor / sigma                           # decides the horizon
+    if residue_rtol is not None:                           # decides the step
+        step_life = residue_lives(sys, lam2, vecs, settle_factor=settle_factor,
+                                  residue_rtol=residue_rtol).ravel()
+    else:
+        step_life = life
     hreq = 2.0 * math.pi / (points_per_period * np.abs(lam))
     t_end = float(np.max(life))
     h0 = float(np.min(hreq))
@@ -252,17 +331,17 @@ def horizon(sys: SSBatch, *, settle_factor: float = 15.0, points_per_period: flo
     t = 0.0
     total = 0
     while t < t_end * (1 - 1e-12):
-        alive = life > t * (1 + 1e-12)
+        alive = step_life > t * (1 + 1e-12)
         lv = float(np.min(level[alive])) if np.any(alive) else cap_level
         h = h0 * 2.0 ** lv
         same = alive & (level <= lv)
-        t_b = float(np.max(life[same])) if np.any(same) else t_end
+        t_b = float(np.max(step_life[same])) if np.any(same) else t_end
         count = max(1, int(math.ceil((t_b - t) / h - 1e-9)))
         total += count
         _cap(total + 1, max_samples, lam)
         segs.append((h, count))
         t += h * count
-    return TimeGrid(t_end=t, dt=h0, segments=tuple(segs))
+    return TimeGrid(t_end=t, dt=min(h for h, _ in segs), segments=tuple(segs))
 
 
 def _cap(n: int, max_samples: int, lam: np.ndarray) -> None:

@@ -44,6 +44,7 @@ class SSBatch:
 
     Shapes: ``A (V,n,n)``, ``B (V,n)``, ``C (V,n)``, ``D (V,)``, ``Bw (V,n)``, ``Cz (V,n)``,
     ``Dz (V,)``, ``Dw (V,)``, ``Dzw (V,)``; floats.  ``n`` may be 0 (static gain).
+    ``grid_rows`` (optional) only tunes the time grid, see below.
     """
 
     A: np.ndarray
@@ -58,6 +59,11 @@ class SSBatch:
     Dw: np.ndarray | None = None
     Dzw: np.ndarray | None = None
     io_delay: float = 0.0
+    #: ``(V, k, n + 1)`` rows ``[C | D]`` of the outputs that share this batch's ``A`` and
+    #: ``B`` (the r->y, r->e and r->u paths of one loop), or ``None``.  The time grid follows
+    #: the residues of these outputs besides its own (the largest of them), so those paths
+    #: get one grid and share one propagation; extra rows can only make the grid finer.
+    grid_rows: np.ndarray | None = None
 
     @property
     def nvar(self) -> int:
