@@ -134,11 +134,19 @@ def resolve_requests(requests: Iterable) -> list[tuple[str, dict, str]]:
 
 
 def task_groups(n_groups: int, workers: int, *, least: int = 1) -> list[list[int]]:
-    """Positions of a plan's groups cut into tasks of consecutive groups: about four tasks per
-    worker (uneven groups balance), and at least ``least`` groups per task (so a task carries
-    enough work to be worth its round trip).  How groups are cut never changes a number."""
-    per = max(1, int(least), n_groups // (4 * max(1, int(workers))))
-    return [list(range(k, min(n_groups, k + per))) for k in range(0, n_groups, per)]
+    """Positions of a plan's groups cut into tasks of consecutive groups, largest first: each
+    task takes about ``1 / (2 workers)`` of the groups still left, and at least ``least`` (so
+    a task carries enough work to be worth its round trip).  The tasks shrink towards the
+    end, so the workers finish together however uneven the groups are (tasks of equal size
+    left one worker alone with the last one).  How groups are cut never changes a number."""
+    per_slot = 2 * max(1, int(workers))
+    least = max(1, int(least))
+    out, k = [], 0
+    while k < n_groups:
+        size = max(least, -(-(n_groups - k) // per_slot))
+        out.append(list(range(k, min(n_groups, k + size))))
+        k += size
+    return out
 
 
 def measure_groups(pl: Plan, reqs, positions: Iterable[int]) -> list:
