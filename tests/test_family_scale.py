@@ -185,6 +185,19 @@ def test_workers_give_identical_results():
     assert_identical(two, one)
 
 
+def test_tasks_cover_the_groups_in_order_and_shrink_towards_the_end():
+    # common practice, no source: guided self-scheduling (tasks of about remaining / (2 N)),
+    # so the last tasks are small and the workers finish together
+    for n, w, least in [(71, 2, 1), (10, 2, 3), (3, 4, 1), (1, 2, 1), (500, 8, 2)]:
+        tasks = M.task_groups(n, w, least=least)
+        assert [k for t in tasks for k in t] == list(range(n))
+        sizes = [len(t) for t in tasks]
+        assert sizes == sorted(sizes, reverse=True)
+        assert all(s >= least for s in sizes[:-1])
+        assert sizes[-1] <= max(least, 1)
+    assert [len(t) for t in M.task_groups(71, 2)][:3] == [18, 14, 10]
+
+
 def test_margins_match_python_control_on_resonant_family():
     """Reference: python-control ``stability_margins`` (crossings from the polynomial roots of
     |L|^2 = 1 and Im L = 0 of the transfer function), per variant.  The resonance gives several

@@ -344,8 +344,8 @@ def _measure_parallel(pl: Plan, reqs, workers: int) -> list:
 
     n = len(pl.groups)
     workers = min(workers, n)
-    # several tasks per worker balance uneven groups; each task carries a few groups so the
-    # round trips stay few
+    # tasks shrink towards the end (task_groups) so the workers finish together; the first
+    # ones carry many groups so the round trips stay few
     tasks = task_groups(n, workers)
     ctx = mp.get_context("fork" if "fork" in mp.get_all_start_methods() else "spawn")
     with ProcessPoolExecutor(max_workers=workers, mp_context=ctx, initializer=_worker_init,

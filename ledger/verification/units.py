@@ -15,7 +15,8 @@ Either way a task carries at least ``least_work`` variant x request evaluations 
 exists (``config.CLUSTER_TASK_WORK`` for a cluster), so the per-task cost of the executor
 (scheduling, transfer) stays a small share of the task, but never so much that there are fewer
 than two tasks per worker slot (an idle worker costs more than a task's overhead); with
-plenty of work there are about four tasks per slot to balance uneven ones.
+plenty of work there are about four tasks per slot to balance uneven ones (tasks of groups
+shrink towards the end, see ``task_groups``, so the slots finish together).
 
 :func:`run_unit` is what a worker runs: plain data in (the plans are texts and numbers), plain
 data out, no database.  :class:`Assembly` puts the parts of a revision back together in the
