@@ -135,7 +135,7 @@ def modes(sys: SSBatch) -> np.ndarray:
     return out.astype(complex)
 
 
-def check_stable(sys: SSBatch, *, margin: float = 1e-12) -> None:
+def check_stable(sys: SSBatch, *, margin: float = 1e-12, lam: np.ndarray | None = None) -> None:
     """Raise :class:`UnstableLoopError` unless every eigenvalue of ``A`` is strictly stable.
 
     Parameters
@@ -146,8 +146,11 @@ def check_stable(sys: SSBatch, *, margin: float = 1e-12) -> None:
         (delayed loops are checked by their response, see ``timeresp``).
     margin : float, default 1e-12
         Relative distance from the stability boundary counted as marginal (dimensionless).
+    lam : ndarray (V, n), optional
+        The eigenvalues of ``A`` when the caller has them already.
     """
-    lam = _eigs(np.asarray(sys.A, dtype=float))
+    if lam is None:
+        lam = _eigs(np.asarray(sys.A, dtype=float))
     if lam.size == 0:
         return
     if sys.dt is None:
@@ -275,8 +278,11 @@ def horizon(sys: SSBatch, *, settle_factor: float = 15.0, points_per_period: flo
         The grid would need more than ``max_samples`` samples.
     """
     tau = float(sys.tau or 0.0)
+    lam2 = vecs = None
+    if sys.dt is None and tau == 0.0 and sys.nstate > 0:
+        lam2, vecs = np.linalg.eig(np.asarray(sys.A, dtype=float))
     if sys.dt is not None or tau == 0.0:
-        check_stable(sys)
+        check_stable(sys, lam=lam2)
     if sys.dt is not None:
         lam = modes(sys).ravel()
         fin = lam[np.isfinite(lam)]
@@ -288,11 +294,7 @@ def horizon(sys: SSBatch, *, settle_factor: float = 15.0, points_per_period: flo
         _cap(count + 1, max_samples, fin)
         return TimeGrid(t_end=count * float(sys.dt), dt=float(sys.dt), segments=((float(sys.dt), count),))
 
-    if tau == 0.0 and sys.nstate > 0:
-        lam2, vecs = np.linalg.eig(np.asarray(sys.A, dtype=float))
-        lam = lam2.ravel()
-    else:
-        lam = modes(sys).ravel()
+    lam = lam2.ravel() if lam2 is not None else modes(sys).ravel()
     if tau > 0.0:
         A0 = _delay_free_A(sys)
         if A0 is not None:
