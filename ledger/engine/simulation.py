@@ -61,7 +61,8 @@ def _propagate(E: np.ndarray, out: np.ndarray) -> None:
         k += j
 
 
-#: the last delay-free propagation: (((dt, u, A shape, A, B), grid segments), states), read-only
+#: the last delay-free propagation: (((dt, u, A shape, A, B), grid segments), states (a
+#: read-only view), the buffer holding them)
 _LAST_PROPAGATION: list = [None]
 
 
@@ -77,26 +78,34 @@ def _sim_nodelay(sys: SSBatch, u: float, grid: TimeGrid):
     # (a horizon extended by :meth:`TimeGrid.extended`) continues it from its last state, and
     # a grid that is a prefix of the last one reads its first samples: the same operations in
     # the same order, so the states are bitwise those of a propagation from t = 0.
+    # The states are written into a buffer with room for one doubling of the horizon at the
+    # last step when that is at most a quarter more samples (most responses are extended
+    # once, for the tail test), so an extension continues in place instead of copying.
     key = (sys.dt, u, A.shape, A.tobytes(), B.tobytes())
     segs = tuple(grid.segments)
+    N = grid.nsamples
     last = _LAST_PROPAGATION[0]
     Z = None
     start, k = 0, 0
-    prev = None
+    buf = None
     if last is not None and last[0][0] == key:
-        lsegs, Zl = last[0][1], last[1]
+        lsegs, Zl, bl = last[0][1], last[1], last[2]
         if segs[:len(lsegs)] == lsegs:
-            prev, start = Zl, len(lsegs)
+            start, k = len(lsegs), Zl.shape[1] - 1
+            if bl.shape[1] >= N:
+                buf = bl
+            else:
+                buf = np.empty((V, N, n + 1))
+                buf[:, :Zl.shape[1]] = Zl
         elif lsegs[:len(segs)] == segs:
-            Z = Zl[:, :grid.nsamples]
+            Z = Zl[:, :N]
     if Z is None:
-        Z = np.empty((V, grid.nsamples, n + 1))             # augmented states at the samples
-        if prev is None:
-            Z[:, 0, :n] = 0.0
-            Z[:, 0, n] = u
-        else:
-            Z[:, :prev.shape[1]] = prev
-            k = prev.shape[1] - 1
+        if buf is None:
+            extra = grid.extended(2.0).nsamples - N
+            room = extra if extra * 4 <= N else 0
+            buf = np.empty((V, N + room, n + 1))             # augmented states at the samples
+            buf[:, 0, :n] = 0.0
+            buf[:, 0, n] = u
         for h, count in segs[start:]:
             if sys.dt is not None:
                 E = np.zeros_like(M)
@@ -105,10 +114,11 @@ def _sim_nodelay(sys: SSBatch, u: float, grid: TimeGrid):
                 E[:, n, n] = 1.0
             else:
                 E = expm_batch(M * h)
-            _propagate(E, Z[:, k:k + count + 1])
+            _propagate(E, buf[:, k:k + count + 1])
             k += count
+        Z = buf[:, :N]
         Z.flags.writeable = False
-        _LAST_PROPAGATION[0] = ((key, segs), Z)
+        _LAST_PROPAGATION[0] = ((key, segs), Z, buf)
     if sys.dt is not None:
         y = (Z @ Cy[:, :, None])[..., 0]
         return M, Cy, Z[:, :-1], y[:, :-1], y[:, 1:], None, None, Z[:, -1, :n]
