@@ -101,12 +101,25 @@ def balance_scales(M: np.ndarray) -> np.ndarray:
 
     M = np.asarray(M, dtype=float)
     V, m = M.shape[0], M.shape[-1]
-    key = np.where(M == 0.0, -4096, np.frexp(M)[1]).reshape(V, -1)
-    _, first, inv = np.unique(key, axis=0, return_index=True, return_inverse=True)
-    T = np.empty((first.size, m))
-    for g, j in enumerate(first):
+    key = np.ascontiguousarray(np.where(M == 0.0, -4096, np.frexp(M)[1]).reshape(V, -1))
+    # the first variant of each pattern stands for it (a dict of the rows' bytes: sorting the
+    # rows as np.unique(axis=0) does costs more than the balancing itself)
+    first: dict[bytes, int] = {}
+    reps: list[int] = []
+    inv = np.empty(V, dtype=int)
+    for v, row in enumerate(key):
+        g = first.setdefault(row.tobytes(), len(first))
+        if g == len(reps):
+            reps.append(v)
+        inv[v] = g
+    T = np.empty((len(reps), m))
+    for g, j in enumerate(reps):
         T[g] = scipy.linalg.matrix_balance(M[j], permute=False, separate=True)[1][0]
-    return T[np.ravel(inv)]
+    return T[inv]
+
+
+#: the last ``balance`` scales: ((A shape, A bytes), T); a pure function of A
+_LAST_BALANCE: list = [None]
 
 
 def balance(sys: SSBatch) -> SSBatch:
@@ -124,7 +137,14 @@ def balance(sys: SSBatch) -> SSBatch:
     V, n = A.shape[0], A.shape[1]
     if n < 2:
         return sys
-    T = balance_scales(A)
+    key = (A.shape, A.tobytes())
+    last = _LAST_BALANCE[0]
+    if last is not None and last[0] == key:     # the paths of one loop share A
+        T = last[1]
+    else:
+        T = balance_scales(A)
+        T.flags.writeable = False
+        _LAST_BALANCE[0] = (key, T)
     out = dict(A=A * T[:, None, :] / T[:, :, None],
                B=np.asarray(sys.B, dtype=float).reshape(V, n) / T,
                C=np.asarray(sys.C, dtype=float).reshape(V, n) * T)
