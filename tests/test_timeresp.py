@@ -604,3 +604,37 @@ def test_paths_of_one_loop_share_one_time_grid_and_it_is_exact():
         assert_allclose(getattr(new_m, name), getattr(old_m, name), rtol=1e-9)
     assert_allclose(peak_abs(g.paths["r->u"])[0], peak_abs(g.paths["r->u"], residue_rtol=None)[0],
                     rtol=1e-9)
+
+
+def test_refinement_beyond_the_series_uses_the_modal_form_only_when_well_conditioned():
+    from scipy.linalg import expm
+
+    from ledger.engine.steprefine import _Problems
+
+    # y(t_k + s) = Cy expm(M s) Z0: the modal sum must agree with scipy's matrix exponential
+    # (a reference library) for a lightly damped mode far from the series' radius
+    wn, z = 3000.0, 0.02
+    A = np.array([[0.0, 1.0], [-wn * wn, -2 * z * wn]])
+    M = np.zeros((1, 3, 3))
+    M[0, :2, :2] = A
+    M[0, :2, 2] = [0.0, wn * wn]
+    Cy = np.array([[1.0, 0.0, 0.0]])
+    Z0 = np.array([[[0.3, -50.0, 1.0]]])
+    P = _Problems(M, Cy, Z0, np.array([0, 0, 0]), np.array([0, 0, 0]))
+    assert P._modal[4].all()
+    s = np.array([1e-3, 4e-3, 2e-2])               # ||M|| s >> 2: beyond the series
+    got = P._expm_values(np.arange(3), s)
+    for q, (k, deriv) in enumerate([(0, 0), (1, 1), (2, 2)]):
+        want = [float(Cy[0] @ np.linalg.matrix_power(M[0], deriv) @ expm(M[0] * x) @ Z0[0, 0])
+                for x in s]
+        scale = np.max(np.abs(want)) + 1.0
+        assert_allclose(got[q], want, rtol=0, atol=1e-11 * scale * wn ** deriv)
+    # a Jordan block (double pole) has a singular eigenvector matrix: the matrix exponential
+    # is kept (common practice, no source)
+    J = np.zeros((1, 3, 3))
+    J[0, :2, :2] = [[-5.0, 1.0], [0.0, -5.0]]
+    J[0, :2, 2] = [0.0, 25.0]
+    Q = _Problems(J, Cy, Z0, np.array([0]), np.array([0]))
+    assert not Q._modal[4].any()
+    y = Q._expm_values(np.arange(1), np.array([0.7]))[0]
+    assert_allclose(y, [float(Cy[0] @ expm(J[0] * 0.7) @ Z0[0, 0])], rtol=1e-13)

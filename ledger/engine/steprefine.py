@@ -73,6 +73,9 @@ def _refine(p: Pieces, levels=(), near_extremes: bool | str = True,
 #: remainder is below ``rho^(K+1) / (K+1)! * e^rho`` = 1.6e-17 at ``rho = 2``, K = 24
 _TAYLOR_DEGREE = 24
 _TAYLOR_RHO = 2.0
+#: largest eigenvector condition number ``||V||_F ||V^-1||_F`` for which points beyond the
+#: series' reach are evaluated from the modal form instead of a matrix exponential
+_MODAL_KAPPA = 1e4
 
 
 @dataclass(frozen=True)
@@ -83,8 +86,11 @@ class _Problems:
     evaluated from the Taylor series ``y^(j)(s) = sum_i Cy M^(i+j) Z0 s^i / i!``: the scalar
     moments ``Cy M^i Z0`` of each problem are made once (a few matrix-vector products) and
     every Newton step is then a polynomial evaluation instead of a matrix exponential.  The
-    series is used where ``||M||_1 s <= 2`` (remainder below 1.6e-17 of ``|Cy| |Z0|``), the
-    matrix exponential elsewhere.
+    series is used where ``||M||_1 s <= 2`` (remainder below 1.6e-17 of ``|Cy| |Z0|``);
+    elsewhere the modal sum ``sum_i (Cy v_i) c_i exp(lam_i s)`` (``c = V^-1 Z0``) where the
+    variant's eigenvectors are well conditioned (:attr:`_modal`), else the matrix
+    exponential.  The rounding scales are the sums of the magnitudes of the terms, so the
+    noise test of :func:`_solve` stays honest either way.
     """
 
     M: np.ndarray
@@ -148,7 +154,53 @@ class _Problems:
             return y, d1, d2
         return y, d1, d2, (sy, sd)
 
+    @cached_property
+    def _modal(self):
+        """Eigen-decomposition ``M = V diag(lam) V^-1`` of each problem's variant, for the
+        points beyond the series' reach: ``(lam (P, m), |Cy| |V| (P, m), Cy V (P, m),
+        c = V^-1 Z0 (P, m), trusted (P,))``.  A variant is trusted when
+        ``||V||_F ||V^-1||_F <= _MODAL_KAPPA`` (rounding of the modal sum below about 1e4
+        machine epsilons of its terms) and everything is finite; the others keep the matrix
+        exponential."""
+        u, inv = np.unique(self.v, return_inverse=True)
+        Mu = self.M[u]
+        with np.errstate(all="ignore"):
+            lam, V = np.linalg.eig(Mu)
+            try:
+                W = np.linalg.inv(V)
+            except np.linalg.LinAlgError:
+                W = np.full_like(V, np.nan)
+            kappa = np.linalg.norm(V, axis=(1, 2)) * np.linalg.norm(W, axis=(1, 2))
+            Cy = self.Cy[u]
+            CV = np.einsum("ua,uai->ui", Cy.astype(complex), V)
+            aCV = np.einsum("ua,uai->ui", np.abs(Cy), np.abs(V))
+            c = np.einsum("pij,pj->pi", W[inv], self.Z0[self.v, self.k].astype(complex))
+        ok = (np.isfinite(kappa) & (kappa <= _MODAL_KAPPA)
+              & np.all(np.isfinite(lam), axis=1) & np.all(np.isfinite(CV), axis=1))[inv]
+        ok &= np.all(np.isfinite(c), axis=1)
+        return lam[inv], aCV[inv], CV[inv], c, ok
+
     def _expm_values(self, idx, s):
+        lam, aCV, CV, c, ok = self._modal
+        outs = [np.empty(idx.size) for _ in range(5)]
+        md = ok[idx]
+        if md.any():
+            j, sj = idx[md], s[md]
+            with np.errstate(all="ignore"):
+                e = c[j] * np.exp(lam[j] * sj[:, None])             # modal coordinates at s
+                t = CV[j] * e
+                ae = np.abs(e) * aCV[j]
+                outs[0][md] = np.sum(t, axis=1).real
+                outs[1][md] = np.sum(lam[j] * t, axis=1).real
+                outs[2][md] = np.sum(lam[j] ** 2 * t, axis=1).real
+                outs[3][md] = np.sum(ae, axis=1)
+                outs[4][md] = np.sum(np.abs(lam[j]) * ae, axis=1)
+        if (~md).any():
+            for q, val in enumerate(self._expm_direct(idx[~md], s[~md])):
+                outs[q][~md] = val
+        return outs
+
+    def _expm_direct(self, idx, s):
         v, k = self.v[idx], self.k[idx]
         Mv = self.M[v]
         E = expm_batch(Mv * s[:, None, None])
