@@ -19,11 +19,7 @@ from .stability import decay_rate, decay_rate_rows, min_damping, min_damping_row
 from .types import SSBatch
 
 def _sub_batch(b: SSBatch, m: np.ndarray) -> SSBatch:
-    def s(x):
-        return None if x is None else x[m]
-    return SSBatch(A=b.A[m], B=b.B[m], C=b.C[m], D=b.D[m], dt=b.dt, tau=b.tau, Bw=s(b.Bw),
-                   Cz=s(b.Cz), Dz=s(b.Dz), Dw=s(b.Dw), Dzw=s(b.Dzw), io_delay=b.io_delay,
-                   grid_rows=s(b.grid_rows))
+    return b.take(m)
 
 
 def _sub_eval(evaluate, m):

@@ -205,12 +205,7 @@ def _amplitude(s) -> float:
 
 def _rows_of(b, m):
     """The variants ``m`` of an :class:`~ledger.engine.types.SSBatch`."""
-    from dataclasses import replace
-
-    def sub(x):
-        return None if x is None else x[m]
-    return replace(b, A=b.A[m], B=b.B[m], C=b.C[m], D=b.D[m], Bw=sub(b.Bw), Cz=sub(b.Cz),
-                   Dz=sub(b.Dz), Dw=sub(b.Dw), Dzw=sub(b.Dzw), grid_rows=sub(b.grid_rows))
+    return b.take(m)
 
 
 def move_metrics_group(plan, g, mask: np.ndarray, s: dict) -> MoveMetrics:

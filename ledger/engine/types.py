@@ -73,6 +73,15 @@ class SSBatch:
     def nstate(self) -> int:
         return self.A.shape[1]
 
+    def take(self, m) -> "SSBatch":
+        """The variants selected by ``m`` (mask or indices): every per-variant array field
+        indexed, the scalars kept."""
+        from dataclasses import fields, replace
+
+        per = {f.name: getattr(self, f.name)[m] for f in fields(self)
+               if isinstance(getattr(self, f.name), np.ndarray)}
+        return replace(self, **per)
+
 
 @dataclass(frozen=True, eq=False)
 class FreqBatch:
